@@ -1,0 +1,54 @@
+"""fitcore: outlier-aware curve fitting of lab measurements (no Qt here).
+
+Public API (kept stable; outside checks call it)::
+
+    fitcore.fit(model, x, y, loss="l2", *, scale="auto", alpha=None,
+                sigma=None, excluded=None, p0=None, ...)  -> FitResult
+    fitcore.builtin_models()                               -> list of names
+    fitcore.read_table(path, sheet=None)                   -> Table
+    fitcore.format_value(value, u, style="paren" | "pm")   -> str
+
+Submodules are imported lazily, so ``import fitcore`` stays cheap.
+"""
+from __future__ import annotations
+
+import importlib
+
+__version__ = "0.1.0"
+
+_LAZY = {
+    "fit": ("solve", "fit"),
+    "FitError": ("solve", "FitError"),
+    "FitResult": ("result", "FitResult"),
+    "Model": ("model", "Model"),
+    "Derived": ("model", "Derived"),
+    "linear_model": ("model", "linear_model"),
+    "LOSS_NAMES": ("losses", "LOSS_NAMES"),
+    "get_loss": ("losses", "get_loss"),
+    "log_partition": ("partition", "log_partition"),
+    "builtin_models": ("models", "builtin_models"),
+    "get_model": ("models", "get_model"),
+    "resolve_model": ("models", "resolve_model"),
+    "parse_formula": ("formula", "parse_formula"),
+    "FormulaError": ("formula", "FormulaError"),
+    "read_table": ("io", "read_table"),
+    "Table": ("io", "Table"),
+    "ReadError": ("io", "ReadError"),
+    "format_value": ("report", "format_value"),
+}
+
+__all__ = sorted(_LAZY) + ["__version__"]
+
+
+def __getattr__(name):
+    try:
+        module, attr = _LAZY[name]
+    except KeyError:
+        raise AttributeError(f"module 'fitcore' has no attribute {name!r}") from None
+    value = getattr(importlib.import_module(f".{module}", __name__), attr)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return __all__

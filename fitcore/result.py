@@ -1,0 +1,158 @@
+"""The immutable result of one fit."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+from .model import Model
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """Everything one fit produced. Arrays are in parameter order / point order.
+
+    Attributes
+    ----------
+    param_names, values, stderr, covariance
+        Estimates, their standard uncertainties and the covariance matrix. Held
+        (fixed) parameters have stderr 0 and zero rows/columns in the covariance.
+    weights
+        Normalised robust weight per point, in [0, 1]; 1 = counted fully, 0 where
+        excluded (or rejected outright by a redescending loss).
+    residuals
+        ``y - f(x)`` per point, also for excluded points (so they can be plotted).
+    std_residuals
+        Residuals divided by ``sigma`` (if given) and by the scale.
+    scale
+        The residual scale used by the loss (in units of y, or of y/sigma when sigma
+        is given). For least squares it is the residual standard deviation s.
+    scale_method
+        How the scale was obtained ("fixed", "normalised MAD, refined", ...).
+    alpha
+        Shape of the general/adaptive loss, else None.
+    tuning
+        Tuning constant of the loss (in units of the scale), None where not used.
+    covariance_recipe
+        Name of the covariance recipe used (see :mod:`fitcore.uncertainty`).
+    converged, message
+        Whether the solver converged, and a plain-language message.
+    n_used, n_excluded, n_downweighted, dof
+        Points used, excluded by the analyst, used with weight < 0.5; degrees of
+        freedom ``n_used - n_free_params``.
+    """
+
+    model: Model
+    loss: str
+    param_names: tuple[str, ...]
+    values: np.ndarray
+    stderr: np.ndarray
+    covariance: np.ndarray
+    weights: np.ndarray
+    residuals: np.ndarray
+    std_residuals: np.ndarray
+    fitted: np.ndarray
+    x: np.ndarray
+    y: np.ndarray
+    sigma: np.ndarray | None
+    excluded: np.ndarray
+    scale: float
+    scale_method: str
+    alpha: float | None
+    tuning: float | None
+    covariance_recipe: str
+    converged: bool
+    message: str
+    n_used: int
+    n_excluded: int
+    n_downweighted: int
+    dof: int
+    fixed: dict = field(default_factory=dict)
+    n_iter: int = 0
+    objective: float = float("nan")
+    sigma_mode: str = "none"  # "none", "absolute", "relative"
+    rss: float = float("nan")
+    alpha_stderr: float | None = None
+    info: dict[str, Any] = field(default_factory=dict)
+
+    # ------------------------------------------------------------------ access
+    def __getitem__(self, name: str) -> float:
+        return float(self.values[self.param_names.index(name)])
+
+    def as_dict(self) -> dict[str, float]:
+        return {n: float(v) for n, v in zip(self.param_names, self.values)}
+
+    @property
+    def free(self) -> np.ndarray:
+        """Boolean mask of parameters that were fitted (not held)."""
+        return np.array([n not in self.fixed for n in self.param_names])
+
+    @property
+    def correlation(self) -> np.ndarray:
+        """Correlation matrix of the estimates (NaN rows for held parameters)."""
+        se = np.sqrt(np.diag(self.covariance))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = self.covariance / np.outer(se, se)
+        return r
+
+    def t_quantile(self, level: float = 0.95) -> float:
+        """Two-sided Student t quantile with ``dof`` degrees of freedom."""
+        if self.dof <= 0:
+            return float("nan")
+        return float(stats.t.ppf(0.5 + level / 2.0, self.dof))
+
+    def intervals(self, level: float = 0.95) -> np.ndarray:
+        """Confidence intervals ``value -/+ t * stderr``; shape (k, 2)."""
+        t = self.t_quantile(level)
+        return np.column_stack([self.values - t * self.stderr, self.values + t * self.stderr])
+
+    # ------------------------------------------------------------------ curves
+    def predict(self, x) -> np.ndarray:
+        """Model values at ``x`` with the fitted parameters."""
+        return self.model.f(np.asarray(x, dtype=float), self.values)
+
+    def band(self, x, level: float = 0.95, kind: str = "confidence"):
+        """Pointwise confidence band of the fitted curve (delta method).
+
+        Returns ``(lower, upper)``: ``f(x) -/+ t * sqrt(g^T C g)`` with ``g`` the model
+        gradient at x and t the Student quantile with ``dof`` degrees of freedom.
+        ``kind="prediction"`` adds the residual variance (scale^2, times sigma^2 is not
+        known at new x, so it uses the scale alone) for a prediction band.
+        """
+        x = np.asarray(x, dtype=float)
+        yhat = self.predict(x)
+        J = np.asarray(self.model.jac(x, self.values), dtype=float).reshape(x.size, -1)
+        var = np.einsum("ij,jk,ik->i", J, self.covariance, J)
+        var = np.maximum(var, 0.0)
+        if kind == "prediction":
+            var = var + self.scale**2
+        elif kind != "confidence":
+            raise ValueError("kind must be 'confidence' or 'prediction'")
+        half = self.t_quantile(level) * np.sqrt(var)
+        return yhat - half, yhat + half
+
+    def derived_values(self):
+        """Derived quantities: list of (name, value, standard uncertainty, Derived)."""
+        out = []
+        for d in self.model.derived:
+            v = float(d.func(self.values))
+            g = np.asarray(d.grad(self.values), dtype=float)
+            u = float(np.sqrt(max(g @ self.covariance @ g, 0.0)))
+            out.append((d.name, v, u, d))
+        return out
+
+    def summary(self) -> str:
+        """A short plain-text summary (the report module has the full formats)."""
+        lines = [f"model: {self.model.title or self.model.name}   loss: {self.loss}"]
+        for n, v, s in zip(self.param_names, self.values, self.stderr):
+            held = "  (held)" if n in self.fixed else ""
+            lines.append(f"  {n} = {v:.10g}  (u = {s:.3g}){held}")
+        lines.append(
+            f"n used {self.n_used}, excluded {self.n_excluded}, down-weighted "
+            f"{self.n_downweighted}, dof {self.dof}, scale {self.scale:.6g} "
+            f"({self.scale_method})"
+        )
+        lines.append(f"covariance: {self.covariance_recipe}; {self.message}")
+        return "\n".join(lines)
