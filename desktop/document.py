@@ -1,0 +1,360 @@
+"""The window's document: pure Python state, no widgets and no Qt.
+
+The document holds what the analyst works on:
+
+* the measurements (x, y, optional sigma_y, names and units, where they came from);
+* the exclusion record: a boolean mask, plus a reason and a time per excluded point;
+* the method settings (model, loss, scale, alpha, held parameters, start values);
+* the last fit result, whether it is stale, and the last fit message.
+
+Widgets observe it through plain callbacks (:meth:`Document.subscribe`) and change it
+only through undoable commands (:mod:`desktop.commands`), which call the ``apply_*``
+methods here. Every change to the fit inputs bumps :attr:`Document.generation`, so a
+fit result computed from older inputs can be recognised and dropped.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+from dataclasses import dataclass, field, replace
+from typing import Callable
+
+import numpy as np
+
+#: events sent to subscribers
+EVENTS = ("data", "mask", "reasons", "settings", "result", "selection")
+
+
+@dataclass(frozen=True)
+class Measurements:
+    """One data set: x, y and optional standard uncertainties of y.
+
+    Parameters
+    ----------
+    x, y
+        Float arrays of equal length (finite values only).
+    sigma
+        Standard uncertainties of y (positive), or None.
+    x_name, y_name, sigma_name
+        Column names as read from the file.
+    x_unit, y_unit
+        Units split off the headers ("" when none).
+    source
+        File path, or a short description such as "clipboard".
+    notes
+        Human-readable lines about what was skipped or guessed while reading.
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    sigma: np.ndarray | None = None
+    x_name: str = "x"
+    y_name: str = "y"
+    sigma_name: str = ""
+    x_unit: str = ""
+    y_unit: str = ""
+    source: str = ""
+    notes: tuple[str, ...] = ()
+
+    def __post_init__(self):
+        x = np.asarray(self.x, dtype=float).ravel()
+        y = np.asarray(self.y, dtype=float).ravel()
+        if x.size != y.size:
+            raise ValueError(f"x has {x.size} values but y has {y.size}; they must match")
+        object.__setattr__(self, "x", x)
+        object.__setattr__(self, "y", y)
+        if self.sigma is not None:
+            s = np.asarray(self.sigma, dtype=float).ravel()
+            if s.size != x.size:
+                raise ValueError(f"sigma_y has {s.size} values but x has {x.size}; they must match")
+            object.__setattr__(self, "sigma", s)
+        object.__setattr__(self, "notes", tuple(self.notes))
+
+    @property
+    def n(self) -> int:
+        return int(self.x.size)
+
+    def label(self, which: str) -> str:
+        """Axis label such as ``"Time (s)"`` for ``which`` in {"x", "y"}."""
+        name, unit = (self.x_name, self.x_unit) if which == "x" else (self.y_name, self.y_unit)
+        return f"{name} ({unit})" if unit else name
+
+
+@dataclass(frozen=True)
+class Settings:
+    """The method: what to fit and how. Immutable; a change makes a new one.
+
+    Parameters
+    ----------
+    model
+        A built-in model name or a formula text (see ``model_kind``).
+    model_kind
+        "builtin" or "formula".
+    loss
+        One of ``fitcore.LOSS_NAMES``.
+    scale
+        "auto" or a positive number in units of y.
+    alpha
+        Shape of the general loss (used only when ``loss == "general"``).
+    fixed
+        Held parameters, ``(name, value)`` pairs.
+    p0
+        Start values, ``(name, value)`` pairs (parameters not listed start from the
+        model's own guess).
+    """
+
+    model: str = "line"
+    model_kind: str = "builtin"
+    loss: str = "huber"
+    scale: str | float = "auto"
+    alpha: float = 1.0
+    fixed: tuple[tuple[str, float], ...] = ()
+    p0: tuple[tuple[str, float], ...] = ()
+
+    def with_(self, **kw) -> "Settings":
+        """A copy with some fields changed (dicts are accepted for fixed/p0)."""
+        for key in ("fixed", "p0"):
+            if key in kw and isinstance(kw[key], dict):
+                kw[key] = tuple(sorted((str(k), float(v)) for k, v in kw[key].items()))
+        return replace(self, **kw)
+
+    def fit_kwargs(self) -> dict:
+        """Keyword arguments for ``fitcore.fit`` (besides model, x, y)."""
+        kw = {"loss": self.loss, "scale": self.scale}
+        if self.loss == "general":
+            kw["alpha"] = float(self.alpha)
+        if self.fixed:
+            kw["fixed"] = dict(self.fixed)
+        if self.p0:
+            kw["p0"] = dict(self.p0)
+        return kw
+
+
+@dataclass
+class MaskChange:
+    """A change to the exclusion record of some points (what an undo step restores)."""
+
+    indices: np.ndarray
+    before: np.ndarray
+    after: np.ndarray
+    reasons_before: list[str] = field(default_factory=list)
+    reasons_after: list[str] = field(default_factory=list)
+    times_before: list[str] = field(default_factory=list)
+    times_after: list[str] = field(default_factory=list)
+
+    def merged_with(self, later: "MaskChange") -> "MaskChange":
+        """One change equivalent to ``self`` followed by ``later``."""
+        first = {int(i): k for k, i in enumerate(self.indices)}
+        second = {int(i): k for k, i in enumerate(later.indices)}
+        idx = sorted(set(first) | set(second))
+        out = MaskChange(np.array(idx, dtype=np.intp), np.zeros(len(idx), bool), np.zeros(len(idx), bool))
+        for j, i in enumerate(idx):
+            a, b = first.get(i), second.get(i)
+            src_b = (self, a) if a is not None else (later, b)
+            src_a = (later, b) if b is not None else (self, a)
+            out.before[j] = src_b[0].before[src_b[1]]
+            out.reasons_before.append(src_b[0].reasons_before[src_b[1]])
+            out.times_before.append(src_b[0].times_before[src_b[1]])
+            out.after[j] = src_a[0].after[src_a[1]]
+            out.reasons_after.append(src_a[0].reasons_after[src_a[1]])
+            out.times_after.append(src_a[0].times_after[src_a[1]])
+        return out
+
+    def without_no_ops(self) -> "MaskChange":
+        """The same change without the points whose state it leaves as it was."""
+        keep = [k for k in range(self.indices.size)
+                if self.before[k] != self.after[k] or self.reasons_before[k] != self.reasons_after[k]]
+        return MaskChange(
+            self.indices[keep], self.before[keep], self.after[keep],
+            [self.reasons_before[k] for k in keep], [self.reasons_after[k] for k in keep],
+            [self.times_before[k] for k in keep], [self.times_after[k] for k in keep],
+        )
+
+    @property
+    def is_empty(self) -> bool:
+        return self.indices.size == 0
+
+
+def _now() -> str:
+    return _dt.datetime.now().astimezone().isoformat(timespec="seconds")
+
+
+class Document:
+    """The pure state behind one window.
+
+    Subscribers are plain callables ``callback(event, **info)`` registered with
+    :meth:`subscribe`; ``event`` is one of :data:`EVENTS`.
+    """
+
+    def __init__(self, measurements: Measurements | None = None, settings: Settings | None = None):
+        self._listeners: list[Callable] = []
+        self.settings = settings or Settings()
+        self.measurements = Measurements(np.zeros(0), np.zeros(0))
+        self.excluded = np.zeros(0, bool)
+        self.reasons: list[str] = []
+        self.times: list[str] = []
+        self.result = None
+        self.result_generation = -1
+        self.stale = False
+        self.fit_message = ""
+        self.generation = 0
+        self.selection = np.zeros(0, np.intp)
+        if measurements is not None:
+            self.apply_measurements(measurements)
+
+    # --------------------------------------------------------------- observers
+    def subscribe(self, callback: Callable) -> None:
+        """Call ``callback(event, **info)`` after every change."""
+        self._listeners.append(callback)
+
+    def unsubscribe(self, callback: Callable) -> None:
+        if callback in self._listeners:
+            self._listeners.remove(callback)
+
+    def _emit(self, event: str, **info) -> None:
+        for cb in list(self._listeners):
+            cb(event, **info)
+
+    # --------------------------------------------------------------- queries
+    @property
+    def n(self) -> int:
+        return self.measurements.n
+
+    @property
+    def has_data(self) -> bool:
+        return self.n > 0
+
+    def exclusion_record(self) -> list[tuple[int, str, str]]:
+        """``(point index, reason, time)`` for every excluded point."""
+        return [(int(i), self.reasons[i], self.times[i]) for i in np.flatnonzero(self.excluded)]
+
+    def fit_request(self) -> dict:
+        """Everything one fit needs, as copies (safe to hand to a worker thread)."""
+        m = self.measurements
+        return {
+            "model": self.settings.model,
+            "x": m.x.copy(),
+            "y": m.y.copy(),
+            "sigma": None if m.sigma is None else m.sigma.copy(),
+            "excluded": self.excluded.copy(),
+            "kwargs": self.settings.fit_kwargs(),
+            "generation": self.generation,
+        }
+
+    def status(self) -> np.ndarray:
+        """Per point: 0 used, 1 down-weighted (weight < 0.5), 2 excluded."""
+        st = np.zeros(self.n, np.int8)
+        res = self.result
+        if res is not None and len(res.weights) == self.n:
+            w = np.asarray(res.weights, float)
+            st[(w < 0.5)] = 1
+        st[self.excluded] = 2
+        return st
+
+    # --------------------------------------------------------------- changes
+    def _bump(self) -> None:
+        self.generation += 1
+        if self.result is not None:
+            self.stale = True
+
+    def apply_measurements(self, m: Measurements, *, settings: Settings | None = None) -> None:
+        """Replace the data set (clears the exclusion record and the result)."""
+        self.measurements = m
+        self.excluded = np.zeros(m.n, bool)
+        self.reasons = [""] * m.n
+        self.times = [""] * m.n
+        self.selection = np.zeros(0, np.intp)
+        if settings is not None:
+            self.settings = settings
+        self.result = None
+        self.result_generation = -1
+        self.stale = False
+        self.fit_message = ""
+        self.generation += 1
+        self._emit("data")
+
+    def make_mask_change(self, indices, excluded, reason: str = "") -> MaskChange:
+        """The change that sets ``excluded`` (bool or bool array) at ``indices``.
+
+        Points whose state would not change are left out of the change.
+        """
+        idx = np.unique(np.asarray(indices, dtype=np.intp).ravel())
+        if idx.size and (idx[0] < 0 or idx[-1] >= self.n):
+            raise IndexError(f"point index out of range 0..{self.n - 1}")
+        target = np.broadcast_to(np.asarray(excluded, bool), idx.shape)
+        keep = self.excluded[idx] != target
+        idx, target = idx[keep], target[keep]
+        now = _now()
+        return MaskChange(
+            indices=idx,
+            before=self.excluded[idx].copy(),
+            after=target.copy(),
+            reasons_before=[self.reasons[i] for i in idx],
+            reasons_after=[reason if t else "" for t in target],
+            times_before=[self.times[i] for i in idx],
+            times_after=[now if t else "" for t in target],
+        )
+
+    def apply_mask_change(self, change: MaskChange, *, undo: bool = False) -> None:
+        """Apply (or with ``undo=True`` revert) a :class:`MaskChange`."""
+        if change.is_empty:
+            return
+        vals = change.before if undo else change.after
+        reasons = change.reasons_before if undo else change.reasons_after
+        times = change.times_before if undo else change.times_after
+        self.excluded[change.indices] = vals
+        for i, r, t in zip(change.indices, reasons, times):
+            self.reasons[int(i)] = r
+            self.times[int(i)] = t
+        self._bump()
+        self._emit("mask", indices=change.indices)
+
+    def apply_reason(self, index: int, reason: str) -> None:
+        """Set the exclusion reason of one point (does not change the fit inputs)."""
+        self.reasons[int(index)] = str(reason)
+        self._emit("reasons", indices=np.array([index], np.intp))
+
+    def apply_settings(self, settings: Settings) -> None:
+        """Replace the method settings."""
+        if settings == self.settings:
+            return
+        self.settings = settings
+        self._bump()
+        self._emit("settings")
+
+    def set_selection(self, indices, *, origin: str = "") -> None:
+        """Set the selected points (not undoable, not a fit input)."""
+        sel = np.unique(np.asarray(indices, dtype=np.intp).ravel())
+        if sel.size == self.selection.size and np.array_equal(sel, self.selection):
+            return
+        self.selection = sel
+        self._emit("selection", origin=origin)
+
+    # --------------------------------------------------------------- results
+    def accept_result(self, result, generation: int) -> bool:
+        """Store a fit result computed from inputs of ``generation``.
+
+        A result from older inputs is dropped (returns False). A result that did not
+        converge keeps the previous result on screen, marked stale.
+        """
+        if generation != self.generation:
+            return False
+        if not getattr(result, "converged", False) and self.result is not None:
+            self.fit_message = getattr(result, "message", "the fit did not converge")
+            self.stale = True
+            self._emit("result", failed=True)
+            return True
+        self.result = result
+        self.result_generation = generation
+        self.stale = not getattr(result, "converged", False)
+        self.fit_message = getattr(result, "message", "")
+        self._emit("result", failed=not result.converged)
+        return True
+
+    def reject_fit(self, message: str, generation: int) -> bool:
+        """Record that the fit of ``generation`` failed; the old result stays, stale."""
+        if generation != self.generation:
+            return False
+        self.fit_message = message
+        self.stale = self.result is not None
+        self._emit("result", failed=True)
+        return True
