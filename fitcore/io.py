@@ -1,0 +1,1156 @@
+"""Readers for spreadsheet exports: delimited text, XLSX and ODS.
+
+:func:`read_table` turns one file into a :class:`Table` of float columns:
+
+* text in UTF-8 (with or without a byte-order mark), UTF-16 ("Unicode text",
+  little- or big-endian) or Latin-1/CP1252, separated by commas, semicolons, tabs,
+  vertical bars or runs of spaces;
+* decimal point or decimal comma (detected from the numbers, or given), thousands
+  separators ("1,234.5", "1.234,5", "1 234,5", "1'234.5");
+* title or comment lines above the header row, and units in the headers
+  ("Time (s)", "Signal [mV]", "T / K");
+* XLSX workbooks (openpyxl) and ODS spreadsheets (odfpy, through pandas).
+
+Nothing is dropped silently: an empty or non-numeric cell becomes NaN and the
+table's ``notes`` name it with its row number as shown in the file (1-based).
+A file that cannot be read raises :class:`ReadError` with one sentence naming the
+file and the problem. The input file is only ever opened for reading.
+
+:meth:`Table.choose` picks the x, y and (optional) sigma columns and returns a
+:class:`Selection`; :func:`read_clipboard_text` parses text pasted from a
+spreadsheet with the same code.
+"""
+from __future__ import annotations
+
+import csv
+import hashlib
+import io as _io
+import math
+import os
+import re
+import warnings
+import zipfile
+from collections import Counter
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterable, Sequence
+
+import numpy as np
+
+__all__ = [
+    "ReadError",
+    "UnknownColumnError",
+    "Dialect",
+    "Table",
+    "Selection",
+    "Measurements",
+    "read_table",
+    "read_clipboard_text",
+    "split_unit",
+]
+
+#: Lines looked at to find the separator, decimal mark and header row.
+SNIFF_LINES = 400
+#: At most this many row numbers are spelled out in one note.
+MAX_ROWS_IN_NOTE = 12
+
+_TEXT_SEPARATORS = ("\t", ";", ",", "|", " ")  # " " = runs of white space
+_SEPARATOR_NAMES = {
+    "\t": "tab",
+    ";": "semicolon",
+    ",": "comma",
+    "|": "vertical bar",
+    " ": "white space",
+}
+
+
+class ReadError(ValueError):
+    """A file or text that cannot be read as a table (the message says why)."""
+
+
+class UnknownColumnError(ReadError, KeyError):
+    """A column name or position that the table does not have."""
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return str(self.args[0]) if self.args else ""
+
+
+# --------------------------------------------------------------------------- numbers
+
+_GROUP_SEPS = {".": ",'\u2019\u00a0\u202f ", ",": ".'\u2019\u00a0\u202f "}
+
+
+def _number_regex(decimal: str) -> re.Pattern:
+    seps = re.escape(_GROUP_SEPS[decimal])
+    dec = re.escape(decimal)
+    return re.compile(
+        r"^[+-]?"
+        r"(?:"
+        rf"(?:\d{{1,3}}(?P<sep>[{seps}])\d{{3}}(?:(?P=sep)\d{{3}})*|\d+)(?:{dec}\d*)?"
+        rf"|{dec}\d+"
+        r")"
+        r"(?:[eE][+-]?\d+)?$"
+    )
+
+
+_NUMBER_RE = {".": _number_regex("."), ",": _number_regex(",")}
+_STRIP_GROUPS = {d: str.maketrans("", "", _GROUP_SEPS[d]) for d in ".,"}
+_MINUS_SIGNS = str.maketrans({"\u2212": "-", "\u2013": "-"})
+
+
+def _parse_number(text: str, decimal: str) -> tuple[float | None, bool]:
+    """Parse one cell. Returns ``(value or None, used_thousands_separator)``."""
+    s = text.strip().translate(_MINUS_SIGNS)
+    m = _NUMBER_RE[decimal].match(s)
+    if m is None:
+        return None, False
+    grouped = m.group("sep") is not None
+    if grouped:
+        s = s.translate(_STRIP_GROUPS[decimal])
+    if decimal == ",":
+        s = s.replace(",", ".")
+    return float(s), grouped
+
+
+def _numlike(text: str) -> bool:
+    s = text.strip().translate(_MINUS_SIGNS)
+    return bool(s) and (_NUMBER_RE["."].match(s) is not None or _NUMBER_RE[","].match(s) is not None)
+
+
+_MANTISSA_RE = re.compile(r"^[+-]?([\d.,]+)(?:[eE][+-]?\d+)?$")
+
+
+def _decimal_votes(cells: Iterable[str]) -> tuple[int, int, int, int]:
+    """Evidence for the decimal mark: (point, comma, ambiguous point, ambiguous comma).
+
+    "1.5" is a point vote, "0,125" or "12,5" a comma vote; "1,234.5" votes for
+    the mark that comes last; "1.234" (1-3 digits, mark, exactly three digits)
+    could be a thousands group and counts as ambiguous only.
+    """
+    point = comma = amb_point = amb_comma = 0
+    for cell in cells:
+        m = _MANTISSA_RE.match(cell.strip().translate(_MINUS_SIGNS))
+        if m is None:
+            continue
+        body = m.group(1)
+        n_point, n_comma = body.count("."), body.count(",")
+        if n_point and n_comma:
+            if body.rfind(".") > body.rfind(","):
+                point += 1
+            else:
+                comma += 1
+        elif n_point + n_comma == 0:
+            continue
+        else:
+            mark = "." if n_point else ","
+            if n_point + n_comma > 1:  # "1.234.567": repeated mark = thousands
+                if mark == ".":
+                    comma += 1
+                else:
+                    point += 1
+                continue
+            head, _, tail = body.partition(mark)
+            could_group = len(tail) == 3 and 1 <= len(head) <= 3 and head.lstrip("0") == head and head != ""
+            if could_group:
+                if mark == ".":
+                    amb_point += 1
+                else:
+                    amb_comma += 1
+            elif mark == ".":
+                point += 1
+            else:
+                comma += 1
+    return point, comma, amb_point, amb_comma
+
+
+def _choose_decimal(cells: list[str], separator: str | None, notes: list[str]) -> str:
+    if separator == ",":
+        return "."
+    point, comma, amb_point, amb_comma = _decimal_votes(cells)
+    if comma > point:
+        notes.append("decimal comma detected")
+        if point:
+            notes.append(f"{point} value(s) looked like they used a decimal point; read as decimal comma")
+        return ","
+    if point > comma:
+        return "."
+    if point == comma and point > 0:
+        notes.append("the numbers mix decimal point and decimal comma; decimal point assumed")
+        return "."
+    if amb_comma > amb_point:
+        notes.append(
+            "decimal comma assumed: values like '1,234' could also be whole numbers with a "
+            "thousands separator (pass decimal='.' if so)"
+        )
+        return ","
+    if amb_point > 0:
+        notes.append(
+            "decimal point assumed: values like '1.234' could also be whole numbers with a "
+            "thousands separator (pass decimal=',' if so)"
+        )
+    return "."
+
+
+# --------------------------------------------------------------------------- headers
+
+_UNIT_BRACKET_RE = re.compile(r"^(?P<name>.*\S)\s+[\(\[](?P<unit>[^\(\)\[\]]*)[\)\]]$")
+_UNIT_SLASH_RE = re.compile(r"^(?P<name>.*\S)\s+/\s+(?P<unit>\S.*)$")
+
+
+def split_unit(header: str) -> tuple[str, str]:
+    """Split a header into name and unit.
+
+    ``"Time (s)"``, ``"Signal [mV]"`` and ``"T / K"`` give ``("Time", "s")``,
+    ``("Signal", "mV")``, ``("T", "K")``. A bracket needs a space before it, so
+    ``"u(Counts)"`` is a name without unit, and ``"[S] (mM)"`` gives ``("[S]", "mM")``.
+    """
+    text = " ".join(str(header).split())
+    for regex in (_UNIT_BRACKET_RE, _UNIT_SLASH_RE):
+        m = regex.match(text)
+        if m:
+            return m.group("name").strip(), m.group("unit").strip()
+    return text, ""
+
+
+def _make_names(raw: Sequence[str | None], notes: list[str]) -> tuple[list[str], dict[str, str], dict[str, str]]:
+    names: list[str] = []
+    units: dict[str, str] = {}
+    headers: dict[str, str] = {}
+    seen: set[str] = set()
+    for i, text in enumerate(raw, start=1):
+        text = "" if text is None else str(text).strip()
+        name, unit = split_unit(text) if text else ("", "")
+        if not name:
+            name = f"column_{i}"
+            if text == "" and any(r not in (None, "") for r in raw):
+                notes.append(f"column {i} has no header; named it {name}")
+        if name in seen:
+            base, n = name, 2
+            while f"{base}_{n}" in seen:
+                n += 1
+            name = f"{base}_{n}"
+            notes.append(f"header '{text}' appears more than once; column {i} named {name}")
+        seen.add(name)
+        names.append(name)
+        units[name] = unit
+        headers[name] = text
+    return names, units, headers
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class Dialect:
+    """How a file was read: container, encoding, separator, decimal mark, header row."""
+
+    kind: str  # "text", "xlsx", "ods" or "clipboard"
+    encoding: str | None = None
+    separator: str | None = None
+    decimal: str = "."
+    header_row: int | None = None
+    sheet: str | None = None
+
+    def describe(self) -> str:
+        """One line for people, e.g. ``"text, UTF-8, semicolon-separated, decimal comma"``."""
+        parts = [self.kind.upper() if self.kind in ("xlsx", "ods") else self.kind]
+        if self.sheet is not None:
+            parts.append(f"sheet '{self.sheet}'")
+        if self.encoding:
+            parts.append(self.encoding)
+        if self.separator is not None:
+            parts.append(f"{_SEPARATOR_NAMES.get(self.separator, repr(self.separator))}-separated")
+        parts.append("decimal comma" if self.decimal == "," else "decimal point")
+        parts.append(f"header in row {self.header_row}" if self.header_row else "no header row")
+        return ", ".join(parts)
+
+    def __str__(self) -> str:
+        return self.describe()
+
+
+def _resolve(table_columns: Sequence[str], headers: dict[str, str], key, role: str, source: str) -> str:
+    if isinstance(key, (int, np.integer)) and not isinstance(key, bool):
+        if not -len(table_columns) <= key < len(table_columns):
+            raise UnknownColumnError(
+                f"{source} has {len(table_columns)} columns, so there is no column number {key} for {role}."
+            )
+        return table_columns[key]
+    if key in table_columns:
+        return key
+    for name, text in headers.items():  # the full header text works too: "Time (s)"
+        if text == key:
+            return name
+    raise UnknownColumnError(
+        f"{source} has no column {key!r} for {role}; its columns are " + ", ".join(repr(c) for c in table_columns) + "."
+    )
+
+
+def _rows_text(rows: np.ndarray) -> str:
+    rows = [int(r) for r in rows]
+    if len(rows) == 1:
+        return f"row {rows[0]}"
+    shown = ", ".join(str(r) for r in rows[:MAX_ROWS_IN_NOTE])
+    more = f" and {len(rows) - MAX_ROWS_IN_NOTE} more" if len(rows) > MAX_ROWS_IN_NOTE else ""
+    return f"rows {shown}{more}"
+
+
+@dataclass(frozen=True)
+class Selection:
+    """The x, y and optional sigma columns chosen from a :class:`Table`.
+
+    Rows where x or y (or a given sigma) is not a usable number are left out and
+    listed in ``dropped_rows`` (file row numbers) and ``notes``.
+
+    Attributes
+    ----------
+    x, y : ndarray
+        Float arrays of the rows kept.
+    sigma : ndarray or None
+        Standard uncertainties of y, or None when no sigma column was chosen.
+    x_name, y_name, sigma_name : str
+        Column names (without units); ``sigma_name`` is None without sigma.
+    x_unit, y_unit, sigma_unit : str
+        Unit text ("" when the header gave none).
+    source_rows : ndarray of int
+        File row number of each kept point.
+    dropped_rows : tuple of int
+        File rows left out because x, y or sigma held no usable number.
+    notes : tuple of str
+        The table's notes followed by what this choice left out.
+    source, sha256 : str
+        Where the numbers came from and the SHA-256 of the file bytes.
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    sigma: np.ndarray | None
+    x_name: str
+    y_name: str
+    sigma_name: str | None
+    x_unit: str
+    y_unit: str
+    sigma_unit: str
+    source_rows: np.ndarray
+    dropped_rows: tuple[int, ...]
+    notes: tuple[str, ...]
+    source: str
+    sha256: str
+
+    @property
+    def names(self) -> tuple[str, str, str | None]:
+        return (self.x_name, self.y_name, self.sigma_name)
+
+    @property
+    def units(self) -> dict[str, str]:
+        out = {self.x_name: self.x_unit, self.y_name: self.y_unit}
+        if self.sigma_name is not None:
+            out[self.sigma_name] = self.sigma_unit
+        return out
+
+    def __len__(self) -> int:
+        return len(self.x)
+
+
+#: The name used in the design notes for the same thing.
+Measurements = Selection
+
+
+class Table:
+    """Float columns read from one file or pasted text.
+
+    Attributes
+    ----------
+    columns : list of str
+        Column names without units, in file order (unique).
+    units : dict
+        Column name -> unit text ("" when the header gave none).
+    headers : dict
+        Column name -> the header text as written in the file.
+    notes : list of str
+        Plain-language lines about what was skipped, renamed or guessed.
+    source : str
+        The path read (or ``"clipboard"``).
+    sha256 : str
+        SHA-256 hex digest of the file bytes (of the UTF-8 text for pasted text).
+    n_rows : int
+        Number of data rows.
+    source_rows : ndarray of int
+        Row number in the file (1-based, as a spreadsheet shows it) of each data row.
+    dialect : Dialect
+        How the file was read; ``str(dialect)`` is a readable description.
+    title_lines : list of str
+        Lines above the header row (titles, comments).
+    sheet_names : list of str
+        Sheets of a workbook (empty for text).
+    """
+
+    def __init__(self, columns, units, headers, data, notes, source, sha256, source_rows, dialect,
+                 title_lines=(), sheet_names=()):
+        self.columns = list(columns)
+        self.units = dict(units)
+        self.headers = dict(headers)
+        self._data = {name: np.asarray(data[name], dtype=float) for name in self.columns}
+        for arr in self._data.values():
+            arr.setflags(write=False)
+        self.notes = list(notes)
+        self.source = str(source)
+        self.sha256 = sha256
+        self.source_rows = np.asarray(source_rows, dtype=np.int64)
+        self.source_rows.setflags(write=False)
+        self.dialect = dialect
+        self.title_lines = list(title_lines)
+        self.sheet_names = list(sheet_names)
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.source_rows.size)
+
+    def __len__(self) -> int:
+        return self.n_rows
+
+    def __repr__(self) -> str:
+        cols = ", ".join(f"{c} [{self.units[c]}]" if self.units[c] else c for c in self.columns)
+        return f"<Table {os.path.basename(self.source)}: {self.n_rows} rows; {cols}>"
+
+    def _label(self) -> str:
+        return f"'{os.path.basename(self.source)}'" if self.source != "clipboard" else "the pasted text"
+
+    def column(self, name) -> np.ndarray:
+        """The column ``name`` (or its position, or its full header text) as floats.
+
+        NaN marks a cell that held no number. The array is read-only.
+        """
+        return self._data[_resolve(self.columns, self.headers, name, "this request", self._label())]
+
+    def numeric_columns(self) -> list[str]:
+        """Names of the columns with at least one number, in file order."""
+        return [c for c in self.columns if np.isfinite(self._data[c]).any()]
+
+    def choose(self, x=None, y=None, sigma=None) -> Selection:
+        """Pick the x, y and optional sigma columns.
+
+        Parameters
+        ----------
+        x, y : str or int, optional
+            Column names (or 0-based positions). Defaults: the first and the second
+            column that hold numbers.
+        sigma : str or int, optional
+            Column of standard uncertainties of y; none by default.
+
+        Returns
+        -------
+        Selection
+            Rows where x or y (or sigma) is not a usable number are left out and
+            reported in ``dropped_rows`` and ``notes``.
+
+        Raises
+        ------
+        ReadError
+            When a column does not exist, the same column is chosen twice, or
+            fewer than two numeric columns are available for the defaults.
+        """
+        label = self._label()
+        numeric = self.numeric_columns()
+        if x is None or y is None:
+            free = [c for c in numeric if c not in {
+                _resolve(self.columns, self.headers, k, "x/y", label) for k in (x, y, sigma) if k is not None}]
+            if x is None:
+                if not free:
+                    raise ReadError(f"{label} has no numeric column left to use as x.")
+                x = free.pop(0)
+            if y is None:
+                if not free:
+                    raise ReadError(f"{label} has only one column with numbers, but x and y need two.")
+                y = free.pop(0)
+        xn = _resolve(self.columns, self.headers, x, "x", label)
+        yn = _resolve(self.columns, self.headers, y, "y", label)
+        sn = None if sigma is None else _resolve(self.columns, self.headers, sigma, "sigma", label)
+        if xn == yn:
+            raise ReadError(f"column {xn!r} of {label} was chosen for both x and y.")
+        if sn is not None and sn in (xn, yn):
+            raise ReadError(f"column {sn!r} of {label} was chosen for sigma and also for x or y.")
+        xv, yv = self._data[xn], self._data[yn]
+        keep = np.isfinite(xv) & np.isfinite(yv)
+        notes = list(self.notes)
+        bad_xy = ~keep
+        if bad_xy.any():
+            notes.append(f"{_rows_text(self.source_rows[bad_xy])}: left out because {xn} or {yn} is not a number")
+        sv = None
+        if sn is not None:
+            sv_all = self._data[sn]
+            bad_s = keep & ~(np.isfinite(sv_all) & (sv_all > 0))
+            if bad_s.any():
+                notes.append(f"{_rows_text(self.source_rows[bad_s])}: left out because {sn} is not a positive number")
+            keep &= ~bad_s
+            sv = sv_all[keep].copy()
+        return Selection(
+            x=xv[keep].copy(), y=yv[keep].copy(), sigma=sv,
+            x_name=xn, y_name=yn, sigma_name=sn,
+            x_unit=self.units[xn], y_unit=self.units[yn], sigma_unit=self.units[sn] if sn else "",
+            source_rows=self.source_rows[keep].copy(),
+            dropped_rows=tuple(int(r) for r in self.source_rows[~keep]),
+            notes=tuple(notes), source=self.source, sha256=self.sha256,
+        )
+
+
+# --------------------------------------------------------------------------- layout
+
+@dataclass
+class _Layout:
+    header: int | None  # index into the row list
+    units_row: int | None
+    data: int  # index of the first data row
+    width: int
+    header_cells: list | None
+
+
+def _cell_kind(cell) -> int:
+    """0 = empty, 1 = number, 2 = text."""
+    if cell is None:
+        return 0
+    if isinstance(cell, float):
+        return 0 if math.isnan(cell) else 1
+    s = str(cell).strip()
+    if not s:
+        return 0
+    return 1 if _numlike(s) else 2
+
+
+def _row_stats(cells) -> tuple[int, int, int]:
+    kinds = [_cell_kind(c) for c in cells]
+    width = len(kinds)
+    while width and kinds[width - 1] == 0:
+        width -= 1
+    n_num = kinds.count(1)
+    n_text = kinds.count(2)
+    return width, n_num, n_text
+
+
+def _is_data_row(stats, width_needed: int | None = None) -> bool:
+    width, n_num, n_text = stats
+    if n_num == 0 or n_num < n_text:
+        return False
+    if width_needed is not None:
+        return width >= 2 or width_needed == 1
+    return width >= 2
+
+
+def _find_layout(rows: list[list], comment: list[bool] | None = None) -> _Layout | None:
+    """Find header and first data row in a list of rows of cells (None = no table)."""
+    comment = comment or [False] * len(rows)
+    stats = [_row_stats(r) for r in rows]
+    data_idx = [i for i, s in enumerate(stats) if not comment[i] and _is_data_row(s)]
+    if not data_idx:
+        return None
+    widths = Counter(stats[i][0] for i in data_idx)
+    width = max(widths, key=lambda w: (widths[w], w))
+    # the first all-number row of the common width whose next rows are data rows too
+    def following(i):
+        return [j for j in range(i + 1, len(rows)) if stats[j][0] > 0 and not comment[j]][:3]
+
+    start = None
+    for strict in (True, False):
+        for i in data_idx:
+            if stats[i][0] != width or (strict and stats[i][2] > 0):
+                continue
+            nxt = following(i)
+            good = sum(1 for j in nxt if _is_data_row(stats[j]))
+            if (strict and good == len(nxt)) or (not strict and 2 * good >= len(nxt)):
+                start = i
+                break
+        if start is not None:
+            break
+    if start is None:
+        start = data_idx[0]
+    # step back over directly preceding data rows that hold some text ("0;n.d.")
+    while start > 0 and not comment[start - 1] and stats[start - 1][0] == width and _is_data_row(stats[start - 1]):
+        start -= 1
+    # header: the nearest non-empty row above (blank rows in between are allowed)
+    above = [j for j in range(start - 1, -1, -1) if stats[j][0] > 0 or comment[j]]
+    header = units_row = None
+    header_cells = None
+    if above:
+        j = above[0]
+        if comment[j]:
+            cells = rows[j]
+            if _row_stats(cells)[0] == width:
+                header, header_cells = j, list(cells)
+        elif stats[j][2] > 0 and stats[j][0] >= min(2, width):
+            header, header_cells = j, list(rows[j])
+            # a units row under the header: "s;mV" below "Time;Signal"
+            if len(above) > 1 and not comment[above[1]]:
+                k = above[1]
+                upper = rows[k]
+                if (stats[k][2] > 0 and stats[k][1] == 0 and stats[k][0] == stats[j][0]
+                        and all(len(str(c).strip()) <= 12 for c in rows[j] if c not in (None, ""))
+                        and not any(split_unit(str(c))[1] for c in upper if c not in (None, ""))):
+                    units_row, header, header_cells = j, k, list(upper)
+    return _Layout(header=header, units_row=units_row, data=start, width=width, header_cells=header_cells)
+
+
+# --------------------------------------------------------------------------- text
+
+
+def _split_fields(line: str, sep: str) -> list[str]:
+    if sep == " ":
+        line = line.replace("\t", " ").strip()
+        if not line:
+            return []
+        return next(csv.reader([line], delimiter=" ", skipinitialspace=True))
+    if not line.strip():
+        return []
+    return next(csv.reader([line], delimiter=sep, quotechar='"'))
+
+
+def _merge_whitespace_header(line: str, width: int) -> list[str]:
+    """Header words of a white-space file grouped into ``width`` names if possible."""
+    parts = [p for p in re.split(r"\t|\s{2,}", line.strip()) if p]
+    if len(parts) == width:
+        return parts
+    tokens = _split_fields(line, " ")
+    merged: list[str] = []
+    for t in tokens:
+        if merged and (t[:1] in "([" or t == "/" or merged[-1].endswith(" /")):
+            merged[-1] = f"{merged[-1]} {t}"
+        else:
+            merged.append(t)
+    return merged if len(merged) == width else tokens
+
+
+def _decode(data: bytes, encoding: str | None, label: str) -> tuple[str, str]:
+    if encoding is not None:
+        try:
+            return data.decode(encoding), encoding
+        except LookupError:
+            raise ReadError(f"{encoding!r} is not a known text encoding (asked for when reading {label}).") from None
+        except UnicodeDecodeError:
+            raise ReadError(f"{label} cannot be decoded as {encoding} text.") from None
+    if data.startswith(b"\xef\xbb\xbf"):
+        return data[3:].decode("utf-8", errors="replace"), "UTF-8 with BOM"
+    if data.startswith(b"\xff\xfe\x00\x00") or data.startswith(b"\x00\x00\xfe\xff"):
+        return data.decode("utf-32", errors="replace").lstrip("\ufeff"), "UTF-32"
+    if data.startswith(b"\xff\xfe"):
+        return data[2:].decode("utf-16-le", errors="replace"), "UTF-16 LE"
+    if data.startswith(b"\xfe\xff"):
+        return data[2:].decode("utf-16-be", errors="replace"), "UTF-16 BE"
+    head = data[:4096]
+    if b"\x00" in head and len(head) >= 4:
+        even = head[0::2].count(0) / max(1, len(head[0::2]))
+        odd = head[1::2].count(0) / max(1, len(head[1::2]))
+        if odd > 0.3 and even < 0.05:
+            return data.decode("utf-16-le", errors="replace"), "UTF-16 LE (no BOM)"
+        if even > 0.3 and odd < 0.05:
+            return data.decode("utf-16-be", errors="replace"), "UTF-16 BE (no BOM)"
+        raise ReadError(f"{label} does not look like a text table or a spreadsheet (it contains binary data).")
+    try:
+        return data.decode("utf-8"), "UTF-8"
+    except UnicodeDecodeError:
+        pass
+    try:
+        return data.decode("cp1252"), "CP1252"
+    except UnicodeDecodeError:
+        return data.decode("latin-1"), "Latin-1"
+
+
+_CONTROL_RE = re.compile(r"[\x00-\x08\x0b\x0e-\x1f\x7f-\x9f\ufffd]")
+
+
+def _check_text(text: str, label: str) -> None:
+    sample = text[:65536]
+    if not sample.strip():
+        raise ReadError(f"{label} contains no text (only blank lines or spaces).")
+    bad = len(_CONTROL_RE.findall(sample))
+    if bad > max(2, 0.01 * len(sample)):
+        raise ReadError(f"{label} does not look like a text table or a spreadsheet (it contains binary data).")
+
+
+def _head_lines(text: str, n: int) -> tuple[list[str], list[int]]:
+    """The first ``n`` lines and the character offset where each starts."""
+    lines, offsets = [], []
+    pos = 0
+    for _ in range(n):
+        if pos > len(text) or (pos == len(text) and lines):
+            break
+        end = text.find("\n", pos)
+        if end < 0:
+            end = len(text)
+        lines.append(text[pos:end].rstrip("\r"))
+        offsets.append(pos)
+        pos = end + 1
+    return lines, offsets
+
+
+def _sniff(lines: list[str], decimal: str | None):
+    """Choose the separator: the one that yields the most numbers in rows of equal width."""
+    best = None
+    for prio, sep in enumerate(_TEXT_SEPARATORS):
+        if decimal == "," and sep == ",":
+            continue
+        rows = [_split_fields(line, sep) for line in lines]
+        comment = [line.lstrip().startswith(("#", "%", "//")) for line in lines]
+        stats = [_row_stats(r) for r in rows]
+        counts = Counter(s[0] for i, s in enumerate(stats) if not comment[i] and _is_data_row(s))
+        if not counts:
+            continue
+        width = max(counts, key=lambda w: (counts[w], w))
+        score = sum(s[1] for i, s in enumerate(stats) if not comment[i] and s[0] == width and _is_data_row(s))
+        if best is None or score > best[0]:
+            best = (score, -prio, sep, rows, comment)
+    return best
+
+
+def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str | None,
+                encoding_name: str | None, kind: str) -> Table:
+    import pandas as pd
+
+    notes: list[str] = []
+    if "\n" not in text[:200000] and "\r" in text:
+        text = text.replace("\r", "\n")  # old Mac line ends
+    lines, offsets = _head_lines(text, SNIFF_LINES)
+    sniffed = _sniff(lines, decimal)
+    if sniffed is None:
+        _no_table(lines, label)
+    _, _, sep, rows, comment = sniffed
+    layout = _find_layout(rows, comment)
+    if layout is None:
+        _no_table(lines, label)
+    if layout.width < 2:
+        raise ReadError(f"{label} has only one column; at least two (x and y) are needed.")
+
+    # header cells
+    width = layout.width
+    header_cells = None
+    if layout.header is not None:
+        hline = lines[layout.header]
+        if comment[layout.header]:
+            hline = hline.lstrip().lstrip("#%/").strip()
+            notes.append(f"column names taken from the comment line {layout.header + 1}")
+        header_cells = _merge_whitespace_header(hline, width) if sep == " " else _split_fields(hline, sep)
+    title_end = layout.header if layout.header is not None else layout.data
+    title_lines = [lines[j] for j in range(title_end) if lines[j].strip()]
+    if title_lines:
+        notes.append(
+            f"{'line' if len(title_lines) == 1 else str(len(title_lines)) + ' lines'} above the header "
+            f"taken as title or comment: " + "; ".join(repr(t.strip()[:60]) for t in title_lines[:3])
+            + (" ..." if len(title_lines) > 3 else "")
+        )
+    if layout.header is None:
+        notes.append("no header row found; columns named column_1, column_2, ...")
+    unit_cells = None
+    if layout.units_row is not None:
+        unit_cells = _split_fields(lines[layout.units_row], sep)
+
+    # decimal mark from the data cells seen while sniffing
+    data_cells = [c for r in rows[layout.data:] for c in r]
+    if decimal is None:
+        decimal = _choose_decimal(data_cells, sep, notes)
+    elif decimal not in (".", ","):
+        raise ReadError(f"decimal must be '.' or ',', not {decimal!r} (reading {label}).")
+
+    ncols = max(width, len(header_cells or []))
+    body = text[offsets[layout.data]:]
+    first_line = layout.data + 1  # 1-based line number of the first body line
+    df, bad_lines = _read_body(pd, body, sep, decimal, ncols, label)
+    n_body_lines = body.count("\n") + (0 if body.endswith("\n") or not body else 1)
+    line_no = np.arange(n_body_lines, dtype=np.int64)
+    if bad_lines:
+        line_no = np.delete(line_no, [b - 1 for b in bad_lines if 0 < b <= n_body_lines])
+    if len(line_no) != len(df):
+        notes.append("some cells span several lines (quoted line breaks); row numbers may be off")
+        line_no = np.arange(len(df), dtype=np.int64)
+    source_rows = line_no + first_line
+    if bad_lines:
+        notes.append(f"{_rows_text(np.asarray(bad_lines) + first_line - 1)}: more cells than the header has; "
+                     "row skipped")
+
+    raw_names = list(header_cells or []) + [None] * (ncols - len(header_cells or []))
+    if unit_cells:
+        raw_names = [f"{n} ({u.strip()})" if n and u and u.strip() else n
+                     for n, u in zip(raw_names, list(unit_cells) + [""] * ncols)]
+    columns: list[np.ndarray] = []
+    cell_notes: list[tuple[int, list[tuple[str, np.ndarray]]]] = []
+    thousands_seen = False
+    for i in range(ncols):
+        col = df.iloc[:, i] if i < df.shape[1] else None
+        values, problems, grouped = _convert_column(col, len(df), decimal)
+        thousands_seen |= grouped
+        columns.append(values)
+        cell_notes.append((i, problems))
+    return _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen,
+                     label=label, source=source, sha256=sha256, title_lines=title_lines,
+                     dialect=Dialect(kind=kind, encoding=encoding_name, separator=sep, decimal=decimal,
+                                     header_row=None if layout.header is None else layout.header + 1))
+
+
+def _no_table(lines: list[str], label: str):
+    nonblank = [ln for ln in lines if ln.strip()]
+    if any(_numlike(tok) for ln in nonblank for tok in re.split(r"[\s;,|]+", ln.strip()) if tok):
+        raise ReadError(f"{label} has only one column of numbers; at least two (x and y) are needed.")
+    if len(nonblank) <= 2:
+        raise ReadError(f"{label} has a header but no data rows with numbers.")
+    raise ReadError(f"{label} contains no rows of numbers that could be read as a table.")
+
+
+def _read_body(pd, body: str, sep: str, decimal: str, ncols: int, label: str):
+    kwargs = dict(
+        sep=r"\s+" if sep == " " else sep,
+        header=None,
+        names=list(range(ncols)),
+        index_col=False,
+        decimal=decimal,
+        keep_default_na=False,
+        na_values=[""],
+        skip_blank_lines=False,
+        on_bad_lines="warn",
+        engine="c",
+        quotechar='"',
+        dtype=None,
+    )
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            df = pd.read_csv(_io.StringIO(body), **kwargs)
+        except Exception as exc:  # pandas' messages are deep; give one sentence
+            raise ReadError(f"{label} could not be split into columns ({type(exc).__name__}: "
+                            f"{str(exc).strip().splitlines()[0] if str(exc).strip() else 'no detail'}).") from None
+    bad = []
+    for w in caught:
+        for m in re.finditer(r"Skipping line (\d+)", str(w.message)):
+            bad.append(int(m.group(1)))
+    return df, sorted(set(bad))
+
+
+def _convert_column(col, n: int, decimal: str):
+    """Float values, list of (problem text, mask) and whether thousands separators were used."""
+    import pandas as pd
+
+    if col is None:
+        return np.full(n, np.nan), [], False
+    problems: list[tuple[str, np.ndarray]] = []
+    grouped_any = False
+    if pd.api.types.is_numeric_dtype(col.dtype) and not pd.api.types.is_bool_dtype(col.dtype):
+        values = col.to_numpy(dtype=float, na_value=np.nan).copy()
+        empty = np.isnan(values)
+        inf = np.isinf(values)
+        if inf.any():
+            values[inf] = np.nan
+            problems.append(("'inf' is not a finite number", inf))
+        if empty.any():
+            problems.append(("empty", empty))
+        return values, problems, False
+    values = np.full(n, np.nan)
+    texts: dict[str, list[int]] = {}
+    empty_rows: list[int] = []
+    raw = col.to_numpy(dtype=object)
+    for i, cell in enumerate(raw):
+        if cell is None or (isinstance(cell, float) and math.isnan(cell)):
+            empty_rows.append(i)
+            continue
+        if isinstance(cell, (int, float, np.floating, np.integer)) and not isinstance(cell, bool):
+            v = float(cell)
+            grouped = False
+        else:
+            s = str(cell)
+            if not s.strip():
+                empty_rows.append(i)
+                continue
+            v, grouped = _parse_number(s, decimal)
+            if v is None:
+                texts.setdefault(s.strip(), []).append(i)
+                continue
+        if not math.isfinite(v):
+            texts.setdefault(str(cell).strip(), []).append(i)
+            continue
+        grouped_any |= grouped
+        values[i] = v
+    for text, idx in texts.items():
+        mask = np.zeros(n, bool)
+        mask[idx] = True
+        problems.append((f"'{text[:40]}' is not a number", mask))
+    if empty_rows:
+        mask = np.zeros(n, bool)
+        mask[empty_rows] = True
+        problems.append(("empty", mask))
+    return values, problems, grouped_any
+
+
+def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen, *, label, source, sha256,
+              title_lines, dialect, sheet_names=()) -> Table:
+    columns = list(columns)
+    raw_names = list(raw_names)
+    n = len(source_rows)
+    if n == 0:
+        raise ReadError(f"{label} has a header but no data rows with numbers.")
+    mat_finite = np.column_stack([np.isfinite(c) for c in columns]) if columns else np.zeros((n, 0), bool)
+    # whole rows without a single number (blank lines, comments inside the data)
+    empty_row = ~mat_finite.any(axis=1)
+    if empty_row.any():
+        last_data = np.flatnonzero(~empty_row)
+        if last_data.size == 0:
+            raise ReadError(f"{label} has a header but no data rows with numbers.")
+        inner = empty_row.copy()
+        inner[last_data[-1] + 1:] = False  # trailing blank lines at the end say nothing
+        if inner.any():
+            notes.append(f"{_rows_text(source_rows[inner])}: no numbers in the row; row skipped")
+    keep_rows = ~empty_row
+    # columns with neither a header nor any number (trailing separators): drop
+    keep_cols = [i for i, c in enumerate(columns)
+                 if (raw_names[i] not in (None, "") and str(raw_names[i]).strip()) or mat_finite[:, i].any()]
+    raw_names = [raw_names[i] for i in keep_cols]
+    if len(keep_cols) < 2:
+        raise ReadError(f"{label} has only one column; at least two (x and y) are needed.")
+    names, units, headers = _make_names(raw_names, notes)
+    data = {}
+    for name, i in zip(names, keep_cols):
+        data[name] = columns[i][keep_rows]
+        for problem, mask in dict(cell_notes).get(i, []):
+            rows = source_rows[mask & keep_rows]
+            if rows.size == 0:
+                continue
+            if problem == "empty":
+                notes.append(f"{_rows_text(rows)}: no value in column {name}")
+            else:
+                notes.append(f"{_rows_text(rows)}: {problem} in column {name}")
+    if thousands_seen:
+        notes.append("thousands separators found and removed")
+    return Table(names, units, headers, data, notes, source, sha256, source_rows[keep_rows], dialect,
+                 title_lines=title_lines, sheet_names=sheet_names)
+
+
+# --------------------------------------------------------------------------- spreadsheets
+
+
+def _grid_table(grid: list[list], *, label, source, sha256, decimal, kind, sheet, sheet_names, notes) -> Table:
+    """Build a table from sheet rows (cells: float, str or None); row i is sheet row i+1."""
+    rows = [[c if (c is None or isinstance(c, float)) else str(c) for c in r] for r in grid]
+    layout = _find_layout(rows)
+    if layout is None:
+        if any(_cell_kind(c) == 1 for r in rows for c in r):
+            raise ReadError(f"sheet '{sheet}' of {label} has only one column of numbers; "
+                            "at least two (x and y) are needed.")
+        raise ReadError(f"sheet '{sheet}' of {label} holds no rows of numbers.")
+    if decimal is None:
+        text_cells = [c for r in rows[layout.data:] for c in r if isinstance(c, str)]
+        decimal = _choose_decimal(text_cells, None, notes) if text_cells else "."
+    ncols = max(len(r) for r in rows[layout.data:])
+    header = list(layout.header_cells or [])
+    ncols = max(ncols, len(header))
+    raw_names = [None if c is None else (str(c) if not isinstance(c, float) else repr(c)) for c in header]
+    raw_names += [None] * (ncols - len(raw_names))
+    if layout.units_row is not None:
+        urow = rows[layout.units_row]
+        raw_names = [f"{n} ({urow[i]})" if n and i < len(urow) and urow[i] else n for i, n in enumerate(raw_names)]
+    title_end = layout.header if layout.header is not None else layout.data
+    title_lines = [" ".join(str(c) for c in r if c not in (None, "")) for r in rows[:title_end]]
+    title_lines = [t for t in title_lines if t.strip()]
+    if title_lines:
+        notes.append(f"{len(title_lines)} row(s) above the header taken as title or comment")
+    if layout.header is None:
+        notes.append("no header row found; columns named column_1, column_2, ...")
+    body = rows[layout.data:]
+    source_rows = np.arange(layout.data + 1, len(rows) + 1)
+    import pandas as pd
+    columns, cell_notes, grouped_any = [], [], False
+    for i in range(ncols):
+        col = pd.Series([r[i] if i < len(r) else None for r in body], dtype=object)
+        values, problems, grouped = _convert_column(col, len(body), decimal)
+        columns.append(values)
+        cell_notes.append((i, problems))
+        grouped_any |= grouped
+    return _assemble(raw_names, columns, cell_notes, source_rows, notes, grouped_any, label=label, source=source,
+                     sha256=sha256, title_lines=title_lines, sheet_names=sheet_names,
+                     dialect=Dialect(kind=kind, decimal=decimal, sheet=sheet,
+                                     header_row=None if layout.header is None else layout.header + 1))
+
+
+def _cell_value(v):
+    if v is None:
+        return None
+    if isinstance(v, bool):
+        return str(v).upper()
+    if isinstance(v, (int, float, np.integer, np.floating)):
+        return float(v)
+    return str(v)
+
+
+def _pick_sheet(names: list[str], sheet, label: str) -> int:
+    listing = ", ".join(f"'{n}'" for n in names)
+    if sheet is None:
+        return 0
+    if isinstance(sheet, (int, np.integer)) and not isinstance(sheet, bool):
+        if 0 <= sheet < len(names):
+            return int(sheet)
+        raise ReadError(f"{label} has {len(names)} sheet(s) ({listing}), so there is no sheet number {sheet} "
+                        "(sheets count from 0).")
+    if sheet in names:
+        return names.index(sheet)
+    raise ReadError(f"{label} has no sheet named '{sheet}'; its sheets are {listing}.")
+
+
+def _read_workbook(data: bytes, kind: str, sheet, *, label, source, sha256, decimal) -> Table:
+    notes: list[str] = []
+    try:
+        if kind == "xlsx":
+            import openpyxl
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                wb = openpyxl.load_workbook(_io.BytesIO(data), data_only=True, read_only=False)
+            names = list(wb.sheetnames)
+
+            def grid_of(idx):
+                ws = wb[names[idx]]
+                if ws.max_row is None or ws.max_column is None:
+                    return []
+                return [[_cell_value(v) for v in r] for r in ws.iter_rows(
+                    min_row=1, min_col=1, max_row=ws.max_row, max_col=ws.max_column, values_only=True)]
+        else:
+            import pandas as pd
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                frames = pd.read_excel(_io.BytesIO(data), engine="odf", header=None, sheet_name=None, dtype=object)
+            names = list(frames)
+
+            def grid_of(idx):
+                df = frames[names[idx]]
+                return [[_cell_value(None if (isinstance(v, float) and math.isnan(v)) else v) for v in row]
+                        for row in df.itertuples(index=False, name=None)]
+    except ReadError:
+        raise
+    except Exception:
+        raise ReadError(f"{label} looks like an {kind.upper()} spreadsheet but is damaged or incomplete "
+                        "and could not be opened.") from None
+    if not names:
+        raise ReadError(f"{label} is a workbook without any sheets.")
+    idx = _pick_sheet(names, sheet, label)
+    grid = grid_of(idx)
+    if sheet is None and _find_layout([[c for c in r] for r in grid]) is None:
+        for j in range(len(names)):
+            if j != idx and _find_layout(grid_of(j)) is not None:
+                notes.append(f"sheet '{names[idx]}' holds no table of numbers; read sheet '{names[j]}' instead")
+                idx, grid = j, grid_of(j)
+                break
+    if len(names) > 1:
+        notes.insert(0, f"read sheet '{names[idx]}' of {len(names)} (" + ", ".join(names) + ")")
+    return _grid_table(grid, label=label, source=source, sha256=sha256, decimal=decimal, kind=kind,
+                       sheet=names[idx], sheet_names=names, notes=notes)
+
+
+def _container(data: bytes, path: Path, label: str) -> str:
+    ext = path.suffix.lower()
+    if data.startswith(b"PK\x03\x04") or data.startswith(b"PK\x05\x06"):
+        try:
+            with zipfile.ZipFile(_io.BytesIO(data)) as zf:
+                members = set(zf.namelist())
+                if "xl/workbook.xml" in members:
+                    return "xlsx"
+                if "mimetype" in members and zf.read("mimetype").startswith(
+                        b"application/vnd.oasis.opendocument.spreadsheet"):
+                    return "ods"
+                if "content.xml" in members and ext == ".ods":
+                    return "ods"
+        except (zipfile.BadZipFile, OSError, EOFError, ValueError):
+            kind = "ODS" if ext == ".ods" else "XLSX"
+            raise ReadError(f"{label} looks like an {kind} spreadsheet but is damaged or incomplete "
+                            "and could not be opened.") from None
+        raise ReadError(f"{label} is a ZIP archive but not an XLSX or ODS spreadsheet.")
+    if data.startswith(b"\xd0\xcf\x11\xe0"):
+        raise ReadError(f"{label} is in the old binary Excel (.xls) format; save it as .xlsx or CSV and open that.")
+    if ext in (".xlsx", ".xlsm", ".ods"):
+        raise ReadError(f"{label} has the extension {ext} but is not a valid spreadsheet (damaged or misnamed).")
+    return "text"
+
+
+# --------------------------------------------------------------------------- public
+
+
+def read_table(path, sheet=None, *, decimal: str | None = None, encoding: str | None = None) -> Table:
+    """Read a spreadsheet export into a :class:`Table`.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        CSV/TSV/semicolon/white-space text, XLSX or ODS file. Only read, never written.
+    sheet : str or int, optional
+        Workbook sheet by name or 0-based position. Default: the first sheet (or,
+        when it holds no table of numbers, the first sheet that does; a note says so).
+        Ignored for text files.
+    decimal : {".", ","}, optional
+        Decimal mark of text cells; detected when not given.
+    encoding : str, optional
+        Text encoding (e.g. ``"cp1252"``); detected when not given (byte-order
+        mark, UTF-16 byte pattern, UTF-8, else CP1252/Latin-1).
+
+    Returns
+    -------
+    Table
+
+    Raises
+    ------
+    ReadError
+        With one sentence naming the file and the problem: missing file, folder,
+        no permission, empty, binary, damaged workbook, unknown sheet, header
+        without data, a single column.
+
+    Examples
+    --------
+    >>> table = read_table("sample_sets/01_photometric_calibration.csv")  # doctest: +SKIP
+    >>> table.columns, table.units["Concentration"]                       # doctest: +SKIP
+    (['Concentration', 'Absorbance'], 'mg/L')
+    """
+    p = Path(os.fspath(path))
+    label = f"'{p.name or str(p)}'"
+    if decimal is not None and decimal not in (".", ","):
+        raise ReadError(f"decimal must be '.' or ',', not {decimal!r} (reading {label}).")
+    try:
+        if p.is_dir():
+            raise ReadError(f"{label} is a folder, not a file.")
+        with open(p, "rb") as fh:
+            data = fh.read()
+    except ReadError:
+        raise
+    except FileNotFoundError:
+        raise ReadError(f"{label} does not exist (it may have been moved, renamed or deleted).") from None
+    except IsADirectoryError:
+        raise ReadError(f"{label} is a folder, not a file.") from None
+    except PermissionError:
+        raise ReadError(f"{label} cannot be opened: permission denied.") from None
+    except OSError as exc:
+        raise ReadError(f"{label} cannot be read: {exc.strerror or exc}.") from None
+    if not data:
+        raise ReadError(f"{label} is empty (0 bytes).")
+    digest = hashlib.sha256(data).hexdigest()
+    kind = _container(data, p, label)
+    if kind in ("xlsx", "ods"):
+        return _read_workbook(data, kind, sheet, label=label, source=str(p), sha256=digest, decimal=decimal)
+    text, enc_name = _decode(data, encoding, label)
+    del data
+    _check_text(text, label)
+    table = _parse_text(text, label=label, source=str(p), sha256=digest, decimal=decimal,
+                        encoding_name=enc_name, kind="text")
+    if sheet not in (None, 0):
+        table.notes.append(f"sheet={sheet!r} ignored: a text file has no sheets")
+    if enc_name in ("CP1252", "Latin-1"):
+        table.notes.insert(0, f"text is not UTF-8; read as {enc_name}")
+    return table
+
+
+def read_clipboard_text(text: str, *, decimal: str | None = None) -> Table:
+    """Parse text pasted from a spreadsheet (tab, semicolon or space separated).
+
+    Same rules as :func:`read_table`; ``source`` is ``"clipboard"`` and ``sha256``
+    is taken over the UTF-8 bytes of the text.
+    """
+    if not isinstance(text, str):
+        raise ReadError("the pasted content is not text.")
+    label = "the pasted text"
+    if decimal is not None and decimal not in (".", ","):
+        raise ReadError(f"decimal must be '.' or ',', not {decimal!r} (reading {label}).")
+    text = text.lstrip("\ufeff")
+    if not text.strip():
+        raise ReadError("the pasted text is empty.")
+    _check_text(text, label)
+    digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
+    return _parse_text(text, label=label, source="clipboard", sha256=digest, decimal=decimal,
+                       encoding_name=None, kind="clipboard")
