@@ -196,6 +196,7 @@ class Document:
         self.result_generation = -1
         self.stale = False
         self.fit_message = ""
+        self.fit_failed = False
         self.generation = 0
         self.selection = np.zeros(0, np.intp)
         if measurements is not None:
@@ -269,6 +270,7 @@ class Document:
         self.result_generation = -1
         self.stale = False
         self.fit_message = ""
+        self.fit_failed = False
         self.generation += 1
         self._emit("data")
 
@@ -340,12 +342,14 @@ class Document:
             return False
         if not getattr(result, "converged", False) and self.result is not None:
             self.fit_message = getattr(result, "message", "the fit did not converge")
+            self.fit_failed = True
             self.stale = True
             self._emit("result", failed=True)
             return True
         self.result = result
         self.result_generation = generation
         self.stale = not getattr(result, "converged", False)
+        self.fit_failed = self.stale
         self.fit_message = getattr(result, "message", "")
         self._emit("result", failed=not result.converged)
         return True
@@ -355,6 +359,7 @@ class Document:
         if generation != self.generation:
             return False
         self.fit_message = message
+        self.fit_failed = True
         self.stale = self.result is not None
         self._emit("result", failed=True)
         return True

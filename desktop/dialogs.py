@@ -1,0 +1,125 @@
+"""Small dialogs: error messages, column choice, exclusion reason, sample-set picker.
+
+Error and question boxes go through module functions (:func:`error_box`,
+:func:`ask_text`) so tests can replace them and no modal dialog blocks a test run.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+from PySide6.QtWidgets import (
+    QComboBox, QDialog, QDialogButtonBox, QFormLayout, QInputDialog, QLabel, QListWidget,
+    QListWidgetItem, QMessageBox, QVBoxLayout,
+)
+
+SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_sets"
+DATA_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".ods")
+
+
+def error_box(parent, title: str, text: str) -> None:
+    """Show an error message (tests replace this function)."""
+    QMessageBox.warning(parent, title, text)
+
+
+def ask_text(parent, title: str, label: str) -> str | None:
+    """Ask for one line of text; None when cancelled (tests replace this function)."""
+    text, ok = QInputDialog.getText(parent, title, label)
+    return text.strip() if ok else None
+
+
+class ColumnDialog(QDialog):
+    """Choose the x, y and (optional) sigma_y columns of a table."""
+
+    def __init__(self, table, parent=None):
+        super().__init__(parent)
+        self.setWindowTitle("Choose columns")
+        numeric = table.numeric_columns()
+        lay = QVBoxLayout(self)
+        lay.addWidget(QLabel(f"{len(numeric)} columns hold numbers. Which are x, y and the "
+                             "standard uncertainty of y?"))
+        form = QFormLayout()
+
+        def label(c):
+            u = table.units.get(c, "")
+            return f"{c} ({u})" if u else c
+
+        self.x = QComboBox()
+        self.y = QComboBox()
+        self.s = QComboBox()
+        self.s.addItem("(none)", None)
+        for c in numeric:
+            self.x.addItem(label(c), c)
+            self.y.addItem(label(c), c)
+            self.s.addItem(label(c), c)
+        if len(numeric) > 1:
+            self.y.setCurrentIndex(1)
+        # a third column whose name suggests an uncertainty is offered as sigma
+        for i, c in enumerate(numeric[2:], start=2):
+            low = c.lower()
+            if low.startswith(("u", "s", "err", "unc", "sd")) or "sigma" in low or "unc" in low:
+                self.s.setCurrentIndex(i + 1)
+                break
+        form.addRow("x", self.x)
+        form.addRow("y", self.y)
+        form.addRow("sigma_y", self.s)
+        lay.addLayout(form)
+        buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        lay.addWidget(buttons)
+
+    def choice(self):
+        """``(x, y, sigma)`` column names (sigma may be None)."""
+        return self.x.currentData(), self.y.currentData(), self.s.currentData()
+
+
+def sample_sets() -> list[Path]:
+    """The sample data files shipped beside the program, sorted by name."""
+    if not SAMPLE_DIR.is_dir():
+        return []
+    return sorted(p for p in SAMPLE_DIR.iterdir() if p.suffix.lower() in DATA_SUFFIXES)
+
+
+def sample_description(path: Path) -> str:
+    """First comment/title line of a sample text file (its one-line story), if any."""
+    try:
+        with open(path, encoding="utf-8", errors="replace") as fh:
+            for _ in range(5):
+                line = fh.readline()
+                if not line:
+                    break
+                s = line.strip().lstrip("#").strip()
+                if s and not any(ch.isdigit() for ch in s[:1]) and ("," not in s or line.lstrip().startswith("#")):
+                    return s
+    except OSError:
+        pass
+    return ""
+
+
+class SamplePicker(QDialog):
+    """List of the sample sets; returns the chosen path."""
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self.setWindowTitle("Open a sample set")
+        self.resize(560, 360)
+        lay = QVBoxLayout(self)
+        lay.addWidget(QLabel("Invented demo data sets, each showing one situation:"))
+        self.list = QListWidget()
+        for p in sample_sets():
+            d = sample_description(p)
+            it = QListWidgetItem(p.stem.replace("_", " ") + (f"\n    {d}" if d else ""))
+            it.setData(256, str(p))
+            self.list.addItem(it)
+        if self.list.count():
+            self.list.setCurrentRow(0)
+        self.list.itemDoubleClicked.connect(lambda _it: self.accept())
+        lay.addWidget(self.list)
+        buttons = QDialogButtonBox(QDialogButtonBox.Open | QDialogButtonBox.Cancel)
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        lay.addWidget(buttons)
+
+    def path(self) -> str | None:
+        it = self.list.currentItem()
+        return it.data(256) if it is not None else None

@@ -1,0 +1,416 @@
+"""The Ballast main window: layout, menus, shortcuts, opening files, window state.
+
+Layout (left to right): the method panel; the plot over the points table; the
+estimates. The window owns the document, the undo stack and the fit runner.
+"""
+from __future__ import annotations
+
+import os
+
+import numpy as np
+from PySide6.QtCore import QItemSelection, QItemSelectionModel, QSettings, Qt
+from PySide6.QtGui import QAction, QGuiApplication, QKeySequence, QUndoStack
+from PySide6.QtWidgets import (
+    QAbstractItemView, QFileDialog, QLabel, QMainWindow, QMessageBox, QScrollArea, QSplitter,
+    QTableView,
+)
+
+from . import dialogs
+from .commands import MaskCommand
+from .document import Document, Measurements, Settings
+from .estimates_view import CAUTION, EstimatesView
+from .method_panel import MethodPanel
+from .plot_view import PlotView
+from .points_model import PointsModel, make_proxy
+from .worker import FitRunner
+
+FILE_FILTER = "Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;All files (*)"
+MAX_RECENT = 8
+
+
+class MainWindow(QMainWindow):
+    """The window.
+
+    Parameters
+    ----------
+    qsettings
+        Where window state and recent files are remembered; default
+        ``QSettings("Ballast", "Ballast")``.
+    """
+
+    def __init__(self, qsettings: QSettings | None = None, parent=None):
+        super().__init__(parent)
+        self.setWindowTitle("Ballast")
+        self.qsettings = qsettings if qsettings is not None else QSettings("Ballast", "Ballast")
+        self.document = Document()
+        self.undo_stack = QUndoStack(self)
+        self.ask_reasons = False
+
+        self.plot = PlotView(self.document, self.push, ask_reason=self._ask_reason)
+        self.points_model = PointsModel(self.document, self.push, self)
+        self.proxy = make_proxy(self.points_model, self)
+        self.table = QTableView()
+        self.table.setModel(self.proxy)
+        self.table.setSortingEnabled(True)
+        self.table.sortByColumn(-1, Qt.AscendingOrder)
+        self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
+        self.table.setSelectionMode(QAbstractItemView.ExtendedSelection)
+        self.table.verticalHeader().setVisible(False)
+        self.table.verticalHeader().setDefaultSectionSize(22)
+        self.table.setAlternatingRowColors(False)
+        self.table.setEditTriggers(QAbstractItemView.DoubleClicked | QAbstractItemView.EditKeyPressed)
+        self.method_panel = MethodPanel(self.document, self.push)
+        self.estimates = EstimatesView(self.document)
+        self.runner = FitRunner(self.document, parent=self)
+
+        self.centre = QSplitter(Qt.Vertical)
+        self.centre.addWidget(self.plot)
+        self.centre.addWidget(self.table)
+        self.centre.setStretchFactor(0, 3)
+        self.centre.setStretchFactor(1, 2)
+        scroll = QScrollArea()
+        scroll.setWidget(self.method_panel)
+        scroll.setWidgetResizable(True)
+        scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarAlwaysOff)
+        scroll.setMinimumWidth(330)
+        self.main_split = QSplitter(Qt.Horizontal)
+        self.main_split.addWidget(scroll)
+        self.main_split.addWidget(self.centre)
+        self.main_split.addWidget(self.estimates)
+        self.main_split.setStretchFactor(0, 0)
+        self.main_split.setStretchFactor(1, 3)
+        self.main_split.setStretchFactor(2, 1)
+        self.main_split.setSizes([340, 760, 420])
+        self.setCentralWidget(self.main_split)
+
+        self.busy_label = QLabel("")
+        self.statusBar().addPermanentWidget(self.busy_label)
+        self.runner.busy_changed.connect(lambda b: self.busy_label.setText("fitting..." if b else ""))
+        self.setAcceptDrops(True)
+        self._build_menus()
+        self.table.selectionModel().selectionChanged.connect(self._table_selection_changed)
+        self.estimates.copy_button.clicked.connect(self.copy_estimates)
+        self.document.subscribe(self._on_document)
+        self._syncing_selection = False
+        self._restore_state()
+
+    # ------------------------------------------------------------------ menus
+    def _action(self, menu, text, slot, shortcut=None, checkable=False, checked=False, tip=""):
+        act = QAction(text, self)
+        if shortcut is not None:
+            act.setShortcut(QKeySequence(shortcut))
+        if checkable:
+            act.setCheckable(True)
+            act.setChecked(checked)
+            act.toggled.connect(slot)
+        else:
+            act.triggered.connect(slot)
+        if tip:
+            act.setStatusTip(tip)
+        menu.addAction(act)
+        self.addAction(act)
+        return act
+
+    def _build_menus(self):
+        mb = self.menuBar()
+        f = mb.addMenu("&File")
+        self._action(f, "&Open...", self.open_dialog, QKeySequence.Open)
+        self._action(f, "Open &sample set...", self.open_sample_picker, "Ctrl+Shift+O")
+        self.recent_menu = f.addMenu("Open &recent")
+        self._action(f, "&Paste table", self.paste_table, "Ctrl+Shift+V",
+                     tip="Read a table copied from a spreadsheet")
+        f.addSeparator()
+        self._action(f, "&Quit", self.close, QKeySequence.Quit)
+
+        e = mb.addMenu("&Edit")
+        self.undo_action = self.undo_stack.createUndoAction(self, "&Undo")
+        self.undo_action.setShortcut(QKeySequence.Undo)
+        self.redo_action = self.undo_stack.createRedoAction(self, "&Redo")
+        self.redo_action.setShortcuts([QKeySequence(QKeySequence.Redo), QKeySequence("Ctrl+Y")])
+        for a in (self.undo_action, self.redo_action):
+            e.addAction(a)
+            self.addAction(a)
+        e.addSeparator()
+        self._action(e, "&Exclude selected points", self.exclude_selected, QKeySequence.Delete)
+        self._action(e, "Re&store selected points", self.restore_selected, "Insert")
+        self._action(e, "&Toggle selected points", self.toggle_selected, "Ctrl+T")
+        self.reason_action = self._action(e, "Ask for a &reason when excluding", self._set_ask_reasons,
+                                          checkable=True, checked=False)
+        e.addSeparator()
+        self._action(e, "&Copy estimates", self.copy_estimates, "Ctrl+Shift+C")
+
+        v = mb.addMenu("&View")
+        self.band_action = self._action(v, "Confidence &band", self.plot.set_band_visible, "Ctrl+B",
+                                        checkable=True, checked=True)
+        self.logx_action = self._action(v, "Log &x axis", lambda on: self.plot.set_log(log_x=on),
+                                        "Ctrl+L", checkable=True)
+        self.logy_action = self._action(v, "Log &y axis", lambda on: self.plot.set_log(log_y=on),
+                                        "Ctrl+Shift+L", checkable=True)
+        self.box_action = self._action(v, "Box &mode (drag excludes)", self.plot.set_box_mode, "Ctrl+M",
+                                       checkable=True,
+                                       tip="Drag a rectangle to exclude points; Ctrl+drag restores")
+        self._action(v, "C&orrelation matrix", self.estimates.corr_button.setChecked, "Ctrl+K",
+                     checkable=True)
+        v.addSeparator()
+        self._action(v, "&Refit now", self.runner.fit_now, "F5")
+
+        h = mb.addMenu("&Help")
+        self._action(h, "&About Ballast", self.about)
+        self._action(h, "&Mouse and keys", self.show_help, QKeySequence.HelpContents)
+        self._update_recent_menu()
+
+    def push(self, command):
+        self.undo_stack.push(command)
+
+    # ------------------------------------------------------------------ state
+    def _restore_state(self):
+        s = self.qsettings
+        geo = s.value("window/geometry")
+        if geo is not None:
+            self.restoreGeometry(geo)
+        else:
+            self.resize(1480, 900)
+        st = s.value("window/state")
+        if st is not None:
+            self.restoreState(st)
+        for key, split in (("window/main_split", self.main_split), ("window/centre", self.centre)):
+            v = s.value(key)
+            if v is not None:
+                split.restoreState(v)
+        self.band_action.setChecked(s.value("view/band", True, type=bool))
+        self.logx_action.setChecked(s.value("view/log_x", False, type=bool))
+        self.logy_action.setChecked(s.value("view/log_y", False, type=bool))
+        self.reason_action.setChecked(s.value("edit/ask_reasons", False, type=bool))
+
+    def save_state(self):
+        s = self.qsettings
+        s.setValue("window/geometry", self.saveGeometry())
+        s.setValue("window/state", self.saveState())
+        s.setValue("window/main_split", self.main_split.saveState())
+        s.setValue("window/centre", self.centre.saveState())
+        s.setValue("view/band", self.band_action.isChecked())
+        s.setValue("view/log_x", self.logx_action.isChecked())
+        s.setValue("view/log_y", self.logy_action.isChecked())
+        s.setValue("edit/ask_reasons", self.reason_action.isChecked())
+        s.sync()
+
+    def closeEvent(self, ev):
+        self.save_state()
+        self.runner.enabled = False
+        self.runner.wait(5000)
+        super().closeEvent(ev)
+
+    def recent_files(self) -> list[str]:
+        v = self.qsettings.value("recent", [])
+        if isinstance(v, str):
+            v = [v]
+        return [p for p in (v or []) if p]
+
+    def _add_recent(self, path: str):
+        path = os.path.abspath(path)
+        items = [p for p in self.recent_files() if p != path]
+        self.qsettings.setValue("recent", [path] + items[: MAX_RECENT - 1])
+        self._update_recent_menu()
+
+    def _update_recent_menu(self):
+        self.recent_menu.clear()
+        files = self.recent_files()
+        for i, p in enumerate(files):
+            act = self.recent_menu.addAction(f"&{i + 1} {os.path.basename(p)}")
+            act.setStatusTip(p)
+            act.triggered.connect(lambda _=False, p=p: self.open_path(p))
+        self.recent_menu.setEnabled(bool(files))
+
+    # ------------------------------------------------------------------ opening
+    def open_dialog(self):
+        start = os.path.dirname(self.recent_files()[0]) if self.recent_files() else str(dialogs.SAMPLE_DIR)
+        path, _ = QFileDialog.getOpenFileName(self, "Open measurements", start, FILE_FILTER)
+        if path:
+            self.open_path(path)
+
+    def open_sample_picker(self):
+        dlg = dialogs.SamplePicker(self)
+        if dlg.exec() and dlg.path():
+            self.open_path(dlg.path())
+
+    def choose_columns(self, table):
+        """``(x, y, sigma)`` for a table with more than two numeric columns; None = cancel."""
+        dlg = dialogs.ColumnDialog(table, self)
+        return dlg.choice() if dlg.exec() else None
+
+    def open_path(self, path, columns=None) -> bool:
+        """Read a file and show it. On any problem an error box; the data stay as they were."""
+        import fitcore
+
+        try:
+            table = fitcore.read_table(path)
+        except (ValueError, OSError) as err:
+            dialogs.error_box(self, "Cannot open file", f"{os.path.basename(str(path))}: {err}")
+            return False
+        if self._load_table(table, columns):
+            self._add_recent(str(path))
+            return True
+        return False
+
+    def paste_table(self):
+        text = QGuiApplication.clipboard().text()
+        if not text.strip():
+            dialogs.error_box(self, "Nothing to paste", "The clipboard holds no text. Copy a block "
+                              "of cells in a spreadsheet first.")
+            return False
+        try:
+            from fitcore.io import read_clipboard_text
+
+            table = read_clipboard_text(text)
+        except (ValueError, ImportError) as err:
+            dialogs.error_box(self, "Cannot read the pasted table", str(err))
+            return False
+        return self._load_table(table, None)
+
+    def _load_table(self, table, columns) -> bool:
+        try:
+            numeric = table.numeric_columns()
+            if columns is None and len(numeric) > 2:
+                columns = self.choose_columns(table)
+                if columns is None:
+                    return False
+            x, y, s = columns if columns is not None else (None, None, None)
+            sel = table.choose(x, y, s)
+            if len(sel) == 0:
+                raise ValueError("no row holds usable numbers in both x and y")
+            m = Measurements(sel.x, sel.y, sel.sigma, x_name=sel.x_name, y_name=sel.y_name,
+                             sigma_name=sel.sigma_name or "", x_unit=sel.x_unit, y_unit=sel.y_unit,
+                             source=sel.source, notes=sel.notes)
+        except (ValueError, KeyError) as err:
+            dialogs.error_box(self, "Cannot use this table", str(err))
+            return False
+        self.undo_stack.clear()  # a new data set starts a new history
+        self.document.apply_measurements(m)
+        name = os.path.basename(m.source) if m.source != "clipboard" else "pasted table"
+        self.setWindowTitle(f"Ballast - {name}")
+        note = "; ".join(m.notes)
+        self.statusBar().showMessage(f"{m.n} points from {name}" + (f". {note}" if note else ""), 15000)
+        return True
+
+    def load_measurements(self, m: Measurements, settings: Settings | None = None):
+        """Show measurements built in code (scripts, benchmarks, tests)."""
+        self.undo_stack.clear()
+        self.document.apply_measurements(m, settings=settings)
+        self.method_panel._sync_from_document()
+
+    def dragEnterEvent(self, ev):
+        if ev.mimeData().hasUrls():
+            ev.acceptProposedAction()
+
+    def dropEvent(self, ev):
+        urls = [u for u in ev.mimeData().urls() if u.isLocalFile()]
+        if urls:
+            self.open_path(urls[0].toLocalFile())
+            ev.acceptProposedAction()
+
+    # ------------------------------------------------------------------ selection
+    def selected_points(self) -> np.ndarray:
+        rows = self.table.selectionModel().selectedRows()
+        return np.array(sorted(self.proxy.mapToSource(i).row() for i in rows), np.intp)
+
+    def _table_selection_changed(self, *_):
+        if self._syncing_selection:
+            return
+        self.document.set_selection(self.selected_points(), origin="table")
+
+    def _on_document(self, event, **info):
+        if event == "selection" and info.get("origin") != "table":
+            self._select_rows(self.document.selection)
+        elif event == "result":
+            res = self.document.result
+            if self.document.fit_failed:
+                self.statusBar().showMessage(f"Fit failed: {self.document.fit_message} "
+                                             "(the previous result is kept, marked stale)", 15000)
+            elif res is not None:
+                self.statusBar().showMessage(f"Fitted {res.n_used} points ({res.loss}).", 4000)
+
+    def _select_rows(self, rows):
+        sm = self.table.selectionModel()
+        self._syncing_selection = True
+        try:
+            sel = QItemSelection()
+            ncol = self.proxy.columnCount() - 1
+            for r in list(rows)[:5000]:
+                pi = self.proxy.mapFromSource(self.points_model.index(int(r), 0))
+                sel.select(pi, self.proxy.index(pi.row(), ncol))
+            sm.select(sel, QItemSelectionModel.ClearAndSelect)
+            if len(rows):
+                pi = self.proxy.mapFromSource(self.points_model.index(int(rows[0]), 0))
+                self.table.scrollTo(pi)
+        finally:
+            self._syncing_selection = False
+
+    # ------------------------------------------------------------------ actions
+    def _set_ask_reasons(self, on):
+        self.ask_reasons = bool(on)
+
+    def _ask_reason(self, n: int):
+        if not self.ask_reasons:
+            return ""
+        return dialogs.ask_text(self, "Reason for exclusion",
+                                f"Why exclude {'this point' if n == 1 else f'these {n} points'}? "
+                                "(optional)")
+
+    def _set_selected(self, exclude):
+        doc = self.document
+        idx = doc.selection if doc.selection.size else self.selected_points()
+        if idx.size == 0:
+            self.statusBar().showMessage("Select points in the table or the plot first.", 4000)
+            return
+        if exclude is None:  # toggle each
+            target = ~doc.excluded[idx]
+        else:
+            target = np.full(idx.size, bool(exclude))
+        reason = ""
+        if target.any():
+            reason = self._ask_reason(int(target.sum()))
+            if reason is None:
+                return
+        change = doc.make_mask_change(idx, target, reason=reason)
+        if not change.is_empty:
+            self.push(MaskCommand(doc, change))
+
+    def exclude_selected(self):
+        self._set_selected(True)
+
+    def restore_selected(self):
+        self._set_selected(False)
+
+    def toggle_selected(self):
+        self._set_selected(None)
+
+    def copy_estimates(self):
+        text = self.estimates.plain_text()
+        if not text:
+            self.statusBar().showMessage("No estimates to copy yet.", 4000)
+            return ""
+        QGuiApplication.clipboard().setText(text)
+        self.statusBar().showMessage("Estimates copied to the clipboard.", 4000)
+        return text
+
+    def about(self):
+        QMessageBox.about(self, "About Ballast",
+                          "<b>Ballast</b>: outlier-aware curve fitting of lab measurements.<br><br>"
+                          "Point size shows the robust weight; hollow crossed rings are points "
+                          f"you excluded.<br><br><i>{CAUTION}</i>")
+
+    def show_help(self):
+        QMessageBox.information(
+            self, "Mouse and keys",
+            "Click a point: exclude it; click again: restore it.\n"
+            "Shift+drag: exclude the points in a rectangle; Ctrl+Shift+drag: restore them.\n"
+            "Alt+click / Alt+drag: select without changing.\n"
+            "Delete / Insert / Ctrl+T: exclude / restore / toggle the selected points.\n"
+            "Ctrl+Z / Ctrl+Shift+Z: undo / redo.  Ctrl+Shift+C: copy estimates.\n"
+            "Ctrl+B band, Ctrl+L / Ctrl+Shift+L log axes, Ctrl+M box mode, F5 refit.")
+
+
+def first_sample_set():
+    """Path of the first sample set, or None."""
+    files = dialogs.sample_sets()
+    return str(files[0]) if files else None

@@ -1,0 +1,537 @@
+"""The plot: points sized by their robust weight, the fitted curve and band, residuals.
+
+Layout: the data plot on top and the residual plot underneath, sharing the x axis.
+The points are drawn by :class:`PointsItem`, our own graphics item that paints from
+numpy arrays with one ``drawPixmapFragments`` call per paint, so a refit at 1e5
+points only swaps two small integer arrays (size level and style) instead of
+rebuilding per-point pens and brushes.
+
+Interaction (the plot only *requests* changes; the document owns the state):
+
+* click a point: exclude it, click again: restore it (the point becomes the selection);
+* Shift+drag a rectangle (or plain drag in box mode): exclude the points inside;
+  Ctrl+Shift+drag (Ctrl+drag in box mode): restore them; one drag = one undo step;
+* Alt+click / Alt+drag: select points without changing them.
+"""
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+import pyqtgraph as pg
+from pyqtgraph import functions as fn
+from pyqtgraph.Qt import internals as pg_internals
+from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtGui import QBrush, QColor, QPainter, QPen, QPixmap
+
+from .commands import MaskCommand
+from .document import Document
+
+#: number of size levels the weights are quantised to
+N_LEVELS = 8
+MIN_SIZE = 3.0   # px, weight 0
+MAX_SIZE = 10.0  # px, weight 1
+#: styles (rows of the symbol atlas)
+USED, DOWN, EXCLUDED = 0, 1, 2
+COLOURS = {
+    USED: (QColor(31, 92, 170), QColor(12, 45, 95)),
+    DOWN: (QColor(232, 150, 30), QColor(140, 80, 0)),
+    EXCLUDED: (None, QColor(200, 30, 45)),
+}
+SELECT_COLOUR = QColor(255, 200, 0)
+HIT_RADIUS = 8.0  # px
+
+
+def weight_levels(weights: np.ndarray, n_levels: int = N_LEVELS) -> np.ndarray:
+    """Quantise weights in [0, 1] to integer size levels ``0 .. n_levels-1``.
+
+    Level ``n_levels-1`` is full size (weight 1). The size grows with the square root
+    of the weight, so the symbol *area* follows the weight. NaN counts as full weight.
+    """
+    w = np.asarray(weights, float)
+    w = np.where(np.isfinite(w), np.clip(w, 0.0, 1.0), 1.0)
+    return np.rint(np.sqrt(w) * (n_levels - 1)).astype(np.int8)
+
+
+def level_size(level: int, n_levels: int = N_LEVELS) -> float:
+    """Diameter in pixels of the symbol for one size level."""
+    return MIN_SIZE + (MAX_SIZE - MIN_SIZE) * level / (n_levels - 1)
+
+
+class PointsItem(pg.GraphicsObject):
+    """Scatter item that paints numpy arrays through a small symbol atlas.
+
+    Per point it keeps the position (plot coordinates), a size level, a style
+    (used / down-weighted / excluded) and a selected flag. Symbols for every
+    (style, selected, level) are rendered once into one pixmap; a paint maps the
+    points to device pixels with numpy and draws them with ``drawPixmapFragments``.
+    """
+
+    def __init__(self, scale: float = 1.0):
+        super().__init__()
+        self._scale = float(scale)  # symbol size factor (the residual plot uses smaller)
+        self.x = np.zeros(0)
+        self.y = np.zeros(0)
+        self.level = np.zeros(0, np.int8)
+        self.style = np.zeros(0, np.int8)
+        self.selected = np.zeros(0, bool)
+        self._order = np.zeros(0, np.intp)
+        self._finite = np.zeros(0, bool)
+        self._bounds = QRectF()
+        self._frags = pg_internals.PrimitiveArray(QPainter.PixmapFragment, 10)
+        self._atlas = None
+        self._atlas_dpr = None
+        self._cell = int(np.ceil(MAX_SIZE * self._scale)) + 6
+
+    # ------------------------------------------------------------- data
+    def set_points(self, x, y):
+        """New positions (plot coordinates; NaN = not drawn)."""
+        self.prepareGeometryChange()
+        self.x = np.asarray(x, float)
+        self.y = np.asarray(y, float)
+        n = self.x.size
+        if self.level.size != n:
+            self.level = np.full(n, N_LEVELS - 1, np.int8)
+            self.style = np.zeros(n, np.int8)
+            self.selected = np.zeros(n, bool)
+        self._finite = np.isfinite(self.x) & np.isfinite(self.y)
+        if self._finite.any():
+            xs, ys = self.x[self._finite], self.y[self._finite]
+            x0, x1, y0, y1 = xs.min(), xs.max(), ys.min(), ys.max()
+            self._bounds = QRectF(x0, y0, max(x1 - x0, 1e-300), max(y1 - y0, 1e-300))
+        else:
+            self._bounds = QRectF()
+        self._reorder()
+        self.informViewBoundsChanged()
+        self.update()
+
+    def set_style(self, level=None, style=None, selected=None):
+        """New size levels, styles and/or selection flags (arrays of length n)."""
+        if level is not None:
+            self.level = np.asarray(level, np.int8)
+        if style is not None:
+            self.style = np.asarray(style, np.int8)
+        if selected is not None:
+            self.selected = np.asarray(selected, bool)
+        self._reorder()
+        self.update()
+
+    def _reorder(self):
+        # paint order: used, down-weighted, excluded, then the selected on top
+        key = self.style.astype(np.int16) + 4 * self.selected
+        idx = np.flatnonzero(self._finite)
+        if key.size == self._finite.size and idx.size:
+            idx = idx[np.argsort(key[idx], kind="stable")]
+        self._order = idx
+
+    # ------------------------------------------------------------- geometry
+    def dataBounds(self, ax, frac=1.0, orthoRange=None):
+        if not self._finite.any():
+            return (None, None)
+        v = (self.x if ax == 0 else self.y)[self._finite]
+        return (float(v.min()), float(v.max()))
+
+    def pixelPadding(self):
+        return self._cell / 2.0
+
+    def boundingRect(self):
+        if self._bounds.isNull():
+            return QRectF()
+        px, py = self.pixelWidth(), self.pixelHeight()
+        pad = self._cell / 2.0
+        if not np.isfinite(px) or not np.isfinite(py):
+            px = py = 0.0
+        return self._bounds.adjusted(-pad * px, -pad * py, pad * px, pad * py)
+
+    def viewTransformChanged(self):
+        self.prepareGeometryChange()
+
+    # ------------------------------------------------------------- symbols
+    def _make_atlas(self, dpr: float):
+        cell = self._cell
+        pm = QPixmap(int(np.ceil(cell * N_LEVELS * dpr)), int(np.ceil(cell * 6 * dpr)))
+        pm.setDevicePixelRatio(dpr)
+        pm.fill(Qt.transparent)
+        p = QPainter(pm)
+        p.setRenderHint(QPainter.Antialiasing, True)
+        for sel in (0, 1):
+            for st in (USED, DOWN, EXCLUDED):
+                row = st + 3 * sel
+                fill, edge = COLOURS[st]
+                for lev in range(N_LEVELS):
+                    d = level_size(N_LEVELS - 1 if st == EXCLUDED else lev) * self._scale
+                    cx, cy = (lev + 0.5) * cell, (row + 0.5) * cell
+                    if sel:
+                        p.setPen(QPen(SELECT_COLOUR, 3.0))
+                        p.setBrush(Qt.NoBrush)
+                        p.drawEllipse(QPointF(cx, cy), d / 2 + 2.0, d / 2 + 2.0)
+                    if st == EXCLUDED:
+                        p.setPen(QPen(edge, 1.6))
+                        p.setBrush(Qt.NoBrush)
+                        p.drawEllipse(QPointF(cx, cy), d / 2, d / 2)
+                        r = d * 0.22
+                        p.drawLine(QPointF(cx - r, cy - r), QPointF(cx + r, cy + r))
+                        p.drawLine(QPointF(cx - r, cy + r), QPointF(cx + r, cy - r))
+                    else:
+                        p.setPen(QPen(edge, 1.0))
+                        p.setBrush(QBrush(fill))
+                        p.drawEllipse(QPointF(cx, cy), d / 2, d / 2)
+        p.end()
+        self._atlas = pm
+        self._atlas_dpr = dpr
+
+    # ------------------------------------------------------------- painting
+    def paint(self, p, option, widget=None):
+        idx = self._order
+        if idx.size == 0:
+            return
+        dpr = widget.devicePixelRatioF() if widget is not None else 1.0
+        if self._atlas is None or self._atlas_dpr != dpr:
+            self._make_atlas(dpr)
+        pts = fn.transformCoordinates(p.transform(), np.vstack([self.x[idx], self.y[idx]]))
+        dev = p.device()
+        w, h = (dev.width(), dev.height()) if dev is not None else (1e9, 1e9)
+        pad = self._cell
+        vis = (pts[0] > -pad) & (pts[0] < w + pad) & (pts[1] > -pad) & (pts[1] < h + pad)
+        if not vis.all():
+            pts = pts[:, vis]
+            idx = idx[vis]
+        if idx.size == 0:
+            return
+        p.resetTransform()
+        cell = self._cell * dpr
+        self._frags.resize(idx.size)
+        fr = self._frags.ndarray()
+        fr[:, 0] = pts[0]
+        fr[:, 1] = pts[1]
+        fr[:, 2] = self.level[idx] * cell
+        fr[:, 3] = (self.style[idx] + 3 * self.selected[idx]) * cell
+        fr[:, 4] = cell
+        fr[:, 5] = cell
+        fr[:, 6:10] = [1.0 / dpr, 1.0 / dpr, 0.0, 1.0]
+        p.drawPixmapFragments(*self._frags.drawargs(), self._atlas)
+
+    # ------------------------------------------------------------- hit tests
+    def nearest(self, pos: QPointF, radius_px: float = HIT_RADIUS) -> int | None:
+        """Index of the drawn point nearest to ``pos`` (item coordinates) within a radius."""
+        idx = np.flatnonzero(self._finite)
+        if idx.size == 0:
+            return None
+        px, py = self.pixelWidth(), self.pixelHeight()
+        if not (px > 0 and py > 0):
+            return None
+        d2 = ((self.x[idx] - pos.x()) / px) ** 2 + ((self.y[idx] - pos.y()) / py) ** 2
+        k = int(np.argmin(d2))
+        return int(idx[k]) if d2[k] <= radius_px**2 else None
+
+    def inside(self, rect: QRectF) -> np.ndarray:
+        """Indices of the points inside ``rect`` (item coordinates)."""
+        r = rect.normalized()
+        m = self._finite & (self.x >= r.left()) & (self.x <= r.right()) \
+            & (self.y >= r.top()) & (self.y <= r.bottom())
+        return np.flatnonzero(m)
+
+
+class PickViewBox(pg.ViewBox):
+    """A view box that reports clicks and rectangle drags to a handler.
+
+    ``handler.on_click(viewbox, pos, modifiers) -> bool`` and
+    ``handler.on_box(viewbox, rect, modifiers, finished)``; plain drags pan as usual
+    unless box mode is on.
+    """
+
+    def __init__(self, handler, **kw):
+        super().__init__(**kw)
+        self.handler = handler
+        self.box_mode = False
+        self._rect_item = None
+
+    def mouseClickEvent(self, ev):
+        if ev.button() == Qt.LeftButton:
+            pos = self.mapSceneToView(ev.scenePos())
+            if self.handler.on_click(self, pos, ev.modifiers()):
+                ev.accept()
+                return
+        super().mouseClickEvent(ev)
+
+    def _is_box_drag(self, ev) -> bool:
+        mods = ev.modifiers()
+        return ev.button() == Qt.LeftButton and (
+            self.box_mode or bool(mods & (Qt.ShiftModifier | Qt.AltModifier)))
+
+    def mouseDragEvent(self, ev, axis=None):
+        if axis is None and self._is_box_drag(ev):
+            ev.accept()
+            p0 = self.mapSceneToView(ev.buttonDownScenePos())
+            p1 = self.mapSceneToView(ev.scenePos())
+            rect = QRectF(p0, p1).normalized()
+            if self._rect_item is None:
+                self._rect_item = pg.QtWidgets.QGraphicsRectItem()
+                self._rect_item.setPen(pg.mkPen((200, 30, 45), width=1, style=Qt.DashLine, cosmetic=True))
+                self._rect_item.setBrush(pg.mkBrush(200, 30, 45, 30))
+                self._rect_item.setZValue(1e9)
+                self.addItem(self._rect_item, ignoreBounds=True)
+            self._rect_item.setRect(rect)
+            finished = ev.isFinish()
+            self.handler.on_box(self, rect, ev.modifiers(), finished)
+            if finished:
+                self.removeItem(self._rect_item)
+                self._rect_item = None
+            return
+        super().mouseDragEvent(ev, axis)
+
+
+class PlotView(pg.GraphicsLayoutWidget):
+    """Data plot over residual plot, observing a :class:`Document`.
+
+    Parameters
+    ----------
+    document
+        The document shown.
+    push
+        Callable taking a ``QUndoCommand`` (normally ``QUndoStack.push``).
+    ask_reason
+        Optional callable ``ask_reason(n_points) -> str | None`` asked before an
+        exclusion from the plot (None cancels it).
+    """
+
+    #: emitted after the plot was redrawn from a new result
+    redrawn = Signal()
+
+    def __init__(self, document: Document, push: Callable, ask_reason: Callable | None = None, parent=None):
+        super().__init__(parent)
+        self.document = document
+        self.push = push
+        self.ask_reason = ask_reason
+        self.setBackground("w")
+        self.log_x = False
+        self.log_y = False
+        self.show_band = True
+        self._drag = None  # (token, initial excluded mask) while a box drag runs
+
+        self.vb_data = PickViewBox(self)
+        self.vb_resid = PickViewBox(self)
+        self.data_plot = self.addPlot(row=0, col=0, viewBox=self.vb_data)
+        self.resid_plot = self.addPlot(row=1, col=0, viewBox=self.vb_resid)
+        self.ci.layout.setRowStretchFactor(0, 3)
+        self.ci.layout.setRowStretchFactor(1, 1)
+        self.resid_plot.setXLink(self.data_plot)
+        for plot in (self.data_plot, self.resid_plot):
+            plot.showGrid(x=True, y=True, alpha=0.15)
+            plot.hideButtons()
+            for ax in ("left", "bottom"):
+                plot.getAxis(ax).setPen(pg.mkPen(60, 60, 60))
+                plot.getAxis(ax).setTextPen(pg.mkPen(30, 30, 30))
+        self.data_plot.getAxis("left").setWidth(70)
+        self.resid_plot.getAxis("left").setWidth(70)
+
+        self.band_lo = pg.PlotCurveItem(pen=pg.mkPen(None))
+        self.band_hi = pg.PlotCurveItem(pen=pg.mkPen(None))
+        self.band = pg.FillBetweenItem(self.band_lo, self.band_hi, brush=pg.mkBrush(31, 92, 170, 45))
+        self.curve = pg.PlotCurveItem(pen=pg.mkPen(20, 20, 20, width=2))
+        self.points = PointsItem()
+        for item in (self.band_lo, self.band_hi, self.band):
+            self.data_plot.addItem(item, ignoreBounds=True)
+        self.data_plot.addItem(self.curve, ignoreBounds=True)
+        self.data_plot.addItem(self.points)
+        self.zero = pg.InfiniteLine(pos=0, angle=0, pen=pg.mkPen(90, 90, 90, width=1))
+        self.resid_plot.addItem(self.zero, ignoreBounds=True)
+        self.resid_points = PointsItem(scale=0.8)
+        self.resid_plot.addItem(self.resid_points)
+        self.resid_plot.setLabel("left", "residual")
+        self.stale_text = pg.TextItem("", color=(200, 30, 45), anchor=(0, 0))
+        self.data_plot.addItem(self.stale_text, ignoreBounds=True)
+
+        document.subscribe(self._on_document)
+        self._on_document("data")
+
+    # ---------------------------------------------------------------- options
+    def set_log(self, log_x: bool | None = None, log_y: bool | None = None):
+        """Logarithmic axes (points with values <= 0 are not drawn on a log axis)."""
+        if log_x is not None:
+            self.log_x = bool(log_x)
+        if log_y is not None:
+            self.log_y = bool(log_y)
+        self.data_plot.setLogMode(self.log_x, self.log_y)
+        self.resid_plot.setLogMode(self.log_x, False)
+        self._set_positions()
+        self._draw_result()
+        self.data_plot.enableAutoRange()
+        self.resid_plot.enableAutoRange()
+
+    def set_band_visible(self, on: bool):
+        self.show_band = bool(on)
+        self._draw_result()
+
+    def set_box_mode(self, on: bool):
+        self.vb_data.box_mode = self.vb_resid.box_mode = bool(on)
+
+    # ---------------------------------------------------------------- coordinates
+    def _tx(self, x):
+        if not self.log_x:
+            return np.asarray(x, float)
+        with np.errstate(all="ignore"):
+            x = np.asarray(x, float)
+            return np.where(x > 0, np.log10(np.where(x > 0, x, 1.0)), np.nan)
+
+    def _ty(self, y):
+        if not self.log_y:
+            return np.asarray(y, float)
+        with np.errstate(all="ignore"):
+            y = np.asarray(y, float)
+            return np.where(y > 0, np.log10(np.where(y > 0, y, 1.0)), np.nan)
+
+    def point_scene_pos(self, index: int, residual: bool = False) -> QPointF:
+        """Scene position of one point (for tests and tooltips)."""
+        item = self.resid_points if residual else self.points
+        return item.mapToScene(QPointF(item.x[index], item.y[index]))
+
+    # ---------------------------------------------------------------- document
+    def _on_document(self, event, **info):
+        if event == "data":
+            m = self.document.measurements
+            self.data_plot.setLabel("bottom", m.label("x"))
+            self.data_plot.setLabel("left", m.label("y"))
+            self.resid_plot.setLabel("bottom", m.label("x"))
+            self.resid_plot.setLabel("left", f"residual ({m.y_unit})" if m.y_unit else "residual")
+            self._set_positions()
+            self._restyle()
+            self._draw_result()
+            self.data_plot.enableAutoRange()
+            self.resid_plot.enableAutoRange()
+        elif event == "mask":
+            self._restyle()
+        elif event == "selection":
+            sel = np.zeros(self.document.n, bool)
+            sel[self.document.selection] = True
+            self.points.set_style(selected=sel)
+            self.resid_points.set_style(selected=sel)
+        elif event == "result":
+            self._restyle()
+            self._draw_result()
+            self.redrawn.emit()
+        elif event == "settings":
+            self._mark_stale()
+
+    def _set_positions(self):
+        m = self.document.measurements
+        self.points.set_points(self._tx(m.x), self._ty(m.y))
+        res = self.document.result
+        r = res.residuals if res is not None and len(res.residuals) == m.n else np.full(m.n, np.nan)
+        self.resid_points.set_points(self._tx(m.x), np.asarray(r, float))
+
+    def _restyle(self):
+        doc = self.document
+        n = doc.n
+        res = doc.result
+        if res is not None and len(res.weights) == n:
+            w = np.asarray(res.weights, float).copy()
+            w[doc.excluded] = 1.0
+        else:
+            w = np.ones(n)
+        level = weight_levels(w)
+        style = doc.status()
+        sel = np.zeros(n, bool)
+        sel[doc.selection] = True
+        self.points.set_style(level, style, sel)
+        self.resid_points.set_style(level, style, sel)
+
+    def _mark_stale(self):
+        doc = self.document
+        if doc.result is not None and doc.stale:
+            if doc.fit_failed:
+                msg = f"previous result (stale): {doc.fit_message}"
+            else:
+                msg = "stale: refitting..."
+            self.stale_text.setText(msg)
+            self.curve.setPen(pg.mkPen(120, 120, 120, width=2, style=Qt.DashLine))
+        else:
+            self.stale_text.setText("")
+            self.curve.setPen(pg.mkPen(20, 20, 20, width=2))
+        vr = self.data_plot.vb.viewRange()
+        self.stale_text.setPos(vr[0][0], vr[1][1])
+
+    def _draw_result(self):
+        doc = self.document
+        res = doc.result
+        m = doc.measurements
+        if res is None or m.n == 0 or len(res.weights) != m.n:
+            self.curve.setData([], [])
+            self.band_lo.setData([], [])
+            self.band_hi.setData([], [])
+            self.resid_points.set_points(self._tx(m.x), np.full(m.n, np.nan))
+            self._mark_stale()
+            return
+        xs = m.x[np.isfinite(m.x)]
+        if self.log_x:
+            xs = xs[xs > 0]
+        if xs.size == 0:
+            return
+        lo, hi = float(xs.min()), float(xs.max())
+        grid = np.geomspace(lo, hi, 400) if self.log_x and lo > 0 and hi > lo else np.linspace(lo, hi, 400)
+        with np.errstate(all="ignore"):
+            try:
+                yhat = np.asarray(res.predict(grid), float)
+            except Exception:  # noqa: BLE001 - a model that cannot evaluate: no curve
+                yhat = np.full(grid.size, np.nan)
+            ok = np.isfinite(yhat)
+            self.curve.setData(self._tx(grid[ok]), self._ty(yhat[ok]))
+            self.band.setVisible(self.show_band)
+            if self.show_band:
+                try:
+                    b_lo, b_hi = res.band(grid)
+                    ok = np.isfinite(b_lo) & np.isfinite(b_hi)
+                    ok &= ~self.log_y | ((b_lo > 0) & (b_hi > 0))
+                    self.band_lo.setData(self._tx(grid[ok]), self._ty(b_lo[ok]))
+                    self.band_hi.setData(self._tx(grid[ok]), self._ty(b_hi[ok]))
+                except Exception:  # noqa: BLE001 - no band (e.g. dof = 0)
+                    self.band_lo.setData([], [])
+                    self.band_hi.setData([], [])
+        self.resid_points.set_points(self._tx(m.x), np.asarray(res.residuals, float))
+        self._mark_stale()
+
+    # ---------------------------------------------------------------- picking
+    def _item_for(self, vb):
+        return self.points if vb is self.vb_data else self.resid_points
+
+    def on_click(self, vb, pos, modifiers) -> bool:
+        """Click on the plot: toggle the nearest point (Alt: select only)."""
+        doc = self.document
+        i = self._item_for(vb).nearest(pos)
+        if i is None:
+            if not modifiers & Qt.AltModifier:
+                doc.set_selection([], origin="plot")
+            return False
+        doc.set_selection([i], origin="plot")
+        if modifiers & Qt.AltModifier:
+            return True
+        exclude = not doc.excluded[i]
+        reason = ""
+        if exclude and self.ask_reason is not None:
+            reason = self.ask_reason(1)
+            if reason is None:
+                return True
+        self.push(MaskCommand(doc, doc.make_mask_change([i], exclude, reason=reason)))
+        return True
+
+    def on_box(self, vb, rect, modifiers, finished: bool):
+        """Rectangle drag: exclude (Ctrl: restore; Alt: select) the points inside."""
+        doc = self.document
+        inside = self._item_for(vb).inside(rect)
+        if modifiers & Qt.AltModifier:
+            doc.set_selection(inside, origin="plot")
+            return
+        restore = bool(modifiers & Qt.ControlModifier)
+        if self._drag is None:
+            self._drag = (object(), doc.excluded.copy())
+        token, start = self._drag
+        # desired state: the start mask, with the points inside set
+        target = start.copy()
+        target[inside] = not restore
+        changed = np.flatnonzero(target != doc.excluded)
+        if changed.size:
+            change = doc.make_mask_change(changed, target[changed])
+            self.push(MaskCommand(doc, change, drag_token=token))
+        doc.set_selection(inside, origin="plot")
+        if finished:
+            self._drag = None

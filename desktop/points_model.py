@@ -1,0 +1,227 @@
+"""The points table: a Qt table model over the document's points.
+
+The model is an adapter: it formats the document's arrays when the view asks and
+turns edits (the "used" check box, the exclusion reason) into undoable commands. Row
+``i`` is always point ``i``; sorting goes through a :class:`QSortFilterProxyModel`
+(see :func:`make_proxy`), so the row identity survives any sort order.
+"""
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+from PySide6.QtCore import QAbstractTableModel, QModelIndex, QSortFilterProxyModel, Qt
+from PySide6.QtGui import QBrush, QColor, QFont
+
+from .commands import MaskCommand, ReasonCommand
+from .document import Document
+
+COLUMNS = ("#", "x", "y", "sigma_y", "fitted", "residual", "std. residual", "weight", "status", "reason")
+COL = {name: i for i, name in enumerate(COLUMNS)}
+STATUS_TEXT = ("used", "down-weighted", "excluded")
+#: role giving the sortable raw value of a cell
+SORT_ROLE = Qt.UserRole + 1
+
+_GREY = QBrush(QColor(120, 120, 120))
+_EXCLUDED_BG = QBrush(QColor(255, 236, 230))
+_DOWN_BG = QBrush(QColor(255, 248, 220))
+
+
+class PointsModel(QAbstractTableModel):
+    """Table model: one row per point, columns :data:`COLUMNS`.
+
+    Parameters
+    ----------
+    document
+        The document shown.
+    push
+        Callable taking a ``QUndoCommand`` (normally ``QUndoStack.push``); edits made
+        in the table go through it.
+    """
+
+    def __init__(self, document: Document, push: Callable, parent=None):
+        super().__init__(parent)
+        self.document = document
+        self.push = push
+        self._italic = QFont()
+        self._italic.setItalic(True)
+        self._cache_result()
+        document.subscribe(self._on_document)
+
+    # ---------------------------------------------------------- document events
+    def _cache_result(self):
+        doc = self.document
+        res = doc.result
+        n = doc.n
+        if res is not None and len(res.weights) == n:
+            self._fitted = np.asarray(res.fitted, float)
+            self._resid = np.asarray(res.residuals, float)
+            self._std = np.asarray(res.std_residuals, float)
+            self._w = np.asarray(res.weights, float)
+        else:
+            self._fitted = self._resid = self._std = self._w = None
+        self._status = doc.status()
+
+    def _on_document(self, event, **info):
+        if event == "data":
+            self.beginResetModel()
+            self._cache_result()
+            self.endResetModel()
+        elif event in ("mask", "reasons"):
+            idx = info.get("indices")
+            self._status = self.document.status()
+            if idx is None or len(idx) == 0:
+                return
+            lo, hi = int(np.min(idx)), int(np.max(idx))
+            self.dataChanged.emit(self.index(lo, 0), self.index(hi, len(COLUMNS) - 1))
+        elif event == "result":
+            self._cache_result()
+            if self.document.n:
+                self.dataChanged.emit(self.index(0, COL["fitted"]),
+                                      self.index(self.document.n - 1, len(COLUMNS) - 1))
+        elif event == "settings" and self.document.n:
+            # the result shown is now stale: repaint in grey
+            self.dataChanged.emit(self.index(0, COL["fitted"]),
+                                  self.index(self.document.n - 1, COL["weight"]))
+
+    # ---------------------------------------------------------- Qt interface
+    def rowCount(self, parent=QModelIndex()):
+        return 0 if parent.isValid() else self.document.n
+
+    def columnCount(self, parent=QModelIndex()):
+        return 0 if parent.isValid() else len(COLUMNS)
+
+    def headerData(self, section, orientation, role=Qt.DisplayRole):
+        if role != Qt.DisplayRole:
+            return None
+        if orientation == Qt.Vertical:
+            return None
+        m = self.document.measurements
+        name = COLUMNS[section]
+        if name == "x":
+            return m.label("x")
+        if name == "y":
+            return m.label("y")
+        if name == "sigma_y":
+            return f"u({m.y_name})" if m.sigma is not None else "sigma_y"
+        return name
+
+    def raw(self, row: int, col: int):
+        """The unformatted value of a cell (float, int or str; NaN where none)."""
+        doc = self.document
+        m = doc.measurements
+        name = COLUMNS[col]
+        if name == "#":
+            return row + 1
+        if name == "x":
+            return float(m.x[row])
+        if name == "y":
+            return float(m.y[row])
+        if name == "sigma_y":
+            return float(m.sigma[row]) if m.sigma is not None else float("nan")
+        if name == "status":
+            return int(self._status[row]) if row < len(self._status) else 0
+        if name == "reason":
+            return doc.reasons[row]
+        arr = {"fitted": self._fitted, "residual": self._resid,
+               "std. residual": self._std, "weight": self._w}[name]
+        if arr is None:
+            return float("nan")
+        return float(arr[row])
+
+    def data(self, index, role=Qt.DisplayRole):
+        if not index.isValid():
+            return None
+        row, col = index.row(), index.column()
+        name = COLUMNS[col]
+        doc = self.document
+        if role == Qt.DisplayRole or role == Qt.EditRole:
+            v = self.raw(row, col)
+            if name == "status":
+                return STATUS_TEXT[v]
+            if name in ("#", "reason"):
+                return v if name == "#" else str(v)
+            if isinstance(v, float) and not np.isfinite(v):
+                return ""
+            if name == "weight":
+                return f"{v:.3f}"
+            return f"{v:.6g}"
+        if role == SORT_ROLE:
+            v = self.raw(row, col)
+            if isinstance(v, float) and not np.isfinite(v):
+                return float("inf")
+            return v
+        if role == Qt.CheckStateRole and name == "status":
+            return Qt.Unchecked if doc.excluded[row] else Qt.Checked
+        if role == Qt.TextAlignmentRole:
+            if name in ("status", "reason"):
+                return int(Qt.AlignLeft | Qt.AlignVCenter)
+            return int(Qt.AlignRight | Qt.AlignVCenter)
+        if role == Qt.BackgroundRole:
+            st = self._status[row] if row < len(self._status) else 0
+            if st == 2:
+                return _EXCLUDED_BG
+            if st == 1:
+                return _DOWN_BG
+            return None
+        if role == Qt.ForegroundRole:
+            if doc.stale and name in ("fitted", "residual", "std. residual", "weight"):
+                return _GREY
+            return None
+        if role == Qt.FontRole and doc.excluded[row]:
+            return self._italic
+        if role == Qt.ToolTipRole:
+            if name == "status":
+                return "Uncheck to exclude this point; check to restore it"
+            if name == "reason" and doc.excluded[row]:
+                t = doc.times[row]
+                return f"Excluded {t}" if t else None
+            if name == "weight":
+                return "Robust weight: 1 = counted fully, below 0.5 = down-weighted"
+        return None
+
+    def flags(self, index):
+        f = super().flags(index)
+        if not index.isValid():
+            return f
+        name = COLUMNS[index.column()]
+        if name == "status":
+            f |= Qt.ItemIsUserCheckable
+        if name == "reason" and self.document.excluded[index.row()]:
+            f |= Qt.ItemIsEditable
+        return f
+
+    def setData(self, index, value, role=Qt.EditRole):
+        if not index.isValid():
+            return False
+        row = index.row()
+        name = COLUMNS[index.column()]
+        doc = self.document
+        if name == "status" and role == Qt.CheckStateRole:
+            state = Qt.CheckState(value) if not isinstance(value, Qt.CheckState) else value
+            exclude = state == Qt.Unchecked
+            change = doc.make_mask_change([row], exclude)
+            if change.is_empty:
+                return False
+            self.push(MaskCommand(doc, change))
+            return True
+        if name == "reason" and role == Qt.EditRole:
+            text = str(value).strip()
+            if text == doc.reasons[row]:
+                return False
+            self.push(ReasonCommand(doc, row, text))
+            return True
+        return False
+
+
+def make_proxy(model: PointsModel, parent=None) -> QSortFilterProxyModel:
+    """A sorting proxy over ``model`` that sorts by the raw cell values.
+
+    Dynamic re-sorting is off: rows keep their place while values change after a
+    refit, and sort again when the analyst clicks a header.
+    """
+    proxy = QSortFilterProxyModel(parent)
+    proxy.setSourceModel(model)
+    proxy.setSortRole(SORT_ROLE)
+    proxy.setDynamicSortFilter(False)
+    return proxy

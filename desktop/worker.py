@@ -1,0 +1,182 @@
+"""Running fits for the window: debounced, superseding, off the GUI thread when large.
+
+:class:`FitRunner` watches the document. After a change to the fit inputs it fits
+right away if nothing was fitted in the last ``debounce_ms`` (so a single click is
+answered at once), and otherwise waits until the changes pause (so a box drag gives
+one fit, not fifty). Small fits run inline; fits over ``thread_threshold`` points,
+or any fit once one took longer than ``slow_fit_s``, run in a ``QThreadPool`` worker
+so the window keeps processing events. Each request carries the document's
+generation number; a result for older inputs is dropped, and while one fit runs only
+the newest waiting request is kept.
+"""
+from __future__ import annotations
+
+import time
+import traceback
+
+from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal, Slot
+
+from .document import Document
+
+
+def run_fit(request: dict):
+    """Fit one request (a dict from :meth:`Document.fit_request`).
+
+    Returns ``(result, None)`` or ``(None, message)`` for input the engine refuses.
+    """
+    import fitcore
+
+    kw = dict(request["kwargs"])
+    try:
+        res = fitcore.fit(request["model"], request["x"], request["y"],
+                          sigma=request["sigma"], excluded=request["excluded"], **kw)
+        return res, None
+    except ValueError as err:  # FitError and formula/model errors are ValueErrors
+        return None, str(err)
+    except Exception as err:  # noqa: BLE001 - never let a fit take the window down
+        tail = traceback.format_exception_only(type(err), err)[-1].strip()
+        return None, f"the fit stopped with an internal error ({tail})"
+
+
+class _Signals(QObject):
+    done = Signal(object, object, int, float)  # result, message, generation, seconds
+
+
+class _FitTask(QRunnable):
+    def __init__(self, request: dict, signals: _Signals):
+        super().__init__()
+        self.request = request
+        self.signals = signals
+        self.setAutoDelete(True)
+
+    def run(self):
+        t0 = time.perf_counter()
+        res, msg = run_fit(self.request)
+        self.signals.done.emit(res, msg, self.request["generation"], time.perf_counter() - t0)
+
+
+class FitRunner(QObject):
+    """Keeps the document's result up to date.
+
+    Parameters
+    ----------
+    document
+        The document to fit.
+    debounce_ms
+        Quiet time that ends a burst of changes.
+    thread_threshold
+        Fits with more points than this run in the worker thread.
+    """
+
+    #: a fit started (True) or all fits finished (False)
+    busy_changed = Signal(bool)
+    #: a result or failure was delivered to the document
+    finished = Signal()
+
+    def __init__(self, document: Document, debounce_ms: int = 150, thread_threshold: int = 20000,
+                 slow_fit_s: float = 0.06, parent=None):
+        super().__init__(parent)
+        self.document = document
+        self.debounce_ms = int(debounce_ms)
+        self.thread_threshold = int(thread_threshold)
+        self.slow_fit_s = float(slow_fit_s)
+        self.enabled = True
+        self.last_seconds = 0.0
+        self._pool = QThreadPool(self)
+        self._pool.setMaxThreadCount(1)
+        self._signals = _Signals()
+        self._signals.done.connect(self._on_done)
+        self._running = False
+        self._pending = None
+        self._cooldown = QTimer(self)
+        self._cooldown.setSingleShot(True)
+        self._cooldown.timeout.connect(self._on_cooldown)
+        self._dirty = False
+        document.subscribe(self._on_document)
+
+    # ------------------------------------------------------------------ triggers
+    def _on_document(self, event, **info):
+        if event in ("data", "mask", "settings") and self.enabled:
+            self.schedule()
+
+    def schedule(self):
+        """Ask for a fit of the current inputs (debounced)."""
+        if not self.document.has_data:
+            return
+        if self._cooldown.isActive():
+            self._dirty = True
+            self._cooldown.start(self.debounce_ms)  # wait until the burst pauses
+            return
+        self._cooldown.start(self.debounce_ms)
+        self._dirty = False
+        self.fit_now()
+
+    def _on_cooldown(self):
+        if self._dirty:
+            self._dirty = False
+            self._cooldown.start(self.debounce_ms)
+            self.fit_now()
+
+    @property
+    def busy(self) -> bool:
+        return self._running or self._pending is not None
+
+    def fit_now(self):
+        """Fit the current inputs now (inline or in the worker)."""
+        doc = self.document
+        if not doc.has_data:
+            return
+        request = doc.fit_request()
+        n_used = int((~request["excluded"]).sum())
+        threaded = n_used > self.thread_threshold or self.last_seconds > self.slow_fit_s
+        if self._running:
+            self._pending = request  # supersedes any older waiting request
+            return
+        if not threaded:
+            t0 = time.perf_counter()
+            res, msg = run_fit(request)
+            self._deliver(res, msg, request["generation"], time.perf_counter() - t0)
+            return
+        self._start(request)
+
+    def _start(self, request):
+        self._running = True
+        self.busy_changed.emit(True)
+        self._pool.start(_FitTask(request, self._signals))
+
+    @Slot(object, object, int, float)
+    def _on_done(self, res, msg, generation, seconds):
+        self._running = False
+        pending, self._pending = self._pending, None
+        self._deliver(res, msg, generation, seconds)
+        if pending is not None and pending["generation"] == self.document.generation:
+            self._start(pending)
+        elif pending is not None:
+            self._start(self.document.fit_request())
+        else:
+            self.busy_changed.emit(False)
+
+    def _deliver(self, res, msg, generation, seconds):
+        self.last_seconds = seconds
+        doc = self.document
+        if res is None:
+            doc.reject_fit(msg, generation)
+        else:
+            doc.accept_result(res, generation)
+        self.finished.emit()
+
+    def wait(self, timeout_ms: int = 30000) -> bool:
+        """Block until no fit runs or waits (for tests and scripts). True if idle."""
+        from PySide6.QtCore import QCoreApplication, QDeadlineTimer
+
+        deadline = QDeadlineTimer(timeout_ms)
+        while self.busy or self._dirty:
+            if self._dirty and not self._running:
+                self._cooldown.stop()
+                self._dirty = False
+                self.fit_now()
+            self._pool.waitForDone(10)
+            QCoreApplication.processEvents()
+            if deadline.hasExpired():
+                return False
+        return True
