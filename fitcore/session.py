@@ -1,0 +1,740 @@
+"""Sessions: saved work as versioned JSON (``.ballast`` files), and autosave recovery.
+
+A session holds the measurements (exactly, every float round-trips), where they came
+from (file name and SHA-256), the method (model, loss, scale, shape, tuning constant,
+held parameters, start values), the exclusion record (index, reason, time) and a
+snapshot of the last result. It is plain JSON, never pickle: loading a session reads
+data and nothing else, so a session file can never run code.
+
+Layout of a version-1 file::
+
+    {"format": "ballast-session", "version": 1, "created": "2025-01-31T10:15:00+00:00",
+     "ballast_version": "0.1.0",
+     "data": {"x": [...], "y": [...], "sigma": [...] or null,
+              "names": {"x": "Time", "y": "Signal", "sigma": ""},
+              "units": {"x": "s", "y": "mV"}, "source_file": "run3.csv",
+              "source_sha256": "...", "columns": {"x": "Time", "y": "Signal"}},
+     "method": {"model": {"builtin": "exp_decay", "options": {}} or {"formula": "..."},
+                "loss": "huber", "scale": "auto" or 0.12, "alpha": null, "tuning": null,
+                "fixed": {"C": 0.0}, "p0": null, "sigma_mode": "absolute"},
+     "exclusions": [{"index": 6, "reason": "bubble", "time": "2025-01-31T10:14:02+00:00"}],
+     "result": {"param_names": [...], "values": [...], "stderr": [...],
+                "covariance": [[...]], "scale": ..., ...} or null}
+
+Non-finite floats are written as the strings ``"nan"``, ``"inf"`` and ``"-inf"`` (JSON
+has no such numbers). Nothing here imports Qt.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import tempfile
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+
+__all__ = [
+    "FORMAT_TAG",
+    "FORMAT_VERSION",
+    "SUFFIX",
+    "RECOVERY_SUFFIX",
+    "SessionError",
+    "Exclusion",
+    "Method",
+    "Session",
+    "save_session",
+    "load_session",
+    "session_to_json",
+    "session_from_json",
+    "file_sha256",
+    "recovery_path",
+    "write_recovery",
+    "find_recovery",
+    "recovery_for",
+    "discard_recovery",
+]
+
+FORMAT_TAG = "ballast-session"
+FORMAT_VERSION = 1
+SUFFIX = ".ballast"
+RECOVERY_SUFFIX = ".ballast.recovery"
+
+_NONFINITE = {"nan": math.nan, "inf": math.inf, "-inf": -math.inf}
+_SIGMA_MODES = ("absolute", "relative", "none")
+
+
+class SessionError(ValueError):
+    """A session file that cannot be read, or a session that cannot be written."""
+
+
+def now_iso() -> str:
+    """The current time, ISO-8601 with the UTC offset, to the second."""
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+# ============================================================================ data types
+@dataclass
+class Exclusion:
+    """One entry of the exclusion record: a point left out by the analyst."""
+
+    index: int
+    reason: str = ""
+    time: str = ""  # ISO-8601
+
+
+@dataclass
+class Method:
+    """How the fit is made: everything :func:`fitcore.fit` needs besides the data.
+
+    ``model`` is a built-in model name (``model_kind="builtin"``, with
+    ``model_options`` such as a polynomial degree) or formula text
+    (``model_kind="formula"``). A model built from Python callables cannot be stored.
+    """
+
+    model: str = "line"
+    model_kind: str = "builtin"  # "builtin" or "formula"
+    model_options: dict = field(default_factory=dict)
+    loss: str = "l2"
+    scale: Any = "auto"  # "auto" or a positive float (y units)
+    alpha: float | None = None
+    tuning: float | None = None
+    fixed: dict = field(default_factory=dict)  # name -> held value
+    p0: Any = None  # None, {name: value} or a list of values
+    sigma_mode: str = "absolute"
+
+    def model_spec(self):
+        """What to pass as ``model`` to :func:`fitcore.fit`."""
+        if self.model_kind == "formula" or not self.model_options:
+            return self.model
+        from . import get_model
+
+        return get_model(self.model, **self.model_options)
+
+
+@dataclass
+class Session:
+    """Saved work: measurements, method, exclusion record and the last result.
+
+    Pure data (no Qt). ``x``, ``y`` and ``sigma`` are float arrays of one length;
+    ``result`` is the snapshot dict written by :meth:`store_result` (or None).
+    """
+
+    x: Any
+    y: Any
+    sigma: Any = None
+    names: dict = field(default_factory=lambda: {"x": "x", "y": "y", "sigma": ""})
+    units: dict = field(default_factory=dict)
+    source_file: str = ""
+    source_sha256: str = ""
+    columns: dict = field(default_factory=dict)
+    method: Method = field(default_factory=Method)
+    exclusions: list = field(default_factory=list)
+    result: dict | None = None
+    created: str = ""
+    ballast_version: str = ""
+    saved_as: str = ""  # for recovery files: the session path the work belongs to
+
+    def __post_init__(self):
+        self.x = np.array(self.x, dtype=float).ravel()
+        self.y = np.array(self.y, dtype=float).ravel()
+        if self.x.size != self.y.size:
+            raise SessionError(
+                f"x has {self.x.size} values but y has {self.y.size}; they must match"
+            )
+        if self.sigma is not None:
+            self.sigma = np.array(self.sigma, dtype=float).ravel()
+            if self.sigma.size != self.x.size:
+                raise SessionError(
+                    f"sigma has {self.sigma.size} values but x and y have {self.x.size}"
+                )
+
+    # ------------------------------------------------------------------ exclusions
+    @property
+    def n_points(self) -> int:
+        return int(self.x.size)
+
+    @property
+    def excluded(self) -> np.ndarray:
+        """Boolean mask, True where the exclusion record leaves a point out."""
+        mask = np.zeros(self.n_points, dtype=bool)
+        for e in self.exclusions:
+            mask[e.index] = True
+        return mask
+
+    def exclude(self, index: int, reason: str = "", time: str | None = None) -> Exclusion:
+        """Add (or replace) the exclusion of point ``index`` with a reason and time."""
+        index = int(index)
+        if not 0 <= index < self.n_points:
+            raise IndexError(f"point {index} does not exist (there are {self.n_points})")
+        self.restore(index)
+        e = Exclusion(index, str(reason), time or now_iso())
+        self.exclusions.append(e)
+        return e
+
+    def restore(self, index: int) -> None:
+        """Remove point ``index`` from the exclusion record (if it is there)."""
+        self.exclusions = [e for e in self.exclusions if e.index != int(index)]
+
+    def reasons(self) -> dict[int, str]:
+        """Index -> reason, as :func:`fitcore.report.points_csv` takes it."""
+        return {e.index: e.reason for e in self.exclusions}
+
+    # ------------------------------------------------------------------ fitting
+    def refit(self):
+        """Run the stored method on the stored data again; returns a FitResult.
+
+        With the same Ballast version this reproduces the stored estimates bit for
+        bit (the data round-trip exactly and the fit is deterministic).
+        """
+        from . import fit
+
+        m = self.method
+        return fit(
+            m.model_spec(), self.x, self.y, loss=m.loss, scale=m.scale, alpha=m.alpha,
+            sigma=self.sigma, excluded=self.excluded, p0=m.p0,
+            fixed=dict(m.fixed) or None, tuning=m.tuning, sigma_mode=m.sigma_mode,
+        )
+
+    def store_result(self, res) -> None:
+        """Keep a snapshot of a FitResult in the session (what the file records)."""
+        self.result = result_snapshot(res)
+
+    def stored_values(self) -> np.ndarray | None:
+        """The stored estimates as a float array (None without a stored result)."""
+        if not self.result:
+            return None
+        return np.array(self.result["values"], dtype=float)
+
+    def reproduces(self, res) -> bool:
+        """True when ``res`` has exactly (==) the stored estimates and uncertainties."""
+        if not self.result:
+            return False
+        snap = result_snapshot(res)
+        return all(
+            _same(snap[k], self.result.get(k)) for k in ("values", "stderr", "covariance")
+        ) and snap["param_names"] == self.result.get("param_names")
+
+
+def _same(a, b) -> bool:
+    a = np.asarray(a, dtype=float)
+    b = np.asarray(b, dtype=float)
+    return a.shape == b.shape and bool(np.all((a == b) | (np.isnan(a) & np.isnan(b))))
+
+
+def result_snapshot(res) -> dict:
+    """The JSON-ready record of a FitResult kept in a session."""
+    def opt(v):
+        return None if v is None else float(v)
+
+    return {
+        "param_names": list(res.param_names),
+        "values": [float(v) for v in res.values],
+        "stderr": [float(v) for v in res.stderr],
+        "covariance": [[float(v) for v in row] for row in np.asarray(res.covariance)],
+        "weights": [float(v) for v in res.weights],
+        "loss": str(res.loss),
+        "scale": float(res.scale),
+        "scale_method": str(res.scale_method),
+        "alpha": opt(res.alpha),
+        "alpha_stderr": opt(getattr(res, "alpha_stderr", None)),
+        "tuning": opt(res.tuning),
+        "covariance_recipe": str(res.covariance_recipe),
+        "converged": bool(res.converged),
+        "message": str(res.message),
+        "n_used": int(res.n_used),
+        "n_excluded": int(res.n_excluded),
+        "n_downweighted": int(res.n_downweighted),
+        "dof": int(res.dof),
+        "n_iter": int(getattr(res, "n_iter", 0)),
+        "objective": float(getattr(res, "objective", math.nan)),
+        "rss": float(getattr(res, "rss", math.nan)),
+        "fixed": {str(k): float(v) for k, v in dict(res.fixed).items()},
+    }
+
+
+# ============================================================================ encoding
+def _enc(v):
+    """A float for JSON: finite floats as numbers (repr digits), others as strings."""
+    v = float(v)
+    if math.isnan(v):
+        return "nan"
+    if math.isinf(v):
+        return "inf" if v > 0 else "-inf"
+    return v
+
+
+def _enc_tree(obj):
+    """Encode floats (also nested in lists/dicts) for JSON."""
+    if isinstance(obj, bool) or obj is None or isinstance(obj, str):
+        return obj
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return _enc(obj)
+    if isinstance(obj, np.ndarray):
+        return _enc_tree(obj.tolist())
+    if isinstance(obj, Mapping):
+        return {str(k): _enc_tree(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_enc_tree(v) for v in obj]
+    raise SessionError(
+        f"a value of type {type(obj).__name__} cannot be stored in a session file"
+    )
+
+
+def session_to_dict(session: Session) -> dict:
+    """The JSON-ready dict of a session (format version 1)."""
+    from . import __version__
+
+    m = session.method
+    if m.model_kind == "builtin":
+        model = {"builtin": str(m.model), "options": _enc_tree(dict(m.model_options))}
+    elif m.model_kind == "formula":
+        model = {"formula": str(m.model)}
+    else:
+        raise SessionError(
+            f"model kind {m.model_kind!r} cannot be stored; a session keeps a built-in "
+            "model name or a formula (models built in Python code cannot be saved)"
+        )
+    if isinstance(m.scale, str):
+        if m.scale != "auto":
+            raise SessionError(f"scale must be 'auto' or a positive number, not {m.scale!r}")
+        scale = "auto"
+    else:
+        scale = _enc(m.scale)
+    return {
+        "format": FORMAT_TAG,
+        "version": FORMAT_VERSION,
+        "created": session.created or now_iso(),
+        "ballast_version": str(__version__),
+        "saved_as": str(session.saved_as or ""),
+        "data": {
+            "x": [_enc(v) for v in session.x],
+            "y": [_enc(v) for v in session.y],
+            "sigma": None if session.sigma is None else [_enc(v) for v in session.sigma],
+            "names": {str(k): str(v) for k, v in session.names.items()},
+            "units": {str(k): str(v) for k, v in session.units.items()},
+            "source_file": str(session.source_file),
+            "source_sha256": str(session.source_sha256),
+            "columns": _enc_tree(dict(session.columns)),
+        },
+        "method": {
+            "model": model,
+            "loss": str(m.loss),
+            "scale": scale,
+            "alpha": None if m.alpha is None else _enc(m.alpha),
+            "tuning": None if m.tuning is None else _enc(m.tuning),
+            "fixed": {str(k): _enc(v) for k, v in dict(m.fixed).items()},
+            "p0": _enc_tree(m.p0),
+            "sigma_mode": str(m.sigma_mode),
+        },
+        "exclusions": [
+            {"index": int(e.index), "reason": str(e.reason), "time": str(e.time)}
+            for e in sorted(session.exclusions, key=lambda e: e.index)
+        ],
+        "result": None if session.result is None else _enc_tree(session.result),
+    }
+
+
+def session_to_json(session: Session) -> str:
+    """The session as JSON text (what :func:`save_session` writes)."""
+    try:
+        return json.dumps(session_to_dict(session), allow_nan=False, ensure_ascii=False,
+                          separators=(",", ":"))
+    except (TypeError, ValueError) as exc:
+        if isinstance(exc, SessionError):
+            raise
+        raise SessionError(f"the session cannot be written as JSON: {exc}") from None
+
+
+# ============================================================================ decoding
+class _Check:
+    """Reads fields with plain-language errors naming the field."""
+
+    def __init__(self, where: str):
+        self.where = where
+
+    def fail(self, msg: str):
+        raise SessionError(f"{self.where}: {msg}")
+
+    def get(self, obj: dict, key: str, path: str, *, optional=False, default=None):
+        if key not in obj:
+            if optional:
+                return default
+            self.fail(f"the session lacks the field '{path}{key}'")
+        return obj[key]
+
+    def dict_(self, v, path: str) -> dict:
+        if not isinstance(v, dict):
+            self.fail(f"'{path}' should be an object, found {_kind(v)}")
+        return v
+
+    def str_(self, v, path: str) -> str:
+        if not isinstance(v, str):
+            self.fail(f"'{path}' should be text, found {_kind(v)}")
+        return v
+
+    def float_(self, v, path: str) -> float:
+        if isinstance(v, bool) or not isinstance(v, (int, float, str)):
+            self.fail(f"'{path}' should be a number, found {_kind(v)}")
+        if isinstance(v, str):
+            if v not in _NONFINITE:
+                self.fail(f"'{path}' should be a number, found the text {v[:40]!r}")
+            return _NONFINITE[v]
+        return float(v)
+
+    def opt_float(self, v, path: str):
+        return None if v is None else self.float_(v, path)
+
+    def int_(self, v, path: str) -> int:
+        if isinstance(v, bool) or not isinstance(v, int):
+            self.fail(f"'{path}' should be a whole number, found {_kind(v)}")
+        return v
+
+    def floats(self, v, path: str) -> np.ndarray:
+        if not isinstance(v, list):
+            self.fail(f"'{path}' should be a list of numbers, found {_kind(v)}")
+        return np.array([self.float_(e, f"{path}[{i}]") for i, e in enumerate(v)],
+                        dtype=float)
+
+    def str_map(self, v, path: str) -> dict:
+        v = self.dict_(v, path)
+        return {k: self.str_(e, f"{path}.{k}") for k, e in v.items()}
+
+    def tree(self, v, path: str):
+        """Nested JSON data with non-finite float strings decoded where numbers are."""
+        if isinstance(v, dict):
+            return {k: self.tree(e, f"{path}.{k}") for k, e in v.items()}
+        if isinstance(v, list):
+            return [self.tree(e, f"{path}[{i}]") for i, e in enumerate(v)]
+        return v
+
+
+def _kind(v) -> str:
+    return {dict: "an object", list: "a list", str: "text", bool: "true/false",
+            type(None): "null", int: "a number", float: "a number"}.get(type(v), type(v).__name__)
+
+
+def session_from_dict(doc, where: str = "session") -> Session:
+    """Build a :class:`Session` from a decoded JSON document, checking every field."""
+    c = _Check(where)
+    if not isinstance(doc, dict):
+        c.fail(f"not a Ballast session (the file holds {_kind(doc)}, not an object)")
+    if "format" not in doc:
+        c.fail("not a Ballast session (it has no 'format' tag)")
+    if doc["format"] != FORMAT_TAG:
+        c.fail(f"not a Ballast session (its format tag is {str(doc['format'])[:60]!r}, "
+               f"expected {FORMAT_TAG!r})")
+    version = c.get(doc, "version", "")
+    if isinstance(version, bool) or not isinstance(version, int):
+        c.fail(f"the format version should be a whole number, found {_kind(version)}")
+    if version > FORMAT_VERSION:
+        c.fail(f"made by a newer Ballast (format {version}); this version reads up to "
+               f"{FORMAT_VERSION}. Update Ballast to open it")
+    if version < 1:
+        c.fail(f"format version {version} does not exist (versions start at 1)")
+
+    data = c.dict_(c.get(doc, "data", ""), "data")
+    x = c.floats(c.get(data, "x", "data."), "data.x")
+    y = c.floats(c.get(data, "y", "data."), "data.y")
+    if x.size != y.size:
+        c.fail(f"data.x has {x.size} values but data.y has {y.size}")
+    sig = c.get(data, "sigma", "data.", optional=True)
+    sigma = None if sig is None else c.floats(sig, "data.sigma")
+    if sigma is not None and sigma.size != x.size:
+        c.fail(f"data.sigma has {sigma.size} values but data.x has {x.size}")
+    names = c.str_map(c.get(data, "names", "data.", optional=True, default={}), "data.names")
+    units = c.str_map(c.get(data, "units", "data.", optional=True, default={}), "data.units")
+    source = c.str_(c.get(data, "source_file", "data.", optional=True, default=""),
+                    "data.source_file")
+    sha = c.str_(c.get(data, "source_sha256", "data.", optional=True, default=""),
+                 "data.source_sha256")
+    columns = c.tree(c.dict_(c.get(data, "columns", "data.", optional=True, default={}),
+                             "data.columns"), "data.columns")
+
+    md = c.dict_(c.get(doc, "method", ""), "method")
+    spec = c.dict_(c.get(md, "model", "method."), "method.model")
+    if ("builtin" in spec) == ("formula" in spec):
+        c.fail("'method.model' should name either a 'builtin' model or a 'formula'")
+    if "builtin" in spec:
+        kind, text = "builtin", c.str_(spec["builtin"], "method.model.builtin")
+        options = c.tree(c.dict_(spec.get("options", {}), "method.model.options"),
+                         "method.model.options")
+    else:
+        kind, text = "formula", c.str_(spec["formula"], "method.model.formula")
+        options = {}
+    loss = c.str_(c.get(md, "loss", "method."), "method.loss")
+    scale_v = c.get(md, "scale", "method.", optional=True, default="auto")
+    if scale_v == "auto":
+        scale = "auto"
+    else:
+        scale = c.float_(scale_v, "method.scale")
+        if not (math.isfinite(scale) and scale > 0):
+            c.fail(f"'method.scale' should be 'auto' or a positive number, found {scale_v!r}")
+    alpha = c.opt_float(c.get(md, "alpha", "method.", optional=True), "method.alpha")
+    tuning = c.opt_float(c.get(md, "tuning", "method.", optional=True), "method.tuning")
+    fixed_raw = c.dict_(c.get(md, "fixed", "method.", optional=True, default={}),
+                        "method.fixed")
+    fixed = {k: c.float_(v, f"method.fixed.{k}") for k, v in fixed_raw.items()}
+    p0_raw = c.get(md, "p0", "method.", optional=True)
+    if p0_raw is None:
+        p0 = None
+    elif isinstance(p0_raw, dict):
+        p0 = {k: c.float_(v, f"method.p0.{k}") for k, v in p0_raw.items()}
+    elif isinstance(p0_raw, list):
+        p0 = [float(v) for v in c.floats(p0_raw, "method.p0")]
+    else:
+        c.fail(f"'method.p0' should be null, an object or a list, found {_kind(p0_raw)}")
+    sigma_mode = c.str_(c.get(md, "sigma_mode", "method.", optional=True,
+                              default="absolute"), "method.sigma_mode")
+    if sigma_mode not in _SIGMA_MODES:
+        c.fail(f"'method.sigma_mode' should be one of {', '.join(_SIGMA_MODES)}, "
+               f"found {sigma_mode[:40]!r}")
+    method = Method(model=text, model_kind=kind, model_options=options, loss=loss,
+                    scale=scale, alpha=alpha, tuning=tuning, fixed=fixed, p0=p0,
+                    sigma_mode=sigma_mode)
+
+    ex_raw = c.get(doc, "exclusions", "", optional=True, default=[])
+    if not isinstance(ex_raw, list):
+        c.fail(f"'exclusions' should be a list, found {_kind(ex_raw)}")
+    exclusions, seen = [], set()
+    for i, e in enumerate(ex_raw):
+        p = f"exclusions[{i}]"
+        e = c.dict_(e, p)
+        idx = c.int_(c.get(e, "index", p + "."), p + ".index")
+        if not 0 <= idx < x.size:
+            c.fail(f"'{p}.index' is {idx}, but there are only {x.size} points")
+        if idx in seen:
+            c.fail(f"point {idx} is excluded twice in the exclusion record")
+        seen.add(idx)
+        exclusions.append(Exclusion(
+            idx,
+            c.str_(c.get(e, "reason", p + ".", optional=True, default=""), p + ".reason"),
+            c.str_(c.get(e, "time", p + ".", optional=True, default=""), p + ".time"),
+        ))
+
+    res_raw = c.get(doc, "result", "", optional=True)
+    result = None
+    if res_raw is not None:
+        r = c.dict_(res_raw, "result")
+        result = dict(c.tree(r, "result"))
+        names_r = c.get(r, "param_names", "result.")
+        if not isinstance(names_r, list) or not all(isinstance(n, str) for n in names_r):
+            c.fail("'result.param_names' should be a list of names")
+        k = len(names_r)
+        for key in ("values", "stderr"):
+            arr = c.floats(c.get(r, key, "result."), f"result.{key}")
+            if arr.size != k:
+                c.fail(f"'result.{key}' has {arr.size} entries for {k} parameters")
+            result[key] = [float(v) for v in arr]
+        cov = c.get(r, "covariance", "result.")
+        if not isinstance(cov, list) or len(cov) != k:
+            c.fail(f"'result.covariance' should be a {k} x {k} list of lists")
+        result["covariance"] = [
+            [float(v) for v in c.floats(row, f"result.covariance[{i}]")] for i, row in
+            enumerate(cov)
+        ]
+        if any(len(row) != k for row in result["covariance"]):
+            c.fail(f"'result.covariance' should be a {k} x {k} list of lists")
+        for key in ("scale", "objective", "rss"):
+            if key in r:
+                result[key] = c.float_(r[key], f"result.{key}")
+        for key in ("alpha", "alpha_stderr", "tuning"):
+            if key in r:
+                result[key] = c.opt_float(r[key], f"result.{key}")
+        if "weights" in r:
+            result["weights"] = [float(v) for v in c.floats(r["weights"], "result.weights")]
+        if "converged" in r and not isinstance(r["converged"], bool):
+            c.fail("'result.converged' should be true or false")
+
+    return Session(
+        x=x, y=y, sigma=sigma, names=names, units=units, source_file=source,
+        source_sha256=sha, columns=columns, method=method, exclusions=exclusions,
+        result=result,
+        created=c.str_(doc.get("created", ""), "created"),
+        ballast_version=c.str_(doc.get("ballast_version", ""), "ballast_version"),
+        saved_as=c.str_(doc.get("saved_as", ""), "saved_as"),
+    )
+
+
+def session_from_json(text: str, where: str = "session") -> Session:
+    """Parse JSON text into a :class:`Session` (data only; nothing is executed)."""
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise SessionError(
+            f"{where}: not a Ballast session - the file is not valid JSON "
+            f"(line {exc.lineno}, column {exc.colno}: {exc.msg}); it may be damaged or cut short"
+        ) from None
+    except RecursionError:
+        raise SessionError(f"{where}: not a Ballast session - the JSON is nested too deeply") \
+            from None
+    return session_from_dict(doc, where)
+
+
+# ============================================================================ files
+def _fsync_dir(folder: Path) -> None:
+    """Flush a folder entry to disk (POSIX); a no-op where folders cannot be opened."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    folder = path.parent
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        try:
+            mode = path.stat().st_mode & 0o777 if path.exists() else 0o644
+            os.chmod(tmp, mode)
+        except OSError:
+            pass
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    _fsync_dir(folder)
+
+
+def save_session(path, session: Session) -> Path:
+    """Write ``session`` to ``path`` atomically.
+
+    The JSON is written to a temporary file in the same folder, flushed and
+    ``fsync``-ed, then moved over ``path`` with :func:`os.replace` and the folder is
+    ``fsync``-ed. A crash at any moment leaves either the previous file or the new
+    one, complete, never a mixture.
+
+    Raises
+    ------
+    SessionError
+        If the session holds something that cannot be stored (e.g. a model built in
+        Python code) or the folder cannot be written.
+    """
+    path = Path(path)
+    data = session_to_json(session).encode("utf-8")
+    try:
+        _atomic_write(path, data)
+    except OSError as exc:
+        raise SessionError(f"could not save the session to {path}: {exc.strerror or exc}") \
+            from None
+    return path
+
+
+def load_session(path) -> Session:
+    """Read a session file. Only JSON is parsed; nothing in the file is executed.
+
+    Raises
+    ------
+    SessionError
+        With a plain-language message for a missing or unreadable file, text that is
+        not JSON (corrupted or cut short), a wrong format tag, a file from a newer
+        Ballast, missing fields or fields of the wrong type.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise SessionError(f"the session file {path} does not exist") from None
+    except OSError as exc:
+        raise SessionError(f"could not read the session file {path}: {exc.strerror or exc}") \
+            from None
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        raise SessionError(f"{path.name}: not a Ballast session (the file is not UTF-8 text)") \
+            from None
+    return session_from_json(text, where=path.name)
+
+
+def file_sha256(path) -> str:
+    """SHA-256 of a file's bytes, hex (recorded as ``source_sha256``)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+# ============================================================================ recovery
+def recovery_path(for_path, folder) -> Path:
+    """Where autosaved work for the session file ``for_path`` goes inside ``folder``.
+
+    The name combines the file's stem with a short hash of its absolute path, so two
+    ``run.ballast`` files in different folders do not share a recovery file.
+    ``for_path=None`` (work never saved) gives ``untitled.ballast.recovery``.
+    """
+    folder = Path(folder)
+    if for_path is None or str(for_path) == "":
+        return folder / f"untitled{RECOVERY_SUFFIX}"
+    p = Path(for_path).expanduser().absolute()
+    tag = hashlib.sha256(str(p).encode("utf-8")).hexdigest()[:12]
+    stem = p.name[: -len(SUFFIX)] if p.name.endswith(SUFFIX) else p.name
+    return folder / f"{stem}-{tag}{RECOVERY_SUFFIX}"
+
+
+def write_recovery(session: Session, folder, for_path=None) -> Path:
+    """Autosave ``session`` (atomically) into ``folder``; returns the recovery file.
+
+    The recovery file records ``for_path`` in ``saved_as`` so the window can offer
+    "recover unsaved work for <file>".
+    """
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise SessionError(f"could not create the recovery folder {folder}: "
+                           f"{exc.strerror or exc}") from None
+    target = recovery_path(for_path, folder)
+    before = session.saved_as
+    session.saved_as = "" if for_path is None else str(Path(for_path).expanduser().absolute())
+    try:
+        return save_session(target, session)
+    finally:
+        session.saved_as = before
+
+
+def find_recovery(folder) -> list[Path]:
+    """All recovery files in ``folder``, newest first (an absent folder gives [])."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        return []
+    files = [p for p in folder.iterdir() if p.name.endswith(RECOVERY_SUFFIX) and p.is_file()]
+    return sorted(files, key=lambda p: p.stat().st_mtime, reverse=True)
+
+
+def recovery_for(folder, for_path=None) -> Path | None:
+    """The recovery file for ``for_path`` if one exists and is newer than that file."""
+    rp = recovery_path(for_path, folder)
+    if not rp.is_file():
+        return None
+    if for_path is not None and Path(for_path).is_file():
+        if Path(for_path).stat().st_mtime > rp.stat().st_mtime:
+            return None
+    return rp
+
+
+def discard_recovery(path) -> None:
+    """Delete a recovery file (after the work was saved or the offer declined)."""
+    try:
+        Path(path).unlink()
+    except FileNotFoundError:
+        pass
