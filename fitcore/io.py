@@ -54,6 +54,7 @@ SNIFF_LINES = 400
 #: At most this many row numbers are spelled out in one note.
 MAX_ROWS_IN_NOTE = 12
 
+_COMMENT_MARKS = ("#", "%", "//")
 _TEXT_SEPARATORS = ("\t", ";", ",", "|", " ")  # " " = runs of white space
 _SEPARATOR_NAMES = {
     "\t": "tab",
@@ -535,6 +536,21 @@ def _is_data_row(stats, width_needed: int | None = None) -> bool:
     return width >= 2
 
 
+_UNIT_CELL_RE = re.compile(r"^[\(\[]?[A-Za-z\u00b5\u03bc\u00b0%\u2126/\u00b7*^0-9 .\-]{1,12}[\)\]]?$")
+_COMMON_UNITS = {"s", "min", "h", "ms", "us", "\u00b5s", "ns", "K", "V", "mV", "A", "mA", "g", "mg", "kg",
+                 "L", "mL", "M", "mM", "nM", "\u00b5M", "m", "cm", "mm", "nm", "Hz", "kHz", "Pa", "kPa",
+                 "bar", "J", "W", "cpm", "cps", "counts", "a.u.", "au", "%", "\u00b0C", "Ohm", "kOhm", "mol"}
+
+
+def _looks_like_units(cells) -> bool:
+    """True for a row such as "s;mV;%" under a header row (a separate units row)."""
+    texts = [str(c).strip() for c in cells if c not in (None, "") and str(c).strip()]
+    if not texts or not all(_UNIT_CELL_RE.match(t) for t in texts):
+        return False
+    return any(t[:1] in "([" or t in _COMMON_UNITS or any(ch in t for ch in "/\u00b0\u00b5\u03bc%\u2126")
+               for t in texts)
+
+
 def _find_layout(rows: list[list], comment: list[bool] | None = None) -> _Layout | None:
     """Find header and first data row in a list of rows of cells (None = no table)."""
     comment = comment or [False] * len(rows)
@@ -582,7 +598,7 @@ def _find_layout(rows: list[list], comment: list[bool] | None = None) -> _Layout
                 k = above[1]
                 upper = rows[k]
                 if (stats[k][2] > 0 and stats[k][1] == 0 and stats[k][0] == stats[j][0]
-                        and all(len(str(c).strip()) <= 12 for c in rows[j] if c not in (None, ""))
+                        and _looks_like_units(rows[j])
                         and not any(split_unit(str(c))[1] for c in upper if c not in (None, ""))):
                     units_row, header, header_cells = j, k, list(upper)
     return _Layout(header=header, units_row=units_row, data=start, width=width, header_cells=header_cells)
@@ -686,8 +702,8 @@ def _sniff(lines: list[str], decimal: str | None):
     for prio, sep in enumerate(_TEXT_SEPARATORS):
         if decimal == "," and sep == ",":
             continue
-        rows = [_split_fields(line, sep) for line in lines]
-        comment = [line.lstrip().startswith(("#", "%", "//")) for line in lines]
+        comment = [line.lstrip().startswith(_COMMENT_MARKS) for line in lines]
+        rows = [_split_fields(line.lstrip().lstrip("#%/") if c else line, sep) for line, c in zip(lines, comment)]
         stats = [_row_stats(r) for r in rows]
         counts = Counter(s[0] for i, s in enumerate(stats) if not comment[i] and _is_data_row(s))
         if not counts:
@@ -834,9 +850,9 @@ def _convert_column(col, n: int, decimal: str):
         inf = np.isinf(values)
         if inf.any():
             values[inf] = np.nan
-            problems.append(("'inf' is not a finite number", inf))
+            problems.append(("text", "inf", inf))
         if empty.any():
-            problems.append(("empty", empty))
+            problems.append(("empty", "", empty))
         return values, problems, False
     values = np.full(n, np.nan)
     texts: dict[str, list[int]] = {}
@@ -866,11 +882,11 @@ def _convert_column(col, n: int, decimal: str):
     for text, idx in texts.items():
         mask = np.zeros(n, bool)
         mask[idx] = True
-        problems.append((f"'{text[:40]}' is not a number", mask))
+        problems.append(("text", text, mask))
     if empty_rows:
         mask = np.zeros(n, bool)
         mask[empty_rows] = True
-        problems.append(("empty", mask))
+        problems.append(("empty", "", mask))
     return values, problems, grouped_any
 
 
@@ -888,10 +904,21 @@ def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen
         last_data = np.flatnonzero(~empty_row)
         if last_data.size == 0:
             raise ReadError(f"{label} has a header but no data rows with numbers.")
-        inner = empty_row.copy()
-        inner[last_data[-1] + 1:] = False  # trailing blank lines at the end say nothing
-        if inner.any():
-            notes.append(f"{_rows_text(source_rows[inner])}: no numbers in the row; row skipped")
+        has_text = np.zeros(n, bool)
+        texts: list[str] = []
+        for _, problems in cell_notes:
+            for kind, text, mask in problems:
+                if kind == "text" and (mask & empty_row).any():
+                    has_text |= mask & empty_row
+                    if text not in texts:
+                        texts.append(text)
+        blank = empty_row & ~has_text
+        blank[last_data[-1] + 1:] = False  # blank lines at the very end say nothing
+        if blank.any():
+            notes.append(f"{_rows_text(source_rows[blank])}: empty row skipped")
+        if has_text.any():
+            shown = ", ".join(repr(t[:40]) for t in texts[:4]) + (", ..." if len(texts) > 4 else "")
+            notes.append(f"{_rows_text(source_rows[has_text])}: text but no numbers ({shown}); row skipped")
     keep_rows = ~empty_row
     # columns with neither a header nor any number (trailing separators): drop
     keep_cols = [i for i, c in enumerate(columns)
@@ -903,14 +930,16 @@ def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen
     data = {}
     for name, i in zip(names, keep_cols):
         data[name] = columns[i][keep_rows]
-        for problem, mask in dict(cell_notes).get(i, []):
+        for kind, text, mask in dict(cell_notes).get(i, []):
             rows = source_rows[mask & keep_rows]
             if rows.size == 0:
                 continue
-            if problem == "empty":
+            if kind == "empty":
                 notes.append(f"{_rows_text(rows)}: no value in column {name}")
+            elif text == "inf" or text.lower() in ("-inf", "+inf", "infinity", "-infinity"):
+                notes.append(f"{_rows_text(rows)}: '{text}' is not a finite number in column {name}")
             else:
-                notes.append(f"{_rows_text(rows)}: {problem} in column {name}")
+                notes.append(f"{_rows_text(rows)}: '{text[:40]}' is not a number in column {name}")
     if thousands_seen:
         notes.append("thousands separators found and removed")
     return Table(names, units, headers, data, notes, source, sha256, source_rows[keep_rows], dialect,
