@@ -149,6 +149,8 @@ def _choose_exponent(n_value: int, exponent) -> int:
 def _exact_text(value: float, exponent, kind: str, group: bool) -> str:
     """A value at full (round-trip) precision, for u = 0 or an unknown u."""
     d = _decimal(value)
+    if d == 0:
+        d = abs(d)  # "0.0", never "-0.0"
     n = _choose_exponent(d.adjusted() if d != 0 else 0, exponent)
     if n == 0:
         return _fixed(d, group)
@@ -315,7 +317,7 @@ def _full(x) -> str:
 def _round_like(x: float, u: float, digits: int = 2) -> str:
     """``x`` rounded to the decimal place ``u`` would be quoted to (for CI bounds)."""
     if not (math.isfinite(x) and math.isfinite(u) and u > 0):
-        return _full(x) if math.isfinite(x) or math.isnan(x) else _full(x)
+        return _full(x)
     with localcontext(_CTX):
         _, qexp = _round_uncertainty(_decimal(u), digits, "nearest")
         d = _decimal(x).quantize(_quantum(qexp), rounding=ROUND_HALF_UP)
