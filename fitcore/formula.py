@@ -43,6 +43,7 @@ import ast
 import functools
 import math
 import re
+import unicodedata
 from dataclasses import dataclass
 from typing import Callable
 
@@ -68,6 +69,41 @@ MAX_LENGTH = 500
 #: Deepest nesting of operations accepted (``exp(exp(...))``, ``-(-(...))``).
 MAX_DEPTH = 100
 
+class RealAbs(sympy.Function):
+    """``|u|`` of a real ``u``, with derivative ``sign(u)``.
+
+    sympy's own ``Abs`` differentiates through ``re``/``im`` whenever it cannot prove
+    its argument real (``abs(sqrt(b))``, ``abs(log(a))``); formulas live on the real
+    line, so we use this plain version instead.
+    """
+
+    nargs = 1
+
+    @classmethod
+    def eval(cls, arg):
+        if arg.is_Number and arg.is_real:
+            return sympy.Abs(arg)
+        return None
+
+    def fdiff(self, argindex=1):
+        return RealSign(self.args[0])
+
+
+class RealSign(sympy.Function):
+    """``sign(u)`` of a real ``u`` (0 at 0); its derivative is taken as 0."""
+
+    nargs = 1
+
+    @classmethod
+    def eval(cls, arg):
+        if arg.is_Number and arg.is_real:
+            return sympy.sign(arg)
+        return None
+
+    def fdiff(self, argindex=1):
+        return sympy.Integer(0)
+
+
 # name -> (sympy builder, numpy function of the folded constant)
 _FUNCTIONS: dict[str, tuple[Callable, Callable]] = {
     "exp": (sympy.exp, np.exp),
@@ -79,7 +115,7 @@ _FUNCTIONS: dict[str, tuple[Callable, Callable]] = {
     "tan": (sympy.tan, np.tan),
     "arctan": (sympy.atan, np.arctan),
     "tanh": (sympy.tanh, np.tanh),
-    "abs": (sympy.Abs, np.abs),
+    "abs": (RealAbs, np.abs),
 }
 #: The functions a formula may call (each takes one argument).
 FUNCTIONS: tuple[str, ...] = tuple(_FUNCTIONS)
@@ -465,6 +501,12 @@ def _analyse_cached(text: str, x_name: str) -> ParsedFormula:
     # every kind of white space (tabs, newlines, no-break spaces) is a plain space;
     # one character for one, so columns stay those of the user's text
     flat = "".join(" " if ch.isspace() else ch for ch in text)
+    for i, ch in enumerate(flat):
+        if unicodedata.category(ch) in ("Cc", "Cf", "Cs", "Co", "Cn"):
+            raise FormulaError(
+                f"the formula contains a control character U+{ord(ch):04X} at column {i + 1}",
+                text=text, column=i + 1, snippet=ch,
+            )
     m = _LEADING_Y.match(flat)
     body_start = m.end() if m else 0
     body = flat[body_start:]
@@ -507,11 +549,9 @@ def _analyse_cached(text: str, x_name: str) -> ParsedFormula:
         derivatives = tuple(sympy.diff(expr, s) for s in syms)
         linear = all(not (d.free_symbols & set(syms)) for d in derivatives)
         if linear:
-            # affine in the parameters; linear only if nothing is left without one.
-            # (A structural check: no expand(), which could take for ever on
-            # (x + 1)**100000. A cancellation sympy does not see by itself only
-            # means the nonlinear solver is used.)
-            rest = expr - sum((s * d for s, d in zip(syms, derivatives)), sympy.Integer(0))
+            # affine in the parameters; linear only if no part is left over when every
+            # parameter is 0 (no expand(): it could take for ever on (x + 1)**100000)
+            rest = expr.subs({s: 0 for s in syms})
             linear = rest == 0
         uses_x = reader.x in expr.free_symbols
     except RecursionError:
@@ -561,6 +601,14 @@ _NUMPY_FUNCS = {
     sympy.tanh: np.tanh,
     sympy.Abs: np.abs,
     sympy.sign: np.sign,
+    RealAbs: np.abs,
+    RealSign: np.sign,
+    # sympy may bring these in while simplifying; on real values they are plain
+    sympy.sinh: np.sinh,
+    sympy.cosh: np.cosh,
+    sympy.re: lambda v: v,
+    sympy.conjugate: lambda v: v,
+    sympy.im: lambda v: 0.0 * v,
 }
 
 
@@ -573,7 +621,7 @@ def _float_of(number) -> float:
     if number == -sympy.oo:
         return -math.inf
     if not number.is_real:
-        raise FormulaError(f"the formula has a value that is not real: {number}")
+        return math.nan  # e.g. I from log(-1) in d/dp (-1)**p: no real value
     try:
         return float(number)
     except OverflowError:
@@ -596,7 +644,7 @@ class _Compiler:
 
     def _compile(self, expr) -> Closure:
         if expr.is_Number or isinstance(expr, sympy.NumberSymbol) or expr in (
-                sympy.zoo, sympy.nan):
+                sympy.zoo, sympy.nan, sympy.I):
             c = _float_of(expr)
             return lambda x, p: c
         if expr.is_Symbol:
@@ -655,6 +703,9 @@ class _Compiler:
                 return lambda x, p: np.exp(ex(x, p))
             ex = self(expo)
             return lambda x, p: np.power(b(x, p), ex(x, p))
+        if expr.func is sympy.atan2 and len(expr.args) == 2:
+            num, den = (self(a) for a in expr.args)
+            return lambda x, p: np.arctan2(num(x, p), den(x, p))
         func = _NUMPY_FUNCS.get(expr.func)
         if func is not None and len(expr.args) == 1:
             arg = self(expr.args[0])
