@@ -40,6 +40,7 @@ __all__ = [
     "estimates_text",
     "correlation_text",
     "method_lines",
+    "point_status",
     "points_csv",
     "curve_csv",
 ]
