@@ -177,7 +177,7 @@ class EstimatesView(QWidget):
             for c, text in enumerate(cells):
                 it = QTableWidgetItem(text)
                 if c in (1, 2, 3):
-                    it.setTextAlignment(int(Qt.AlignRight | Qt.AlignVCenter))
+                    it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
                 if doc.stale:
                     it.setForeground(Qt.gray)
                 self.table.setItem(r, c, it)
