@@ -579,3 +579,57 @@ def test_fuzz_sentinel_can_fail():
                     side_effect=lambda text, x_name="x": builtins.eval("1")):
         with pytest.raises((_Sentinel, AssertionError)):
             _check_never_runs("a*x")
+
+
+# ---------------------------------------------------------------------------
+# end to end through fitcore.fit, side by side with scipy / numpy
+
+
+def _decay_data():
+    # invented demo data: a decay with noise and three gross outliers
+    rng = np.random.default_rng(20240611)
+    x = np.linspace(0.0, 10.0, 40)
+    y = 3.0 * np.exp(-x / 2.5) + 0.4 + rng.normal(0.0, 0.03, x.size)
+    return x, y
+
+
+def test_fit_formula_matches_scipy_least_squares():
+    # source: scipy.optimize.least_squares run side by side on the same data
+    solve = pytest.importorskip("fitcore.solve")
+    least_squares = pytest.importorskip("scipy.optimize").least_squares
+    x, y = _decay_data()
+    res = solve.fit("A*exp(-x/tau) + C", x, y, p0={"A": 2.0, "tau": 1.0, "C": 0.0})
+    assert res.converged, res.message
+    assert tuple(res.param_names) == ("A", "tau", "C")
+    ref = least_squares(lambda p: p[0] * np.exp(-x / p[1]) + p[2] - y, [2.0, 1.0, 0.0],
+                        xtol=1e-15, ftol=1e-15, gtol=1e-15)
+    np.testing.assert_allclose(res.values, ref.x, rtol=1e-6)
+
+
+def test_robust_fit_of_formula_matches_scipy_huber():
+    # source: scipy.optimize.least_squares(loss="huber", f_scale=c*s) side by side; with
+    # the scale s held fixed, Huber's threshold c*s is SciPy's f_scale (design.md 3)
+    solve = pytest.importorskip("fitcore.solve")
+    losses = pytest.importorskip("fitcore.losses")
+    least_squares = pytest.importorskip("scipy.optimize").least_squares
+    x, y = _decay_data()
+    y = y.copy()
+    y[[5, 17, 30]] += [1.0, -0.8, 1.5]
+    s = 0.03
+    c = losses.get_loss("huber").tuning
+    res = solve.fit("A*exp(-x/tau) + C", x, y, loss="huber", scale=s,
+                    p0=[2.0, 1.0, 0.0])
+    assert res.converged, res.message
+    ref = least_squares(lambda p: p[0] * np.exp(-x / p[1]) + p[2] - y, [2.0, 1.0, 0.0],
+                        loss="huber", f_scale=c * s, xtol=1e-15, ftol=1e-15, gtol=1e-15)
+    np.testing.assert_allclose(res.values, ref.x, rtol=1e-5)
+
+
+def test_linear_formula_fit_matches_numpy_lstsq():
+    # source: numpy.linalg.lstsq on the same design matrix, side by side
+    solve = pytest.importorskip("fitcore.solve")
+    x, y = _decay_data()
+    res = solve.fit("a + b*x + c*x**2", x, y)
+    assert res.converged, res.message
+    A = np.column_stack([np.ones_like(x), x, x**2])
+    np.testing.assert_allclose(res.values, np.linalg.lstsq(A, y, rcond=None)[0], rtol=1e-9)
