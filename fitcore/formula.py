@@ -298,9 +298,20 @@ class _Reader:
             end = len(self.src_bytes)
         return self.src_bytes[start:end].decode("utf-8", errors="replace")
 
-    def refuse(self, what: str, node: ast.AST, hint: str = "") -> FormulaError:
+    def operator_column(self, node: ast.BinOp, symbol: str) -> int | None:
+        """1-based column of the operator of a binary operation, if it can be found."""
+        start, end = node.left.end_col_offset, node.right.col_offset
+        if start is None or end is None:
+            return None
+        pos = self.src_bytes.find(symbol.encode(), start, end)
+        if pos < 0:
+            return None
+        return self.lead + len(self.src_bytes[:pos].decode("utf-8", errors="ignore")) + 1
+
+    def refuse(self, what: str, node: ast.AST, hint: str = "",
+               column: int | None = None) -> FormulaError:
         snip = self.snippet(node)
-        col = self.column(node)
+        col = self.column(node) if column is None else column
         msg = f"{what}: {_shorten(snip)!r} at column {col}"
         if hint:
             msg += f"; {hint}"
@@ -395,11 +406,13 @@ class _Reader:
     def binop(self, node: ast.BinOp, depth: int):
         op = type(node.op)
         if op is ast.BitXor:
-            raise self.refuse("'^' is not allowed", node, hint="use '**' for powers, e.g. x**2")
+            raise self.refuse("'^' is not allowed", node, hint="use '**' for powers, e.g. x**2",
+                              column=self.operator_column(node, "^"))
         if op not in _BINOPS:
             sym = _REFUSED_BINOPS.get(op, "this operator")
             raise self.refuse(f"the operator '{sym}' is not allowed", node,
-                              hint="allowed operators are + - * / **")
+                              hint="allowed operators are + - * / **",
+                              column=self.operator_column(node, sym))
         left, lv = self.read(node.left, depth + 1)
         right, rv = self.read(node.right, depth + 1)
         if lv is not None and rv is not None:

@@ -343,9 +343,10 @@ REFUSALS = [
     ("(a := x)", "assignment with := is not allowed", 2, "'a := x'"),
     ("a, x", "a tuple", 1, "'a, x'"),
     ("a*{x}", "a set is not allowed", 3, "'{x}'"),
-    ("a*x^2", "'^' is not allowed", 1, "use '**' for powers"),
-    ("a % x", "the operator '%' is not allowed", 1, "'a % x'"),
-    ("a // x", "the operator '//' is not allowed", 1, "'a // x'"),
+    ("a*x^2", "'^' is not allowed", 4, "use '**' for powers"),  # column of the '^'
+    ("(τ)^(a)", "'^' is not allowed", 4, "'(τ)^(a)'"),
+    ("a % x", "the operator '%' is not allowed", 3, "'a % x'"),
+    ("a // x", "the operator '//' is not allowed", 3, "'a // x'"),
     ("~a*x", "'~' is not allowed", 1, "'~a'"),
     ("1j*a", "complex numbers are not allowed", 1, "'1j'"),
     ("True*a", "only numbers are allowed as constants", 1, "'True'"),
