@@ -23,6 +23,7 @@ _LAZY = {
     "Model": ("model", "Model"),
     "Derived": ("model", "Derived"),
     "linear_model": ("model", "linear_model"),
+    "design_model": ("model", "design_model"),
     "LOSS_NAMES": ("losses", "LOSS_NAMES"),
     "get_loss": ("losses", "get_loss"),
     "log_partition": ("partition", "log_partition"),

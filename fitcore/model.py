@@ -182,3 +182,25 @@ def linear_model(
         return basis(np.asarray(x, dtype=float))
 
     return Model(name=name, param_names=tuple(param_names), f=f, jac=jac, basis=basis, **kw)
+
+
+def design_model(A, param_names: Sequence[str] | None = None, name: str = "design") -> Model:
+    """A linear model over a fixed design matrix ``A`` (several predictors).
+
+    ``x`` is then the row index (0, 1, ..., n-1) into ``A``: ``fit(design_model(A),
+    np.arange(n), y)`` is multiple linear regression through the linear path.
+    """
+    A = np.asarray(A, dtype=float)
+    if A.ndim != 2:
+        raise ValueError("the design matrix must be two-dimensional")
+    names = tuple(param_names) if param_names is not None else tuple(f"b{j}" for j in range(A.shape[1]))
+    if len(names) != A.shape[1]:
+        raise ValueError(f"{len(names)} names given for {A.shape[1]} design columns")
+
+    def basis(x):
+        idx = np.asarray(x, dtype=float)
+        if np.any(idx != np.round(idx)) or np.any(idx < 0) or np.any(idx >= A.shape[0]):
+            raise ValueError("x must hold row indices into the design matrix")
+        return A[idx.astype(np.intp)]
+
+    return linear_model(name, names, basis, title="multiple linear regression")

@@ -1,0 +1,409 @@
+r"""Robust losses as functions of the standardised residual ``u = r / s``.
+
+Every loss provides, for an array ``u``:
+
+* ``rho(u)``: the loss, with ``rho(u) ~ u**2 / 2`` for small ``u``;
+* ``psi(u) = rho'(u)``;
+* ``weight(u) = psi(u) / u``: the IRLS weight, normalised so that ``weight(0) = 1``
+  (this is the weight Ballast shows per point);
+* ``dpsi(u) = psi'(u)``: used by the covariance recipes.
+
+Tuning constants
+----------------
+The tuning constant ``k`` sits inside the loss (statsmodels' convention): Huber's
+``rho`` is quadratic for ``|u| <= k``. The defaults give 95 % asymptotic efficiency
+at the normal distribution for the location model (Holland & Welsch 1977; values in
+``../shared/reference/check-values.md`` section 2): Huber 1.345, Cauchy 2.3849
+(``w = 1/(1 + (u/k)^2)``), Welsch 2.9846 (``w = exp(-(u/k)^2)``), Tukey biweight
+4.685. Pseudo-Huber and Geman-McClure are the general loss at alpha = 1 and -2, whose
+95 % constants in Barron's parametrisation are 1.28710 and 1.89371. For the general
+loss at any other alpha the 95 % constant is computed numerically
+(:func:`tuning_for_efficiency`).
+
+The general loss
+----------------
+Barron (CVPR 2019), with ``z = (u/k)^2`` and ``b = |alpha - 2|``::
+
+    rho_B(u) = (b / alpha) * ((z / b + 1)^(alpha / 2) - 1)
+
+evaluated as ``(b/alpha) * expm1(alpha/2 * log1p(z/b))`` (stable near alpha = 0 and 2),
+with the exact limits alpha = 2 (``z/2``), 0 (``log1p(z/2)``), -inf
+(``1 - exp(-z/2)``) and +inf (``expm1(z/2)``). Ballast uses ``rho = k^2 rho_B`` so that
+``rho ~ u^2/2`` near zero like the other losses. The normalised weight is
+``(z/b + 1)^(alpha/2 - 1)``.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+from scipy import integrate, optimize
+
+LOSS_NAMES = (
+    "l2",
+    "l1",
+    "huber",
+    "pseudo_huber",
+    "cauchy",
+    "geman_mcclure",
+    "welsch",
+    "tukey",
+    "general",
+    "adaptive",
+)
+
+LOSS_TITLES = {
+    "l2": "least squares (L2)",
+    "l1": "least absolute deviations (L1)",
+    "huber": "Huber",
+    "pseudo_huber": "pseudo-Huber",
+    "cauchy": "Cauchy",
+    "geman_mcclure": "Geman-McClure",
+    "welsch": "Welsch",
+    "tukey": "Tukey biweight",
+    "general": "general robust loss (Barron)",
+    "adaptive": "adaptive robust loss (Barron, alpha and scale by maximum likelihood)",
+}
+
+# 95 % Gaussian efficiency (check-values.md sections 1.7 and 2).
+DEFAULT_TUNING = {
+    "huber": 1.345,
+    "pseudo_huber": 1.28710,
+    "cauchy": 2.3849,
+    "geman_mcclure": 1.89371,
+    "welsch": 2.9846,
+    "tukey": 4.685,
+}
+
+REDESCENDING = {"cauchy", "geman_mcclure", "welsch", "tukey"}
+
+
+def _as_array(u):
+    return np.asarray(u, dtype=float)
+
+
+@dataclass(frozen=True)
+class Loss:
+    """Base class. Subclasses implement ``rho``, ``weight`` and ``dpsi``."""
+
+    name: str = "l2"
+    tuning: float | None = None
+    alpha: float | None = None
+
+    @property
+    def title(self) -> str:
+        return LOSS_TITLES.get(self.name, self.name)
+
+    @property
+    def redescending(self) -> bool:
+        """True when psi returns towards zero for large residuals (non-convex rho)."""
+        return False
+
+    @property
+    def convex(self) -> bool:
+        return not self.redescending
+
+    def rho(self, u):
+        u = _as_array(u)
+        return 0.5 * u * u
+
+    def weight(self, u):
+        return np.ones_like(_as_array(u))
+
+    def psi(self, u):
+        u = _as_array(u)
+        return u * self.weight(u)
+
+    def dpsi(self, u):
+        return np.ones_like(_as_array(u))
+
+    def describe(self) -> str:
+        """Loss with its shape and tuning constant, for reports."""
+        parts = [self.title]
+        if self.alpha is not None and self.name in ("general", "adaptive"):
+            parts.append(f"alpha = {_fmt_alpha(self.alpha)}")
+        if self.tuning is not None:
+            parts.append(f"tuning constant k = {self.tuning:.6g} (in units of the scale)")
+        return ", ".join(parts)
+
+
+def _fmt_alpha(a: float) -> str:
+    if math.isinf(a):
+        return "-inf" if a < 0 else "inf"
+    return f"{a:.6g}"
+
+
+class L2(Loss):
+    pass
+
+
+@dataclass(frozen=True)
+class L1(Loss):
+    """Least absolute deviations. ``rho = |u|``.
+
+    The displayed weight is ``min(1, 1/|u|)``: the IRLS weight ``1/|u|`` relative to a
+    point one scale unit away (the fit itself is solved exactly, not by IRLS).
+    """
+
+    def rho(self, u):
+        return np.abs(_as_array(u))
+
+    def psi(self, u):
+        return np.sign(_as_array(u))
+
+    def weight(self, u):
+        a = np.abs(_as_array(u))
+        with np.errstate(divide="ignore"):
+            return np.where(a > 1.0, 1.0 / np.maximum(a, 1e-300), 1.0)
+
+    def dpsi(self, u):
+        return np.zeros_like(_as_array(u))
+
+
+@dataclass(frozen=True)
+class Huber(Loss):
+    def rho(self, u):
+        u = np.abs(_as_array(u))
+        k = self.tuning
+        return np.where(u <= k, 0.5 * u * u, k * u - 0.5 * k * k)
+
+    def psi(self, u):
+        return np.clip(_as_array(u), -self.tuning, self.tuning)
+
+    def weight(self, u):
+        a = np.abs(_as_array(u))
+        k = self.tuning
+        return np.where(a <= k, 1.0, k / np.maximum(a, 1e-300))
+
+    def dpsi(self, u):
+        return (np.abs(_as_array(u)) <= self.tuning).astype(float)
+
+
+@dataclass(frozen=True)
+class Tukey(Loss):
+    @property
+    def redescending(self):
+        return True
+
+    def rho(self, u):
+        k = self.tuning
+        t = np.minimum((_as_array(u) / k) ** 2, 1.0)
+        return (k * k / 6.0) * (1.0 - (1.0 - t) ** 3)
+
+    def weight(self, u):
+        t = (_as_array(u) / self.tuning) ** 2
+        return np.where(t < 1.0, (1.0 - t) ** 2, 0.0)
+
+    def dpsi(self, u):
+        t = (_as_array(u) / self.tuning) ** 2
+        return np.where(t < 1.0, (1.0 - t) * (1.0 - 5.0 * t), 0.0)
+
+
+@dataclass(frozen=True)
+class Cauchy(Loss):
+    """Cauchy (Lorentzian) loss in the ``w = 1/(1 + (u/k)^2)`` convention."""
+
+    @property
+    def redescending(self):
+        return True
+
+    def rho(self, u):
+        k = self.tuning
+        return 0.5 * k * k * np.log1p((_as_array(u) / k) ** 2)
+
+    def weight(self, u):
+        return 1.0 / (1.0 + (_as_array(u) / self.tuning) ** 2)
+
+    def dpsi(self, u):
+        t = (_as_array(u) / self.tuning) ** 2
+        return (1.0 - t) / (1.0 + t) ** 2
+
+
+@dataclass(frozen=True)
+class Welsch(Loss):
+    """Welsch (Leclerc) loss in the ``w = exp(-(u/k)^2)`` convention."""
+
+    @property
+    def redescending(self):
+        return True
+
+    def rho(self, u):
+        k = self.tuning
+        return 0.5 * k * k * (-np.expm1(-((_as_array(u) / k) ** 2)))
+
+    def weight(self, u):
+        return np.exp(-((_as_array(u) / self.tuning) ** 2))
+
+    def dpsi(self, u):
+        t = (_as_array(u) / self.tuning) ** 2
+        return np.exp(-t) * (1.0 - 2.0 * t)
+
+
+def barron_rho(x, alpha: float, c: float = 1.0):
+    """Barron's general loss ``rho(x, alpha, c)`` (his normalisation, ``~ (x/c)^2/2``)."""
+    x = _as_array(x)
+    z = (x / c) ** 2
+    if alpha == 2.0:
+        return 0.5 * z
+    if alpha == 0.0:
+        return np.log1p(0.5 * z)
+    if math.isinf(alpha):
+        return -np.expm1(-0.5 * z) if alpha < 0 else np.expm1(0.5 * z)
+    b = abs(alpha - 2.0)
+    with np.errstate(over="ignore"):
+        return (b / alpha) * np.expm1(0.5 * alpha * np.log1p(z / b))
+
+
+def barron_weight(x, alpha: float, c: float = 1.0):
+    """Normalised IRLS weight ``c^2 psi(x)/x`` of the general loss, in (0, 1] for alpha <= 2."""
+    x = _as_array(x)
+    z = (x / c) ** 2
+    if alpha == 2.0:
+        return np.ones_like(z)
+    if alpha == 0.0:
+        return 1.0 / (1.0 + 0.5 * z)
+    if math.isinf(alpha):
+        with np.errstate(over="ignore"):
+            return np.exp(-0.5 * z) if alpha < 0 else np.exp(0.5 * z)
+    b = abs(alpha - 2.0)
+    with np.errstate(over="ignore"):
+        return np.exp((0.5 * alpha - 1.0) * np.log1p(z / b))
+
+
+def barron_dpsi(x, alpha: float, c: float = 1.0):
+    """``c^2 d psi / dx`` of the general loss."""
+    x = _as_array(x)
+    z = (x / c) ** 2
+    if alpha == 2.0:
+        return np.ones_like(z)
+    if math.isinf(alpha):
+        with np.errstate(over="ignore"):
+            if alpha < 0:
+                return np.exp(-0.5 * z) * (1.0 - z)
+            return np.exp(0.5 * z) * (1.0 + z)
+    b = abs(alpha - 2.0)
+    with np.errstate(over="ignore"):
+        base = np.log1p(z / b)
+        return np.exp((0.5 * alpha - 2.0) * base) * (1.0 + z / b + (alpha - 2.0) / b * z)
+
+
+@dataclass(frozen=True)
+class General(Loss):
+    """Barron's general loss with shape ``alpha`` and width ``k`` (``rho = k^2 rho_B(u, alpha, k)``)."""
+
+    @property
+    def redescending(self):
+        return self.alpha < 1.0
+
+    @property
+    def convex(self):
+        return 1.0 <= self.alpha <= 2.0 or self.alpha >= 2.0
+
+    def rho(self, u):
+        k = self.tuning
+        return k * k * barron_rho(u, self.alpha, k)
+
+    def weight(self, u):
+        return barron_weight(u, self.alpha, self.tuning)
+
+    def dpsi(self, u):
+        return barron_dpsi(u, self.alpha, self.tuning)
+
+
+def efficiency(loss: Loss) -> float:
+    """Asymptotic efficiency at the normal, location model: ``E[psi']^2 / E[psi^2]``.
+
+    Computed by quadrature against the standard normal density.
+    """
+    phi = lambda t: math.exp(-0.5 * t * t) / math.sqrt(2 * math.pi)  # noqa: E731
+    psi = lambda t: float(loss.psi(np.array([t]))[0])  # noqa: E731
+    dpsi = lambda t: float(loss.dpsi(np.array([t]))[0])  # noqa: E731
+    pts = [loss.tuning] if loss.tuning else None
+    lim = 40.0
+    if loss.name == "l1":
+        return 2.0 / math.pi
+    a = integrate.quad(lambda t: 2 * dpsi(t) * phi(t), 0, lim, points=pts, epsabs=1e-13, epsrel=1e-12, limit=200)[0]
+    b = integrate.quad(lambda t: 2 * psi(t) ** 2 * phi(t), 0, lim, points=pts, epsabs=1e-13, epsrel=1e-12, limit=200)[0]
+    return a * a / b
+
+
+@lru_cache(maxsize=256)
+def tuning_for_efficiency(name: str, target: float = 0.95, alpha: float | None = None) -> float:
+    """Tuning constant that gives ``target`` Gaussian efficiency (location model)."""
+
+    def f(k):
+        return efficiency(_make(name, k, alpha)) - target
+
+    lo, hi = 0.05, 50.0
+    return float(optimize.brentq(f, lo, hi, xtol=1e-12))
+
+
+def _make(name: str, tuning: float | None, alpha: float | None) -> Loss:
+    if name == "l2":
+        return L2("l2")
+    if name == "l1":
+        return L1("l1")
+    if name == "huber":
+        return Huber("huber", tuning)
+    if name == "tukey":
+        return Tukey("tukey", tuning)
+    if name == "cauchy":
+        return Cauchy("cauchy", tuning)
+    if name == "welsch":
+        return Welsch("welsch", tuning)
+    if name == "pseudo_huber":
+        return General("pseudo_huber", tuning, 1.0)
+    if name == "geman_mcclure":
+        return General("geman_mcclure", tuning, -2.0)
+    if name in ("general", "adaptive"):
+        return General(name, tuning, alpha)
+    raise ValueError(f"unknown loss {name!r}; choose one of {', '.join(LOSS_NAMES)}")
+
+
+def default_general_tuning(alpha: float) -> float:
+    """95 %-efficiency width of the general loss at shape ``alpha`` (1 for alpha = 2)."""
+    if alpha >= 2.0:
+        return 1.0
+    return tuning_for_efficiency("general", 0.95, float(alpha))
+
+
+def get_loss(name: str, tuning: float | None = None, alpha: float | None = None) -> Loss:
+    """Return the loss object for ``name``.
+
+    Parameters
+    ----------
+    name
+        One of :data:`LOSS_NAMES`.
+    tuning
+        Tuning constant in units of the scale; default gives 95 % Gaussian efficiency.
+    alpha
+        Shape of the general loss (any real number or +-inf; required for
+        ``"general"``). For ``"adaptive"`` it is the current shape (default 1) and the
+        width is 1: the scale itself is Barron's ``c``, fitted by maximum likelihood.
+    """
+    if not isinstance(name, str) or name not in LOSS_NAMES:
+        raise ValueError(f"unknown loss {name!r}; choose one of {', '.join(LOSS_NAMES)}")
+    if tuning is not None:
+        tuning = float(tuning)
+        if not (tuning > 0 and math.isfinite(tuning)):
+            raise ValueError(f"the tuning constant must be a positive number, not {tuning!r}")
+    if name == "general":
+        if alpha is None:
+            raise ValueError("the general loss needs a shape parameter alpha (e.g. alpha=1)")
+        alpha = float(alpha)
+        if math.isnan(alpha):
+            raise ValueError("alpha must be a number (it may be -inf or inf), not NaN")
+        if tuning is None:
+            tuning = default_general_tuning(alpha)
+    elif name == "adaptive":
+        alpha = 1.0 if alpha is None else float(alpha)
+        if not 0.0 <= alpha <= 2.0:
+            raise ValueError("the adaptive loss keeps alpha in [0, 2]")
+        tuning = 1.0
+    elif name in DEFAULT_TUNING:
+        tuning = DEFAULT_TUNING[name] if tuning is None else tuning
+    else:
+        tuning = None
+    return _make(name, tuning, alpha)

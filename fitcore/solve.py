@@ -1,0 +1,736 @@
+r"""The fitting engine: one front door, :func:`fit`, and the solvers behind it.
+
+Problem
+-------
+With weights from the analyst's standard uncertainties ``sigma_i`` (1 when none are
+given), the whitened residuals are ``r_i(theta) = (y_i - f(x_i, theta)) / sigma_i`` and
+an M-estimate minimises ``sum_i rho(r_i / s)`` over the points that are used (not
+excluded), for a loss ``rho`` and a residual scale ``s``.
+
+Solvers
+-------
+* Least squares and the M-losses use one iteratively reweighted Gauss-Newton /
+  Levenberg-Marquardt loop (:func:`_irls_lm`): at each iteration the robust weights
+  ``w_i = psi(u_i)/u_i`` give a weighted least-squares model of the objective (a
+  majoriser of it for every loss here, since ``psi(u)/u`` is non-increasing in
+  ``|u|``); its step is solved by a QR factorisation of ``sqrt(w) J`` (never the
+  normal equations) with Marquardt damping, and only steps that lower the true robust
+  objective are accepted. For models linear in their parameters the damping is zero and
+  the loop is plain IRLS; its first step is the exact weighted least-squares solution
+  and later steps are iterative refinement.
+* L1 (least absolute deviations) is solved exactly as a linear programme (HiGHS) for
+  linear models, and by sequential linear programming with a trust region for
+  nonlinear ones.
+* Scale "auto": the normalised MAD of the residuals of a convex start, refined by
+  Huber's proposal 2 (``sum psi(r_i/s)^2 = (n - p) E[psi(Z)^2]``) jointly with the
+  parameters. Redescending losses start from a converged Huber fit, never from raw
+  least squares.
+* The adaptive loss alternates the parameter step with a maximum-likelihood step for
+  Barron's shape ``alpha`` in [0, 2] and scale ``c`` (negative log-likelihood
+  ``sum rho_B(r_i/c, alpha) + n log c + n log Z(alpha)``); each block step lowers it.
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+from scipy import optimize, sparse
+
+from . import uncertainty as unc
+from .losses import LOSS_NAMES, Loss, get_loss, barron_rho
+from .model import Model
+from .partition import log_partition
+from .result import FitResult
+from .scale import mad, proposal2_scale
+
+
+class FitError(ValueError):
+    """The input cannot be fitted (explained in plain words)."""
+
+
+# --------------------------------------------------------------------------- problem
+@dataclass
+class _Problem:
+    """Whitened problem over the used points and the free parameters."""
+
+    model: Model
+    x: np.ndarray
+    y: np.ndarray
+    sig: np.ndarray
+    free: np.ndarray  # bool mask over the model's parameters
+    p_fixed: np.ndarray  # full-length vector holding the fixed values
+    n_eval: int = 0
+
+    @property
+    def n(self) -> int:
+        return self.x.size
+
+    @property
+    def k(self) -> int:
+        return int(self.free.sum())
+
+    def full(self, theta: np.ndarray) -> np.ndarray:
+        p = self.p_fixed.copy()
+        p[self.free] = theta
+        return p
+
+    def resid(self, theta: np.ndarray) -> np.ndarray:
+        self.n_eval += 1
+        with np.errstate(all="ignore"):
+            f = np.asarray(self.model.f(self.x, self.full(theta)), dtype=float)
+            return (self.y - f) / self.sig
+
+    def jac(self, theta: np.ndarray) -> np.ndarray:
+        """Jacobian of the model values f/sigma w.r.t. the free parameters."""
+        with np.errstate(all="ignore"):
+            J = np.asarray(self.model.jac(self.x, self.full(theta)), dtype=float)
+        J = J.reshape(self.n, -1)[:, self.free]
+        return J / self.sig[:, None]
+
+    @property
+    def lower(self):
+        return np.asarray(self.model.lower, dtype=float)[self.free]
+
+    @property
+    def upper(self):
+        return np.asarray(self.model.upper, dtype=float)[self.free]
+
+
+@dataclass
+class _Inner:
+    theta: np.ndarray
+    r: np.ndarray
+    objective: float
+    n_iter: int
+    converged: bool
+    message: str
+
+
+def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
+    with np.errstate(all="ignore"):
+        v = float(np.sum(loss.rho(r / s)))
+    return v if math.isfinite(v) else math.inf
+
+
+def _project(theta, lower, upper):
+    """Keep a parameter vector strictly inside its bounds."""
+    if not (np.any(np.isfinite(lower)) or np.any(np.isfinite(upper))):
+        return theta
+    t = np.clip(theta, lower, upper)
+    tiny = 1e-12 * np.maximum(np.abs(t), 1e-300)
+    t = np.where(t <= lower, lower + np.maximum(tiny, 1e-300), t)
+    t = np.where(t >= upper, upper - np.maximum(tiny, 1e-300), t)
+    return t
+
+
+def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
+             linear: bool, max_iter: int = 500, xtol: float = 1e-13,
+             ftol: float = 1e-15) -> _Inner:
+    """Minimise sum rho(r(theta)/s) by reweighted, damped Gauss-Newton steps.
+
+    The damping follows Nielsen's gain-ratio rule (Madsen, Nielsen & Tingleff, *Methods
+    for non-linear least squares problems*, 2004): the gain ratio compares the actual
+    decrease of the robust objective with the decrease predicted by the reweighted
+    quadratic model. After convergence a few undamped steps polish the solution.
+    """
+    lower, upper = prob.lower, prob.upper
+    theta = _project(np.asarray(theta, dtype=float).copy(), lower, upper)
+    r = prob.resid(theta)
+    if not np.all(np.isfinite(r)):
+        bad = int(np.sum(~np.isfinite(r)))
+        raise FitError(
+            f"the model cannot be evaluated at the start values: it gives a non-finite "
+            f"value at {bad} of {r.size} points; give other start values"
+        )
+    phi = _objective(loss, r, s)
+    lam = 0.0 if linear else None
+    nu = 2.0
+    dmax = np.zeros(theta.size)
+    message = "converged"
+    converged = False
+    polish = 0
+    last_scaled = math.inf
+    it = 0
+    for it in range(1, max_iter + 1):
+        J = prob.jac(theta)
+        if not np.all(np.isfinite(J)):
+            return _Inner(theta, r, phi, it, False,
+                          "the model's derivatives are not finite at the current parameters")
+        w = loss.weight(r / s)
+        sw = np.sqrt(np.maximum(w, 0.0))
+        Jw = J * sw[:, None]
+        rw = r * sw
+        d2 = np.einsum("ij,ij->j", Jw, Jw)
+        dmax = np.maximum(dmax, d2)
+        D = np.sqrt(np.where(dmax > 0, dmax, 1.0))
+        Q, R = np.linalg.qr(Jw, mode="reduced")
+        qtr = Q.T @ rw
+        if lam is None:
+            lam = 1e-3  # relative to diag(J^T W J) through D
+        accepted = False
+        for _ in range(80):
+            use_lam = 0.0 if polish else lam
+            # solve in column-scaled variables D*step so that the rank decision of
+            # lstsq does not depend on the parameters' units
+            if use_lam > 0:
+                M = np.vstack([R / D, math.sqrt(use_lam) * np.eye(theta.size)])
+                rhs = np.concatenate([qtr, np.zeros(theta.size)])
+            else:
+                M, rhs = R / D, qtr
+            step = np.linalg.lstsq(M, rhs, rcond=None)[0] / D
+            cand = _project(theta + step, lower, upper)
+            step = cand - theta
+            r_new = prob.resid(cand)
+            phi_new = _objective(loss, r_new, s) if np.all(np.isfinite(r_new)) else math.inf
+            res_pred = rw - Jw @ step
+            pred = 0.5 * (float(rw @ rw) - float(res_pred @ res_pred)) / (s * s)
+            gain = (phi - phi_new) / pred if pred > 0 else (1.0 if phi_new <= phi else -1.0)
+            # while polishing, the objective is flat to rounding along ill-conditioned
+            # directions: accept a Gauss-Newton step that does not raise it beyond that
+            tol_phi = 1e-12 * phi if polish else 0.0
+            if phi_new <= phi + tol_phi and (gain > 0 or phi_new < phi or polish or linear):
+                accepted = True
+                if not linear and not polish:
+                    lam *= max(1.0 / 3.0, 1.0 - (2.0 * gain - 1.0) ** 3) if gain > 0 else 1.0
+                    nu = 2.0
+                break
+            if linear or polish:
+                break
+            lam *= nu
+            nu *= 2.0
+            if lam > 1e30:
+                break
+        if not accepted:
+            if polish or linear or lam > 1e30:
+                converged = True
+                if not polish:
+                    message = "converged (no further decrease possible in double precision)"
+                break
+            continue
+        scaled = np.linalg.norm(D * step)
+        small_step = scaled <= xtol * (np.linalg.norm(D * cand) + xtol)
+        small_gain = (phi - phi_new) <= ftol * max(phi, 1e-300)
+        theta, r, phi = cand, r_new, phi_new
+        if phi == 0.0:
+            converged = True
+            message = "converged (exact fit)"
+            break
+        if polish:
+            polish += 1
+            stalled = polish > 4 and scaled >= 0.9 * last_scaled
+            last_scaled = scaled
+            if scaled <= 1e-15 * (np.linalg.norm(D * cand) + 1e-15) or polish > 40 or stalled:
+                converged = True
+                break
+            continue
+        if small_step or (small_gain and scaled <= 1e-11 * (np.linalg.norm(D * cand) + 1e-11)):
+            if linear:
+                converged = True
+                break
+            polish = 1  # a few undamped steps to reach full accuracy
+    else:
+        message = f"did not converge in {max_iter} iterations"
+    return _Inner(theta, r, phi, it, converged, message)
+
+
+def _refine_linear_ls(prob: _Problem, theta: np.ndarray, steps: int = 8):
+    """Iterative refinement of a linear least-squares solution (Bjorck 1967).
+
+    Refines ``x`` and ``r`` of the augmented system ``r + A x = b, A^T r = c`` with its
+    residuals accumulated in extended precision (numpy's longdouble) and corrections
+    solved with the QR factors of A. This reaches full double accuracy on
+    ill-conditioned problems with large residuals (NIST Wampler 4/5, Filip), where a
+    single QR solve loses digits in proportion to cond(A)^2. The same refinement with
+    ``b = 0, c = -I`` gives ``(A^T A)^-1`` for the covariance.
+
+    Returns ``(theta, r, inv_ata)``, or None where extended precision is unavailable
+    or A is numerically singular.
+    """
+    ld = np.longdouble
+    if np.finfo(ld).eps >= np.finfo(float).eps:  # no extended precision on this platform
+        return None
+    from scipy.linalg import solve_triangular
+
+    x_ld = prob.x.astype(ld)
+    try:
+        with np.errstate(all="ignore"):
+            A_ld = np.asarray(prob.model.basis(x_ld)).astype(ld).reshape(prob.n, -1)
+    except Exception:  # noqa: BLE001 - a basis that cannot take longdouble input
+        A_ld = np.asarray(prob.model.basis(prob.x), dtype=float).astype(ld).reshape(prob.n, -1)
+    sig = prob.sig.astype(ld)
+    b_ld = prob.y.astype(ld)
+    if np.any(~prob.free):
+        b_ld = b_ld - A_ld[:, ~prob.free] @ prob.p_fixed[~prob.free].astype(ld)
+    b_ld = b_ld / sig
+    A_ld = A_ld[:, prob.free] / sig[:, None]
+    A = A_ld.astype(float)
+    if not np.all(np.isfinite(A)):
+        return None
+    d = np.sqrt(np.einsum("ij,ij->j", A, A))
+    d = np.where(d > 0, d, 1.0)
+    Q, R = np.linalg.qr(A / d, mode="reduced")
+    diag = np.abs(np.diag(R))
+    if diag.min() <= 1e-14 * diag.max():
+        return None
+    k = prob.k
+    # right-hand sides: column 0 is the fit, columns 1..k give (A^T A)^-1
+    B = np.zeros((prob.n, k + 1), dtype=ld)
+    B[:, 0] = b_ld
+    Cc = np.zeros((k, k + 1), dtype=ld)
+    Cc[:, 1:] = -np.eye(k, dtype=ld)
+    Ri = solve_triangular(R, np.eye(k))
+    X = np.empty((k, k + 1))
+    X[:, 0] = theta
+    X[:, 1:] = (Ri @ Ri.T) / np.outer(d, d)
+    X = X.astype(ld)
+    Rr = B - A_ld @ X
+    for _ in range(steps):
+        F = (B - Rr - A_ld @ X).astype(float)
+        G = ((Cc - A_ld.T @ Rr).astype(float)) / d[:, None]
+        H = solve_triangular(R, G, trans="T")
+        dZ = solve_triangular(R, Q.T @ F - H)
+        dX = dZ / d[:, None]
+        dR = F - (A / d) @ dZ
+        X = X + dX.astype(ld)
+        Rr = Rr + dR.astype(ld)
+        if np.all(np.abs(dX) <= 1e-17 * np.abs(X.astype(float)) + 1e-300):
+            break
+    Xf = X.astype(float)
+    inv = Xf[:, 1:]
+    return Xf[:, 0], (b_ld - A_ld @ X[:, 0]).astype(float), 0.5 * (inv + inv.T)
+
+
+# --------------------------------------------------------------------------- L1
+def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
+    n, k = A.shape
+    c = np.concatenate([np.zeros(k), np.ones(2 * n)])
+    eye = sparse.identity(n, format="csr")
+    Aeq = sparse.hstack([sparse.csr_matrix(A), eye, -eye], format="csr")
+    bounds = [(lo if np.isfinite(lo) else None, hi if np.isfinite(hi) else None)
+              for lo, hi in zip(lower, upper)] + [(0, None)] * (2 * n)
+    res = optimize.linprog(c, A_eq=Aeq, b_eq=b, bounds=bounds, method="highs")
+    if res.status != 0:
+        raise FitError(f"the L1 linear programme failed: {res.message}")
+    return res.x[:k]
+
+
+def _l1_nonlinear(prob: _Problem, theta: np.ndarray, max_iter: int = 200) -> _Inner:
+    """Sequential linear programming with a box trust region for min sum |r|."""
+    theta = _project(theta, prob.lower, prob.upper)
+    r = prob.resid(theta)
+    obj = float(np.sum(np.abs(r)))
+    delta = np.maximum(0.1 * np.abs(theta), 1e-3)
+    converged, message = False, f"did not converge in {max_iter} iterations"
+    it = 0
+    for it in range(1, max_iter + 1):
+        J = prob.jac(theta)
+        lo = np.maximum(-delta, prob.lower - theta)
+        hi = np.minimum(delta, prob.upper - theta)
+        step = _l1_linear(J, r, lo, hi)
+        cand = _project(theta + step, prob.lower, prob.upper)
+        r_new = prob.resid(cand)
+        obj_new = float(np.sum(np.abs(r_new))) if np.all(np.isfinite(r_new)) else math.inf
+        pred = obj - float(np.sum(np.abs(r - J @ step)))
+        if obj_new < obj:
+            ratio = (obj - obj_new) / pred if pred > 0 else 1.0
+            small = np.all(np.abs(cand - theta) <= 1e-12 * (np.abs(theta) + 1e-12))
+            theta, r, obj = cand, r_new, obj_new
+            if ratio > 0.75:
+                delta = delta * 2.0
+            if small:
+                converged, message = True, "converged"
+                break
+        else:
+            delta = delta * 0.25
+            if np.all(delta <= 1e-13 * (np.abs(theta) + 1e-13)):
+                converged, message = True, "converged"
+                break
+    return _Inner(theta, r, obj, it, converged, message)
+
+
+# --------------------------------------------------------------------------- scale
+def _safe_scale(s: float, r: np.ndarray, prob: _Problem) -> float:
+    if s > 0 and math.isfinite(s):
+        return s
+    alt = float(np.std(r))
+    if alt > 0 and math.isfinite(alt):
+        return alt
+    ref = float(np.max(np.abs(prob.y / prob.sig))) if prob.n else 1.0
+    return max(ref, 1.0) * 1e-12
+
+
+def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bool,
+                       auto: bool, max_iter: int) -> tuple[_Inner, float, int]:
+    """M-estimate at a fixed scale, or jointly with Huber's proposal-2 scale."""
+    s = _safe_scale(s0, prob.resid(theta), prob)
+    total = 0
+    inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter)
+    total += inner.n_iter
+    if not auto:
+        return inner, s, total
+    for _ in range(100):
+        s_new = proposal2_scale(inner.r, loss, s, prob.k)
+        s_new = _safe_scale(s_new, inner.r, prob)
+        if abs(s_new - s) <= 1e-10 * s:
+            s = s_new
+            break
+        s = s_new
+        inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
+        total += inner.n_iter
+    inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
+    total += inner.n_iter
+    return inner, s, total
+
+
+# --------------------------------------------------------------------------- adaptive
+def _nll(r: np.ndarray, alpha: float, log_c: float) -> float:
+    c = math.exp(log_c)
+    n = r.size
+    with np.errstate(all="ignore"):
+        v = float(np.sum(barron_rho(r / c, alpha, 1.0))) + n * log_c + n * log_partition(alpha)
+    return v if math.isfinite(v) else math.inf
+
+
+def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
+    """Maximum-likelihood (alpha, c) for fixed residuals; alpha in [0, 2], c >= c_floor."""
+    lo_c = math.log(c_floor)
+    hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
+
+    def best_c(a, start):
+        f = lambda lc: _nll(r, a, lc)  # noqa: E731
+        res = optimize.minimize_scalar(f, bounds=(lo_c, hi_c), method="bounded",
+                                       options={"xatol": 1e-10})
+        lc = float(res.x)
+        val = float(res.fun)
+        if f(start) < val and lo_c <= start <= hi_c:
+            lc, val = start, f(start)
+        return lc, val
+
+    cache = {}
+
+    def prof(a):
+        a = float(min(max(a, 0.0), 2.0))
+        if a not in cache:
+            cache[a] = best_c(a, math.log(max(c, c_floor)))
+        return cache[a][1]
+
+    res = optimize.minimize_scalar(prof, bounds=(0.0, 2.0), method="bounded",
+                                   options={"xatol": 1e-7})
+    cands = [float(res.x), 0.0, 2.0, float(alpha)]
+    a_best = min(cands, key=prof)
+    lc, val = cache[float(min(max(a_best, 0.0), 2.0))]
+    return float(a_best), math.exp(lc), val, prof
+
+
+def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: int):
+    ref = get_loss("pseudo_huber")
+    inner, s, total = _robust_with_scale(prob, theta, ref, s0, linear=linear, auto=True,
+                                         max_iter=max_iter)
+    c_floor = max(1e-6 * s, 1e-300)
+    alpha, c = 1.0, s
+    nll_old = math.inf
+    prof = None
+    for _ in range(60):
+        alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor)
+        loss = get_loss("general", tuning=1.0, alpha=alpha)
+        inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter)
+        total += inner.n_iter
+        nll = _nll(inner.r, alpha, math.log(c))
+        if abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0):
+            break
+        nll_old = nll
+    alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor)
+    loss = get_loss("general", tuning=1.0, alpha=alpha)
+    inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter)
+    total += inner.n_iter
+    # standard uncertainty of alpha from the curvature of the profile NLL
+    alpha_se = None
+    h = 1e-3
+    if h < alpha < 2.0 - h:
+        d2 = (prof(alpha + h) - 2 * prof(alpha) + prof(alpha - h)) / (h * h)
+        if d2 > 0:
+            alpha_se = 1.0 / math.sqrt(d2)
+    info = {"nll": _nll(inner.r, alpha, math.log(c)), "c_floor": c_floor,
+            "scale_at_floor": c <= c_floor * (1 + 1e-6)}
+    return inner, loss, c, alpha, alpha_se, total, info
+
+
+# --------------------------------------------------------------------------- front door
+def _resolve(model) -> Model:
+    if isinstance(model, Model):
+        return model
+    if isinstance(model, str):
+        try:
+            from .models import resolve_model
+        except ImportError:  # catalogue not available: formulas only
+            from .formula import parse_formula as resolve_model
+        return resolve_model(model)
+    raise FitError(f"a model must be a built-in name, a formula or a fitcore.Model, not {type(model).__name__}")
+
+
+def _as_1d(name, v, n=None):
+    try:
+        a = np.asarray(v, dtype=float).ravel()
+    except (TypeError, ValueError):
+        raise FitError(f"{name} must be numbers") from None
+    if n is not None and a.size != n:
+        raise FitError(f"{name} has {a.size} values but x has {n}")
+    return a
+
+
+def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
+        excluded=None, p0=None, fixed=None, tuning=None, sigma_mode: str = "relative",
+        max_iter: int = 2000) -> FitResult:
+    """Fit ``model`` to the points ``(x, y)`` under a (robust) loss.
+
+    Parameters
+    ----------
+    model
+        A built-in name (see :func:`fitcore.builtin_models`), a formula in Python
+        expression syntax whose free names other than ``x`` are the parameters, or a
+        :class:`fitcore.Model`.
+    x, y
+        The measurements. Points where x or y is not a finite number are left out
+        (and counted in ``info["n_missing"]``).
+    loss
+        One of ``l2, l1, huber, pseudo_huber, cauchy, geman_mcclure, welsch, tukey,
+        general, adaptive``.
+    scale
+        ``"auto"`` (robust estimate refined during the fit) or a fixed positive number
+        in units of y (of y/sigma when ``sigma`` is given).
+    alpha
+        Shape of the general loss.
+    sigma
+        Standard uncertainties of y; residuals are divided by them.
+    sigma_mode
+        ``"relative"`` (sigma are relative weights: the covariance is scaled by the
+        observed scatter) or ``"absolute"`` (sigma are known standard uncertainties:
+        least squares uses ``(J^T W J)^-1`` unscaled, robust losses use scale 1).
+    excluded
+        Boolean array, True where the analyst left the point out.
+    p0
+        Start values, a dict (some or all parameters) or a sequence.
+    fixed
+        Dict of parameters held at a value.
+    tuning
+        Tuning constant in units of the scale (default: 95 % Gaussian efficiency).
+    """
+    if loss not in LOSS_NAMES:
+        raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
+    if sigma_mode not in ("relative", "absolute"):
+        raise FitError("sigma_mode must be 'relative' or 'absolute'")
+    try:
+        mdl = _resolve(model)
+    except FitError:
+        raise
+    except ValueError as e:  # formula and catalogue errors are ValueErrors with messages
+        raise FitError(str(e)) from e
+    try:
+        loss_obj = get_loss(loss, tuning=tuning, alpha=alpha if loss != "adaptive" else None)
+    except ValueError as e:
+        raise FitError(str(e)) from e
+
+    x = _as_1d("x", x)
+    y = _as_1d("y", y, x.size)
+    if x.size == 0:
+        raise FitError("there are no points to fit")
+    n_all = x.size
+    excl = np.zeros(n_all, bool) if excluded is None else np.asarray(excluded, dtype=bool).ravel()
+    if excl.size != n_all:
+        raise FitError(f"the exclusion mask has {excl.size} entries but there are {n_all} points")
+    sig_all = None
+    if sigma is not None:
+        sig_all = _as_1d("sigma", sigma, n_all)
+    finite = np.isfinite(x) & np.isfinite(y)
+    if sig_all is not None:
+        bad_sig = ~(np.isfinite(sig_all) & (sig_all > 0)) & finite & ~excl
+        if np.any(bad_sig):
+            idx = np.flatnonzero(bad_sig)[:5] + 1
+            raise FitError(
+                f"sigma must be a positive number for every used point; points "
+                f"{', '.join(map(str, idx))}{' ...' if bad_sig.sum() > 5 else ''} have "
+                f"{'zero, negative or missing' } sigma"
+            )
+    used = finite & ~excl
+    n_missing = int(np.sum(~finite))
+    n_used = int(used.sum())
+    if n_used == 0:
+        raise FitError("all points are excluded or missing: restore some points to fit")
+
+    # held parameters
+    fixed = dict(fixed or {})
+    unknown = set(fixed) - set(mdl.param_names)
+    if unknown:
+        raise FitError(f"cannot hold unknown parameter(s) {sorted(unknown)}; the model has "
+                       f"{', '.join(mdl.param_names)}")
+    free = np.array([n not in fixed for n in mdl.param_names])
+    k = int(free.sum())
+    if k == 0:
+        raise FitError("every parameter is held: free at least one to fit")
+    if n_used < k:
+        raise FitError(f"the model has {k} free parameters but only {n_used} points are used; "
+                       f"restore points or hold parameters")
+
+    xu, yu = x[used], y[used]
+    sig_u = sig_all[used] if sig_all is not None else np.ones(n_used)
+    try:
+        start = mdl.start_values(xu, yu, p0)
+    except ValueError as e:
+        raise FitError(str(e)) from e
+    if not np.all(np.isfinite(start)):
+        raise FitError("the start values are not all finite numbers")
+    for name, v in fixed.items():
+        start[mdl.param_names.index(name)] = float(v)
+    prob = _Problem(mdl, xu, yu, sig_u, free, start.copy())
+    theta0 = start[free]
+    linear = mdl.is_linear
+    dof = n_used - k
+    info: dict = {"n_missing": n_missing}
+    alpha_out = loss_obj.alpha if loss in ("general",) else None
+    alpha_se = None
+    absolute = sigma is not None and sigma_mode == "absolute"
+
+    fixed_scale = None
+    if not (isinstance(scale, str) and scale == "auto"):
+        try:
+            fixed_scale = float(scale)
+        except (TypeError, ValueError):
+            raise FitError(f"scale must be 'auto' or a positive number, not {scale!r}") from None
+        if not (fixed_scale > 0 and math.isfinite(fixed_scale)):
+            raise FitError(f"scale must be a positive number, not {scale!r}")
+    elif absolute and loss not in ("l2", "l1", "adaptive"):
+        fixed_scale = 1.0
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        if loss == "l2":
+            inner = _irls_lm(prob, theta0, loss_obj, 1.0, linear=linear, max_iter=max_iter)
+            refined = _refine_linear_ls(prob, inner.theta) if linear else None
+            if refined is not None:
+                th, r_th, inv_ata = refined
+                info["inv_jtj"] = inv_ata
+                inner = _Inner(th, r_th, 0.5 * float(r_th @ r_th), inner.n_iter, inner.converged,
+                               "converged (least-squares solution with iterative refinement)")
+            s = math.sqrt(float(np.sum(inner.r ** 2)) / dof) if dof > 0 else float("nan")
+            scale_method = "residual standard deviation sqrt(RSS/(n - p))"
+            n_iter = inner.n_iter
+        elif loss == "l1":
+            if linear:
+                A = prob.jac(theta0)
+                b = (yu - mdl.f(xu, prob.full(np.zeros(k))) ) / sig_u
+                theta = _l1_linear(A, b, prob.lower, prob.upper)
+                r = prob.resid(theta)
+                inner = _Inner(theta, r, float(np.sum(np.abs(r))), 1, True, "converged (exact linear programme)")
+            else:
+                inner = _l1_nonlinear(prob, theta0, max_iter=max_iter)
+            s = mad(inner.r)
+            s = _safe_scale(s, inner.r, prob)
+            scale_method = "normalised MAD of the residuals (does not affect the L1 estimate)"
+            n_iter = inner.n_iter
+        elif loss == "adaptive":
+            s0 = _start_scale(prob, theta0, linear)
+            inner, loss_obj, s, alpha_out, alpha_se, n_iter, ainfo = _fit_adaptive(
+                prob, theta0 if not linear else _l1_start(prob, theta0), s0, linear=linear, max_iter=max_iter)
+            info.update(ainfo)
+            scale_method = "Barron scale c by maximum likelihood (jointly with alpha)"
+            if ainfo.get("scale_at_floor"):
+                scale_method += "; held at its floor (residuals nearly exact)"
+        else:
+            start_theta = _l1_start(prob, theta0) if linear else theta0
+            n_iter = 0
+            if fixed_scale is not None:
+                s_start = fixed_scale
+                scale_method = "fixed by the analyst" if not absolute or scale != "auto" else "1 (sigma taken as absolute)"
+            else:
+                s_start = _start_scale(prob, start_theta, linear)
+                scale_method = "normalised MAD start, refined by Huber's proposal 2 (n - p degrees of freedom)"
+            if loss_obj.redescending or fixed_scale is None:
+                # convex start: Huber at the same (or an automatic) scale
+                huber = get_loss("huber")
+                pre, s_pre, it_pre = _robust_with_scale(
+                    prob, start_theta, huber, s_start, linear=linear,
+                    auto=fixed_scale is None, max_iter=max_iter)
+                start_theta, n_iter = pre.theta, it_pre
+                if fixed_scale is None:
+                    s_start = s_pre
+            inner, s, it = _robust_with_scale(prob, start_theta, loss_obj, s_start, linear=linear,
+                                              auto=fixed_scale is None, max_iter=max_iter)
+            n_iter += it
+
+    theta = inner.theta
+    r = inner.r
+    p_full = prob.full(theta)
+    converged, message = inner.converged, inner.message
+
+    # ---------------------------------------------------------------- covariance
+    cov_free = np.full((k, k), np.nan)
+    recipe = ""
+    try:
+        Jf = prob.jac(theta)
+        if loss == "l2":
+            cov_free, recipe = unc.cov_least_squares(Jf, r, dof, absolute=absolute,
+                                                     inv_jtj=info.pop("inv_jtj", None))
+        elif loss == "l1":
+            cov_free, recipe = unc.cov_l1(Jf, r)
+        else:
+            cov_free, recipe = unc.cov_m_estimate(Jf, r / s, s, loss_obj, dof)
+    except unc.RankDeficient as e:
+        converged = False
+        message = f"{e}; the estimates are not unique (hold a parameter or add points)"
+        recipe = recipe or "not available"
+    if dof <= 0:
+        message += "; no degrees of freedom left, so uncertainties cannot be estimated"
+        cov_free = np.full((k, k), np.nan)
+    cov = np.zeros((mdl.n_params, mdl.n_params))
+    idx = np.flatnonzero(free)
+    cov[np.ix_(idx, idx)] = cov_free
+    stderr = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    stderr[np.isnan(np.diag(cov))] = np.nan
+
+    # ---------------------------------------------------------------- per point
+    with np.errstate(all="ignore"):
+        fitted = np.asarray(mdl.f(x, p_full), dtype=float)
+    residuals = y - fitted
+    sig_div = sig_all if sig_all is not None else 1.0
+    with np.errstate(all="ignore"):
+        std_res = residuals / sig_div / s if s > 0 else residuals * np.nan
+    weights = np.zeros(n_all)
+    if loss == "l2":
+        weights[used] = 1.0
+    else:
+        weights[used] = np.clip(loss_obj.weight(r / s), 0.0, 1.0)
+    n_down = int(np.sum(weights[used] < 0.5))
+    sigma_kind = "none" if sigma is None else sigma_mode
+    rss = float(np.sum(r * r))
+    return FitResult(
+        model=mdl, loss=loss, param_names=mdl.param_names, values=p_full, stderr=stderr,
+        covariance=cov, weights=weights, residuals=residuals, std_residuals=std_res,
+        fitted=fitted, x=x.copy(), y=y.copy(),
+        sigma=None if sig_all is None else sig_all.copy(), excluded=excl.copy(),
+        scale=float(s), scale_method=scale_method, alpha=alpha_out,
+        tuning=loss_obj.tuning, covariance_recipe=recipe, converged=bool(converged),
+        message=message, n_used=n_used, n_excluded=int(excl.sum()), n_downweighted=n_down,
+        dof=dof, fixed={kk: float(v) for kk, v in fixed.items()}, n_iter=int(n_iter),
+        objective=float(inner.objective), sigma_mode=sigma_kind, rss=rss,
+        alpha_stderr=alpha_se, info=info,
+    )
+
+
+def _start_scale(prob: _Problem, theta, linear: bool) -> float:
+    r = prob.resid(theta)
+    return _safe_scale(mad(r), r, prob)
+
+
+def _l1_start(prob: _Problem, theta0) -> np.ndarray:
+    """Exact L1 fit of a linear model: a robust start for the M-losses (small n)."""
+    if prob.n > 20000:
+        return _irls_lm(prob, theta0, get_loss("l2"), 1.0, linear=True).theta
+    A = prob.jac(theta0)
+    b = (prob.y - prob.model.f(prob.x, prob.full(np.zeros(prob.k)))) / prob.sig
+    try:
+        return _l1_linear(A, b, prob.lower, prob.upper)
+    except FitError:
+        return _irls_lm(prob, theta0, get_loss("l2"), 1.0, linear=True).theta
