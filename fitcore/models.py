@@ -1,0 +1,1180 @@
+"""The built-in catalogue of lab models.
+
+Each built-in is a :class:`fitcore.model.Model` with trade parameter names, a
+plain-language description and a unit hint per parameter, an exact analytic Jacobian,
+bounds where the physics demands them, derived quantities with exact gradients, and a
+start-value guess that resists gross outliers.
+
+Public functions
+----------------
+builtin_models()
+    Names in menu order.
+get_model(name, **options)
+    Build one built-in (``get_model("poly3")``, ``get_model("polynomial", degree=3)``,
+    ``get_model("exp_decay", rate=True)``).
+resolve_model(spec)
+    A :class:`Model`, a built-in name or a formula string -> :class:`Model`.
+model_info(name)
+    Title, formula text, parameter and derived-quantity descriptions for a menu.
+
+Notes
+-----
+How the guesses work. Most models have one or two parameters that enter nonlinearly
+(a time constant, a rate, a half-saturation constant, a peak width) and the rest enter
+linearly. The guess scans the nonlinear parameters over a logarithmic grid scaled to
+the data; for every grid value the linear parameters come from a small robust
+regression (Huber, then Tukey biweight iterations with a normalised-MAD scale), and
+the grid value with the smallest trimmed sum of squared residuals (the smallest 75 %)
+wins. Straight lines use Theil-Sen slopes, power laws and the Arrhenius law a
+Theil-Sen fit on the log scale, peaks start from the maximum of a running median. None
+of these steps is thrown far off by 15 % gross outliers, and all of them accept
+unsorted x and repeated x values. A guess never contains NaN: any step that cannot
+proceed (too few points, degenerate data) falls back to safe values.
+
+Nothing here imports Qt.
+"""
+from __future__ import annotations
+
+import math
+import re
+from typing import Callable
+
+import numpy as np
+from scipy import special
+
+from .model import Derived, Model, linear_model
+
+__all__ = ["builtin_models", "get_model", "resolve_model", "model_info", "GAS_CONSTANT"]
+
+#: Molar gas constant R = N_A k_B in J/(mol K), exact since the 2019 SI redefinition.
+GAS_CONSTANT = 8.31446261815324
+
+_LN2 = math.log(2.0)
+_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * _LN2)  # 2.3548200450...
+_SQRT_2PI = math.sqrt(2.0 * math.pi)
+_MAX_POLY_DEGREE = 10
+
+
+# ============================================================== robust helpers
+
+
+def _finite_pairs(x, y):
+    """Float copies of x and y with non-finite pairs dropped."""
+    x = np.asarray(x, dtype=float).ravel()
+    y = np.asarray(y, dtype=float).ravel()
+    n = min(x.size, y.size)
+    x, y = x[:n], y[:n]
+    ok = np.isfinite(x) & np.isfinite(y)
+    return x[ok], y[ok]
+
+
+def _mad(r):
+    """Normalised median absolute deviation about the median (0 for empty input)."""
+    r = np.asarray(r, dtype=float)
+    if r.size == 0:
+        return 0.0
+    return float(1.482602218505602 * np.median(np.abs(r - np.median(r))))
+
+
+def _spread(y):
+    """A positive, finite robust spread of y (MAD, else IQR, else range, else 1)."""
+    y = np.asarray(y, dtype=float)
+    if y.size:
+        s = _mad(y)
+        if s > 0 and np.isfinite(s):
+            return s
+        q = np.percentile(y, [0, 25, 75, 100])
+        for s in (q[2] - q[1], q[3] - q[0], np.max(np.abs(y))):
+            if s > 0 and np.isfinite(s):
+                return float(s)
+    return 1.0
+
+
+def _safe(value, fallback):
+    value = float(value)
+    return value if np.isfinite(value) else float(fallback)
+
+
+def _median_or(v, fallback=0.0):
+    v = np.asarray(v, dtype=float)
+    v = v[np.isfinite(v)]
+    return float(np.median(v)) if v.size else float(fallback)
+
+
+def _theil_sen(x, y, max_pairs=40000):
+    """Theil-Sen line: slope = median of pairwise slopes, intercept = median(y - b x).
+
+    For large data a fixed pseudo-random subset of pairs is used (deterministic).
+    Returns ``(intercept, slope)``; ``(median(y), 0)`` when no pair has distinct x.
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    n = x.size
+    if n == 0:
+        return 0.0, 0.0
+    if n * (n - 1) // 2 <= max_pairs:
+        i, j = np.triu_indices(n, k=1)
+    else:
+        rng = np.random.default_rng(12345)
+        i = rng.integers(0, n, max_pairs)
+        j = rng.integers(0, n, max_pairs)
+    dx = x[j] - x[i]
+    keep = dx != 0
+    if not np.any(keep):
+        return float(np.median(y)), 0.0
+    slopes = (y[j] - y[i])[keep] / dx[keep]
+    slopes = slopes[np.isfinite(slopes)]
+    if slopes.size == 0:
+        return float(np.median(y)), 0.0
+    b = float(np.median(slopes))
+    a = float(np.median(y - b * x))
+    return a, b
+
+
+def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
+    """Outlier-resistant linear least squares for a small design matrix.
+
+    Ordinary least squares, then Huber (k = 1.345) and Tukey biweight (c = 4.685)
+    iteratively reweighted steps, each with a normalised-MAD scale of the current
+    residuals. Columns are scaled to unit length first, for conditioning.
+
+    Returns ``(coef, residuals)``; coefficients of all-zero columns are 0.
+    """
+    A = np.asarray(A, dtype=float)
+    y = np.asarray(y, dtype=float)
+    n, k = A.shape
+    norms = np.sqrt(np.sum(A * A, axis=0))
+    good = np.isfinite(norms) & (norms > 0)
+    coef = np.zeros(k)
+    if n == 0 or not np.any(good):
+        return coef, y.copy()
+    As = A[:, good] / norms[good]
+    with np.errstate(all="ignore"):
+        c, *_ = np.linalg.lstsq(As, y, rcond=None)
+        r = y - As @ c
+        for it in range(n_huber + n_tukey):
+            s = _mad(r)
+            if not (s > 0 and np.isfinite(s)):
+                break
+            u = np.abs(r) / s
+            if it < n_huber:
+                w = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
+            else:
+                w = np.where(u < 4.685, (1.0 - (u / 4.685) ** 2) ** 2, 0.0)
+            if np.count_nonzero(w) <= As.shape[1]:
+                break
+            sw = np.sqrt(w)
+            c_new, *_ = np.linalg.lstsq(As * sw[:, None], y * sw, rcond=None)
+            if not np.all(np.isfinite(c_new)):
+                break
+            c = c_new
+            r = y - As @ c
+    coef[good] = c / norms[good]
+    return coef, r
+
+
+def _trimmed_ss(r, frac=0.75):
+    """Sum of the smallest ``frac`` share of squared residuals (inf if not finite)."""
+    r2 = np.asarray(r, dtype=float) ** 2
+    if r2.size == 0:
+        return np.inf
+    h = max(1, int(math.ceil(frac * r2.size)))
+    v = float(np.sum(np.partition(r2, h - 1)[:h]))
+    return v if np.isfinite(v) else np.inf
+
+
+def _profile(basis_of: Callable[[float], np.ndarray], y, grid, refine=2):
+    """Scan a nonlinear parameter over ``grid``; linear coefficients by robust fit.
+
+    ``basis_of(theta)`` returns the design matrix for the linear parameters. After the
+    coarse scan the neighbourhood of the best value is scanned again ``refine`` times
+    on a finer grid. Returns ``(theta, coef, criterion)``; ``theta`` is None when no
+    grid value gave a finite criterion.
+    """
+    best = (None, None, np.inf)
+
+    def scan(values):
+        nonlocal best
+        for t in values:
+            with np.errstate(all="ignore"):
+                A = basis_of(float(t))
+            if not np.all(np.isfinite(A)):
+                continue
+            coef, r = _robust_lstsq(A, y)
+            crit = _trimmed_ss(r)
+            if crit < best[2]:
+                best = (float(t), coef, crit)
+
+    grid = np.asarray(grid, dtype=float)
+    scan(grid)
+    if best[0] is None:
+        return best
+    lo_ratio = grid[1] / grid[0] if grid.size > 1 and grid[0] > 0 else 2.0
+    for _ in range(refine):
+        t = best[0]
+        scan(t * np.geomspace(1.0 / lo_ratio, lo_ratio, 9))
+        lo_ratio = lo_ratio ** 0.25
+    return best
+
+
+def _smoothed(x, y):
+    """Sorted unique x with the median y per x value, then a running median."""
+    order = np.argsort(x, kind="mergesort")
+    xs, ys = x[order], y[order]
+    ux, start = np.unique(xs, return_index=True)
+    groups = np.split(ys, start[1:])
+    uy = np.array([np.median(g) for g in groups]) if ux.size else np.array([])
+    m = ux.size
+    width = 7 if m >= 25 else 5 if m >= 9 else 3 if m >= 3 else 1
+    return ux, _running_median(uy, width)
+
+
+def _running_median(v, width):
+    """Running median with windows that shrink at the ends (no edge replication,
+    so one wild end value cannot take over the first or last window)."""
+    h = width // 2
+    if v.size == 0 or h == 0:
+        return v.copy()
+    padded = np.concatenate([np.full(h, np.nan), v, np.full(h, np.nan)])
+    windows = np.lib.stride_tricks.sliding_window_view(padded, width)
+    return np.nanmedian(windows, axis=1)
+
+
+def _geomgrid(lo, hi, num):
+    lo, hi = float(lo), float(hi)
+    if not (lo > 0 and hi > lo and np.isfinite(hi)):
+        lo, hi = 1e-3, 1e3
+    return np.geomspace(lo, hi, num)
+
+
+def _positive_scale(x):
+    """Typical positive size of x: (max |x|, smallest positive spacing, span)."""
+    ax = np.abs(x)
+    big = float(np.max(ax)) if ax.size else 1.0
+    ux = np.unique(x)
+    d = np.diff(ux)
+    d = d[d > 0]
+    small = float(np.min(d)) if d.size else (big if big > 0 else 1.0)
+    span = float(ux[-1] - ux[0]) if ux.size > 1 else (big if big > 0 else 1.0)
+    big = big if big > 0 else 1.0
+    span = span if span > 0 else big
+    return big, small, span
+
+
+# ================================================================ the models
+
+
+def _float_array(x):
+    """x as a float array, keeping extended precision (longdouble) when given it.
+
+    The least-squares refinement evaluates bases in longdouble (see fitcore.solve).
+    """
+    x = np.asarray(x)
+    return x.astype(np.result_type(x.dtype, np.float64), copy=False)
+
+
+def _line():
+    def basis(x):
+        x = _float_array(x)
+        return np.column_stack([np.ones_like(x), x])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        a, b = _theil_sen(x, y)
+        return np.array([_safe(a, 0.0), _safe(b, 0.0)])
+
+    x_int = Derived(
+        "x_intercept",
+        func=lambda p: -p[0] / p[1],
+        grad=lambda p: np.array([-1.0 / p[1], p[0] / p[1] ** 2]),
+        description="x where the line crosses y = 0 (-a/b)",
+        unit="x",
+    )
+    return linear_model(
+        "line", ("a", "b"), basis, guess=guess,
+        formula="y = a + b*x", title="Straight line",
+        descriptions={"a": "intercept (y at x = 0)", "b": "slope"},
+        units={"a": "y", "b": "y/x"}, derived=(x_int,),
+    )
+
+
+def _line_origin():
+    def basis(x):
+        return _float_array(x)[:, None]
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        coef, _ = _robust_lstsq(x[:, None], y)
+        return np.array([_safe(coef[0], 0.0)])
+
+    return linear_model(
+        "line_origin", ("b",), basis, guess=guess,
+        formula="y = b*x", title="Straight line through the origin",
+        descriptions={"b": "slope"}, units={"b": "y/x"},
+    )
+
+
+def _poly(degree: int):
+    degree = int(degree)
+    names = tuple(f"c{j}" for j in range(degree + 1))
+
+    def basis(x):
+        # Plain monomial columns; the linear solver scales columns and uses QR.
+        return np.vander(_float_array(x), degree + 1, increasing=True)
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        if x.size <= degree:
+            p = np.zeros(degree + 1)
+            p[0] = _median_or(y)
+            return p
+        # centre and scale x for the robust fit, then map back to monomials in x
+        xc = float(np.median(x))
+        xs = _spread(x)
+        t = (x - xc) / xs
+        coef_t, _ = _robust_lstsq(np.vander(t, degree + 1, increasing=True), y)
+        # y = sum c_j t^j with t = (x - xc)/xs  ->  coefficients in powers of x
+        poly_t = np.polynomial.Polynomial(coef_t)
+        poly_x = poly_t(np.polynomial.Polynomial([-xc / xs, 1.0 / xs]))
+        p = np.zeros(degree + 1)
+        p[: poly_x.coef.size] = poly_x.coef[: degree + 1]
+        p[~np.isfinite(p)] = 0.0
+        return p
+
+    terms = " + ".join(
+        ["c0"] + [f"c{j}*x" if j == 1 else f"c{j}*x**{j}" for j in range(1, degree + 1)]
+    )
+    units = {}
+    descriptions = {}
+    for j, n in enumerate(names):
+        units[n] = "y" if j == 0 else "y/x" if j == 1 else f"y/x^{j}"
+        descriptions[n] = (
+            "constant term (y at x = 0)" if j == 0
+            else "coefficient of x" if j == 1 else f"coefficient of x^{j}"
+        )
+    ordinal = {2: "Quadratic", 3: "Cubic", 4: "Quartic", 5: "Quintic"}
+    title = ordinal.get(degree, f"Polynomial of degree {degree}")
+    if degree in ordinal:
+        title += f" polynomial (degree {degree})"
+    return linear_model(
+        f"poly{degree}", names, basis, guess=guess, formula=f"y = {terms}",
+        title=title, descriptions=descriptions, units=units,
+    )
+
+
+def _exp_grid_fit(x, y):
+    """Grid over the time constant tau; returns (A, tau, C) for A*exp(-x/tau) + C."""
+    big, small, span = _positive_scale(x)
+    x_min = float(np.min(x))
+    grid = _geomgrid(span / 100.0, span * 30.0, 48)
+
+    def basis(tau):
+        return np.column_stack([np.exp(-(x - x_min) / tau), np.ones_like(x)])
+
+    tau, coef, _ = _profile(basis, y, grid)
+    if tau is None:
+        return _median_or(y) - np.min(y), span / 3.0, float(np.min(y))
+    amp_shift, c = coef
+    # A exp(-x/tau) = A exp(-x_min/tau) exp(-(x - x_min)/tau)
+    amp = amp_shift * math.exp(min(x_min / tau, 700.0))
+    return float(amp), float(tau), float(c)
+
+
+def _exp_decay(rate: bool = False):
+    if rate:
+        names = ("A", "k", "C")
+
+        def f(x, p):
+            A, k, C = p
+            with np.errstate(over="ignore", under="ignore"):
+                return A * np.exp(-k * x) + C
+
+        def jac(x, p):
+            A, k, C = p
+            with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+                e = np.exp(-k * x)
+                dk = np.where(e == 0.0, 0.0, -A * x * e)
+            return np.column_stack([e, dk, np.ones_like(x)])
+
+        def guess(x, y):
+            x, y = _finite_pairs(x, y)
+            if x.size < 3:
+                return np.array([_spread(y), 1.0 / _positive_scale(x)[2], _median_or(y)])
+            A, tau, C = _exp_grid_fit(x, y)
+            return np.array([_safe(A, _spread(y)), 1.0 / tau, _safe(C, _median_or(y))])
+
+        derived = (
+            Derived("half_life", lambda p: _LN2 / p[1],
+                    lambda p: np.array([0.0, -_LN2 / p[1] ** 2, 0.0]),
+                    "x for the decaying part to halve (ln 2 / k)", "x"),
+            Derived("tau", lambda p: 1.0 / p[1],
+                    lambda p: np.array([0.0, -1.0 / p[1] ** 2, 0.0]),
+                    "time constant (1/k)", "x"),
+        )
+        return Model(
+            "exp_decay_rate", names, f, jac, guess=guess,
+            lower=(-np.inf, 0.0, -np.inf), formula="y = A*exp(-k*x) + C",
+            title="Exponential decay (rate constant)",
+            descriptions={"A": "amplitude (decaying part at x = 0)",
+                          "k": "rate constant", "C": "offset (level as x -> infinity)"},
+            units={"A": "y", "k": "1/x", "C": "y"}, derived=derived,
+        )
+
+    names = ("A", "tau", "C")
+
+    def f(x, p):
+        A, tau, C = p
+        with np.errstate(over="ignore", under="ignore", divide="ignore"):
+            return A * np.exp(-x / tau) + C
+
+    def jac(x, p):
+        A, tau, C = p
+        with np.errstate(all="ignore"):
+            z = x / tau
+            e = np.exp(-z)
+            dtau = np.where(e == 0.0, 0.0, A * e * z / tau)
+        return np.column_stack([e, dtau, np.ones_like(x)])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        if x.size < 3:
+            return np.array([_spread(y), _positive_scale(x)[2], _median_or(y)])
+        A, tau, C = _exp_grid_fit(x, y)
+        return np.array([_safe(A, _spread(y)), tau, _safe(C, _median_or(y))])
+
+    derived = (
+        Derived("half_life", lambda p: _LN2 * p[1],
+                lambda p: np.array([0.0, _LN2, 0.0]),
+                "x for the decaying part to halve (tau ln 2)", "x"),
+        Derived("rate", lambda p: 1.0 / p[1],
+                lambda p: np.array([0.0, -1.0 / p[1] ** 2, 0.0]),
+                "rate constant (1/tau)", "1/x"),
+    )
+    return Model(
+        "exp_decay", names, f, jac, guess=guess,
+        lower=(-np.inf, 0.0, -np.inf), formula="y = A*exp(-x/tau) + C",
+        title="Exponential decay (time constant)",
+        descriptions={"A": "amplitude (decaying part at x = 0)",
+                      "tau": "time constant", "C": "offset (level as x -> infinity)"},
+        units={"A": "y", "tau": "x", "C": "y"}, derived=derived,
+    )
+
+
+def _exp_rise():
+    def f(x, p):
+        ymax, k = p
+        with np.errstate(over="ignore"):
+            return -ymax * np.expm1(-k * x)
+
+    def jac(x, p):
+        ymax, k = p
+        with np.errstate(all="ignore"):
+            e = np.exp(-k * x)
+            dk = np.where(e == 0.0, 0.0, ymax * x * e)
+            return np.column_stack([-np.expm1(-k * x), dk])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        big, small, span = _positive_scale(x)
+        if x.size < 2:
+            return np.array([_safe(np.max(np.abs(y), initial=1.0), 1.0), 1.0 / big])
+        grid = _geomgrid(1e-3 / big, 30.0 / small if small > 0 else 30.0 / big, 60)
+        k, coef, _ = _profile(lambda k: -np.expm1(-k * x)[:, None], y, grid)
+        if k is None:
+            return np.array([_safe(np.max(np.abs(y)), 1.0), 1.0 / big])
+        return np.array([_safe(coef[0], np.max(np.abs(y))), k])
+
+    derived = (
+        Derived("half_rise", lambda p: _LN2 / p[1],
+                lambda p: np.array([0.0, -_LN2 / p[1] ** 2]),
+                "x where y reaches half the plateau (ln 2 / k)", "x"),
+        Derived("initial_slope", lambda p: p[0] * p[1],
+                lambda p: np.array([p[1], p[0]]),
+                "slope at x = 0 (ymax k)", "y/x"),
+    )
+    return Model(
+        "exp_rise", ("ymax", "k"), f, jac, guess=guess, lower=(-np.inf, 0.0),
+        formula="y = ymax*(1 - exp(-k*x))", title="Exponential rise to a plateau",
+        descriptions={"ymax": "plateau (y as x -> infinity)", "k": "rate constant"},
+        units={"ymax": "y", "k": "1/x"}, derived=derived,
+    )
+
+
+def _power_law():
+    def f(x, p):
+        a, b = p
+        with np.errstate(all="ignore"):
+            return a * np.power(x, b)
+
+    def jac(x, p):
+        a, b = p
+        with np.errstate(all="ignore"):
+            xb = np.power(x, b)
+            lx = np.log(np.where(x > 0, x, 1.0))
+            db = np.where(x > 0, a * xb * lx, np.where(x == 0, 0.0, np.nan))
+        return np.column_stack([xb, db])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        pos = x > 0
+        x, y = x[pos], y[pos]
+        if x.size == 0:
+            return np.array([1.0, 1.0])
+        sign = 1.0 if np.count_nonzero(y > 0) >= np.count_nonzero(y < 0) else -1.0
+        keep = sign * y > 0
+        if np.count_nonzero(keep) < 2:
+            return np.array([_safe(_median_or(y / x), 1.0) or 1.0, 1.0])
+        lx, ly = np.log(x[keep]), np.log(sign * y[keep])
+        a0, b = _theil_sen(lx, ly)
+        b = _safe(b, 1.0)
+        # amplitude by a robust fit through the origin on the original scale
+        with np.errstate(all="ignore"):
+            coef, _ = _robust_lstsq(np.power(x, b)[:, None], y)
+        a = coef[0] if coef[0] != 0 and np.isfinite(coef[0]) else sign * math.exp(min(a0, 700))
+        return np.array([_safe(a, 1.0), b])
+
+    return Model(
+        "power_law", ("a", "b"), f, jac, guess=guess, formula="y = a*x**b",
+        title="Power law (x > 0)",
+        descriptions={"a": "prefactor (y at x = 1)", "b": "exponent"},
+        units={"a": "y/x^b", "b": ""},
+    )
+
+
+def _michaelis_menten():
+    def f(x, p):
+        vmax, km = p
+        with np.errstate(all="ignore"):
+            return vmax * x / (km + x)
+
+    def jac(x, p):
+        vmax, km = p
+        with np.errstate(all="ignore"):
+            d = km + x
+            return np.column_stack([x / d, -vmax * x / d ** 2])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        big, small, span = _positive_scale(x)
+        xp = x[x > 0]
+        lo = float(np.min(xp)) if xp.size else small
+        hi = float(np.max(xp)) if xp.size else big
+        top = float(np.max(np.abs(y))) if y.size else 1.0
+        if x.size < 2:
+            return np.array([_safe(2 * top, 1.0) or 1.0, hi])
+        k, coef, _ = _profile(lambda km: (x / (km + x))[:, None], y,
+                              _geomgrid(lo / 30.0, hi * 30.0, 60))
+        if k is None:
+            return np.array([_safe(2 * top, 1.0) or 1.0, hi])
+        return np.array([_safe(coef[0], top), k])
+
+    derived = (
+        Derived("efficiency", lambda p: p[0] / p[1],
+                lambda p: np.array([1.0 / p[1], -p[0] / p[1] ** 2]),
+                "initial slope Vmax/Km (catalytic efficiency up to the enzyme amount)",
+                "y/x"),
+    )
+    return Model(
+        "michaelis_menten", ("Vmax", "Km"), f, jac, guess=guess, lower=(-np.inf, 0.0),
+        formula="y = Vmax*x/(Km + x)", title="Michaelis-Menten (saturation)",
+        descriptions={"Vmax": "limiting rate (y as x -> infinity)",
+                      "Km": "Michaelis constant (x at half of Vmax)"},
+        units={"Vmax": "y", "Km": "x"}, derived=derived,
+    )
+
+
+def _log_ratio(x, ec50):
+    """ln(x/EC50), -inf at x = 0, NaN for x < 0."""
+    with np.errstate(all="ignore"):
+        return np.where(x > 0, np.log(np.where(x > 0, x, 1.0)) - math.log(ec50),
+                        np.where(x == 0, -np.inf, np.nan))
+
+
+def _logistic_z(x, hill, ec50):
+    """z = hill * ln(x/EC50), with the x = 0 limit taken per sign of hill."""
+    lr = _log_ratio(x, ec50)
+    with np.errstate(all="ignore"):
+        z = hill * lr
+    if hill == 0:
+        z = np.where(np.isinf(lr), 0.0, z)
+    return z, lr
+
+
+def _logistic_start(x, y):
+    """Start values (bottom, top, hill, EC50) for the 4PL, sign of hill by trend."""
+    xp = x[x > 0]
+    big, small, span = _positive_scale(x)
+    xlo = float(np.min(xp)) if xp.size else small
+    xhi = float(np.max(xp)) if xp.size else big
+    ux, sy = _smoothed(x, y)
+    m = ux.size
+    if m < 2:
+        v = _median_or(y)
+        return v, v + 1.0, 1.0, math.sqrt(xlo * xhi)
+    q = max(1, m // 5)
+    y_low, y_high = float(np.median(sy[:q])), float(np.median(sy[-q:]))
+    y_min, y_max = float(np.min(sy)), float(np.max(sy))
+    falling = y_low >= y_high
+    top, bottom = (y_max, y_min)
+    hill_sign = 1.0 if falling else -1.0
+    if top - bottom <= 0:
+        top = bottom + _spread(y)
+    # logit linearisation: ln(1/F - 1) = hill * (ln x - ln EC50), F = (y - bottom)/(top - bottom)
+    F = (y - bottom) / (top - bottom)
+    sel = (x > 0) & (F > 0.05) & (F < 0.95)
+    hill, ec50 = hill_sign, math.sqrt(xlo * xhi)
+    if np.count_nonzero(sel) >= 2 and np.unique(x[sel]).size >= 2:
+        lx = np.log(x[sel])
+        t = np.log(1.0 / F[sel] - 1.0)
+        a0, h = _theil_sen(lx, t)
+        if np.isfinite(h) and h * hill_sign > 0:
+            hill = h
+            ec50 = math.exp(float(np.clip(-a0 / h, math.log(xlo) - 3, math.log(xhi) + 3)))
+    if not (hill * hill_sign > 0):
+        hill = hill_sign
+    # midpoint crossing of the smoothed curve as a cross-check for EC50
+    mid = 0.5 * (top + bottom)
+    above = sy > mid
+    cross = np.nonzero(above[1:] != above[:-1])[0]
+    if cross.size and not (xlo / 10 < ec50 < xhi * 10):
+        i = cross[0]
+        xm = 0.5 * (ux[i] + ux[i + 1])
+        if xm > 0:
+            ec50 = xm
+    return bottom, top, hill, ec50
+
+
+def _logistic_crit(x, y, hill, ec50):
+    z, _ = _logistic_z(x, hill, ec50)
+    g = special.expit(-z)
+    A = np.column_stack([1.0 - g, g])
+    if not np.all(np.isfinite(A)):
+        return np.inf, (0.0, 0.0)
+    coef, r = _robust_lstsq(A, y, n_huber=8, n_tukey=4)
+    return _trimmed_ss(r), (float(coef[0]), float(coef[1]))
+
+
+def _logistic_guess(x, y):
+    """(bottom, top, hill, EC50): robust scan over hill and EC50, plateaus linear.
+
+    Candidates: the logit-linearised start and a coarse grid (EC50 across the positive
+    x range, hill = +-0.5 ... +-4); the best is refined twice on finer local grids.
+    The result is put in the convention top >= bottom (the curve is unchanged).
+    """
+    b0, t0, h0, e0 = _logistic_start(x, y)
+    xp = x[x > 0]
+    if x.size < 4 or xp.size < 2:
+        return b0, t0, h0, e0
+    lo, hi = float(np.min(xp)), float(np.max(xp))
+    cands = [(h0, e0)] + [
+        (s * h, e) for s in (1.0, -1.0) for h in (0.5, 1.0, 2.0, 4.0)
+        for e in _geomgrid(lo / 2.0, hi * 2.0, 18)
+    ]
+    best_crit, best = np.inf, (b0, t0, h0, e0)
+    for h, e in cands:
+        crit, (b_, t_) = _logistic_crit(x, y, h, e)
+        if crit < best_crit:
+            best_crit, best = crit, (b_, t_, h, e)
+    for hr, er in ((1.5, 1.6), (1.15, 1.15)):
+        _, _, h1, e1 = best
+        for h in h1 * np.geomspace(1.0 / hr, hr, 5):
+            for e in e1 * np.geomspace(1.0 / er, er, 7):
+                crit, (b_, t_) = _logistic_crit(x, y, h, e)
+                if crit < best_crit:
+                    best_crit, best = crit, (b_, t_, h, e)
+    b_, t_, h, e = best
+    if t_ < b_:  # same curve with the plateaus named the other way round
+        b_, t_, h = t_, b_, -h
+    return b_, t_, h, e
+
+
+def _logistic4():
+    names = ("bottom", "top", "hill", "EC50")
+
+    def f(x, p):
+        bottom, top, hill, ec50 = p
+        z, _ = _logistic_z(x, hill, ec50)
+        return bottom + (top - bottom) * special.expit(-z)
+
+    def jac(x, p):
+        bottom, top, hill, ec50 = p
+        z, lr = _logistic_z(x, hill, ec50)
+        g = special.expit(-z)  # 1/(1 + (x/EC50)^hill)
+        gg = special.expit(-z) * special.expit(z)  # g (1 - g), no cancellation
+        d = top - bottom
+        with np.errstate(invalid="ignore"):
+            dh = np.where(gg == 0.0, 0.0, -d * gg * lr)
+            de = d * gg * hill / ec50
+        return np.column_stack([1.0 - g, g, dh, de])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        b, t, h, e = _logistic_guess(x, y)
+        return np.array([_safe(b, 0.0), _safe(t, 1.0), _safe(h, 1.0), _safe(e, 1.0)])
+
+    derived = (
+        Derived("log10_EC50", lambda p: math.log10(p[3]),
+                lambda p: np.array([0.0, 0.0, 0.0, 1.0 / (p[3] * math.log(10.0))]),
+                "decimal logarithm of EC50", ""),
+        Derived("span", lambda p: p[1] - p[0], lambda p: np.array([-1.0, 1.0, 0.0, 0.0]),
+                "top - bottom", "y"),
+    )
+    return Model(
+        "logistic4", names, f, jac, guess=guess,
+        lower=(-np.inf, -np.inf, -np.inf, 0.0),
+        formula="y = bottom + (top - bottom)/(1 + (x/EC50)**hill)",
+        title="Four-parameter logistic (dose-response, x >= 0)",
+        descriptions={
+            "bottom": "plateau at high x when hill > 0 (at x = 0 when hill < 0)",
+            "top": "plateau at x = 0 when hill > 0 (at high x when hill < 0)",
+            "hill": "Hill slope; > 0: response falls with dose, < 0: it rises",
+            "EC50": "x at the midpoint between bottom and top",
+        },
+        units={"bottom": "y", "top": "y", "hill": "", "EC50": "x"}, derived=derived,
+    )
+
+
+def _logistic5():
+    names = ("bottom", "top", "hill", "EC50", "s")
+
+    def f(x, p):
+        bottom, top, hill, ec50, s = p
+        z, _ = _logistic_z(x, hill, ec50)
+        with np.errstate(over="ignore"):
+            g = np.exp(-s * np.logaddexp(0.0, z))  # (1 + (x/EC50)^hill)^(-s)
+        return bottom + (top - bottom) * g
+
+    def jac(x, p):
+        bottom, top, hill, ec50, s = p
+        z, lr = _logistic_z(x, hill, ec50)
+        sp = np.logaddexp(0.0, z)  # ln(1 + u)
+        with np.errstate(over="ignore", under="ignore"):
+            g = np.exp(-s * sp)
+        d = top - bottom
+        dz = -d * s * g * special.expit(z)  # d f / d z
+        with np.errstate(invalid="ignore"):
+            dh = np.where(dz == 0.0, 0.0, dz * lr)
+            ds = np.where(g == 0.0, 0.0, -d * g * sp)
+        de = -dz * hill / ec50
+        return np.column_stack([1.0 - g, g, dh, de, ds])
+
+    model4 = _logistic4()
+
+    def guess(x, y):
+        p4 = model4.guess(x, y)
+        return np.append(p4, 1.0)
+
+    def x_mid(p):
+        hill, ec50, s = p[2], p[3], p[4]
+        return ec50 * (2.0 ** (1.0 / s) - 1.0) ** (1.0 / hill)
+
+    def x_mid_grad(p):
+        hill, ec50, s = p[2], p[3], p[4]
+        q = 2.0 ** (1.0 / s) - 1.0
+        xm = ec50 * q ** (1.0 / hill)
+        dq_ds = -(2.0 ** (1.0 / s)) * _LN2 / s ** 2
+        return np.array([0.0, 0.0, -xm * math.log(q) / hill ** 2, xm / ec50,
+                         xm * dq_ds / (hill * q)])
+
+    derived = (
+        Derived("x_mid", x_mid, x_mid_grad,
+                "x where y is halfway between bottom and top", "x"),
+    )
+    return Model(
+        "logistic5", names, f, jac, guess=guess,
+        lower=(-np.inf, -np.inf, -np.inf, 0.0, 0.0),
+        formula="y = bottom + (top - bottom)/(1 + (x/EC50)**hill)**s",
+        title="Five-parameter logistic (asymmetric, x >= 0)",
+        descriptions={
+            "bottom": "plateau at high x when hill > 0 (at x = 0 when hill < 0)",
+            "top": "plateau at x = 0 when hill > 0 (at high x when hill < 0)",
+            "hill": "Hill slope; > 0: response falls with dose, < 0: it rises",
+            "EC50": "location; the midpoint only when s = 1 (see x_mid)",
+            "s": "asymmetry exponent (s = 1 gives the four-parameter logistic)",
+        },
+        units={"bottom": "y", "top": "y", "hill": "", "EC50": "x", "s": ""},
+        derived=derived,
+    )
+
+
+def _arrhenius(t_ref: float | None = None):
+    R = GAS_CONSTANT
+
+    def f(x, p):
+        ln_a, ea = p
+        with np.errstate(all="ignore"):
+            return np.exp(ln_a - ea / (R * x))
+
+    def jac(x, p):
+        ln_a, ea = p
+        with np.errstate(all="ignore"):
+            k = np.exp(ln_a - ea / (R * x))
+            return np.column_stack([k, -k / (R * x)])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        keep = (x > 0) & (y > 0)
+        if np.count_nonzero(keep) < 2:
+            return np.array([_safe(math.log(max(_median_or(y[y > 0], 1.0), 1e-300)), 0.0),
+                             5e4])
+        inv_t = 1.0 / x[keep]
+        ly = np.log(y[keep])
+        c = float(np.median(inv_t))
+        a0, b = _theil_sen(inv_t - c, ly)  # ln k = (ln A - Ea c/R) + (-Ea/R) (1/T - c)
+        ea = -b * R
+        ln_a = a0 - b * c
+        return np.array([_safe(ln_a, 0.0), _safe(ea, 5e4)])
+
+    derived = [
+        Derived("A", lambda p: math.exp(p[0]), lambda p: np.array([math.exp(p[0]), 0.0]),
+                "pre-exponential factor exp(lnA)", "y"),
+        Derived("Ea_kJ", lambda p: p[1] / 1000.0, lambda p: np.array([0.0, 1e-3]),
+                "activation energy in kJ/mol", "kJ/mol"),
+    ]
+    if t_ref is not None:
+        t_ref = float(t_ref)
+        if not (t_ref > 0 and np.isfinite(t_ref)):
+            raise ValueError(f"arrhenius: t_ref must be a positive temperature in K, got {t_ref}")
+
+        def k_ref(p, t=t_ref):
+            return math.exp(p[0] - p[1] / (R * t))
+
+        derived.append(Derived(
+            "k_ref", k_ref, lambda p, t=t_ref: k_ref(p) * np.array([1.0, -1.0 / (R * t)]),
+            f"rate constant at T = {t_ref:g} K", "y"))
+    return Model(
+        "arrhenius", ("lnA", "Ea"), f, jac, guess=guess,
+        formula="y = exp(lnA - Ea/(R*x)),  R = 8.31446261815324 J/(mol K), x = T in K",
+        title="Arrhenius law (x = temperature in K)",
+        descriptions={"lnA": "natural logarithm of the pre-exponential factor A",
+                      "Ea": "activation energy in J/mol"},
+        units={"lnA": "", "Ea": "J/mol"}, derived=tuple(derived),
+    )
+
+
+def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
+    """Start values (A, x0, width, base) for a peak of unit height ``shape(x, x0, w)``.
+
+    Candidate centres are the three highest local maxima and the three lowest local
+    minima of a running median (so a dip is found as well as a peak); for each the
+    width is scanned with height and baseline fitted robustly. The best candidate's
+    centre and width are then refined on finer local grids.
+    """
+    big, small, span = _positive_scale(x)
+    if x.size < 4:
+        base = _median_or(y)
+        return (_safe(np.max(y, initial=base + 1) - base, 1.0),
+                _median_or(x), span / 4.0, base)
+    ux, sy = _smoothed(x, y)
+    m = ux.size
+    centres = []
+    if m >= 3:
+        inner = np.arange(1, m - 1)
+        maxima = inner[(sy[1:-1] >= sy[:-2]) & (sy[1:-1] >= sy[2:])]
+        minima = inner[(sy[1:-1] <= sy[:-2]) & (sy[1:-1] <= sy[2:])]
+        centres += list(maxima[np.argsort(-sy[maxima])][:3])
+        centres += list(minima[np.argsort(sy[minima])][:3])
+    centres += [int(np.argmax(sy)), int(np.argmin(sy))]
+    centres = [float(ux[i]) for i in dict.fromkeys(centres)]
+    grid = _geomgrid(small / 2.0, span, 24)
+
+    def basis(xc, w):
+        return np.column_stack([shape(x, xc, w), np.ones_like(x)])
+
+    best = (np.inf, None, None, None)
+    for xc in centres:
+        w, coef, crit = _profile(lambda w: basis(xc, w), y, grid, refine=0)
+        if w is not None and crit < best[0]:
+            best = (crit, xc, w, coef)
+    if best[1] is None:
+        med = float(np.median(sy))
+        return float(np.max(sy) - med), float(ux[int(np.argmax(sy))]), span / 10.0, med
+    for _ in range(2):
+        crit, x0, w, coef = best
+        for xc in x0 + w * np.linspace(-0.5, 0.5, 11):
+            c, r = _robust_lstsq(basis(xc, w), y)
+            cr = _trimmed_ss(r)
+            if cr < best[0]:
+                best = (cr, float(xc), w, c)
+        crit, x0, w, coef = best
+        for wc in w * np.geomspace(0.6, 1.6, 9):
+            c, r = _robust_lstsq(basis(x0, wc), y)
+            cr = _trimmed_ss(r)
+            if cr < best[0]:
+                best = (cr, x0, float(wc), c)
+    _, x0, w, coef = best
+    return float(coef[0]), float(x0), float(w), float(coef[1])
+
+
+def _gauss_shape(x, x0, s):
+    with np.errstate(all="ignore"):
+        return np.exp(-0.5 * ((x - x0) / s) ** 2)
+
+
+def _gauss_peak():
+    def f(x, p):
+        A, x0, s, base = p
+        return A * _gauss_shape(x, x0, s) + base
+
+    def jac(x, p):
+        A, x0, s, base = p
+        e = _gauss_shape(x, x0, s)
+        with np.errstate(all="ignore"):
+            t = (x - x0) / s
+            dx0 = np.where(e == 0.0, 0.0, A * e * t / s)
+            ds = np.where(e == 0.0, 0.0, A * e * t * t / s)
+        return np.column_stack([e, dx0, ds, np.ones_like(x)])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        A, x0, s, base = _peak_start(x, y, _gauss_shape)
+        span = _positive_scale(x)[2]
+        return np.array([_safe(A, 1.0), _safe(x0, _median_or(x)),
+                         _safe(s, span / 10.0), _safe(base, 0.0)])
+
+    c = _FWHM_PER_SIGMA
+    derived = (
+        Derived("FWHM", lambda p: c * p[2], lambda p: np.array([0.0, 0.0, c, 0.0]),
+                "full width at half maximum (2 sqrt(2 ln 2) sigma)", "x"),
+        Derived("area", lambda p: p[0] * p[2] * _SQRT_2PI,
+                lambda p: np.array([p[2] * _SQRT_2PI, 0.0, p[0] * _SQRT_2PI, 0.0]),
+                "area above the baseline (A sigma sqrt(2 pi))", "x*y"),
+    )
+    return Model(
+        "gauss_peak", ("A", "x0", "sigma", "base"), f, jac, guess=guess,
+        lower=(-np.inf, -np.inf, 0.0, -np.inf),
+        formula="y = A*exp(-(x - x0)**2/(2*sigma**2)) + base",
+        title="Gaussian peak on a constant baseline",
+        descriptions={"A": "height above the baseline", "x0": "centre",
+                      "sigma": "standard deviation width", "base": "baseline"},
+        units={"A": "y", "x0": "x", "sigma": "x", "base": "y"}, derived=derived,
+    )
+
+
+def _lorentz_shape(x, x0, g):
+    with np.errstate(all="ignore"):
+        d = x - x0
+        return g * g / (d * d + g * g)
+
+
+def _lorentz_peak():
+    def f(x, p):
+        A, x0, g, base = p
+        return A * _lorentz_shape(x, x0, g) + base
+
+    def jac(x, p):
+        A, x0, g, base = p
+        with np.errstate(all="ignore"):
+            d = x - x0
+            q = d * d + g * g
+            L = g * g / q
+            dx0 = 2.0 * A * g * g * d / q ** 2
+            dg = 2.0 * A * g * d * d / q ** 2
+        return np.column_stack([L, dx0, dg, np.ones_like(x)])
+
+    def guess(x, y):
+        x, y = _finite_pairs(x, y)
+        A, x0, g, base = _peak_start(x, y, _lorentz_shape)
+        span = _positive_scale(x)[2]
+        return np.array([_safe(A, 1.0), _safe(x0, _median_or(x)),
+                         _safe(g, span / 10.0), _safe(base, 0.0)])
+
+    derived = (
+        Derived("FWHM", lambda p: 2.0 * p[2], lambda p: np.array([0.0, 0.0, 2.0, 0.0]),
+                "full width at half maximum (2 gamma)", "x"),
+        Derived("area", lambda p: math.pi * p[0] * p[2],
+                lambda p: np.array([math.pi * p[2], 0.0, math.pi * p[0], 0.0]),
+                "area above the baseline (pi A gamma)", "x*y"),
+    )
+    return Model(
+        "lorentz_peak", ("A", "x0", "gamma", "base"), f, jac, guess=guess,
+        lower=(-np.inf, -np.inf, 0.0, -np.inf),
+        formula="y = A*gamma**2/((x - x0)**2 + gamma**2) + base",
+        title="Lorentzian peak on a constant baseline",
+        descriptions={"A": "height above the baseline", "x0": "centre",
+                      "gamma": "half width at half maximum", "base": "baseline"},
+        units={"A": "y", "x0": "x", "gamma": "x", "base": "y"}, derived=derived,
+    )
+
+
+# ================================================================= registry
+
+# name -> (builder, accepted options with defaults)
+_REGISTRY: dict[str, tuple[Callable[..., Model], dict]] = {
+    "line": (_line, {}),
+    "line_origin": (_line_origin, {}),
+    "poly2": (lambda: _poly(2), {}),
+    "poly3": (lambda: _poly(3), {}),
+    "poly4": (lambda: _poly(4), {}),
+    "poly5": (lambda: _poly(5), {}),
+    "exp_decay": (_exp_decay, {"rate": False}),
+    "exp_decay_rate": (lambda: _exp_decay(rate=True), {}),
+    "exp_rise": (_exp_rise, {}),
+    "power_law": (_power_law, {}),
+    "michaelis_menten": (_michaelis_menten, {}),
+    "logistic4": (_logistic4, {}),
+    "logistic5": (_logistic5, {}),
+    "arrhenius": (_arrhenius, {"t_ref": None}),
+    "gauss_peak": (_gauss_peak, {}),
+    "lorentz_peak": (_lorentz_peak, {}),
+}
+
+_ALIASES = {"polynomial": "polynomial", "poly1": "line", "linear": "line"}
+_POLY_RE = re.compile(r"^poly(\d+)$")
+
+
+def builtin_models() -> list[str]:
+    """Names of the built-in models, in menu order.
+
+    ``"polynomial"`` (with ``degree=``) and ``"polyN"`` for other degrees up to 10
+    are accepted by :func:`get_model` too, but not listed.
+    """
+    return list(_REGISTRY)
+
+
+def _normalise(name) -> str:
+    if not isinstance(name, str):
+        raise TypeError(f"a model name must be text, got {type(name).__name__}")
+    return name.strip().lower()
+
+
+def _is_known_name(key: str) -> bool:
+    return key in _REGISTRY or key in _ALIASES or bool(_POLY_RE.match(key))
+
+
+def get_model(name: str, **options) -> Model:
+    """Build a built-in model by name.
+
+    Parameters
+    ----------
+    name
+        One of :func:`builtin_models`, or ``"polynomial"`` (needs ``degree``), or
+        ``"polyN"`` with N from 1 to 10. Case and surrounding spaces do not matter.
+    **options
+        Model options: ``degree`` for ``"polynomial"``; ``rate=True`` for
+        ``"exp_decay"`` (the rate-constant form ``A*exp(-k*x) + C``); ``t_ref``
+        (a temperature in K) for ``"arrhenius"`` adds the derived rate constant there.
+
+    Returns
+    -------
+    Model
+
+    Raises
+    ------
+    ValueError
+        Unknown name, or an option the model does not take.
+    """
+    key = _normalise(name)
+    key = _ALIASES.get(key, key)
+    if key == "polynomial":
+        extra = set(options) - {"degree"}
+        if extra:
+            raise ValueError(f"model 'polynomial' takes only the option 'degree', "
+                             f"not {', '.join(sorted(extra))}")
+        if "degree" not in options:
+            raise ValueError("model 'polynomial' needs a degree, e.g. "
+                             "get_model('polynomial', degree=3)")
+        return _polynomial(options["degree"])
+    m = _POLY_RE.match(key)
+    if m and key not in _REGISTRY:
+        if options:
+            raise ValueError(f"model {key!r} takes no options")
+        return _polynomial(int(m.group(1)))
+    if key not in _REGISTRY:
+        raise ValueError(
+            f"unknown model {name!r}; built-in models are: {', '.join(_REGISTRY)} "
+            f"(and 'polynomial' with a degree)"
+        )
+    builder, accepted = _REGISTRY[key]
+    extra = set(options) - set(accepted)
+    if extra:
+        takes = (f"only the option(s) {', '.join(sorted(accepted))}" if accepted
+                 else "no options")
+        raise ValueError(f"model {key!r} takes {takes}, not {', '.join(sorted(extra))}")
+    kwargs = {k: options[k] for k in options}
+    if key == "exp_decay":
+        return _exp_decay(rate=bool(kwargs.get("rate", False)))
+    return builder(**kwargs)
+
+
+def _polynomial(degree) -> Model:
+    try:
+        d = int(degree)
+        ok = d == degree
+    except (TypeError, ValueError):
+        ok = False
+    if not ok or not 1 <= d <= _MAX_POLY_DEGREE:
+        raise ValueError(f"polynomial degree must be a whole number from 1 to "
+                         f"{_MAX_POLY_DEGREE}, got {degree!r}")
+    if d == 1:
+        return _line()
+    return _poly(d)
+
+
+def resolve_model(spec) -> Model:
+    """Turn a model specification into a :class:`Model`.
+
+    Parameters
+    ----------
+    spec
+        A :class:`Model` (returned as is), a built-in name (see
+        :func:`builtin_models`), or a formula string in Python expression syntax
+        whose free names other than ``x`` are the parameters
+        (``"a*exp(-x/tau) + c"``), handed to :func:`fitcore.formula.parse_formula`.
+
+    Raises
+    ------
+    TypeError
+        ``spec`` is neither a Model nor text.
+    ValueError
+        Empty text, or a formula that cannot be read (the formula module's own
+        error, a ``ValueError``, says what is wrong).
+    """
+    if isinstance(spec, Model):
+        return spec
+    if not isinstance(spec, str):
+        raise TypeError(
+            f"a model must be a built-in name, a formula text or a fitcore.Model, "
+            f"got {type(spec).__name__}"
+        )
+    key = spec.strip().lower()
+    if not key:
+        raise ValueError("the model is empty: give a built-in name or a formula")
+    if _is_known_name(key):
+        return get_model(key)
+    try:
+        from .formula import parse_formula  # lazy: written separately
+    except ImportError as exc:  # pragma: no cover - only while formula.py is missing
+        raise ValueError(
+            f"{spec!r} is not a built-in model ({', '.join(_REGISTRY)}), and formulas "
+            f"cannot be read because the formula module is unavailable ({exc})"
+        ) from None
+    return parse_formula(spec)
+
+
+def model_info(name: str, **options) -> dict:
+    """Menu information on a built-in model.
+
+    Returns
+    -------
+    dict
+        ``name``, ``title``, ``formula``, ``linear`` (bool), ``params`` (list of
+        dicts with ``name``, ``description``, ``unit``, ``lower``, ``upper``) and
+        ``derived`` (list of dicts with ``name``, ``description``, ``unit``).
+    """
+    m = get_model(name, **options)
+    return {
+        "name": m.name,
+        "title": m.title,
+        "formula": m.formula,
+        "linear": m.is_linear,
+        "params": [
+            {"name": n, "description": m.descriptions.get(n, ""),
+             "unit": m.units.get(n, ""), "lower": lo, "upper": hi}
+            for n, lo, hi in zip(m.param_names, m.lower, m.upper)
+        ],
+        "derived": [
+            {"name": d.name, "description": d.description, "unit": d.unit}
+            for d in m.derived
+        ],
+    }
