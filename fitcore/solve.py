@@ -482,7 +482,7 @@ def _as_1d(name, v, n=None):
 
 
 def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
-        excluded=None, p0=None, fixed=None, tuning=None, sigma_mode: str = "relative",
+        excluded=None, p0=None, fixed=None, tuning=None, sigma_mode: str = "absolute",
         max_iter: int = 2000) -> FitResult:
     """Fit ``model`` to the points ``(x, y)`` under a (robust) loss.
 
@@ -506,9 +506,11 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     sigma
         Standard uncertainties of y; residuals are divided by them.
     sigma_mode
-        ``"relative"`` (sigma are relative weights: the covariance is scaled by the
-        observed scatter) or ``"absolute"`` (sigma are known standard uncertainties:
-        least squares uses ``(J^T W J)^-1`` unscaled, robust losses use scale 1).
+        ``"absolute"`` (default: sigma are known standard uncertainties; least squares
+        reports ``(J^T W J)^-1`` unscaled and robust losses use scale 1, so the tuning
+        constant is in units of sigma) or ``"relative"`` (sigma are relative weights:
+        the covariance is scaled by the observed scatter and the robust scale is
+        estimated). Ignored when sigma is not given.
     excluded
         Boolean array, True where the analyst left the point out.
     p0
