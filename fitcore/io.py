@@ -716,12 +716,13 @@ def _sniff(lines: list[str], decimal: str | None):
 
 
 def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str | None,
-                encoding_name: str | None, kind: str) -> Table:
+                encoding_name: str | None, kind: str, utf8_bytes: bytes | None = None) -> Table:
     import pandas as pd
 
     notes: list[str] = []
     if "\n" not in text[:200000] and "\r" in text:
         text = text.replace("\r", "\n")  # old Mac line ends
+        utf8_bytes = None
     lines, offsets = _head_lines(text, SNIFF_LINES)
     sniffed = _sniff(lines, decimal)
     if sniffed is None:
@@ -764,10 +765,18 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
         raise ReadError(f"decimal must be '.' or ',', not {decimal!r} (reading {label}).")
 
     ncols = max(width, len(header_cells or []))
-    body = text[offsets[layout.data]:]
+    start = offsets[layout.data]
     first_line = layout.data + 1  # 1-based line number of the first body line
+    if utf8_bytes is not None:  # hand pandas the bytes: no copy of a large text
+        body = memoryview(utf8_bytes)[len(text[:start].encode("utf-8")):]
+        n_body_lines = body.obj.count(b"\n", len(utf8_bytes) - len(body))
+        ends_open = len(body) > 0 and body[-1:] != b"\n"
+    else:
+        body = text[start:]
+        n_body_lines = body.count("\n")
+        ends_open = bool(body) and not body.endswith("\n")
+    n_body_lines += 1 if ends_open else 0
     df, bad_lines = _read_body(pd, body, sep, decimal, ncols, label)
-    n_body_lines = body.count("\n") + (0 if body.endswith("\n") or not body else 1)
     line_no = np.arange(n_body_lines, dtype=np.int64)
     if bad_lines:
         line_no = np.delete(line_no, [b - 1 for b in bad_lines if 0 < b <= n_body_lines])
@@ -825,7 +834,10 @@ def _read_body(pd, body: str, sep: str, decimal: str, ncols: int, label: str):
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            df = pd.read_csv(_io.StringIO(body), **kwargs)
+            if isinstance(body, memoryview):
+                df = pd.read_csv(_io.BytesIO(body), encoding="utf-8", **kwargs)
+            else:
+                df = pd.read_csv(_io.StringIO(body), **kwargs)
         except Exception as exc:  # pandas' messages are deep; give one sentence
             raise ReadError(f"{label} could not be split into columns ({type(exc).__name__}: "
                             f"{str(exc).strip().splitlines()[0] if str(exc).strip() else 'no detail'}).") from None
@@ -854,11 +866,22 @@ def _convert_column(col, n: int, decimal: str):
         if empty.any():
             problems.append(("empty", "", empty))
         return values, problems, False
-    values = np.full(n, np.nan)
+    # fast vectorised pass for plain numbers; the rest cell by cell
+    if decimal == ",":
+        as_text = col.astype(str)
+        has_point = as_text.str.contains(".", regex=False).to_numpy(dtype=bool)
+        quick = pd.to_numeric(as_text.str.replace(",", ".", regex=False), errors="coerce")
+    else:
+        has_point = np.zeros(n, bool)
+        quick = pd.to_numeric(col, errors="coerce")
+    quick = np.asarray(quick, dtype=float)
+    ok = np.isfinite(quick) & ~has_point
+    values = np.where(ok, quick, np.nan)
     texts: dict[str, list[int]] = {}
     empty_rows: list[int] = []
     raw = col.to_numpy(dtype=object)
-    for i, cell in enumerate(raw):
+    for i in np.flatnonzero(~ok):
+        cell = raw[i]
         if cell is None or (isinstance(cell, float) and math.isnan(cell)):
             empty_rows.append(i)
             continue
@@ -1154,10 +1177,15 @@ def read_table(path, sheet=None, *, decimal: str | None = None, encoding: str | 
     if kind in ("xlsx", "ods"):
         return _read_workbook(data, kind, sheet, label=label, source=str(p), sha256=digest, decimal=decimal)
     text, enc_name = _decode(data, encoding, label)
-    del data
     _check_text(text, label)
+    utf8 = None
+    if enc_name == "UTF-8":
+        utf8 = data
+    elif enc_name == "UTF-8 with BOM":
+        utf8 = data[3:]
+    del data
     table = _parse_text(text, label=label, source=str(p), sha256=digest, decimal=decimal,
-                        encoding_name=enc_name, kind="text")
+                        encoding_name=enc_name, kind="text", utf8_bytes=utf8)
     if sheet not in (None, 0):
         table.notes.append(f"sheet={sheet!r} ignored: a text file has no sheets")
     if enc_name in ("CP1252", "Latin-1"):

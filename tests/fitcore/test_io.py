@@ -581,6 +581,30 @@ def test_round_trip_other_dialects(tmp_path, pairs, dialect):
     assert list(t.source_rows) == list(range(3, 3 + len(pairs)))
 
 
+@settings(max_examples=50, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.one_of(finite, st.none()), min_size=3, max_size=40).filter(lambda v: any(e is None for e in v)),
+       st.sampled_from([",", "."]))
+def test_round_trip_with_text_cells(tmp_path, values, dec):
+    # a column holding some 'n.d.' cells takes the cell-by-cell path; numbers must still be exact
+    sep = ";" if dec == "," else ","
+    p = tmp_path / "nd.csv"
+    cells = ["n.d." if v is None else (repr(v).replace(".", ",") if dec == "," else repr(v)) for v in values]
+    write(p, f"i{sep}v\n" + "".join(f"{i}{sep}{c}\n" for i, c in enumerate(cells)))
+    t = read_table(p, decimal=dec)
+    got = t.column("v")
+    expected = np.array([np.nan if v is None else v for v in values])
+    np.testing.assert_array_equal(got, expected)
+    bad_rows = [i + 2 for i, v in enumerate(values) if v is None]
+    note = next(n for n in t.notes if "'n.d.' is not a number in column v" in n)
+    assert note.startswith(_rows_note(bad_rows))
+
+
+def _rows_note(rows):
+    if len(rows) == 1:
+        return f"row {rows[0]}"
+    return "rows " + ", ".join(str(r) for r in rows[:12])
+
+
 # --------------------------------------------------------------------------- sample sets
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_sets"
