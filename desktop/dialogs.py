@@ -16,6 +16,27 @@ SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_sets"
 DATA_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".ods")
 
 
+#: a suggested method per sample set (file-name prefix -> Settings fields)
+SAMPLE_METHODS = {
+    "01": dict(model="line", loss="huber"),
+    "02": dict(model="exp_decay", loss="huber"),
+    "03": dict(model="michaelis_menten", loss="huber"),
+    "04": dict(model="R25*exp(B*(1/x - 1/298.15))", model_kind="formula", loss="huber",
+               p0=(("B", 3500.0), ("R25", 10.0))),
+    "05": dict(model="logistic4", loss="huber"),
+    "06": dict(model="gauss_peak", loss="huber"),
+    "07": dict(model="line", loss="tukey"),
+}
+
+
+def sample_method(path):
+    """Suggested settings fields for a sample-set file, or None for other files."""
+    p = Path(path).resolve()
+    if p.parent != SAMPLE_DIR:
+        return None
+    return SAMPLE_METHODS.get(p.name[:2])
+
+
 def error_box(parent, title: str, text: str) -> None:
     """Show an error message (tests replace this function)."""
     QMessageBox.warning(parent, title, text)

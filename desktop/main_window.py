@@ -247,7 +247,9 @@ class MainWindow(QMainWindow):
         except (ValueError, OSError) as err:
             dialogs.error_box(self, "Cannot open file", f"{os.path.basename(str(path))}: {err}")
             return False
-        if self._load_table(table, columns):
+        suggested = dialogs.sample_method(path)
+        settings = Settings(**suggested) if suggested else None
+        if self._load_table(table, columns, settings):
             self._add_recent(str(path))
             return True
         return False
@@ -267,7 +269,7 @@ class MainWindow(QMainWindow):
             return False
         return self._load_table(table, None)
 
-    def _load_table(self, table, columns) -> bool:
+    def _load_table(self, table, columns, settings: Settings | None = None) -> bool:
         try:
             numeric = table.numeric_columns()
             if columns is None and len(numeric) > 2:
@@ -285,7 +287,7 @@ class MainWindow(QMainWindow):
             dialogs.error_box(self, "Cannot use this table", str(err))
             return False
         self.undo_stack.clear()  # a new data set starts a new history
-        self.document.apply_measurements(m)
+        self.document.apply_measurements(m, settings=settings)
         name = os.path.basename(m.source) if m.source != "clipboard" else "pasted table"
         self.setWindowTitle(f"Ballast - {name}")
         note = "; ".join(m.notes)

@@ -160,6 +160,9 @@ class MethodPanel(QWidget):
         self.alpha_spin.setSingleStep(0.25)
         self.alpha_spin.setDecimals(3)
         form.addRow("Alpha", self.alpha_spin)
+        for combo in (self.model_combo, self.loss_combo, self.scale_combo):
+            combo.setSizeAdjustPolicy(QComboBox.AdjustToMinimumContentsLengthWithIcon)
+            combo.setMinimumContentsLength(12)
         lay.addWidget(box)
 
         pbox = QGroupBox("Start values and held parameters")

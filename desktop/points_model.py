@@ -22,6 +22,20 @@ STATUS_TEXT = ("used", "down-weighted", "excluded")
 #: role giving the sortable raw value of a cell
 SORT_ROLE = Qt.UserRole + 1
 
+def _role(role) -> int:
+    return role if isinstance(role, int) else int(role.value)
+
+
+_DISPLAY, _EDIT, _CHECK, _ALIGN = (_role(Qt.DisplayRole), _role(Qt.EditRole), _role(Qt.CheckStateRole),
+                                   _role(Qt.TextAlignmentRole))
+_BACKGROUND, _FOREGROUND, _FONT, _TOOLTIP = (_role(Qt.BackgroundRole), _role(Qt.ForegroundRole),
+                                             _role(Qt.FontRole), _role(Qt.ToolTipRole))
+_SORT = _role(SORT_ROLE)
+_ROLES_SERVED = frozenset({_DISPLAY, _EDIT, _CHECK, _ALIGN, _BACKGROUND, _FOREGROUND, _FONT, _TOOLTIP, _SORT})
+_LEFT = Qt.AlignLeft | Qt.AlignVCenter
+_RIGHT = Qt.AlignRight | Qt.AlignVCenter
+_INF = float("inf")
+
 _GREY = QBrush(QColor(120, 120, 120))
 _EXCLUDED_BG = QBrush(QColor(255, 236, 230))
 _DOWN_BG = QBrush(QColor(255, 248, 220))
@@ -130,47 +144,48 @@ class PointsModel(QAbstractTableModel):
         return float(arr[row])
 
     def data(self, index, role=Qt.DisplayRole):
-        if not index.isValid():
+        # roles are compared as plain ints: comparing enum members costs ~1 us each,
+        # and a repaint asks for thousands of cells
+        r = _role(role)
+        if r not in _ROLES_SERVED or not index.isValid():
             return None
         row, col = index.row(), index.column()
         name = COLUMNS[col]
         doc = self.document
-        if role == Qt.DisplayRole or role == Qt.EditRole:
+        if r == _DISPLAY or r == _EDIT:
             v = self.raw(row, col)
             if name == "status":
                 return STATUS_TEXT[v]
-            if name in ("#", "reason"):
-                return v if name == "#" else str(v)
-            if isinstance(v, float) and not np.isfinite(v):
+            if name == "#":
+                return v
+            if name == "reason":
+                return str(v)
+            if v != v or v in (_INF, -_INF):
                 return ""
             if name == "weight":
                 return f"{v:.3f}"
             return f"{v:.6g}"
-        if role == SORT_ROLE:
+        if r == _SORT:
             v = self.raw(row, col)
-            if isinstance(v, float) and not np.isfinite(v):
-                return float("inf")
+            if isinstance(v, float) and v != v:
+                return _INF
             return v
-        if role == Qt.CheckStateRole and name == "status":
+        if r == _CHECK:
+            if name != "status":
+                return None
             return Qt.Unchecked if doc.excluded[row] else Qt.Checked
-        if role == Qt.TextAlignmentRole:
-            if name in ("status", "reason"):
-                return int(Qt.AlignLeft | Qt.AlignVCenter)
-            return int(Qt.AlignRight | Qt.AlignVCenter)
-        if role == Qt.BackgroundRole:
+        if r == _ALIGN:
+            return _LEFT if name in ("status", "reason") else _RIGHT
+        if r == _BACKGROUND:
             st = self._status[row] if row < len(self._status) else 0
-            if st == 2:
-                return _EXCLUDED_BG
-            if st == 1:
-                return _DOWN_BG
-            return None
-        if role == Qt.ForegroundRole:
+            return _EXCLUDED_BG if st == 2 else (_DOWN_BG if st == 1 else None)
+        if r == _FOREGROUND:
             if doc.stale and name in ("fitted", "residual", "std. residual", "weight"):
                 return _GREY
             return None
-        if role == Qt.FontRole and doc.excluded[row]:
-            return self._italic
-        if role == Qt.ToolTipRole:
+        if r == _FONT:
+            return self._italic if doc.excluded[row] else None
+        if r == _TOOLTIP:
             if name == "status":
                 return "Uncheck to exclude this point; check to restore it"
             if name == "reason" and doc.excluded[row]:
