@@ -715,13 +715,16 @@ def _sniff(lines: list[str], decimal: str | None):
     return best
 
 
+_LONE_CR_RE = re.compile(r"\r(?!\n)")
+
+
 def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str | None,
                 encoding_name: str | None, kind: str, utf8_bytes: bytes | None = None) -> Table:
     import pandas as pd
 
     notes: list[str] = []
-    if "\n" not in text[:200000] and "\r" in text:
-        text = text.replace("\r", "\n")  # old Mac line ends
+    if "\r" in text and _LONE_CR_RE.search(text):  # old Mac or mixed line ends
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
         utf8_bytes = None
     lines, offsets = _head_lines(text, SNIFF_LINES)
     sniffed = _sniff(lines, decimal)
@@ -1102,7 +1105,7 @@ def _container(data: bytes, path: Path, label: str) -> str:
                     return "ods"
                 if "content.xml" in members and ext == ".ods":
                     return "ods"
-        except (zipfile.BadZipFile, OSError, EOFError, ValueError):
+        except Exception:  # BadZipFile, unsupported ZIP features, truncated members ...
             kind = "ODS" if ext == ".ods" else "XLSX"
             raise ReadError(f"{label} looks like an {kind} spreadsheet but is damaged or incomplete "
                             "and could not be opened.") from None

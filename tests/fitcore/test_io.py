@@ -658,3 +658,17 @@ def test_sample_generator_reproduces_the_committed_files(tmp_path):
                    check=True, capture_output=True, timeout=120)
     for name in EXPECTED_SAMPLES:
         assert (tmp_path / name).read_bytes() == (SAMPLES / name).read_bytes(), name
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.text(alphabet=st.sampled_from(list("0123456789.,;\t |-+eE#\"'() abcXYZµ°\n\r")), max_size=200))
+def test_arbitrary_text_reads_or_raises_read_error(text):
+    # common practice (robustness): odd input gives a Table or a ReadError, never another exception
+    try:
+        t = read_clipboard_text(text)
+    except ReadError as exc:
+        assert str(exc).endswith(".")
+        return
+    assert len(t.columns) >= 2 and len(set(t.columns)) == len(t.columns)
+    assert all(t.column(c).shape == (t.n_rows,) for c in t.columns)
+    assert t.source_rows.shape == (t.n_rows,) and np.all(np.diff(t.source_rows) > 0)
