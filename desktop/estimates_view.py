@@ -107,6 +107,7 @@ class EstimatesView(QWidget):
             ["parameter", "estimate", "std. unc.", f"{int(LEVEL * 100)}% interval", "unit"])
         self.table.verticalHeader().setVisible(False)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+        self.table.setWordWrap(False)
         self.table.horizontalHeader().setStretchLastSection(True)
         self.table.setEditTriggers(QTableWidget.NoEditTriggers)
         lay.addWidget(self.table, 2)

@@ -80,7 +80,7 @@ class MainWindow(QMainWindow):
         self.main_split.setStretchFactor(0, 0)
         self.main_split.setStretchFactor(1, 3)
         self.main_split.setStretchFactor(2, 1)
-        self.main_split.setSizes([340, 760, 420])
+        self.main_split.setSizes([330, 640, 480])
         self.setCentralWidget(self.main_split)
 
         self.busy_label = QLabel("")
