@@ -303,3 +303,29 @@ def test_screenshot_of_each_sample_set_is_not_blank(qtbot, win, tmp_path, monkey
         w, h = img.width(), img.height()
         arr = np.frombuffer(img.constBits(), np.uint8, count=img.sizeInBytes()).reshape(h, -1)[:, :w]
         assert arr.std() > 10, f"screenshot of {path} looks blank"
+
+
+def test_paste_table_from_clipboard(win):
+    # invented demo values, tab-separated as a spreadsheet copies them
+    text = "Dose (mg)\tResponse (AU)\n" + "\n".join(f"{d}\t{3 + 2 * d + (0.1 if d % 2 else -0.1)}"
+                                                   for d in range(12))
+    QGuiApplication.clipboard().setText(text)
+    assert win.paste_table()
+    assert win.runner.wait()
+    doc = win.document
+    assert doc.n == 12 and doc.measurements.x_unit == "mg"
+    np.testing.assert_allclose(doc.result.values, side_by_side(doc).values, rtol=1e-12)
+
+
+def test_formula_field_validates_live_and_sets_the_model(loaded):
+    panel = loaded.method_panel
+    panel.formula_edit.setText("a*exp(-x/")
+    assert "#b42318" in panel.formula_msg.text()  # refused, shown in red
+    panel.formula_edit.setText("a + b*x + c*x**2")
+    assert "parameters" in panel.formula_msg.text() and "#1a7f37" in panel.formula_msg.text()
+    panel.formula_edit.editingFinished.emit()
+    assert loaded.runner.wait()
+    doc = loaded.document
+    assert doc.settings.model_kind == "formula" and doc.result.param_names == ("a", "b", "c")
+    np.testing.assert_allclose(doc.result.values, side_by_side(doc).values, rtol=1e-12)
+    assert panel.param_table.rowCount() == 3
