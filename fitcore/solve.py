@@ -128,7 +128,7 @@ def _project(theta, lower, upper):
 
 def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
              linear: bool, max_iter: int = 500, xtol: float = 1e-13,
-             ftol: float = 1e-15) -> _Inner:
+             ftol: float = 1e-15, polish_steps: bool = True) -> _Inner:
     """Minimise sum rho(r(theta)/s) by reweighted, damped Gauss-Newton steps.
 
     The damping follows Nielsen's gain-ratio rule (Madsen, Nielsen & Tingleff, *Methods
@@ -227,7 +227,7 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
                 break
             continue
         if small_step or (small_gain and scaled <= 1e-11 * (np.linalg.norm(D * cand) + 1e-11)):
-            if linear:
+            if linear or not polish_steps:
                 converged = True
                 break
             polish = 1  # a few undamped steps to reach full accuracy
@@ -364,23 +364,39 @@ def _safe_scale(s: float, r: np.ndarray, prob: _Problem) -> float:
 
 def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bool,
                        auto: bool, max_iter: int) -> tuple[_Inner, float, int]:
-    """M-estimate at a fixed scale, or jointly with Huber's proposal-2 scale."""
+    """M-estimate at a fixed scale, or jointly with Huber's proposal-2 scale.
+
+    With ``auto`` the parameters and the scale are alternated (loose inner tolerance,
+    the scale update accelerated by a secant step on ``s -> proposal2(s)``) until the
+    scale is stable to 1e-10; a final solve at that scale runs to full accuracy.
+    """
     s = _safe_scale(s0, prob.resid(theta), prob)
     total = 0
-    inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter)
-    total += inner.n_iter
-    if not auto:
-        return inner, s, total
-    for _ in range(100):
-        s_new = proposal2_scale(inner.r, loss, s, prob.k)
-        s_new = _safe_scale(s_new, inner.r, prob)
-        if abs(s_new - s) <= 1e-10 * s:
-            s = s_new
-            break
-        s = s_new
-        inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
+    if auto:
+        loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False)
+        inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
         total += inner.n_iter
-    inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
+        prev = None  # (s, g(s)) of the previous update, for the secant step
+        for _ in range(100):
+            g = _safe_scale(proposal2_scale(inner.r, loss, s, prob.k), inner.r, prob)
+            if abs(g - s) <= 1e-10 * s:
+                s = g
+                break
+            s_next = g
+            if prev is not None:
+                # secant on h(s) = g(s) - s: converges much faster than the plain
+                # fixed point when the (s, theta) coupling is strong
+                (s1, g1), h0, h1 = prev, g - s, prev[1] - prev[0]
+                if h1 != h0:
+                    cand = s - h0 * (s - s1) / (h0 - h1)
+                    if 0.5 * min(s, g) < cand < 2.0 * max(s, g):
+                        s_next = cand
+            prev = (s, g)
+            s = s_next
+            inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter, **loose)
+            total += inner.n_iter
+        theta = inner.theta
+    inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter)
     total += inner.n_iter
     return inner, s, total
 
@@ -649,7 +665,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             else:
                 s_start = _start_scale(prob, start_theta, linear)
                 scale_method = "normalised MAD start, refined by Huber's proposal 2 (n - p degrees of freedom)"
-            if loss_obj.redescending or fixed_scale is None:
+            if loss_obj.redescending:
                 # convex start: Huber at the same (or an automatic) scale
                 huber = get_loss("huber")
                 pre, s_pre, it_pre = _robust_with_scale(
