@@ -68,12 +68,19 @@ def _finite_pairs(x, y):
     return x[ok], y[ok]
 
 
+def _fast_median(v):
+    n = v.size
+    h = n // 2
+    part = np.partition(v, [h - 1, h] if n % 2 == 0 else h)
+    return 0.5 * (part[h - 1] + part[h]) if n % 2 == 0 else part[h]
+
+
 def _mad(r):
     """Normalised median absolute deviation about the median (0 for empty input)."""
     r = np.asarray(r, dtype=float)
     if r.size == 0:
         return 0.0
-    return float(1.482602218505602 * np.median(np.abs(r - np.median(r))))
+    return float(1.482602218505602 * _fast_median(np.abs(r - _fast_median(r))))
 
 
 def _spread(y):
@@ -149,8 +156,25 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     if n == 0 or not np.any(good):
         return coef, y.copy()
     As = A[:, good] / norms[good]
+    kk = As.shape[1]
+
+    def wls(w):
+        # small, column-scaled normal equations are ample for a start value; fall back
+        # to an orthogonal solve when they are singular
+        Aw = As * w[:, None]
+        M = Aw.T @ As
+        try:
+            c = np.linalg.solve(M, Aw.T @ y)
+            d = np.diag(M)
+            if np.all(np.isfinite(c)) and abs(np.linalg.det(M)) > 1e-10 * np.prod(d):
+                return c
+        except np.linalg.LinAlgError:
+            pass
+        sw = np.sqrt(w)
+        return np.linalg.lstsq(As * sw[:, None], y * sw, rcond=None)[0]
+
     with np.errstate(all="ignore"):
-        c, *_ = np.linalg.lstsq(As, y, rcond=None)
+        c = wls(np.ones(n))
         r = y - As @ c
         for it in range(n_huber + n_tukey):
             s = _mad(r)
@@ -161,14 +185,16 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
                 w = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
             else:
                 w = np.where(u < 4.685, (1.0 - (u / 4.685) ** 2) ** 2, 0.0)
-            if np.count_nonzero(w) <= As.shape[1]:
+            if np.count_nonzero(w) <= kk:
                 break
-            sw = np.sqrt(w)
-            c_new, *_ = np.linalg.lstsq(As * sw[:, None], y * sw, rcond=None)
+            c_new = wls(w)
             if not np.all(np.isfinite(c_new)):
                 break
+            step = np.max(np.abs(c_new - c)) <= 1e-10 * (1.0 + np.max(np.abs(c)))
             c = c_new
             r = y - As @ c
+            if step and it >= n_huber:
+                break
     coef[good] = c / norms[good]
     return coef, r
 
@@ -200,7 +226,7 @@ def _profile(basis_of: Callable[[float], np.ndarray], y, grid, refine=2):
                 A = basis_of(float(t))
             if not np.all(np.isfinite(A)):
                 continue
-            coef, r = _robust_lstsq(A, y)
+            coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
             crit = _trimmed_ss(r)
             if crit < best[2]:
                 best = (float(t), coef, crit)
@@ -214,7 +240,11 @@ def _profile(basis_of: Callable[[float], np.ndarray], y, grid, refine=2):
         t = best[0]
         scan(t * np.geomspace(1.0 / lo_ratio, lo_ratio, 9))
         lo_ratio = lo_ratio ** 0.25
-    return best
+    # final linear coefficients with the full number of robust iterations
+    with np.errstate(all="ignore"):
+        A = basis_of(best[0])
+    coef, r = _robust_lstsq(A, y)
+    return best[0], coef, _trimmed_ss(r)
 
 
 def _smoothed(x, y):
@@ -650,7 +680,7 @@ def _logistic_crit(x, y, hill, ec50):
     A = np.column_stack([1.0 - g, g])
     if not np.all(np.isfinite(A)):
         return np.inf, (0.0, 0.0)
-    coef, r = _robust_lstsq(A, y, n_huber=8, n_tukey=4)
+    coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
     return _trimmed_ss(r), (float(coef[0]), float(coef[1]))
 
 
@@ -683,6 +713,9 @@ def _logistic_guess(x, y):
                 if crit < best_crit:
                     best_crit, best = crit, (b_, t_, h, e)
     b_, t_, h, e = best
+    z, _ = _logistic_z(x, h, e)
+    g = special.expit(-z)
+    (b_, t_), _ = _robust_lstsq(np.column_stack([1.0 - g, g]), y)
     if t_ < b_:  # same curve with the plateaus named the other way round
         b_, t_, h = t_, b_, -h
     return b_, t_, h, e
@@ -892,17 +925,18 @@ def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
     for _ in range(2):
         crit, x0, w, coef = best
         for xc in x0 + w * np.linspace(-0.5, 0.5, 11):
-            c, r = _robust_lstsq(basis(xc, w), y)
+            c, r = _robust_lstsq(basis(xc, w), y, n_huber=5, n_tukey=3)
             cr = _trimmed_ss(r)
             if cr < best[0]:
                 best = (cr, float(xc), w, c)
         crit, x0, w, coef = best
         for wc in w * np.geomspace(0.6, 1.6, 9):
-            c, r = _robust_lstsq(basis(x0, wc), y)
+            c, r = _robust_lstsq(basis(x0, wc), y, n_huber=5, n_tukey=3)
             cr = _trimmed_ss(r)
             if cr < best[0]:
                 best = (cr, x0, float(wc), c)
-    _, x0, w, coef = best
+    _, x0, w, _ = best
+    coef, _ = _robust_lstsq(basis(x0, w), y)
     return float(coef[0]), float(x0), float(w), float(coef[1])
 
 
