@@ -170,12 +170,12 @@ class Huber(Loss):
         return np.where(u <= k, 0.5 * u * u, k * u - 0.5 * k * k)
 
     def psi(self, u):
-        return np.clip(_as_array(u), -self.tuning, self.tuning)
+        u = _as_array(u)
+        return np.minimum(np.maximum(u, -self.tuning), self.tuning)
 
     def weight(self, u):
         a = np.abs(_as_array(u))
-        k = self.tuning
-        return np.where(a <= k, 1.0, k / np.maximum(a, 1e-300))
+        return np.minimum(1.0, self.tuning / np.maximum(a, 1e-300))
 
     def dpsi(self, u):
         return (np.abs(_as_array(u)) <= self.tuning).astype(float)

@@ -54,7 +54,14 @@ def inv_jtj(J: np.ndarray, rcond: float | None = None) -> np.ndarray:
     d = np.sqrt(np.sum(J * J, axis=0))
     if np.any(d == 0) or not np.all(np.isfinite(d)):
         raise RankDeficient("a parameter has no effect on the model at the solution")
-    U, sv, Vt = np.linalg.svd(J / d, full_matrices=False)
+    Js = J / d
+    if n > 20000:
+        # large n: the scaled Gram matrix is accurate enough when well conditioned
+        G = Js.T @ Js
+        ev = np.linalg.eigvalsh(G)
+        if ev[0] > 0 and ev[-1] <= 1e8 * ev[0]:
+            return np.linalg.inv(G) / np.outer(d, d)
+    U, sv, Vt = np.linalg.svd(Js, full_matrices=False)
     tol = (rcond if rcond is not None else max(n, p) * np.finfo(float).eps) * sv[0]
     if sv[-1] <= tol:
         raise RankDeficient("the parameters are not all identifiable (rank-deficient Jacobian)")
