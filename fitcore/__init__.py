@@ -19,6 +19,7 @@ __version__ = "0.1.0"
 _LAZY = {
     "fit": ("solve", "fit"),
     "FitError": ("solve", "FitError"),
+    "alpha_profile": ("solve", "alpha_profile"),
     "FitResult": ("result", "FitResult"),
     "Model": ("model", "Model"),
     "Derived": ("model", "Derived"),
