@@ -800,7 +800,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             if auto:
                 scale_method = "normalised MAD start, refined by Huber's proposal 2 (n - p degrees of freedom)"
             else:
-                scale_method = "fixed by the analyst" if not absolute or scale != "auto" else "1 (sigma taken as absolute)"
+                scale_method = "fixed by the analyst" if not absolute or scale != "auto" else "fixed at 1: sigma taken as absolute"
             s_start = fixed_scale
             warm_started = False
             if n_used > _LARGE:
