@@ -260,7 +260,7 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
         if not accepted:
             if polish or linear or lam > 1e30:
                 converged = True
-                if not polish:
+                if not polish and not linear:
                     message = "converged (no further decrease possible in double precision)"
                 break
             continue
@@ -720,9 +720,9 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     xu, yu = x[used], y[used]
     sig_u = sig_all[used] if sig_all is not None else np.ones(n_used)
     try:
-        if n_used > 5000 and (p0 is None or isinstance(p0, dict)):
+        if n_used > 2000 and (p0 is None or isinstance(p0, dict)):
             # start values need no more than a few thousand points (a seeded subsample)
-            pick = np.sort(np.random.default_rng(7).choice(n_used, 2000, replace=False))
+            pick = np.sort(np.random.default_rng(7).choice(n_used, 500, replace=False))
             start = mdl.start_values(xu[pick], yu[pick], p0)
         else:
             start = mdl.start_values(xu, yu, p0)
