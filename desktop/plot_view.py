@@ -297,6 +297,8 @@ class PlotView(pg.GraphicsLayoutWidget):
 
     #: emitted after the plot was redrawn from a new result
     redrawn = Signal()
+    #: emitted after a change of log axes (overlays drawn by others redraw on it)
+    axes_changed = Signal()
 
     def __init__(self, document: Document, push: Callable, ask_reason: Callable | None = None, parent=None):
         super().__init__(parent)
@@ -307,6 +309,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         self.log_x = False
         self.log_y = False
         self.show_band = True
+        self.single_fit_visible = True  # off while a loss comparison overlays its curves
         self._drag = None  # (token, initial excluded mask) while a box drag runs
 
         self.vb_data = PickViewBox(self)
@@ -358,10 +361,17 @@ class PlotView(pg.GraphicsLayoutWidget):
         self._draw_result()
         self.data_plot.enableAutoRange()
         self.resid_plot.enableAutoRange()
+        self.axes_changed.emit()
 
     def set_band_visible(self, on: bool):
         self.show_band = bool(on)
         self._draw_result()
+
+    def set_single_fit_visible(self, on: bool):
+        """Show (True) or hide the single fit's curve and band (a comparison hides them)."""
+        self.single_fit_visible = bool(on)
+        self.curve.setVisible(self.single_fit_visible)
+        self.band.setVisible(self.single_fit_visible and self.show_band)
 
     def set_box_mode(self, on: bool):
         self.vb_data.box_mode = self.vb_resid.box_mode = bool(on)
@@ -476,7 +486,7 @@ class PlotView(pg.GraphicsLayoutWidget):
                 yhat = np.full(grid.size, np.nan)
             ok = np.isfinite(yhat)
             self.curve.setData(self._tx(grid[ok]), self._ty(yhat[ok]))
-            self.band.setVisible(self.show_band)
+            self.band.setVisible(self.show_band and self.single_fit_visible)
             if self.show_band:
                 try:
                     b_lo, b_hi = res.band(grid)

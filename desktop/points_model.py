@@ -7,6 +7,7 @@ turns edits (the "used" check box, the exclusion reason) into undoable commands.
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
@@ -39,6 +40,24 @@ _INF = float("inf")
 _GREY = QBrush(QColor(120, 120, 120))
 _EXCLUDED_BG = QBrush(QColor(255, 236, 230))
 _DOWN_BG = QBrush(QColor(255, 248, 220))
+_FLAG_BG = QBrush(QColor(226, 214, 245))
+_NCOL = len(COLUMNS)
+
+
+@dataclass
+class ExtraColumn:
+    """A column appended after :data:`COLUMNS` (point diagnostics).
+
+    ``values`` holds one float per point (NaN = blank); ``flagged`` marks cells drawn
+    highlighted, with ``flag_tip`` as their tooltip.
+    """
+
+    name: str
+    values: np.ndarray
+    fmt: str = "{:.4g}"
+    tooltip: str = ""
+    flagged: np.ndarray | None = None
+    flag_tip: str = ""
 
 
 class PointsModel(QAbstractTableModel):
@@ -59,6 +78,9 @@ class PointsModel(QAbstractTableModel):
         self.push = push
         self._italic = QFont()
         self._italic.setItalic(True)
+        self._bold = QFont()
+        self._bold.setBold(True)
+        self.extra: list[ExtraColumn] = []
         self._cache_result()
         document.subscribe(self._on_document)
 
@@ -103,9 +125,50 @@ class PointsModel(QAbstractTableModel):
         return 0 if parent.isValid() else self.document.n
 
     def columnCount(self, parent=QModelIndex()):
-        return 0 if parent.isValid() else len(COLUMNS)
+        return 0 if parent.isValid() else _NCOL + len(self.extra)
+
+    def set_extra_columns(self, columns: list[ExtraColumn]) -> None:
+        """Replace the columns shown after :data:`COLUMNS` (empty list: none)."""
+        old, new = len(self.extra), len(columns)
+        if new < old:
+            self.beginRemoveColumns(QModelIndex(), _NCOL + new, _NCOL + old - 1)
+            self.extra = list(columns)
+            self.endRemoveColumns()
+        elif new > old:
+            self.beginInsertColumns(QModelIndex(), _NCOL + old, _NCOL + new - 1)
+            self.extra = list(columns)
+            self.endInsertColumns()
+        else:
+            self.extra = list(columns)
+        if new and self.document.n:
+            self.headerDataChanged.emit(Qt.Horizontal, _NCOL, _NCOL + new - 1)
+            self.dataChanged.emit(self.index(0, _NCOL), self.index(self.document.n - 1, _NCOL + new - 1))
+
+    def _extra_data(self, row: int, col: ExtraColumn, r: int):
+        v = float(col.values[row]) if row < len(col.values) else float("nan")
+        flagged = col.flagged is not None and row < len(col.flagged) and bool(col.flagged[row])
+        if r == _DISPLAY or r == _EDIT:
+            return "" if v != v else col.fmt.format(v)
+        if r == _SORT:
+            return _INF if v != v else v
+        if r == _ALIGN:
+            return _RIGHT
+        if r == _BACKGROUND:
+            return _FLAG_BG if flagged else None
+        if r == _FONT:
+            return self._bold if flagged else None
+        if r == _TOOLTIP:
+            return col.flag_tip if flagged and col.flag_tip else (col.tooltip or None)
+        return None
 
     def headerData(self, section, orientation, role=Qt.DisplayRole):
+        if orientation == Qt.Horizontal and section >= _NCOL and section - _NCOL < len(self.extra):
+            col = self.extra[section - _NCOL]
+            if role == Qt.DisplayRole:
+                return col.name
+            if role == Qt.ToolTipRole:
+                return col.tooltip or None
+            return None
         if role != Qt.DisplayRole:
             return None
         if orientation == Qt.Vertical:
@@ -124,6 +187,9 @@ class PointsModel(QAbstractTableModel):
         """The unformatted value of a cell (float, int or str; NaN where none)."""
         doc = self.document
         m = doc.measurements
+        if col >= _NCOL:
+            v = self.extra[col - _NCOL].values
+            return float(v[row]) if row < len(v) else float("nan")
         name = COLUMNS[col]
         if name == "#":
             return row + 1
@@ -150,6 +216,8 @@ class PointsModel(QAbstractTableModel):
         if r not in _ROLES_SERVED or not index.isValid():
             return None
         row, col = index.row(), index.column()
+        if col >= _NCOL:
+            return self._extra_data(row, self.extra[col - _NCOL], r)
         name = COLUMNS[col]
         doc = self.document
         if r == _DISPLAY or r == _EDIT:
@@ -197,7 +265,7 @@ class PointsModel(QAbstractTableModel):
 
     def flags(self, index):
         f = super().flags(index)
-        if not index.isValid():
+        if not index.isValid() or index.column() >= _NCOL:
             return f
         name = COLUMNS[index.column()]
         if name == "status":
@@ -210,6 +278,8 @@ class PointsModel(QAbstractTableModel):
         if not index.isValid():
             return False
         row = index.row()
+        if index.column() >= _NCOL:
+            return False
         name = COLUMNS[index.column()]
         doc = self.document
         if name == "status" and role == Qt.CheckStateRole:
