@@ -22,9 +22,12 @@ from .estimates_view import CAUTION, EstimatesView
 from .method_panel import MethodPanel
 from .plot_view import PlotView
 from .points_model import PointsModel, make_proxy
+from .report_export import ReportExporter
+from .session_io import SessionManager
 from .worker import FitRunner
 
-FILE_FILTER = "Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;All files (*)"
+FILE_FILTER = ("Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;Ballast sessions (*.ballast);;"
+               "All files (*)")
 MAX_RECENT = 8
 
 
@@ -38,7 +41,7 @@ class MainWindow(QMainWindow):
         ``QSettings("Ballast", "Ballast")``.
     """
 
-    def __init__(self, qsettings: QSettings | None = None, parent=None):
+    def __init__(self, qsettings: QSettings | None = None, parent=None, recovery_dir=None):
         super().__init__(parent)
         self.setWindowTitle("Ballast")
         self.qsettings = qsettings if qsettings is not None else QSettings("Ballast", "Ballast")
@@ -86,6 +89,8 @@ class MainWindow(QMainWindow):
         self.busy_label = QLabel("")
         self.statusBar().addPermanentWidget(self.busy_label)
         self.runner.busy_changed.connect(lambda b: self.busy_label.setText("fitting..." if b else ""))
+        self.sessions = SessionManager(self, recovery_dir=recovery_dir, qsettings=qsettings)
+        self.reports = ReportExporter(self)
         self.setAcceptDrops(True)
         self._build_menus()
         self.table.selectionModel().selectionChanged.connect(self._table_selection_changed)
@@ -93,6 +98,7 @@ class MainWindow(QMainWindow):
         self.document.subscribe(self._on_document)
         self._syncing_selection = False
         self._restore_state()
+        self._build_analysis()
 
     # ------------------------------------------------------------------ menus
     def _action(self, menu, text, slot, shortcut=None, checkable=False, checked=False, tip=""):
@@ -120,6 +126,12 @@ class MainWindow(QMainWindow):
         self._action(f, "&Paste table", self.paste_table, "Ctrl+Shift+V",
                      tip="Read a table copied from a spreadsheet")
         f.addSeparator()
+        self._action(f, "Open s&ession...", self.sessions.open_dialog, "Ctrl+Alt+O")
+        self._action(f, "&Save session", self.sessions.save, QKeySequence.Save)
+        self._action(f, "Save session &as...", self.sessions.save_as, QKeySequence.SaveAs)
+        f.addSeparator()
+        self.reports.add_export_menu(f)
+        f.addSeparator()
         self._action(f, "&Quit", self.close, QKeySequence.Quit)
 
         e = mb.addMenu("&Edit")
@@ -138,6 +150,7 @@ class MainWindow(QMainWindow):
                                           checkable=True, checked=False)
         e.addSeparator()
         self._action(e, "&Copy estimates", self.copy_estimates, "Ctrl+Shift+C")
+        self.reports.add_copy_menu(e)
 
         v = mb.addMenu("&View")
         self.band_action = self._action(v, "Confidence &band", self.plot.set_band_visible, "Ctrl+B",
@@ -195,9 +208,13 @@ class MainWindow(QMainWindow):
         s.sync()
 
     def closeEvent(self, ev):
+        if not self.sessions.confirm_close():
+            ev.ignore()
+            return
         self.save_state()
         self.runner.enabled = False
         self.runner.wait(5000)
+        self._shutdown_analysis()
         super().closeEvent(ev)
 
     def recent_files(self) -> list[str]:
@@ -242,6 +259,8 @@ class MainWindow(QMainWindow):
         """Read a file and show it. On any problem an error box; the data stay as they were."""
         import fitcore
 
+        if str(path).lower().endswith(".ballast"):
+            return self.sessions.open_session(path)
         try:
             table = fitcore.read_table(path)
         except (ValueError, OSError) as err:
@@ -387,13 +406,8 @@ class MainWindow(QMainWindow):
         self._set_selected(None)
 
     def copy_estimates(self):
-        text = self.estimates.plain_text()
-        if not text:
-            self.statusBar().showMessage("No estimates to copy yet.", 4000)
-            return ""
-        QGuiApplication.clipboard().setText(text)
-        self.statusBar().showMessage("Estimates copied to the clipboard.", 4000)
-        return text
+        """Copy the estimates as plain text plus HTML (one clipboard item)."""
+        return self.reports.copy("default")
 
     def about(self):
         QMessageBox.about(self, "About Ballast",
@@ -410,6 +424,95 @@ class MainWindow(QMainWindow):
             "Delete / Insert / Ctrl+T: exclude / restore / toggle the selected points.\n"
             "Ctrl+Z / Ctrl+Shift+Z: undo / redo.  Ctrl+Shift+C: copy estimates.\n"
             "Ctrl+B band, Ctrl+L / Ctrl+Shift+L log axes, Ctrl+M box mode, F5 refit.")
+
+    # ------------------------------------------------------------------ analysis
+    def _build_analysis(self):
+        """Loss comparison, point diagnostics and bootstrap (issue 6): menu, dock, note."""
+        from PySide6.QtGui import QActionGroup
+
+        from .compare_view import CompareDock
+        from .diagnostics_view import DiagnosticsController
+
+        self.compare_dock = CompareDock(self.document, self.plot, self)
+        self.compare_dock.setAllowedAreas(Qt.BottomDockWidgetArea | Qt.TopDockWidgetArea)
+        self.addDockWidget(Qt.BottomDockWidgetArea, self.compare_dock)
+        self.compare_dock.hide()
+        self.compare_view = self.compare_dock.view
+        self.diag_note = QLabel("")
+        self.diag_note.setWordWrap(True)
+        self.diag_note.setVisible(False)
+        self.estimates.layout().insertWidget(1, self.diag_note)
+        self.diagnostics = DiagnosticsController(self.document, self.points_model, self.plot,
+                                                 self.diag_note, parent=self)
+        self.last_bootstrap = None  # BootstrapRecord of the last finished bootstrap
+        self.bootstrap_dialog = None
+
+        menu = self.menuBar().addMenu("&Analyse")
+        help_menu = next((a for a in self.menuBar().actions() if a.text() == "&Help"), None)
+        if help_menu is not None:
+            self.menuBar().insertMenu(help_menu, menu)
+        self.compare_action = self._action(menu, "Loss &comparison...", self.show_comparison, "F6",
+                                           tip="Fit under several losses side by side")
+        self.diag_action = self._action(menu, "Point &diagnostics", self.diagnostics.set_enabled, "F7",
+                                        checkable=True,
+                                        tip="Leverage, standardised residual and influence columns")
+        colour = menu.addMenu("Colour points &by")
+        group = QActionGroup(self)
+        group.setExclusive(True)
+        self.colour_actions = {}
+        for mode, text in (("none", "&Weight only"), ("leverage", "&Leverage"),
+                           ("influence", "&Influence")):
+            act = QAction(text, self)
+            act.setCheckable(True)
+            act.setChecked(mode == "none")
+            act.triggered.connect(lambda _=False, m=mode: self.set_colour_mode(m))
+            group.addAction(act)
+            colour.addAction(act)
+            self.colour_actions[mode] = act
+        menu.addSeparator()
+        self._action(menu, "&Bootstrap intervals...", self.show_bootstrap, "F8",
+                     tip="Case or residual bootstrap percentile intervals")
+
+    def show_comparison(self):
+        """Open the loss comparison and run it for the ticked losses."""
+        self.compare_dock.show()
+        self.compare_dock.raise_()
+        if self.document.has_data:
+            self.compare_view.run()
+
+    def set_colour_mode(self, mode: str):
+        self.diagnostics.set_colour_mode(mode)
+        if mode != "none" and not self.diag_action.isChecked():
+            self.diag_action.setChecked(True)
+        self.colour_actions[mode].setChecked(True)
+
+    def show_bootstrap(self):
+        """Open the (non-modal) bootstrap dialog."""
+        if self.bootstrap_dialog is None:
+            from .bootstrap_dialog import BootstrapDialog
+
+            self.bootstrap_dialog = BootstrapDialog(self.document, self)
+            self.bootstrap_dialog.done.connect(self._bootstrap_done)
+        self.bootstrap_dialog.show()
+        self.bootstrap_dialog.raise_()
+        return self.bootstrap_dialog
+
+    def _bootstrap_done(self, record):
+        self.last_bootstrap = record
+
+    def current_bootstrap(self):
+        """The last bootstrap if it belongs to the result now shown, else None."""
+        rec = self.last_bootstrap
+        if rec is None or rec.result is not self.document.result or self.document.stale:
+            return None
+        return rec
+
+    def _shutdown_analysis(self):
+        if getattr(self, "compare_view", None) is not None:
+            self.compare_view.job.shutdown()
+            self.diagnostics.shutdown()
+        if getattr(self, "bootstrap_dialog", None) is not None:
+            self.bootstrap_dialog.job.shutdown()
 
 
 def first_sample_set():

@@ -1,0 +1,682 @@
+"""Getting results out of the window: copy formats, the report, CSV and plot exports.
+
+* :meth:`ReportExporter.copy` puts the estimates on the clipboard in one of the
+  formats of :func:`fitcore.report.estimates_text`; the HTML format (and the default
+  copy) carries both HTML and plain text, so a rich-text editor pastes a table and a
+  plain editor the text.
+* :meth:`ReportExporter.write_html` writes one self-contained HTML report (plots as
+  base64 PNG, estimates with uncertainties and intervals, correlation matrix, method
+  statement in plain words, exclusion record, points table with weights, caution);
+  :meth:`ReportExporter.write_pdf` prints the same report to PDF with Qt's own
+  printing (``QPrinter`` + ``QTextDocument``), no extra program needed.
+* :meth:`ReportExporter.write_curve_csv` / :meth:`write_points_csv` write the fitted
+  curve and band on a fine grid and the per-point residuals and weights;
+  :meth:`write_plot` writes the plot as PNG or SVG at a chosen size.
+
+File names and sizes are asked through module functions (:func:`ask_save_path`,
+:func:`ask_plot_size`) that tests replace. Nothing here changes the document, and the
+measurement file is never written: every export refuses to overwrite it.
+"""
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+from PySide6.QtCore import QBuffer, QByteArray, QIODevice, QMarginsF, QMimeData, QSizeF, Qt, QUrl
+from PySide6.QtGui import QGuiApplication, QImage, QPageLayout, QPageSize, QTextDocument
+from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
+
+from . import dialogs
+
+LEVEL = 0.95
+#: points in the curve/band CSV
+CURVE_POINTS = 1001
+#: rows of the points table printed in a report (the CSV export always has all)
+REPORT_MAX_ROWS = 2000
+#: default pixel size of the report's plot images
+REPORT_PLOT_SIZE = (900, 430)
+REPORT_RESID_SIZE = (900, 220)
+
+#: (key, menu text, fitcore format, full precision)
+COPY_FORMATS = (
+    ("plain", "&Plain text", "plain", False),
+    ("tsv", "&Tab-separated (spreadsheet)", "tsv", False),
+    ("tsv_full", "Tab-separated, &full precision", "tsv", True),
+    ("markdown", "&Markdown table", "markdown", False),
+    ("latex", "&LaTeX tabular", "latex", False),
+    ("siunitx", "LaTeX with &siunitx", "siunitx", False),
+    ("html", "&HTML and plain text (rich-text editors)", "html", False),
+)
+
+LEGEND = ("Filled circles: points used, their area proportional to the robust weight; "
+          "orange: down-weighted (weight below 0.5); hollow crossed red rings: excluded by "
+          "the analyst. Line: fitted curve; shaded: {pct} pointwise confidence band.")
+
+
+# ============================================================================ hooks
+def ask_save_path(parent, title: str, start: str, filt: str) -> str:
+    """A file name to write, or "" when cancelled (tests replace this function)."""
+    path, _ = QFileDialog.getSaveFileName(parent, title, start, filt)
+    return path
+
+
+def ask_plot_size(parent, width: int, height: int):
+    """``(width, height)`` in pixels for a plot export, or None (replaceable)."""
+    text, ok = QInputDialog.getText(parent, "Plot size", "Width x height in pixels:",
+                                    text=f"{width} x {height}")
+    if not ok:
+        return None
+    return parse_size(text)
+
+
+def parse_size(text: str):
+    """``"1200 x 800"`` (also ``1200x800``, ``1200,800``) -> ``(1200, 800)``."""
+    parts = [p for p in text.lower().replace("×", "x").replace(",", "x").replace("*", "x")
+             .split("x") if p.strip()]
+    if len(parts) != 2:
+        raise ValueError(f"give the size as width x height, e.g. 1200 x 800 (not {text!r})")
+    try:
+        w, h = (int(float(p)) for p in parts)
+    except ValueError:
+        raise ValueError(f"give the size as two whole numbers, e.g. 1200 x 800 (not {text!r})") \
+            from None
+    if not (16 <= w <= 20000 and 16 <= h <= 20000):
+        raise ValueError(f"a plot size must be between 16 and 20000 pixels a side (got {w} x {h})")
+    return w, h
+
+
+# ============================================================================ helpers
+def _h(s) -> str:
+    return html.escape(str(s), quote=True)
+
+
+def _g(x, digits: int = 6) -> str:
+    x = float(x)
+    if not math.isfinite(x):
+        return ""
+    return f"{x:.{digits}g}"
+
+
+def _loss_words(res) -> str:
+    name = str(res.loss)
+    if name == "l2":
+        return "least squares (no robust weighting)"
+    try:
+        from fitcore.losses import get_loss
+
+        kw = {"alpha": res.alpha} if name == "general" and res.alpha is not None else {}
+        title = get_loss(name, **kw).title or name
+    except Exception:  # noqa: BLE001 - the name alone still reads
+        title = name
+    text = f"the {title} loss"
+    if res.tuning is not None and math.isfinite(float(res.tuning)):
+        text += f" with tuning constant {float(res.tuning):.4g} × scale"
+    if res.alpha is not None:
+        how = "fitted" if name == "adaptive" else "chosen"
+        text += f", shape alpha = {float(res.alpha):.4g} ({how})"
+    return text
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+def method_statement(res, source: str = "", y_unit: str = "", level: float = LEVEL) -> str:
+    """How the estimates were obtained, in plain words (one paragraph of text)."""
+    m = res.model
+    model = m.title or m.name
+    if m.formula and m.formula != model:
+        model = f"{model}, {m.formula}"
+    n_total = len(res.x)
+    where = f" in {os.path.basename(source)}" if source else ""
+    parts = [f"The model ({model}) was fitted to {res.n_used} of the {n_total} points{where} "
+             f"by minimising {_loss_words(res)}."]
+    if res.sigma is not None and res.sigma_mode != "none":
+        parts.append("Each residual was divided by the standard uncertainty given for its y "
+                     + ("(taken as known, absolute)." if res.sigma_mode == "absolute"
+                        else "(taken as relative weights only)."))
+    unit = f" {y_unit}" if y_unit and (res.sigma is None or res.sigma_mode == "none") else ""
+    if res.loss != "l2":
+        parts.append(f"The residual scale was {float(res.scale):.4g}{unit} "
+                     f"({res.scale_method}).")
+    else:
+        parts.append(f"The residual standard deviation was {float(res.scale):.4g}{unit}.")
+    if res.n_excluded:
+        parts.append(f"{_plural(res.n_excluded, 'point')} "
+                     f"{'was' if res.n_excluded == 1 else 'were'} excluded by the analyst; "
+                     "each is listed with its reason and time in the exclusion record.")
+    else:
+        parts.append("No point was excluded by the analyst.")
+    if res.loss != "l2":
+        parts.append(f"The loss gave {_plural(res.n_downweighted, 'point')} a weight below 0.5.")
+    if res.fixed:
+        parts.append("Held at given values: "
+                     + ", ".join(f"{k} = {_g(v, 10)}" for k, v in res.fixed.items()) + ".")
+    t = res.t_quantile(level)
+    pct = f"{100 * level:.6g} %"
+    cov = res.covariance_recipe or "the default recipe"
+    if math.isfinite(t):
+        parts.append(f"Standard uncertainties come from the covariance ({cov}); intervals are "
+                     f"two-sided {pct} Student-t intervals with {res.dof} degrees of freedom "
+                     f"(t = {t:.4g}).")
+    else:
+        parts.append(f"Standard uncertainties come from the covariance ({cov}); no interval "
+                     "can be given (no degrees of freedom left).")
+    if not res.converged:
+        parts.append(f"WARNING: the fit did not converge ({res.message}).")
+    from fitcore import __version__
+
+    parts.append(f"Computed with Ballast {__version__}.")
+    return " ".join(parts)
+
+
+def _image_png_b64(img: QImage) -> str:
+    ba = QByteArray()
+    buf = QBuffer(ba)
+    buf.open(QIODevice.WriteOnly)
+    img.save(buf, "PNG")
+    buf.close()
+    return base64.b64encode(bytes(ba)).decode("ascii")
+
+
+def _same_file(a: str, b: str) -> bool:
+    try:
+        return bool(a) and os.path.exists(a) and os.path.exists(b) and os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def _table_part(estimates_html: str) -> str:
+    """The ``<table>`` of :func:`fitcore.report.estimates_text` html output."""
+    end = estimates_html.find("</table>")
+    return estimates_html[: end + len("</table>")] if end >= 0 else estimates_html
+
+
+def _bordered(table_html: str, cls: str = "") -> str:
+    attr = ' border="1" cellspacing="0" cellpadding="4"'
+    if cls:
+        attr += f' class="{cls}"'
+    return table_html.replace("<table>", f"<table{attr}>", 1)
+
+
+# ============================================================================ plot images
+class _ExportPlot:
+    """A hidden copy of the window's plot at an exact pixel size (same view and options)."""
+
+    def __init__(self, window, width: int, height: int):
+        from .plot_view import PlotView
+
+        src = window.plot
+        self.document = window.document
+        self.view = PlotView(self.document, lambda _cmd: None)
+        v = self.view
+        v.setAttribute(Qt.WA_DontShowOnScreen, True)
+        v.resize(int(width), int(height))
+        v.set_band_visible(getattr(src, "show_band", True))
+        if src.log_x or src.log_y:
+            v.set_log(log_x=src.log_x, log_y=src.log_y)
+        v.show()
+        QApplication.processEvents()
+        for a, b in ((src.data_plot, v.data_plot), (src.resid_plot, v.resid_plot)):
+            (x0, x1), (y0, y1) = a.vb.viewRange()
+            b.vb.setRange(xRange=(x0, x1), yRange=(y0, y1), padding=0)
+        QApplication.processEvents()
+
+    def image(self) -> QImage:
+        return self.view.grab().toImage()
+
+    def item_image(self, plot_item, width: int, height: int) -> QImage:
+        """One plot (data or residual) alone, ``width`` x ``height`` pixels."""
+        self.view.ci.removeItem(self.view.resid_plot if plot_item is self.view.data_plot
+                                else self.view.data_plot)
+        self.view.resize(int(width), int(height))
+        QApplication.processEvents()
+        return self.view.grab().toImage()
+
+    def close(self):
+        try:
+            self.document.unsubscribe(self.view._on_document)
+        finally:
+            self.view.hide()
+            self.view.deleteLater()
+
+
+def plot_image(window, width: int, height: int) -> QImage:
+    """The plot (data over residuals) as an image of exactly ``width`` x ``height`` px."""
+    ex = _ExportPlot(window, width, height)
+    try:
+        return ex.image()
+    finally:
+        ex.close()
+
+
+def _single_plot_image(window, which: str, width: int, height: int) -> QImage:
+    ex = _ExportPlot(window, width, height)
+    try:
+        item = ex.view.data_plot if which == "data" else ex.view.resid_plot
+        return ex.item_image(item, width, height)
+    finally:
+        ex.close()
+
+
+def write_plot_svg(window, path, width: int, height: int) -> None:
+    """The plot as SVG at ``width`` x ``height`` (pyqtgraph's SVG exporter)."""
+    from pyqtgraph.exporters import SVGExporter
+
+    ex = _ExportPlot(window, width, height)
+    try:
+        SVGExporter(ex.view.scene()).export(str(path))
+    finally:
+        ex.close()
+
+
+# ============================================================================ exporter
+class ReportExporter:
+    """Copy, report and export actions for one main window."""
+
+    def __init__(self, window):
+        self.window = window
+        self.document = window.document
+        self.last_dir = ""
+
+    # ------------------------------------------------------------------ common
+    def _status(self, text: str, ms: int = 6000):
+        self.window.statusBar().showMessage(text, ms)
+
+    def _result(self, action: str):
+        """The current result, or None (with a message) when there is none to use."""
+        runner = getattr(self.window, "runner", None)
+        if runner is not None:
+            runner.wait(30000)
+        doc = self.document
+        res = doc.result
+        if res is None:
+            self._status(f"No estimates to {action} yet.")
+            return None
+        if doc.stale or doc.result_generation != doc.generation:
+            dialogs.error_box(
+                self.window, "The estimates are out of date",
+                f"The last fit failed ({doc.fit_message or 'unknown reason'}); the estimates "
+                f"on screen belong to earlier settings. Change the method or undo, then "
+                f"{action} again.")
+            return None
+        return res
+
+    def _units(self):
+        m = self.document.measurements
+        return m.x_unit, m.y_unit
+
+    def _target(self, title: str, suffix: str, filt: str, path=None) -> str:
+        if path is None:
+            src = self.document.measurements.source
+            base = Path(src).stem if src and os.path.isfile(src) else "ballast"
+            folder = self.last_dir or (os.path.dirname(src) if src and os.path.isfile(src)
+                                       else str(Path.home()))
+            path = ask_save_path(self.window, title, os.path.join(folder, base + suffix), filt)
+            if not path:
+                return ""
+        path = str(path)
+        if not Path(path).suffix:
+            path += suffix[suffix.rfind("."):]
+        if _same_file(self.document.measurements.source, path):
+            dialogs.error_box(self.window, "Will not overwrite the data",
+                              f"{os.path.basename(path)} is the measurement file itself; "
+                              "exports never overwrite it. Choose another name.")
+            return ""
+        self.last_dir = os.path.dirname(os.path.abspath(path))
+        return path
+
+    def _write_text(self, path: str, text: str, what: str) -> bool:
+        from fitcore.session import _atomic_write
+
+        try:
+            _atomic_write(Path(path), text.encode("utf-8"))
+        except OSError as err:
+            dialogs.error_box(self.window, f"Cannot write the {what}",
+                              f"{path}: {err.strerror or err}")
+            return False
+        self._status(f"{what[:1].upper() + what[1:]} written to {path}.")
+        return True
+
+    # ------------------------------------------------------------------ copy
+    def estimates(self, fmt: str = "plain", full_precision: bool = False, res=None) -> str:
+        from fitcore.report import estimates_text
+
+        res = res if res is not None else self.document.result
+        x_unit, y_unit = self._units()
+        text = estimates_text(res, fmt, level=LEVEL, full_precision=full_precision,
+                              x_unit=x_unit, y_unit=y_unit)
+        if fmt == "html":
+            text = _bordered(text)
+        return text
+
+    def copy(self, key: str = "default") -> str:
+        """Copy the estimates in format ``key`` (see :data:`COPY_FORMATS`).
+
+        ``"default"``: plain text plus the same estimates as HTML, in one clipboard
+        item. Returns the plain text placed on the clipboard ("" when nothing).
+        """
+        res = self.document.result
+        if res is None:
+            self._status("No estimates to copy yet.")
+            return ""
+        mime = QMimeData()
+        if key in ("default", "html"):
+            text = self.estimates("plain", res=res)
+            mime.setText(text)
+            mime.setHtml(self.estimates("html", res=res))
+        else:
+            spec = {k: (f, full) for k, _t, f, full in COPY_FORMATS}
+            if key not in spec:
+                raise ValueError(f"unknown copy format {key!r}")
+            fmt, full = spec[key]
+            text = self.estimates(fmt, full, res=res)
+            mime.setText(text)
+        QGuiApplication.clipboard().setMimeData(mime)
+        note = " (stale: from earlier settings)" if self.document.stale else ""
+        self._status(f"Estimates copied to the clipboard{note}.")
+        return text
+
+    def add_copy_menu(self, menu):
+        """Fill a "Copy estimates as" sub-menu of ``menu``."""
+        from PySide6.QtGui import QAction
+
+        sub = menu.addMenu("Copy estimates &as")
+        for key, text, _f, _full in COPY_FORMATS:
+            act = QAction(text, self.window)
+            act.triggered.connect(lambda _=False, k=key: self.copy(k))
+            sub.addAction(act)
+        return sub
+
+    # ------------------------------------------------------------------ CSV
+    def curve_grid(self, n: int = CURVE_POINTS) -> np.ndarray:
+        m = self.document.measurements
+        xs = m.x[np.isfinite(m.x)]
+        lo, hi = float(xs.min()), float(xs.max())
+        plot = getattr(self.window, "plot", None)
+        if plot is not None and plot.log_x and lo > 0 and hi > lo:
+            return np.geomspace(lo, hi, n)
+        return np.linspace(lo, hi, n)
+
+    def write_curve_csv(self, path=None) -> str:
+        """Fitted curve and confidence band on a fine grid over the data's x range."""
+        from fitcore.report import curve_csv
+
+        res = self._result("export")
+        if res is None:
+            return ""
+        path = self._target("Export fitted curve and band", "-curve.csv", "CSV (*.csv)", path)
+        if not path:
+            return ""
+        x_unit, y_unit = self._units()
+        text = curve_csv(res, self.curve_grid(), LEVEL, x_unit=x_unit, y_unit=y_unit)
+        return path if self._write_text(path, text, "curve and band CSV") else ""
+
+    def write_points_csv(self, path=None) -> str:
+        """Per point: x, y, sigma, fitted, residual, std residual, weight, status, reason."""
+        from fitcore.report import points_csv
+
+        res = self._result("export")
+        if res is None:
+            return ""
+        path = self._target("Export residuals and weights", "-points.csv", "CSV (*.csv)", path)
+        if not path:
+            return ""
+        x_unit, y_unit = self._units()
+        reasons = {i: r for i, r, _t in self.document.exclusion_record()}
+        text = points_csv(res, reasons, x_unit=x_unit, y_unit=y_unit)
+        return path if self._write_text(path, text, "points CSV") else ""
+
+    # ------------------------------------------------------------------ plot
+    def write_plot(self, path=None, size=None, fmt: str | None = None) -> str:
+        """The plot as PNG or SVG (by ``fmt`` or the file's suffix) at ``size`` px."""
+        if not self.document.has_data:
+            self._status("No plot to export yet.")
+            return ""
+        plot = self.window.plot
+        if size is None:
+            try:
+                size = ask_plot_size(self.window, max(plot.width(), 200), max(plot.height(), 150))
+            except ValueError as err:
+                dialogs.error_box(self.window, "Plot size", str(err))
+                return ""
+            if size is None:
+                return ""
+        w, h = size
+        path = self._target("Export plot", ".png", "PNG image (*.png);;SVG drawing (*.svg)", path)
+        if not path:
+            return ""
+        fmt = (fmt or Path(path).suffix.lstrip(".") or "png").lower()
+        try:
+            if fmt == "svg":
+                write_plot_svg(self.window, path, w, h)
+            elif fmt == "png":
+                img = plot_image(self.window, w, h)
+                if not img.save(path, "PNG"):
+                    raise OSError(f"could not write {path}")
+            else:
+                raise ValueError(f"plots are exported as .png or .svg, not .{fmt}")
+        except (OSError, ValueError) as err:
+            dialogs.error_box(self.window, "Cannot export the plot", str(err))
+            return ""
+        self._status(f"Plot ({w} x {h} px) written to {path}.")
+        return path
+
+    # ------------------------------------------------------------------ report
+    def report_html(self, res=None, images: str = "embed", resources: dict | None = None) -> str:
+        """The report as HTML text.
+
+        ``images="embed"``: plots as base64 ``data:`` URLs (a self-contained file).
+        ``images="resource"``: plots referenced as ``report:plot.png`` and
+        ``report:residuals.png`` and their images put into ``resources`` (for
+        ``QTextDocument``, which prints the PDF).
+        """
+        import fitcore
+        from fitcore.report import CAUTION, correlation_text, method_lines, point_status
+
+        res = res if res is not None else self.document.result
+        doc = self.document
+        m = doc.measurements
+        x_unit, y_unit = self._units()
+        pct = f"{100 * LEVEL:.6g} %"
+        sessions = getattr(self.window, "sessions", None)
+        sha = getattr(sessions, "source_sha256", "") if sessions is not None else ""
+        session_path = getattr(sessions, "path", None) if sessions is not None else None
+        now = _dt.datetime.now().astimezone().isoformat(timespec="seconds")
+        src = m.source or "(not from a file)"
+
+        imgs = {"plot": _single_plot_image(self.window, "data", *REPORT_PLOT_SIZE),
+                "residuals": _single_plot_image(self.window, "resid", *REPORT_RESID_SIZE)}
+
+        def img(key, alt):
+            im = imgs[key]
+            w = im.width()
+            if images == "embed":
+                url = "data:image/png;base64," + _image_png_b64(im)
+            else:
+                url = f"report:{key}.png"
+                if resources is not None:
+                    resources[url] = im
+            return f'<img src="{url}" width="{w}" alt="{_h(alt)}">'
+
+        out = [
+            "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+            f"<title>Ballast report: {_h(os.path.basename(src))}</title>",
+            "<style>",
+            "body{font-family:'DejaVu Sans',Helvetica,Arial,sans-serif;font-size:10pt;"
+            "color:#1a1a1a;max-width:960px;margin:1.5em auto;padding:0 1em}",
+            "h1{font-size:17pt;margin-bottom:0.2em} h2{font-size:12.5pt;margin-top:1.4em;"
+            "border-bottom:1px solid #999;padding-bottom:2px}",
+            "table{border-collapse:collapse;margin:0.4em 0} td,th{border:1px solid #aaa;"
+            "padding:2px 6px;text-align:left} th{background:#eef1f5}",
+            "td.num{text-align:right;font-variant-numeric:tabular-nums}",
+            ".meta td{border:none;padding:1px 8px 1px 0;vertical-align:top}",
+            ".caution{background:#fff6d6;border:1px solid #d9b44a;padding:6px 9px}",
+            ".small{font-size:8.5pt;color:#444} tr.excluded td{background:#ffece6}",
+            "tr.down td{background:#fff8dc}",
+            "</style></head><body>",
+            f"<h1>Fit report: {_h(os.path.basename(src))}</h1>",
+            '<table class="meta" cellpadding="1">',
+            f"<tr><td><b>Data</b></td><td>{_h(src)} ({m.n} points; x = {_h(m.label('x'))}, "
+            f"y = {_h(m.label('y'))}"
+            + (f", standard uncertainty of y = {_h(m.sigma_name)}" if m.sigma is not None else "")
+            + ")</td></tr>",
+        ]
+        if sha:
+            out.append(f"<tr><td><b>SHA-256</b></td><td><tt>{_h(sha)}</tt></td></tr>")
+        if session_path:
+            out.append(f"<tr><td><b>Session</b></td><td>{_h(session_path)}</td></tr>")
+        out += [f"<tr><td><b>Written</b></td><td>{_h(now)} by Ballast "
+                f"{_h(fitcore.__version__)}</td></tr>", "</table>",
+                f'<p class="caution"><b>Caution.</b> {_h(CAUTION)}</p>']
+
+        out += ["<h2>Plot</h2>", "<p>" + img("plot", "data, fitted curve and band") + "</p>",
+                "<p>" + img("residuals", "residuals") + "</p>",
+                f'<p class="small">{_h(LEGEND.format(pct=pct))} Lower panel: residuals '
+                "y − fitted.</p>"]
+
+        est = self.estimates("html", res=res)
+        out += ["<h2>Estimates</h2>",
+                f"<p class=\"small\">Value with its standard uncertainty in parentheses, in units "
+                f"of the last digit (GUM 7.2.2); {pct} confidence intervals.</p>",
+                _bordered(_table_part(est).replace("<td>", '<td class="num">'))]
+
+        out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, m.source, y_unit))}</p>",
+                '<table border="1" cellspacing="0" cellpadding="3">']
+        out += [f"<tr><th>{_h(k)}</th><td>{_h(v)}</td></tr>" for k, v in method_lines(
+            res, LEVEL, y_unit=y_unit)]
+        out.append("</table>")
+
+        free = [n for n in res.param_names if n not in res.fixed]
+        out.append("<h2>Correlation of the estimates</h2>")
+        if len(free) > 1:
+            out.append(_bordered(correlation_text(res, "html").replace("<td>", '<td class="num">')))
+        else:
+            out.append("<p>Only one free parameter: no correlations.</p>")
+
+        out.append("<h2>Exclusion record</h2>")
+        record = doc.exclusion_record()
+        if record:
+            out += ['<table border="1" cellspacing="0" cellpadding="3">',
+                    f"<tr><th>point</th><th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>"
+                    "<th>reason</th><th>when</th></tr>"]
+            for i, reason, when in record:
+                out.append(f'<tr><td class="num">{i + 1}</td><td class="num">{_g(m.x[i], 10)}</td>'
+                           f'<td class="num">{_g(m.y[i], 10)}</td>'
+                           f"<td>{_h(reason) if reason else '<i>no reason given</i>'}</td>"
+                           f"<td>{_h(when)}</td></tr>")
+            out.append("</table>")
+        else:
+            out.append("<p>No point was excluded.</p>")
+
+        out.append("<h2>Points</h2>")
+        status = point_status(res)
+        n = m.n
+        shown = min(n, REPORT_MAX_ROWS)
+        if shown < n:
+            out.append(f"<p class=\"small\">The first {shown} of {n} points; the points CSV "
+                       "export holds all of them.</p>")
+        sig_head = f"<th>u(y)</th>" if m.sigma is not None else ""
+        out += ['<table border="1" cellspacing="0" cellpadding="2" class="points">',
+                f"<tr><th>#</th><th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
+                "<th>fitted</th><th>residual</th><th>std. residual</th><th>weight</th>"
+                "<th>status</th><th>reason</th></tr>"]
+        reasons = doc.reasons
+        for i in range(shown):
+            cls = {"excluded": ' class="excluded" bgcolor="#ffece6"',
+                   "down-weighted": ' class="down" bgcolor="#fff8dc"'}.get(status[i], "")
+            sig = f'<td class="num">{_g(m.sigma[i])}</td>' if m.sigma is not None else ""
+            out.append(
+                f'<tr{cls}><td class="num">{i + 1}</td><td class="num">{_g(m.x[i])}</td>'
+                f'<td class="num">{_g(m.y[i])}</td>{sig}<td class="num">{_g(res.fitted[i])}</td>'
+                f'<td class="num">{_g(res.residuals[i], 4)}</td>'
+                f'<td class="num">{_g(res.std_residuals[i], 3)}</td>'
+                f'<td class="num">{float(res.weights[i]):.3f}</td><td>{status[i]}</td>'
+                f"<td>{_h(reasons[i]) if status[i] == 'excluded' else ''}</td></tr>")
+        out.append("</table>")
+        out += [f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
+                "</body></html>"]
+        return "\n".join(out) + "\n"
+
+    def write_html(self, path=None) -> str:
+        res = self._result("write a report")
+        if res is None:
+            return ""
+        path = self._target("Write report (HTML)", "-report.html", "HTML (*.html *.htm)", path)
+        if not path:
+            return ""
+        return path if self._write_text(path, self.report_html(res), "report") else ""
+
+    def text_document(self, res=None) -> QTextDocument:
+        """The report as a ``QTextDocument`` (what the PDF prints)."""
+        resources: dict = {}
+        text = self.report_html(res, images="resource", resources=resources)
+        tdoc = QTextDocument()
+        tdoc.setDefaultStyleSheet("")
+        for url, im in resources.items():
+            tdoc.addResource(QTextDocument.ImageResource, QUrl(url), im)
+        tdoc.setHtml(text)
+        return tdoc
+
+    def write_pdf(self, path=None) -> str:
+        """The report as PDF through Qt's printing (A4, no external program)."""
+        from PySide6.QtPrintSupport import QPrinter
+
+        res = self._result("write a report")
+        if res is None:
+            return ""
+        path = self._target("Write report (PDF)", "-report.pdf", "PDF (*.pdf)", path)
+        if not path:
+            return ""
+        tmp = path + ".part"
+        try:
+            printer = QPrinter(QPrinter.HighResolution)
+            printer.setOutputFormat(QPrinter.PdfFormat)
+            printer.setOutputFileName(tmp)
+            printer.setPageLayout(QPageLayout(QPageSize(QPageSize.A4), QPageLayout.Portrait,
+                                              QMarginsF(16, 14, 16, 14), QPageLayout.Millimeter))
+            printer.setDocName("Ballast report")
+            printer.setCreator("Ballast")
+            tdoc = self.text_document(res)
+            # lay the page out at a screen-like width so the 900 px plots fit the page
+            tdoc.setPageSize(QSizeF(960, 960 * 297 / 210))
+            tdoc.print_(printer)
+            del printer
+            if not os.path.isfile(tmp) or os.path.getsize(tmp) == 0:
+                raise OSError("Qt's PDF printer wrote nothing")
+            os.replace(tmp, path)
+        except OSError as err:
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass
+            dialogs.error_box(self.window, "Cannot write the PDF report", f"{path}: {err}")
+            return ""
+        self._status(f"PDF report written to {path}.")
+        return path
+
+    def add_export_menu(self, menu):
+        """Fill an "Export" sub-menu and the report actions into ``menu``."""
+        from PySide6.QtGui import QAction, QKeySequence
+
+        def act(m, text, slot, shortcut=None):
+            a = QAction(text, self.window)
+            if shortcut:
+                a.setShortcut(QKeySequence(shortcut))
+            a.triggered.connect(lambda _=False: slot())
+            m.addAction(a)
+            self.window.addAction(a)
+            return a
+
+        act(menu, "Write &report (HTML)...", self.write_html, "Ctrl+R")
+        act(menu, "Write report as P&DF...", self.write_pdf, "Ctrl+Shift+R")
+        sub = menu.addMenu("E&xport")
+        act(sub, "Fitted &curve and band (CSV)...", self.write_curve_csv)
+        act(sub, "&Residuals and weights per point (CSV)...", self.write_points_csv)
+        act(sub, "&Plot as PNG or SVG...", self.write_plot)
+        return sub

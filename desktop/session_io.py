@@ -1,0 +1,464 @@
+"""Sessions in the window: save, save as, open, autosave and crash recovery.
+
+A session (``.ballast`` file, versioned JSON written by :mod:`fitcore.session`) keeps
+the measurements with the source file's name and SHA-256, the column choice, the
+method, the exclusion record (reason and time per point) and the last result.
+
+:class:`SessionManager` belongs to one main window. It
+
+* turns the window's document into a :class:`fitcore.session.Session` and back
+  (:func:`document_to_session`, :func:`apply_session`);
+* saves atomically (fitcore writes a temporary file, fsyncs and renames);
+* after every change to the work, waits until the changes pause
+  (``autosave_ms``) and writes a recovery file into the recovery folder;
+* at start (:meth:`SessionManager.offer_recovery`, called by the entry point) offers
+  to restore work that a crash left behind;
+* after opening a session, refits and checks that the estimates equal the stored
+  ones bit for bit, and says so if they do not (e.g. a session from another version).
+
+Questions to the user go through module functions (:func:`ask_restore`,
+:func:`ask_unsaved`) so tests can replace them and no modal dialog blocks a test.
+A session that cannot be read leaves the current work exactly as it was.
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+from PySide6.QtCore import QObject, QStandardPaths, QTimer
+from PySide6.QtWidgets import QFileDialog, QMessageBox
+
+from . import dialogs
+from .document import MaskChange, Measurements, Settings
+
+SESSION_FILTER = "Ballast sessions (*.ballast);;All files (*)"
+#: quiet time after the last change before the recovery file is written
+AUTOSAVE_MS = 2000
+#: environment variable that overrides the recovery folder
+RECOVERY_ENV = "BALLAST_RECOVERY_DIR"
+
+
+# ============================================================================ hooks
+def ask_restore(parent, text: str) -> bool:
+    """Ask whether to restore autosaved work (tests replace this function)."""
+    box = QMessageBox(QMessageBox.Question, "Recover unsaved work", text,
+                      QMessageBox.Yes | QMessageBox.No, parent)
+    box.button(QMessageBox.Yes).setText("Restore")
+    box.button(QMessageBox.No).setText("Discard")
+    box.setDefaultButton(QMessageBox.Yes)
+    return box.exec() == QMessageBox.Yes
+
+
+def ask_unsaved(parent, text: str) -> str:
+    """``"save"``, ``"discard"`` or ``"cancel"`` for unsaved work at close (replaceable)."""
+    r = QMessageBox.question(parent, "Unsaved work", text,
+                             QMessageBox.Save | QMessageBox.Discard | QMessageBox.Cancel,
+                             QMessageBox.Save)
+    return {QMessageBox.Save: "save", QMessageBox.Discard: "discard"}.get(r, "cancel")
+
+
+def ask_save_path(parent, start: str) -> str:
+    """A path to save a session to, or "" when cancelled (replaceable)."""
+    path, _ = QFileDialog.getSaveFileName(parent, "Save session", start, SESSION_FILTER)
+    return path
+
+
+def ask_open_path(parent, start: str) -> str:
+    """A session file to open, or "" when cancelled (replaceable)."""
+    path, _ = QFileDialog.getOpenFileName(parent, "Open session", start, SESSION_FILTER)
+    return path
+
+
+def default_recovery_dir(qsettings=None) -> Path:
+    """Where recovery files go.
+
+    ``$BALLAST_RECOVERY_DIR`` if set; else, for a window given its own settings file
+    (tests, portable use), a ``recovery`` folder beside that file; else the
+    application's local data folder (``QStandardPaths.AppLocalDataLocation``).
+    """
+    env = os.environ.get(RECOVERY_ENV, "").strip()
+    if env:
+        return Path(env)
+    if qsettings is not None and qsettings.fileName():
+        return Path(qsettings.fileName()).resolve().parent / "recovery"
+    base = QStandardPaths.writableLocation(QStandardPaths.AppLocalDataLocation)
+    return Path(base or Path.home() / ".ballast") / "recovery"
+
+
+# ============================================================================ conversion
+def document_to_session(doc, *, source_sha256: str = "", include_result: bool = True):
+    """A :class:`fitcore.session.Session` holding what the document holds.
+
+    The last result is stored only when it belongs to the current inputs (not stale),
+    so a reopened session never shows estimates from other inputs.
+    """
+    from fitcore.session import Exclusion, Method, Session
+
+    m = doc.measurements
+    s = doc.settings
+    method = Method(
+        model=s.model, model_kind=s.model_kind, loss=s.loss,
+        scale=s.scale if s.scale == "auto" else float(s.scale),
+        alpha=float(s.alpha) if s.loss == "general" else None,
+        fixed=dict(s.fixed), p0=dict(s.p0) or None, sigma_mode="absolute",
+    )
+    session = Session(
+        x=m.x.copy(), y=m.y.copy(), sigma=None if m.sigma is None else m.sigma.copy(),
+        names={"x": m.x_name, "y": m.y_name, "sigma": m.sigma_name or ""},
+        units={"x": m.x_unit, "y": m.y_unit},
+        source_file=str(m.source or ""), source_sha256=source_sha256,
+        columns={"x": m.x_name, "y": m.y_name, "sigma": m.sigma_name or None,
+                 "notes": list(m.notes)},
+        method=method,
+        exclusions=[Exclusion(i, r, t) for i, r, t in doc.exclusion_record()],
+    )
+    res = doc.result
+    if (include_result and res is not None and not doc.stale
+            and doc.result_generation == doc.generation and len(res.weights) == m.n):
+        session.store_result(res)
+    return session
+
+
+def session_settings(session) -> Settings:
+    """The window's method settings for a session's method."""
+    md = session.method
+    if md.model_options:
+        raise ValueError("this session's model has options the window cannot set "
+                         f"({', '.join(md.model_options)}); open it with fitcore.load_session")
+    if md.tuning is not None:
+        raise ValueError("this session uses its own tuning constant, which the window "
+                         "cannot set; open it with fitcore.load_session")
+    if session.sigma is not None and md.sigma_mode != "absolute":
+        raise ValueError(f"this session treats sigma as {md.sigma_mode!r}, which the window "
+                         "cannot set; open it with fitcore.load_session")
+    p0 = md.p0
+    if isinstance(p0, list):
+        raise ValueError("this session gives start values by position; the window needs them "
+                         "by name")
+    return Settings(model=md.model, model_kind=md.model_kind, loss=md.loss, scale=md.scale,
+                    alpha=1.0 if md.alpha is None else float(md.alpha)).with_(
+        fixed=dict(md.fixed), p0=dict(p0 or {}))
+
+
+def session_measurements(session) -> Measurements:
+    names = session.names or {}
+    units = session.units or {}
+    notes = session.columns.get("notes", []) if isinstance(session.columns, dict) else []
+    return Measurements(
+        session.x, session.y, session.sigma,
+        x_name=names.get("x", "x") or "x", y_name=names.get("y", "y") or "y",
+        sigma_name=names.get("sigma", "") or "", x_unit=units.get("x", ""),
+        y_unit=units.get("y", ""), source=session.source_file,
+        notes=tuple(str(n) for n in notes) if isinstance(notes, list) else (),
+    )
+
+
+def apply_session(doc, session) -> None:
+    """Put a session's data, method and exclusion record into the document.
+
+    Everything is checked first (a session the window cannot show raises
+    ``ValueError`` and the document is untouched).
+    """
+    settings = session_settings(session)
+    m = session_measurements(session)
+    doc.apply_measurements(m, settings=settings)
+    if session.exclusions:
+        ex = sorted(session.exclusions, key=lambda e: e.index)
+        idx = np.array([e.index for e in ex], np.intp)
+        k = idx.size
+        change = MaskChange(idx, np.zeros(k, bool), np.ones(k, bool),
+                            [""] * k, [e.reason for e in ex], [""] * k, [e.time for e in ex])
+        doc.apply_mask_change(change)
+
+
+# ============================================================================ manager
+class SessionManager(QObject):
+    """Session files and autosave for one main window.
+
+    Parameters
+    ----------
+    window
+        The main window (its ``document``, ``runner``, ``undo_stack``, status bar).
+    recovery_dir
+        Folder for recovery files; default :func:`default_recovery_dir`.
+    autosave_ms
+        Quiet time after the last change before the recovery file is written.
+    """
+
+    def __init__(self, window, recovery_dir=None, autosave_ms: int = AUTOSAVE_MS, qsettings=None):
+        super().__init__(window)
+        self.window = window
+        self.document = window.document
+        self.recovery_dir = Path(recovery_dir) if recovery_dir else default_recovery_dir(qsettings)
+        self.path: str | None = None  # the session file the work belongs to
+        self.dirty = False
+        #: True in the program (entry point): ask before closing with unsaved work
+        self.interactive = False
+        self.source_sha256 = ""
+        self.last_recovery: Path | None = None
+        self.last_check: bool | None = None  # did the reopened session reproduce?
+        self._applying = False
+        self._verify = None  # (stored session, generation) awaiting the refit
+        self._timer = QTimer(self)
+        self._timer.setSingleShot(True)
+        self._timer.setInterval(int(autosave_ms))
+        self._timer.timeout.connect(self.autosave)
+        self.document.subscribe(self._on_document)
+
+    # ------------------------------------------------------------------ state
+    def _status(self, text: str, ms: int = 8000):
+        self.window.statusBar().showMessage(text, ms)
+
+    def _on_document(self, event, **info):
+        if event == "selection":
+            return
+        if event == "data" and not self._applying:
+            self.path = None  # new data: new, unsaved work
+            self.source_sha256 = self._hash_source(self.document.measurements.source)
+        if event == "result":
+            self._check_reproduced()
+        elif not self._applying:
+            self.dirty = True
+        if self.dirty and self.document.has_data and not self._applying:
+            self._timer.start()
+
+    @staticmethod
+    def _hash_source(source: str) -> str:
+        from fitcore.session import file_sha256
+
+        if source and os.path.isfile(source):
+            try:
+                return file_sha256(source)
+            except OSError:
+                return ""
+        return ""
+
+    def _title(self):
+        if self.path:
+            self.window.setWindowTitle(f"Ballast - {os.path.basename(self.path)}")
+
+    def current_session(self):
+        """The work as a :class:`fitcore.session.Session` (waits for a pending fit)."""
+        runner = getattr(self.window, "runner", None)
+        if runner is not None:
+            runner.wait(30000)
+        return document_to_session(self.document, source_sha256=self.source_sha256)
+
+    # ------------------------------------------------------------------ save
+    def save(self) -> bool:
+        """Save to the current session file (asks for one the first time)."""
+        if not self.path:
+            return self.save_as()
+        return self.save_to(self.path)
+
+    def save_as(self) -> bool:
+        start = self.path or self._suggest_name()
+        path = ask_save_path(self.window, start)
+        if not path:
+            return False
+        if not path.endswith(".ballast"):
+            path += ".ballast"
+        return self.save_to(path)
+
+    def _suggest_name(self) -> str:
+        src = self.document.measurements.source
+        if src and os.path.isfile(src):
+            return str(Path(src).with_suffix(".ballast"))
+        return str(Path.home() / "untitled.ballast")
+
+    def save_to(self, path) -> bool:
+        """Write the session to ``path`` atomically; a failure says why, loses nothing."""
+        from fitcore.session import SessionError, discard_recovery, recovery_path, save_session
+
+        if not self.document.has_data:
+            dialogs.error_box(self.window, "Nothing to save", "Open measurements first.")
+            return False
+        path = str(Path(path).expanduser().absolute())
+        src = self.document.measurements.source
+        if src and os.path.isfile(src) and os.path.exists(path) and os.path.samefile(src, path):
+            dialogs.error_box(self.window, "Cannot save the session",
+                              "That is the measurement file itself; a session never overwrites "
+                              "the data it was made from. Choose another name.")
+            return False
+        try:
+            save_session(path, self.current_session())
+        except (SessionError, OSError) as err:
+            dialogs.error_box(self.window, "Cannot save the session", str(err))
+            return False
+        old = self.path
+        self.path = path
+        self.dirty = False
+        self._timer.stop()
+        for p in {recovery_path(old, self.recovery_dir), recovery_path(None, self.recovery_dir),
+                  recovery_path(path, self.recovery_dir)}:
+            discard_recovery(p)
+        self._title()
+        add = getattr(self.window, "_add_recent", None)
+        if add is not None:
+            add(path)
+        self._status(f"Session saved to {path}.")
+        return True
+
+    # ------------------------------------------------------------------ open
+    def open_dialog(self) -> bool:
+        start = os.path.dirname(self.path) if self.path else str(Path.home())
+        path = ask_open_path(self.window, start)
+        return self.open_session(path) if path else False
+
+    def open_session(self, path) -> bool:
+        """Open a session file. A bad file: a clear message, the current work stays."""
+        from fitcore.session import SessionError, load_session
+
+        try:
+            session = load_session(path)
+        except SessionError as err:
+            dialogs.error_box(self.window, "Cannot open the session", str(err))
+            return False
+        if not self._show(session, f"{os.path.basename(str(path))}"):
+            return False
+        self.path = str(Path(path).expanduser().absolute())
+        self.dirty = False
+        self._timer.stop()
+        self._title()
+        add = getattr(self.window, "_add_recent", None)
+        if add is not None:
+            add(self.path)
+        return True
+
+    def _show(self, session, name: str) -> bool:
+        try:
+            session_settings(session)
+            session_measurements(session)
+        except ValueError as err:
+            dialogs.error_box(self.window, "Cannot open the session", f"{name}: {err}")
+            return False
+        win = self.window
+        runner = getattr(win, "runner", None)
+        was = runner.enabled if runner is not None else None
+        self._applying = True
+        try:
+            if runner is not None:
+                runner.enabled = False  # one fit after everything is in place
+            win.undo_stack.clear()
+            apply_session(self.document, session)
+        finally:
+            self._applying = False
+            if runner is not None:
+                runner.enabled = was
+        self.source_sha256 = session.source_sha256
+        panel = getattr(win, "method_panel", None)
+        if panel is not None:
+            panel._sync_from_document()
+        self._verify = (session, self.document.generation) if session.result else None
+        self.last_check = None
+        msg = f"Opened {name}: {session.n_points} points, {len(session.exclusions)} excluded"
+        if session.source_file:
+            msg += f" (data from {os.path.basename(session.source_file)})"
+        self._status(msg + ".")
+        if runner is not None:
+            runner.fit_now()
+        return True
+
+    def _check_reproduced(self):
+        if self._verify is None:
+            return
+        session, gen = self._verify
+        doc = self.document
+        if doc.generation != gen:
+            self._verify = None
+            return
+        if doc.result is None or doc.result_generation != gen:
+            if doc.fit_failed:
+                self._verify = None
+                self.last_check = False
+                dialogs.error_box(self.window, "Session refit failed",
+                                  f"The stored method no longer fits these data: {doc.fit_message}")
+            return
+        self._verify = None
+        self.last_check = session.reproduces(doc.result)
+        if not self.last_check:
+            made = session.ballast_version or "an unknown version"
+            from fitcore import __version__
+
+            dialogs.error_box(
+                self.window, "Estimates differ from the saved ones",
+                f"Refitting the saved data and method gives estimates that differ from those "
+                f"stored in the session (saved by Ballast {made}, this is Ballast {__version__}). "
+                "The window shows the new fit; the session file is unchanged.")
+
+    # ------------------------------------------------------------------ recovery
+    def autosave(self):
+        """Write the recovery file now (normally called by the debounce timer)."""
+        from fitcore.session import SessionError, write_recovery
+
+        if not self.document.has_data or not self.dirty:
+            return None
+        try:
+            session = document_to_session(self.document, source_sha256=self.source_sha256)
+            self.last_recovery = write_recovery(session, self.recovery_dir, for_path=self.path)
+        except (SessionError, OSError) as err:
+            self._status(f"Autosave failed: {err}", 15000)
+            return None
+        return self.last_recovery
+
+    def discard_recovery(self):
+        from fitcore.session import discard_recovery, recovery_path
+
+        self._timer.stop()
+        discard_recovery(recovery_path(self.path, self.recovery_dir))
+        if self.last_recovery is not None:
+            discard_recovery(self.last_recovery)
+
+    def offer_recovery(self) -> bool:
+        """Offer to restore work a crash left behind; True if restored.
+
+        The newest readable recovery file is offered. Declined: all recovery files are
+        removed. An unreadable one is reported and left in place for inspection.
+        """
+        from fitcore.session import SessionError, discard_recovery, find_recovery, load_session
+
+        files = find_recovery(self.recovery_dir)
+        if not files:
+            return False
+        newest = files[0]
+        try:
+            session = load_session(newest)
+        except SessionError as err:
+            dialogs.error_box(self.window, "Cannot read the recovery file",
+                              f"{err}\nThe file is left at {newest}.")
+            return False
+        what = (f"for {os.path.basename(session.saved_as)}" if session.saved_as
+                else "that was never saved")
+        src = os.path.basename(session.source_file) if session.source_file else "pasted data"
+        text = (f"Ballast found work {what}, autosaved at {session.created or 'an unknown time'} "
+                f"({session.n_points} points from {src}, {len(session.exclusions)} excluded). "
+                "It was probably left by a crash. Restore it?")
+        if not ask_restore(self.window, text):
+            for f in files:
+                discard_recovery(f)
+            return False
+        if not self._show(session, "recovered work"):
+            return False
+        self.path = session.saved_as or None
+        self.dirty = True  # recovered work is not saved yet
+        self._title()
+        self.autosave()  # keep it safe under its own name until saved
+        for f in files:
+            if self.last_recovery is None or f.resolve() != self.last_recovery.resolve():
+                discard_recovery(f)
+        return True
+
+    # ------------------------------------------------------------------ closing
+    def confirm_close(self) -> bool:
+        """True when the window may close. Interactive: asks about unsaved work."""
+        if self.interactive and self.dirty and self.document.has_data:
+            name = os.path.basename(self.path) if self.path else "this work"
+            answer = ask_unsaved(self.window, f"Save the changes to {name} as a session "
+                                 "before closing?")
+            if answer == "cancel":
+                return False
+            if answer == "save" and not self.save():
+                return False
+        self.discard_recovery()
+        return True
