@@ -1,0 +1,566 @@
+"""Loss comparison and the adaptive suggestion.
+
+The loss comparison fits the document's data and model under several losses in one
+action (``fitcore.compare.compare_losses``) in a background job, overlays one curve
+per loss in the data plot with a legend, and lists the estimates side by side with
+their standard uncertainties, the scale, alpha and the number of down-weighted
+points. Estimates that differ between two losses by more than their combined
+standard uncertainty are highlighted (the pairs come from ``cmp.differences()``).
+
+The adaptive suggestion shows the fitted shape alpha of the adaptive loss with its
+uncertainty, the profile negative log-likelihood over alpha in [0, 2] as a small
+plot, and the plain-language reading (``fitcore.compare.adaptive_reading``).
+
+Closing the comparison removes the overlays and brings back the single fit.
+"""
+from __future__ import annotations
+
+import html
+import inspect
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import Qt, Signal
+from PySide6.QtGui import QBrush, QColor, QFont
+from PySide6.QtWidgets import (
+    QCheckBox, QDockWidget, QGridLayout, QGroupBox, QHBoxLayout, QHeaderView, QLabel,
+    QProgressBar, QPushButton, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
+)
+
+from .document import Document
+from .estimates_view import fmt_value
+from .jobs import Job
+
+DEFAULT_LOSSES = ("l2", "huber", "cauchy", "tukey", "adaptive")
+#: our own pens: colour and dash pattern per loss (dash as well as hue, for
+#: readers who do not tell the colours apart)
+LOSS_PENS = {
+    "l2": ((70, 70, 70), Qt.DashLine),
+    "l1": ((130, 85, 30), Qt.DashDotLine),
+    "huber": ((31, 92, 170), Qt.SolidLine),
+    "pseudo_huber": ((95, 160, 215), Qt.DotLine),
+    "cauchy": ((214, 120, 0), Qt.SolidLine),
+    "geman_mcclure": ((150, 150, 20), Qt.DashDotLine),
+    "welsch": ((190, 55, 55), Qt.DotLine),
+    "tukey": ((0, 135, 105), Qt.DashLine),
+    "general": ((105, 60, 175), Qt.DashDotDotLine),
+    "adaptive": ((165, 35, 140), Qt.SolidLine),
+}
+DIFF_BG = QBrush(QColor(255, 221, 214))
+FAIL_FG = QBrush(QColor(180, 35, 24))
+#: role holding the raw number behind a table cell (tests and copying)
+VALUE_ROLE = Qt.UserRole + 7
+
+
+def loss_pen(name: str, width: float = 2.0):
+    rgb, style = LOSS_PENS.get(name, ((60, 60, 60), Qt.SolidLine))
+    return pg.mkPen(*rgb, width=width, style=style)
+
+
+def _loss_names() -> tuple[str, ...]:
+    try:
+        import fitcore
+
+        return tuple(fitcore.LOSS_NAMES)
+    except Exception:  # noqa: BLE001
+        return DEFAULT_LOSSES
+
+
+def _loss_title(name: str) -> str:
+    try:
+        from fitcore.losses import LOSS_TITLES
+
+        return LOSS_TITLES.get(name, name)
+    except Exception:  # noqa: BLE001
+        return name
+
+
+class _Flag:
+    """A cancel flag both callable (``flag()``) and event-like (``flag.is_set()``)."""
+
+    def __init__(self, fn):
+        self._fn = fn
+
+    def __call__(self) -> bool:
+        return bool(self._fn())
+
+    def is_set(self) -> bool:
+        return bool(self._fn())
+
+    def __bool__(self) -> bool:
+        return bool(self._fn())
+
+
+def _accepts(fn, name: str) -> bool:
+    try:
+        sig = inspect.signature(fn)
+    except (TypeError, ValueError):
+        return False
+    return name in sig.parameters or any(p.kind == p.VAR_KEYWORD for p in sig.parameters.values())
+
+
+def comparison_request(document: Document, losses) -> dict:
+    """Copies of everything one comparison needs (safe to hand to a worker)."""
+    req = document.fit_request()
+    kw = dict(req["kwargs"])
+    kw.pop("loss", None)
+    if "general" not in losses:
+        kw.pop("alpha", None)
+    else:
+        kw["alpha"] = float(document.settings.alpha)
+    kw["sigma"] = req["sigma"]
+    kw["excluded"] = req["excluded"]
+    return {"model": req["model"], "x": req["x"], "y": req["y"], "kwargs": kw,
+            "losses": tuple(losses), "generation": req["generation"]}
+
+
+def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: bool = True):
+    """``(cmp, reading or None, reading error or None)`` for one request (worker side)."""
+    from fitcore.compare import adaptive_reading, compare_losses
+
+    kw = dict(request["kwargs"])
+    flag = _Flag(cancel) if cancel is not None else None
+    cmp = compare_losses(request["model"], request["x"], request["y"], losses=request["losses"],
+                         progress=progress, cancel=flag, **kw)
+    reading, err = None, None
+    if with_adaptive and not getattr(cmp, "cancelled", False) and not (flag and flag()):
+        akw = {k: v for k, v in kw.items() if k != "alpha"}
+        extra = {}
+        if _accepts(adaptive_reading, "cancel"):
+            extra["cancel"] = flag
+        done = {k: cmp.results.get(k) for k in ("l2", "adaptive") if cmp.results.get(k) is not None}
+        if done:
+            extra["fits"] = done
+        try:
+            reading = adaptive_reading(request["model"], request["x"], request["y"], **akw, **extra)
+        except ValueError as e:  # FitError and friends: the comparison still stands
+            err = str(e)
+    return cmp, reading, err
+
+
+class AdaptivePanel(QGroupBox):
+    """Fitted alpha with uncertainty, the profile NLL over alpha and the reading."""
+
+    def __init__(self, parent=None):
+        super().__init__("Adaptive suggestion", parent)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(6, 6, 6, 6)
+        self.alpha_label = QLabel("alpha: -")
+        f = QFont()
+        f.setBold(True)
+        self.alpha_label.setFont(f)
+        lay.addWidget(self.alpha_label)
+        self.plot = pg.PlotWidget(background="w")
+        self.plot.setMinimumHeight(120)
+        self.plot.setMaximumHeight(170)
+        self.plot.setMenuEnabled(False)
+        self.plot.setMouseEnabled(False, False)
+        self.plot.hideButtons()
+        pi = self.plot.getPlotItem()
+        pi.setLabel("bottom", "shape alpha")
+        pi.setLabel("left", "NLL - min")
+        pi.showGrid(x=True, y=True, alpha=0.15)
+        self.interval = pg.LinearRegionItem(movable=False, brush=pg.mkBrush(165, 35, 140, 35),
+                                            pen=pg.mkPen(None))
+        self.plot.addItem(self.interval)
+        self.curve = self.plot.plot(pen=pg.mkPen(165, 35, 140, width=2), symbol="o", symbolSize=4,
+                                    symbolBrush=(165, 35, 140), symbolPen=None)
+        self.cut = pg.InfiniteLine(pos=1.92, angle=0, pen=pg.mkPen(120, 120, 120, style=Qt.DotLine))
+        self.mark = pg.InfiniteLine(pos=1.0, angle=90, pen=pg.mkPen(165, 35, 140, style=Qt.DashLine))
+        self.plot.addItem(self.cut)
+        self.plot.addItem(self.mark)
+        self.plot.setXRange(0, 2, padding=0.02)
+        lay.addWidget(self.plot)
+        self.reading = QLabel("")
+        self.reading.setWordWrap(True)
+        self.reading.setTextInteractionFlags(Qt.TextSelectableByMouse)
+        lay.addWidget(self.reading)
+        self.value = None
+        self.clear()
+
+    def clear(self, text: str = "Run the loss comparison to see the suggestion."):
+        self.value = None
+        self.alpha_label.setText("alpha: -")
+        self.curve.setData([], [])
+        self.interval.setVisible(False)
+        self.mark.setVisible(False)
+        self.reading.setText(text)
+
+    def show_reading(self, reading):
+        """Show an ``adaptive_reading`` result."""
+        self.value = reading
+        a, u = float(reading.alpha), reading.alpha_u
+        if u is not None and np.isfinite(u) and u > 0:
+            self.alpha_label.setText(f"alpha = {fmt_value(a, float(u))}")
+        else:
+            self.alpha_label.setText(f"alpha = {a:.3g}")
+        prof = getattr(reading, "profile", None)
+        if prof is not None and len(prof) >= 2:
+            al, nll = np.asarray(prof[0], float), np.asarray(prof[1], float)
+            ok = np.isfinite(al) & np.isfinite(nll)
+            if ok.any():
+                d = nll[ok] - np.min(nll[ok])
+                self.curve.setData(al[ok], d)
+                top = float(min(max(np.max(d), 2.5), 30.0))
+                self.plot.setYRange(0, top, padding=0.05)
+        iv = getattr(reading, "interval", None)
+        if iv is not None and len(iv) == 2 and np.all(np.isfinite(iv)):
+            self.interval.setRegion((float(iv[0]), float(iv[1])))
+            self.interval.setVisible(True)
+        else:
+            self.interval.setVisible(False)
+        self.mark.setPos(a)
+        self.mark.setVisible(True)
+        text = html.escape(str(reading.text))
+        if iv is not None and len(iv) == 2:
+            text += (f"<br><span style='color:#555'>approx. 95% interval for alpha: "
+                     f"[{float(iv[0]):.3g}, {float(iv[1]):.3g}] (profile likelihood)</span>")
+        self.reading.setText(text)
+
+
+class CompareView(QWidget):
+    """Loss choice, run/cancel, the side-by-side table and the adaptive suggestion.
+
+    Parameters
+    ----------
+    document
+        The document compared.
+    plot
+        The :class:`~desktop.plot_view.PlotView` that receives the overlay curves.
+    """
+
+    #: the comparison was closed (the single fit is back)
+    closed = Signal()
+    #: a comparison finished and is shown
+    shown = Signal()
+
+    def __init__(self, document: Document, plot, parent=None):
+        super().__init__(parent)
+        self.document = document
+        self.plot = plot
+        self.job = Job(self)
+        self.job.progress.connect(self._on_progress)
+        self.job.finished.connect(self._on_finished)
+        self.job.failed.connect(self._on_failed)
+        self.job.cancelled.connect(self._on_cancelled)
+        self.comparison = None
+        self.reading = None
+        self.generation = -1
+        self.curves: dict[str, pg.PlotCurveItem] = {}
+        self.legend = None
+
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(4, 4, 4, 4)
+        box = QGroupBox("Losses to compare")
+        grid = QGridLayout(box)
+        grid.setContentsMargins(6, 4, 6, 4)
+        self.checks: dict[str, QCheckBox] = {}
+        for k, name in enumerate(_loss_names()):
+            cb = QCheckBox(_loss_title(name))
+            cb.setChecked(name in DEFAULT_LOSSES)
+            cb.setToolTip(name)
+            self.checks[name] = cb
+            grid.addWidget(cb, k // 5, k % 5)
+        lay.addWidget(box)
+        row = QHBoxLayout()
+        self.run_button = QPushButton("Compare")
+        self.run_button.setToolTip("Fit the data under every ticked loss")
+        self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.setEnabled(False)
+        self.close_button = QPushButton("Close comparison")
+        self.close_button.setToolTip("Remove the comparison curves and return to the single fit")
+        self.progress = QProgressBar()
+        self.progress.setTextVisible(True)
+        self.progress.setRange(0, 1)
+        self.progress.setValue(0)
+        self.status = QLabel("")
+        self.status.setWordWrap(True)
+        for w in (self.run_button, self.cancel_button, self.progress, self.close_button):
+            row.addWidget(w)
+        lay.addLayout(row)
+        lay.addWidget(self.status)
+
+        split = QSplitter(Qt.Horizontal)
+        self.table = QTableWidget(0, 0)
+        self.table.setEditTriggers(QTableWidget.NoEditTriggers)
+        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+        self.table.verticalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+        split.addWidget(self.table)
+        self.adaptive = AdaptivePanel()
+        split.addWidget(self.adaptive)
+        split.setStretchFactor(0, 3)
+        split.setStretchFactor(1, 2)
+        lay.addWidget(split, 1)
+
+        self.run_button.clicked.connect(self.run)
+        self.cancel_button.clicked.connect(self.cancel)
+        self.close_button.clicked.connect(self.close_comparison)
+        document.subscribe(self._on_document)
+        if hasattr(plot, "axes_changed"):
+            plot.axes_changed.connect(self._draw_curves)
+
+    # ------------------------------------------------------------------ running
+    def chosen_losses(self) -> tuple[str, ...]:
+        return tuple(n for n, cb in self.checks.items() if cb.isChecked())
+
+    def run(self) -> bool:
+        """Start a comparison of the ticked losses (False when it cannot start)."""
+        doc = self.document
+        if not doc.has_data:
+            self.status.setText("No data: open a file or a sample set first.")
+            return False
+        losses = self.chosen_losses()
+        if not losses:
+            self.status.setText("Tick at least one loss.")
+            return False
+        req = comparison_request(doc, losses)
+        self._pending_generation = req["generation"]
+        self.progress.setRange(0, 0)  # busy until the first progress report
+        self.run_button.setEnabled(False)
+        self.cancel_button.setEnabled(True)
+        self.status.setText(f"Fitting {len(losses)} losses...")
+        self.job.start(lambda progress, cancel: run_comparison(req, progress, cancel))
+        return True
+
+    def cancel(self):
+        if self.job.running:
+            self.status.setText("Cancelling...")
+            self.job.cancel()
+
+    def _idle(self):
+        self.run_button.setEnabled(True)
+        self.cancel_button.setEnabled(False)
+        self.progress.setRange(0, 1)
+        self.progress.setValue(0)
+
+    def _on_progress(self, done, total):
+        if total > 0:
+            self.progress.setRange(0, total)
+            self.progress.setValue(min(done, total))
+            self.progress.setFormat(f"{done}/{total}")
+
+    def _on_failed(self, message):
+        self._idle()
+        self.status.setText(f"The comparison failed: {message}. The previous view is kept.")
+
+    def _on_cancelled(self, partial):
+        self._idle()
+        self.status.setText("Comparison cancelled; nothing was changed.")
+
+    def _on_finished(self, out):
+        self._idle()
+        cmp, reading, reading_err = out
+        if getattr(cmp, "cancelled", False):
+            self._on_cancelled(cmp)
+            return
+        self.comparison = cmp
+        self.reading = reading
+        self.generation = self._pending_generation
+        self._fill_table()
+        self._draw_curves()
+        if reading is not None:
+            self.adaptive.show_reading(reading)
+        else:
+            self.adaptive.clear(f"No adaptive reading: {reading_err}" if reading_err else
+                                "No adaptive reading.")
+        errs = getattr(cmp, "errors", {}) or {}
+        msg = f"Compared {len(cmp.results)} losses in {self.job.seconds:.2f} s."
+        if errs:
+            msg += " Failed: " + "; ".join(f"{k}: {v}" for k, v in errs.items())
+        self.status.setText(msg)
+        self.shown.emit()
+
+    # ------------------------------------------------------------------ showing
+    def _ok_results(self):
+        cmp = self.comparison
+        if cmp is None:
+            return {}
+        return {k: r for k, r in cmp.results.items() if r is not None}
+
+    def differing(self) -> dict[tuple[str, str], list[tuple[str, float, float]]]:
+        """``(param, loss) -> [(other loss, delta, combined u)]`` over the flagged pairs."""
+        out: dict = {}
+        cmp = self.comparison
+        if cmp is None:
+            return out
+        for param, a, b, delta, cu in cmp.differences():
+            out.setdefault((param, a), []).append((b, float(delta), float(cu)))
+            out.setdefault((param, b), []).append((a, -float(delta), float(cu)))
+        return out
+
+    def _fill_table(self):
+        cmp = self.comparison
+        losses = list(cmp.results)
+        ok = self._ok_results()
+        names: list[str] = []
+        for r in ok.values():
+            for n in r.param_names:
+                if n not in names:
+                    names.append(n)
+        extra = ["scale", "alpha", "n down-weighted", "converged"]
+        self.table.clear()
+        self.table.setRowCount(len(names) + len(extra))
+        self.table.setColumnCount(len(losses))
+        self.table.setHorizontalHeaderLabels([_loss_title(n) for n in losses])
+        self.table.setVerticalHeaderLabels(names + extra)
+        for c, loss in enumerate(losses):
+            hdr = self.table.horizontalHeaderItem(c)
+            hdr.setForeground(QBrush(QColor(*LOSS_PENS.get(loss, ((60, 60, 60), 0))[0])))
+            hdr.setData(VALUE_ROLE, loss)
+        flagged = self.differing()
+        bold = QFont()
+        bold.setBold(True)
+        for c, loss in enumerate(losses):
+            r = cmp.results[loss]
+            if r is None:
+                err = (getattr(cmp, "errors", {}) or {}).get(loss, "the fit failed")
+                for row in range(len(names) + len(extra)):
+                    it = QTableWidgetItem("failed" if row == 0 else "")
+                    it.setForeground(FAIL_FG)
+                    it.setToolTip(str(err))
+                    self.table.setItem(row, c, it)
+                continue
+            for row, n in enumerate(names):
+                if n not in r.param_names:
+                    self.table.setItem(row, c, QTableWidgetItem(""))
+                    continue
+                k = r.param_names.index(n)
+                v, u = float(r.values[k]), float(r.stderr[k])
+                it = QTableWidgetItem(fmt_value(v, u) + (" (held)" if n in r.fixed else ""))
+                it.setData(VALUE_ROLE, (v, u))
+                it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
+                pairs = flagged.get((n, loss))
+                if pairs:
+                    it.setBackground(DIFF_BG)
+                    it.setFont(bold)
+                    it.setToolTip("Differs by more than the combined standard uncertainty from:\n" +
+                                  "\n".join(f"  {_loss_title(o)}: {d:+.4g} ({abs(d) / cu:.2g} combined u)"
+                                            if cu > 0 else f"  {_loss_title(o)}: {d:+.4g}"
+                                            for o, d, cu in pairs))
+                self.table.setItem(row, c, it)
+            base = len(names)
+            cells = [
+                (f"{r.scale:.4g}", r.scale),
+                ("-" if r.alpha is None else f"{r.alpha:.3g}", r.alpha),
+                (str(r.n_downweighted), r.n_downweighted),
+                ("yes" if r.converged else "NO", r.converged),
+            ]
+            for j, (text, raw) in enumerate(cells):
+                it = QTableWidgetItem(text)
+                it.setData(VALUE_ROLE, raw)
+                it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
+                if j == 3 and not r.converged:
+                    it.setForeground(FAIL_FG)
+                    it.setToolTip(str(r.message))
+                self.table.setItem(base + j, c, it)
+
+    def _draw_curves(self):
+        self._remove_curves()
+        ok = self._ok_results()
+        if not ok:
+            return
+        plot = self.plot
+        m = self.document.measurements
+        xs = m.x[np.isfinite(m.x)]
+        if plot.log_x:
+            xs = xs[xs > 0]
+        if xs.size == 0:
+            return
+        lo, hi = float(xs.min()), float(xs.max())
+        grid = np.geomspace(lo, hi, 400) if plot.log_x and 0 < lo < hi else np.linspace(lo, hi, 400)
+        stale = self.generation != self.document.generation
+        self.legend = pg.LegendItem(offset=(-10, 10), labelTextColor=(30, 30, 30),
+                                    brush=pg.mkBrush(255, 255, 255, 215), pen=pg.mkPen(160, 160, 160))
+        self.legend.setParentItem(plot.data_plot.vb)
+        for loss, r in ok.items():
+            with np.errstate(all="ignore"):
+                try:
+                    yhat = np.asarray(r.predict(grid), float)
+                except Exception:  # noqa: BLE001 - a curve that cannot be evaluated
+                    continue
+            good = np.isfinite(yhat)
+            pen = loss_pen(loss)
+            if stale:
+                pen.setColor(QColor(150, 150, 150))
+            curve = pg.PlotCurveItem(plot._tx(grid[good]), plot._ty(yhat[good]), pen=pen)
+            curve.setZValue(5)
+            plot.data_plot.addItem(curve, ignoreBounds=True)
+            self.curves[loss] = curve
+            self.legend.addItem(curve, _loss_title(loss))
+        if hasattr(plot, "set_single_fit_visible"):
+            plot.set_single_fit_visible(False)
+
+    def _remove_curves(self):
+        for c in self.curves.values():
+            self.plot.data_plot.removeItem(c)
+        self.curves = {}
+        if self.legend is not None:
+            sc = self.legend.scene()
+            self.legend.setParentItem(None)
+            if sc is not None:
+                sc.removeItem(self.legend)
+            self.legend = None
+
+    def close_comparison(self):
+        """Remove the comparison and bring back the single fit."""
+        self.job.cancel()
+        self._remove_curves()
+        self.comparison = None
+        self.reading = None
+        self.table.clear()
+        self.table.setRowCount(0)
+        self.table.setColumnCount(0)
+        self.adaptive.clear()
+        self.status.setText("")
+        if hasattr(self.plot, "set_single_fit_visible"):
+            self.plot.set_single_fit_visible(True)
+        self.closed.emit()
+
+    @property
+    def is_stale(self) -> bool:
+        return self.comparison is not None and self.generation != self.document.generation
+
+    def _on_document(self, event, **info):
+        if event == "data":
+            self.close_comparison()
+        elif event in ("mask", "settings") and self.comparison is not None:
+            self.status.setText("The data or method changed since this comparison "
+                                "(curves in grey): press Compare to bring it up to date.")
+            self._draw_curves()
+            for r in range(self.table.rowCount()):
+                for c in range(self.table.columnCount()):
+                    it = self.table.item(r, c)
+                    if it is not None:
+                        it.setForeground(Qt.gray)
+
+    def text(self) -> str:
+        """The comparison table as tab-separated text (for copying)."""
+        t = self.table
+        if t.columnCount() == 0:
+            return ""
+        rows = ["\t" + "\t".join(t.horizontalHeaderItem(c).text() for c in range(t.columnCount()))]
+        for r in range(t.rowCount()):
+            cells = [t.verticalHeaderItem(r).text()]
+            cells += [(t.item(r, c).text() if t.item(r, c) else "") for c in range(t.columnCount())]
+            rows.append("\t".join(cells))
+        return "\n".join(rows)
+
+
+class CompareDock(QDockWidget):
+    """Dock holding the :class:`CompareView`; closing it closes the comparison."""
+
+    def __init__(self, document: Document, plot, parent=None):
+        super().__init__("Loss comparison", parent)
+        self.setObjectName("loss_comparison_dock")
+        self.view = CompareView(document, plot, self)
+        self.setWidget(self.view)
+        self.view.closed.connect(self._closed_by_view)
+
+    def _closed_by_view(self):
+        if self.isVisible():
+            self.hide()
+
+    def closeEvent(self, ev):
+        if self.view.comparison is not None or self.view.curves or self.view.job.running:
+            self.view.close_comparison()
+        super().closeEvent(ev)
