@@ -1,0 +1,388 @@
+r"""Loss comparison and the adaptive reading: help the analyst choose a loss.
+
+:func:`compare_losses` fits one data set and model under several losses (default
+``l2, huber, cauchy, tukey, adaptive``) with the same points, sigma, held parameters and
+scale setting, and returns the fits side by side. :func:`adaptive_reading` turns the
+adaptive loss's fitted shape alpha (Barron's general loss; alpha = 2 is least squares,
+alpha = 0 Cauchy-like) into a plain-language suggestion.
+
+Differences between losses
+--------------------------
+Two losses "differ" on a parameter when ``|v_a - v_b| > sqrt(u_a^2 + u_b^2)`` with
+``u`` the standard uncertainties of the two fits. Both fits use the same data, so
+their estimates are positively correlated and the true uncertainty of the difference is
+smaller than this combined value: the flag is conservative (it fires late, not early).
+
+The adaptive reading
+--------------------
+The shape alpha comes with the standard uncertainty from the curvature of the profile
+negative log-likelihood (None when alpha sits at a bound of [0, 2]) and a 95 %
+likelihood-ratio interval from the profile (:func:`fitcore.solve.alpha_profile`): the
+alphas where ``nll - min(nll) <= chi2(0.95, 1)/2 = 1.92`` (Wilks' theorem; at the
+bounds of [0, 2] the interval is cut there). "Close to Gaussian" means alpha = 2 lies
+inside that interval. The change of the answer is the largest ``|v_adaptive - v_l2| /
+u_l2`` over the fitted parameters: the shift, in standard uncertainties of the
+least-squares estimate, that the robust (adaptive) fit makes.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Callable, Sequence
+
+import numpy as np
+
+from .losses import LOSS_NAMES, LOSS_TITLES
+from .result import FitResult
+from .solve import FitError, alpha_profile, fit
+
+DEFAULT_LOSSES = ("l2", "huber", "cauchy", "tukey", "adaptive")
+
+#: keyword arguments passed on to :func:`fitcore.fit` unchanged
+FIT_KWARGS = ("sigma", "excluded", "p0", "fixed", "scale", "sigma_mode", "max_iter")
+
+#: chi-square(1) 95 % quantile / 2: the likelihood-ratio cut for a 95 % interval
+LR_CUT_95 = 1.920729410347062
+
+
+def _check_kwargs(kwargs: dict, allowed: Sequence[str], where: str) -> None:
+    unknown = sorted(set(kwargs) - set(allowed))
+    if unknown:
+        raise FitError(
+            f"{where} does not take {', '.join(unknown)}; it passes on only "
+            f"{', '.join(allowed)}"
+        )
+
+
+def _resolve(model):
+    from .models import resolve_model
+    try:
+        return resolve_model(model)
+    except (TypeError, ValueError) as e:
+        raise FitError(str(e)) from e
+
+
+def _safe_fit(model, x, y, loss, kwargs):
+    """One fit; returns (result, None) or (None, message). Never raises for bad data."""
+    try:
+        return fit(model, x, y, loss=loss, **kwargs), None
+    except FitError as e:
+        return None, str(e)
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError) as e:
+        return None, f"the {loss} fit failed: {e}"
+
+
+@dataclass
+class LossComparison:
+    """Fits of the same data under several losses.
+
+    Attributes
+    ----------
+    losses
+        The losses asked for, in order.
+    results
+        ``loss -> FitResult``, or ``None`` for a loss whose fit failed (the reason is in
+        ``errors[loss]``) or that was not reached before a cancel.
+    errors
+        ``loss -> message`` for the failed fits.
+    cancelled
+        True when ``cancel()`` stopped the comparison early; ``results`` then holds
+        the fits done so far.
+    """
+
+    losses: tuple[str, ...]
+    param_names: tuple[str, ...]
+    results: dict[str, FitResult | None] = field(default_factory=dict)
+    errors: dict[str, str] = field(default_factory=dict)
+    cancelled: bool = False
+
+    def fitted(self) -> list[tuple[str, FitResult]]:
+        """The successful fits, in the order of ``losses``."""
+        return [(lo, self.results[lo]) for lo in self.losses if self.results.get(lo) is not None]
+
+    def table(self) -> list[tuple]:
+        """Rows ``(loss, param, value, stderr, scale, alpha, n_down)`` as plain data.
+
+        One row per successful loss and parameter; failed losses are left out (their
+        messages are in ``errors``). ``alpha`` is None for losses without a shape;
+        ``n_down`` counts the points used with a robust weight below 0.5.
+        """
+        rows = []
+        for loss, res in self.fitted():
+            for j, name in enumerate(res.param_names):
+                rows.append((loss, name, float(res.values[j]), float(res.stderr[j]),
+                             float(res.scale), None if res.alpha is None else float(res.alpha),
+                             int(res.n_downweighted)))
+        return rows
+
+    def differences(self, factor: float = 1.0) -> list[tuple[str, str, str, float, float]]:
+        """Estimates that differ by more than ``factor`` times their combined uncertainty.
+
+        Returns ``(param, loss_a, loss_b, delta, combined_u)`` with ``delta = v_b - v_a``
+        and ``combined_u = sqrt(u_a^2 + u_b^2)``, for every pair of successful losses
+        (``loss_a`` before ``loss_b`` in ``losses``) and every fitted parameter where
+        ``|delta| > factor * combined_u``. Held parameters and parameters without a
+        finite uncertainty are skipped. The combined uncertainty ignores the positive
+        correlation of the two estimates, so the test is conservative.
+        """
+        fits = self.fitted()
+        out = []
+        for j, name in enumerate(self.param_names):
+            for ia in range(len(fits)):
+                for ib in range(ia + 1, len(fits)):
+                    (la, ra), (lb, rb) = fits[ia], fits[ib]
+                    if name in ra.fixed or name in rb.fixed:
+                        continue
+                    ua, ub = float(ra.stderr[j]), float(rb.stderr[j])
+                    delta = float(rb.values[j] - ra.values[j])
+                    cu = math.hypot(ua, ub)
+                    if not (math.isfinite(cu) and cu > 0 and math.isfinite(delta)):
+                        continue
+                    if abs(delta) > factor * cu:
+                        out.append((name, la, lb, delta, cu))
+        return out
+
+    def highlighted(self, factor: float = 1.0) -> dict[str, set[str]]:
+        """``loss -> {params}`` taking part in any difference (for highlighting cells)."""
+        marks: dict[str, set[str]] = {lo: set() for lo, _ in self.fitted()}
+        for name, la, lb, _, _ in self.differences(factor):
+            marks[la].add(name)
+            marks[lb].add(name)
+        return marks
+
+
+def compare_losses(model, x, y, losses: Sequence[str] = DEFAULT_LOSSES, *,
+                   progress: Callable[[int, int], None] | None = None,
+                   cancel: Callable[[], bool] | None = None, alpha: float | None = None,
+                   **fit_kwargs) -> LossComparison:
+    """Fit the same data and model under several losses.
+
+    Parameters
+    ----------
+    model, x, y
+        As for :func:`fitcore.fit`. A formula is parsed once for all losses.
+    losses
+        Loss names (see :data:`fitcore.losses.LOSS_NAMES`); default
+        ``l2, huber, cauchy, tukey, adaptive``. ``"general"`` needs ``alpha``.
+    progress
+        ``progress(i, total)`` is called after each loss (``i`` losses done).
+    cancel
+        ``cancel() -> True`` stops before the next loss; the fits done so far are
+        returned with ``cancelled = True``.
+    alpha
+        Shape for the ``"general"`` loss only.
+    **fit_kwargs
+        ``sigma, excluded, p0, fixed, scale, sigma_mode`` (and ``max_iter``), passed to
+        every fit. A fixed ``scale`` applies to the M-losses; least squares, L1 and
+        the adaptive loss estimate their own scale.
+
+    A loss whose fit fails maps to None in ``results`` with the message in ``errors``;
+    the other losses are still fitted.
+    """
+    _check_kwargs(fit_kwargs, FIT_KWARGS, "compare_losses")
+    losses = tuple(losses)
+    if not losses:
+        raise FitError("choose at least one loss to compare")
+    bad = [lo for lo in losses if lo not in LOSS_NAMES]
+    if bad:
+        raise FitError(f"unknown loss {bad[0]!r}; choose from {', '.join(LOSS_NAMES)}")
+    if len(set(losses)) != len(losses):
+        raise FitError("each loss may appear only once in a comparison")
+    if "general" in losses and alpha is None:
+        raise FitError("the general loss needs a shape alpha for the comparison")
+    mdl = _resolve(model)
+    out = LossComparison(losses=losses, param_names=mdl.param_names,
+                         results={lo: None for lo in losses})
+    total = len(losses)
+    for i, loss in enumerate(losses):
+        if cancel is not None and cancel():
+            out.cancelled = True
+            break
+        kw = dict(fit_kwargs)
+        if loss == "general":
+            kw["alpha"] = alpha
+        res, err = _safe_fit(mdl, x, y, loss, kw)
+        out.results[loss] = res
+        if err is not None:
+            out.errors[loss] = err
+        if progress is not None:
+            progress(i + 1, total)
+    return out
+
+
+# --------------------------------------------------------------------------- reading
+@dataclass
+class AdaptiveReading:
+    """What the adaptive loss says about the tails of the residuals.
+
+    Attributes
+    ----------
+    alpha, alpha_u
+        Fitted shape in [0, 2] and its standard uncertainty (None at a bound).
+    interval
+        ``(low, high)`` 95 % likelihood-ratio interval from the profile, cut at 0 and 2.
+    profile
+        ``(alphas, nll)``: the profile negative log-likelihood
+        (:func:`fitcore.solve.alpha_profile`), for drawing.
+    close_to_gaussian
+        True when alpha = 2 (least squares) lies inside ``interval``.
+    shift, shift_param
+        Largest ``|v_adaptive - v_l2| / u_l2`` over the fitted parameters and the
+        parameter where it occurs (NaN / None when the least-squares fit failed).
+    shifts
+        ``param -> shift`` for every fitted parameter.
+    text
+        The plain-language reading.
+    fits
+        ``{"l2": FitResult or None, "adaptive": FitResult}``.
+    """
+
+    alpha: float
+    alpha_u: float | None
+    interval: tuple[float, float]
+    profile: tuple[np.ndarray, np.ndarray]
+    close_to_gaussian: bool
+    shift: float
+    shift_param: str | None
+    shifts: dict[str, float]
+    text: str
+    fits: dict[str, FitResult | None]
+
+
+def lr_interval(alphas, nll, alpha_hat: float | None = None, nll_hat: float | None = None,
+                cut: float = LR_CUT_95) -> tuple[float, float]:
+    """Likelihood-ratio interval ``{alpha: nll(alpha) - min nll <= cut}`` from a profile.
+
+    The profile points (plus the optimum ``(alpha_hat, nll_hat)`` when given) are
+    sorted, and each end is found by linear interpolation between the last point inside
+    and the first point outside, walking outward from the minimum. Where the profile
+    stays inside up to an end of the grid, that end is returned.
+    """
+    a = np.asarray(alphas, dtype=float)
+    v = np.asarray(nll, dtype=float)
+    keep = np.isfinite(a) & np.isfinite(v)
+    a, v = a[keep], v[keep]
+    if alpha_hat is not None and nll_hat is not None and math.isfinite(nll_hat):
+        a = np.append(a, alpha_hat)
+        v = np.append(v, nll_hat)
+    if a.size == 0:
+        raise FitError("the profile has no finite values")
+    order = np.argsort(a, kind="stable")
+    a, v = a[order], v[order]
+    i0 = int(np.argmin(v))
+    d = v - v[i0] - cut
+
+    def walk(step):
+        i = i0
+        while 0 <= i + step < a.size:
+            j = i + step
+            if d[j] > 0:
+                # d[i] <= 0 < d[j]
+                t = -d[i] / (d[j] - d[i]) if d[j] != d[i] else 0.0
+                return float(a[i] + t * (a[j] - a[i]))
+            i = j
+        return float(a[i])
+
+    return walk(-1), walk(+1)
+
+
+def _fmt2(v: float) -> str:
+    return f"{v:.2f}"
+
+
+def _alpha_phrase(alpha, alpha_u, interval) -> str:
+    if alpha_u is not None and math.isfinite(alpha_u):
+        return f"alpha = {_fmt2(alpha)} ± {_fmt2(alpha_u)}"
+    lo, hi = interval
+    side = "upper" if alpha > 1.0 else "lower"
+    return (f"alpha = {_fmt2(alpha)}, at the {side} end of its range; "
+            f"95 % interval {_fmt2(lo)} to {_fmt2(hi)}")
+
+
+def reading_text(alpha, alpha_u, interval, shift, shift_param) -> str:
+    """The plain-language reading (see the module docstring for the rules)."""
+    phrase = _alpha_phrase(alpha, alpha_u, interval)
+    gaussian = interval[1] >= 2.0 - 1e-9
+    has_shift = shift_param is not None and math.isfinite(shift)
+    where = f" ({shift_param})" if has_shift else ""
+    if gaussian:
+        head = f"Tails close to Gaussian ({phrase})"
+        if not has_shift or shift <= 1.0:
+            return f"{head}: least squares is adequate."
+        return (f"{head}, yet a robust loss changes the answer by {shift:.1f} standard "
+                f"uncertainties{where}: compare the fits before relying on least squares.")
+    head = "Heavy tails" if alpha < 1.0 else "Tails heavier than Gaussian"
+    head = f"{head} ({phrase})"
+    if not has_shift:
+        return f"{head}: a robust loss is advisable (the least-squares fit failed)."
+    if shift <= 1.0:
+        return (f"{head}: a robust loss changes the answer by less than one standard "
+                f"uncertainty (at most {shift:.1f}{where}), but its estimates are more "
+                f"reliable with such tails.")
+    return (f"{head}: a robust loss changes the answer by up to {shift:.1f} standard "
+            f"uncertainties{where}.")
+
+
+def _shifts(l2: FitResult | None, ad: FitResult) -> dict[str, float]:
+    if l2 is None:
+        return {}
+    out = {}
+    for j, name in enumerate(ad.param_names):
+        if name in ad.fixed:
+            continue
+        u = float(l2.stderr[j])
+        if math.isfinite(u) and u > 0:
+            out[name] = abs(float(ad.values[j] - l2.values[j])) / u
+    return out
+
+
+def adaptive_reading(model, x, y, *, fits: dict | None = None, alphas=None,
+                     **fit_kwargs) -> AdaptiveReading:
+    """Fit the adaptive loss and read its shape alpha in plain language.
+
+    Parameters
+    ----------
+    model, x, y, **fit_kwargs
+        As for :func:`compare_losses` (``sigma, excluded, p0, fixed, scale,
+        sigma_mode``).
+    fits
+        Optional ``{"l2": FitResult, "adaptive": FitResult}`` already made with the
+        same data and settings (e.g. ``LossComparison.results``); missing ones are fitted.
+    alphas
+        Grid for the profile (default 41 points from 0 to 2).
+
+    Raises
+    ------
+    FitError
+        When the adaptive fit itself fails.
+    """
+    _check_kwargs(fit_kwargs, FIT_KWARGS, "adaptive_reading")
+    mdl = _resolve(model)
+    fits = dict(fits or {})
+    ad = fits.get("adaptive")
+    if ad is None:
+        ad = fit(mdl, x, y, loss="adaptive", **fit_kwargs)
+    l2 = fits.get("l2")
+    if l2 is None:
+        l2, _ = _safe_fit(mdl, x, y, "l2", fit_kwargs)
+    grid = np.linspace(0.0, 2.0, 41) if alphas is None else np.asarray(alphas, dtype=float)
+    prof_kw = {k: fit_kwargs[k] for k in ("sigma", "excluded", "p0", "fixed") if k in fit_kwargs}
+    a_grid, nll, _ = alpha_profile(mdl, x, y, grid, **prof_kw)
+    alpha = float(ad.alpha)
+    interval = lr_interval(a_grid, nll, alpha, float(ad.info.get("nll", float("nan"))))
+    shifts = _shifts(l2, ad)
+    if shifts:
+        shift_param = max(shifts, key=shifts.get)
+        shift = shifts[shift_param]
+    else:
+        shift_param, shift = None, float("nan")
+    text = reading_text(alpha, ad.alpha_stderr, interval, shift, shift_param)
+    return AdaptiveReading(alpha=alpha, alpha_u=ad.alpha_stderr, interval=interval,
+                           profile=(np.asarray(a_grid), np.asarray(nll)),
+                           close_to_gaussian=interval[1] >= 2.0 - 1e-9, shift=shift,
+                           shift_param=shift_param, shifts=shifts, text=text,
+                           fits={"l2": l2, "adaptive": ad})
+
+
+__all__ = ["compare_losses", "adaptive_reading", "LossComparison", "AdaptiveReading",
+           "lr_interval", "reading_text", "DEFAULT_LOSSES", "LOSS_TITLES"]
