@@ -24,9 +24,10 @@ How the guesses work. Most models have one or two parameters that enter nonlinea
 linearly. The guess scans the nonlinear parameters over a logarithmic grid scaled to
 the data; for every grid value the linear parameters come from a small robust
 regression (Huber, then Tukey biweight iterations with a normalised-MAD scale), and
-the grid value with the smallest trimmed sum of squared residuals (the smallest 75 %)
-wins. Straight lines use Theil-Sen slopes, power laws and the Arrhenius law a
-Theil-Sen fit on the log scale, peaks start from the maximum of a running median. None
+the grid value with the smallest capped sum of squares sum(min((r/s)^2, 9)) wins; s is
+one model-free noise level for all grid values (from successive differences of y).
+Straight lines use Theil-Sen slopes, power laws and the Arrhenius law a Theil-Sen fit
+on the log scale, peak centres come from a running median. None
 of these steps is thrown far off by 15 % gross outliers, and all of them accept
 unsorted x and repeated x values. A guess never contains NaN: any step that cannot
 proceed (too few points, degenerate data) falls back to safe values.
@@ -58,14 +59,25 @@ _MAX_POLY_DEGREE = 10
 # ============================================================== robust helpers
 
 
-def _finite_pairs(x, y):
-    """Float copies of x and y with non-finite pairs dropped."""
+_GUESS_MAX_POINTS = 1000
+
+
+def _finite_pairs(x, y, limit=_GUESS_MAX_POINTS):
+    """Float copies of x and y with non-finite pairs dropped.
+
+    Large data are thinned for the guess (every k-th point in x order, so the whole x
+    range stays covered); start values need no more than ``limit`` points.
+    """
     x = np.asarray(x, dtype=float).ravel()
     y = np.asarray(y, dtype=float).ravel()
     n = min(x.size, y.size)
     x, y = x[:n], y[:n]
     ok = np.isfinite(x) & np.isfinite(y)
-    return x[ok], y[ok]
+    x, y = x[ok], y[ok]
+    if x.size > limit:
+        idx = np.argsort(x, kind="mergesort")[:: int(math.ceil(x.size / limit))]
+        x, y = x[idx], y[idx]
+    return x, y
 
 
 def _fast_median(v):
@@ -199,17 +211,30 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     return coef, r
 
 
-def _trimmed_ss(r, frac=0.75):
-    """Sum of the smallest ``frac`` share of squared residuals (inf if not finite)."""
-    r2 = np.asarray(r, dtype=float) ** 2
-    if r2.size == 0:
-        return np.inf
-    h = max(1, int(math.ceil(frac * r2.size)))
-    v = float(np.sum(np.partition(r2, h - 1)[:h]))
+def _noise_scale(x, y):
+    """Model-free robust noise level: normalised MAD of successive differences of y
+    (sorted by x) divided by sqrt 2, with a floor (see below)."""
+    order = np.argsort(x, kind="mergesort")
+    d = np.diff(np.asarray(y, dtype=float)[order])
+    s = _mad(d) / math.sqrt(2.0) if d.size >= 2 else 0.0
+    # floor: 2 % of the 5-95 % range of y, so that on a coarse grid a curve that is
+    # nearly right still scores better than one that is far off
+    y = np.asarray(y, dtype=float)
+    span = float(np.subtract(*np.percentile(y, [95, 5]))) if y.size else 0.0
+    floor = max(0.02 * span, 1e-9 * _spread(y))
+    return float(s) if np.isfinite(s) and s > floor else floor
+
+
+def _criterion(r, s, cap=3.0):
+    """Capped sum of squares sum(min((r/s)^2, cap^2)): every point counts until it is
+    ``cap`` noise levels off, so gross outliers cost a fixed amount each and a curve
+    that misses a whole region is not excused (inf if not finite)."""
+    u2 = (np.asarray(r, dtype=float) / s) ** 2
+    v = float(np.sum(np.minimum(u2, cap * cap)))
     return v if np.isfinite(v) else np.inf
 
 
-def _profile(basis_of: Callable[[float], np.ndarray], y, grid, refine=2):
+def _profile(basis_of: Callable[[float], np.ndarray], y, grid, scale, refine=2):
     """Scan a nonlinear parameter over ``grid``; linear coefficients by robust fit.
 
     ``basis_of(theta)`` returns the design matrix for the linear parameters. After the
@@ -227,7 +252,7 @@ def _profile(basis_of: Callable[[float], np.ndarray], y, grid, refine=2):
             if not np.all(np.isfinite(A)):
                 continue
             coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
-            crit = _trimmed_ss(r)
+            crit = _criterion(r, scale)
             if crit < best[2]:
                 best = (float(t), coef, crit)
 
@@ -244,7 +269,7 @@ def _profile(basis_of: Callable[[float], np.ndarray], y, grid, refine=2):
     with np.errstate(all="ignore"):
         A = basis_of(best[0])
     coef, r = _robust_lstsq(A, y)
-    return best[0], coef, _trimmed_ss(r)
+    return best[0], coef, _criterion(r, scale)
 
 
 def _smoothed(x, y):
@@ -401,7 +426,7 @@ def _exp_grid_fit(x, y):
     def basis(tau):
         return np.column_stack([np.exp(-(x - x_min) / tau), np.ones_like(x)])
 
-    tau, coef, _ = _profile(basis, y, grid)
+    tau, coef, _ = _profile(basis, y, grid, _noise_scale(x, y))
     if tau is None:
         return _median_or(y) - np.min(y), span / 3.0, float(np.min(y))
     amp_shift, c = coef
@@ -509,7 +534,8 @@ def _exp_rise():
         if x.size < 2:
             return np.array([_safe(np.max(np.abs(y), initial=1.0), 1.0), 1.0 / big])
         grid = _geomgrid(1e-3 / big, 30.0 / small if small > 0 else 30.0 / big, 60)
-        k, coef, _ = _profile(lambda k: -np.expm1(-k * x)[:, None], y, grid)
+        k, coef, _ = _profile(lambda k: -np.expm1(-k * x)[:, None], y, grid,
+                              _noise_scale(x, y))
         if k is None:
             return np.array([_safe(np.max(np.abs(y)), 1.0), 1.0 / big])
         return np.array([_safe(coef[0], np.max(np.abs(y))), k])
@@ -593,7 +619,7 @@ def _michaelis_menten():
         if x.size < 2:
             return np.array([_safe(2 * top, 1.0) or 1.0, hi])
         k, coef, _ = _profile(lambda km: (x / (km + x))[:, None], y,
-                              _geomgrid(lo / 30.0, hi * 30.0, 60))
+                              _geomgrid(lo / 30.0, hi * 30.0, 60), _noise_scale(x, y))
         if k is None:
             return np.array([_safe(2 * top, 1.0) or 1.0, hi])
         return np.array([_safe(coef[0], top), k])
@@ -674,21 +700,22 @@ def _logistic_start(x, y):
     return bottom, top, hill, ec50
 
 
-def _logistic_crit(x, y, hill, ec50):
+def _logistic_crit(x, y, hill, ec50, scale):
     z, _ = _logistic_z(x, hill, ec50)
     g = special.expit(-z)
     A = np.column_stack([1.0 - g, g])
     if not np.all(np.isfinite(A)):
         return np.inf, (0.0, 0.0)
     coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
-    return _trimmed_ss(r), (float(coef[0]), float(coef[1]))
+    return _criterion(r, scale), (float(coef[0]), float(coef[1]))
 
 
 def _logistic_guess(x, y):
     """(bottom, top, hill, EC50): robust scan over hill and EC50, plateaus linear.
 
     Candidates: the logit-linearised start and a coarse grid (EC50 across the positive
-    x range, hill = +-0.5 ... +-4); the best is refined twice on finer local grids.
+    x range, hill = +-0.5 ... +-4); the three best are refined twice on finer local
+    grids.
     The result is put in the convention top >= bottom (the curve is unchanged).
     """
     b0, t0, h0, e0 = _logistic_start(x, y)
@@ -696,23 +723,26 @@ def _logistic_guess(x, y):
     if x.size < 4 or xp.size < 2:
         return b0, t0, h0, e0
     lo, hi = float(np.min(xp)), float(np.max(xp))
+    noise = _noise_scale(x, y)
     cands = [(h0, e0)] + [
         (s * h, e) for s in (1.0, -1.0) for h in (0.5, 1.0, 2.0, 4.0)
         for e in _geomgrid(lo / 2.0, hi * 2.0, 18)
     ]
-    best_crit, best = np.inf, (b0, t0, h0, e0)
-    for h, e in cands:
-        crit, (b_, t_) = _logistic_crit(x, y, h, e)
-        if crit < best_crit:
-            best_crit, best = crit, (b_, t_, h, e)
-    for hr, er in ((1.5, 1.6), (1.15, 1.15)):
-        _, _, h1, e1 = best
-        for h in h1 * np.geomspace(1.0 / hr, hr, 5):
-            for e in e1 * np.geomspace(1.0 / er, er, 7):
-                crit, (b_, t_) = _logistic_crit(x, y, h, e)
-                if crit < best_crit:
-                    best_crit, best = crit, (b_, t_, h, e)
-    b_, t_, h, e = best
+    scored = sorted(((_logistic_crit(x, y, h, e, noise)[0], h, e) for h, e in cands),
+                    key=lambda t: t[0])
+    best_crit, best = np.inf, (h0, e0)
+    for _, h_start, e_start in scored[:3]:  # refine the three best coarse candidates
+        crit0, h1, e1 = _logistic_crit(x, y, h_start, e_start, noise)[0], h_start, e_start
+        for hr, er in ((1.5, 1.6), (1.15, 1.15)):
+            hc, ec = h1, e1
+            for h in hc * np.geomspace(1.0 / hr, hr, 5):
+                for e in ec * np.geomspace(1.0 / er, er, 7):
+                    crit = _logistic_crit(x, y, h, e, noise)[0]
+                    if crit < crit0:
+                        crit0, h1, e1 = crit, h, e
+        if crit0 < best_crit:
+            best_crit, best = crit0, (h1, e1)
+    h, e = best
     z, _ = _logistic_z(x, h, e)
     g = special.expit(-z)
     (b_, t_), _ = _robust_lstsq(np.column_stack([1.0 - g, g]), y)
@@ -910,13 +940,14 @@ def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
     centres += [int(np.argmax(sy)), int(np.argmin(sy))]
     centres = [float(ux[i]) for i in dict.fromkeys(centres)]
     grid = _geomgrid(small / 2.0, span, 24)
+    noise = _noise_scale(x, y)
 
     def basis(xc, w):
         return np.column_stack([shape(x, xc, w), np.ones_like(x)])
 
     best = (np.inf, None, None, None)
     for xc in centres:
-        w, coef, crit = _profile(lambda w: basis(xc, w), y, grid, refine=0)
+        w, coef, crit = _profile(lambda w: basis(xc, w), y, grid, noise, refine=0)
         if w is not None and crit < best[0]:
             best = (crit, xc, w, coef)
     if best[1] is None:
@@ -926,13 +957,13 @@ def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
         crit, x0, w, coef = best
         for xc in x0 + w * np.linspace(-0.5, 0.5, 11):
             c, r = _robust_lstsq(basis(xc, w), y, n_huber=5, n_tukey=3)
-            cr = _trimmed_ss(r)
+            cr = _criterion(r, noise)
             if cr < best[0]:
                 best = (cr, float(xc), w, c)
         crit, x0, w, coef = best
         for wc in w * np.geomspace(0.6, 1.6, 9):
             c, r = _robust_lstsq(basis(x0, wc), y, n_huber=5, n_tukey=3)
-            cr = _trimmed_ss(r)
+            cr = _criterion(r, noise)
             if cr < best[0]:
                 best = (cr, x0, float(wc), c)
     _, x0, w, _ = best

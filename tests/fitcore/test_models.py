@@ -384,6 +384,21 @@ def test_guess_survives_awkward_input(name):
         assert np.all(np.isfinite(g)), f"{name}: guess {g} for x={x[:4]}..., y={y[:4]}..."
 
 
+@pytest.mark.parametrize("name", ["exp_decay", "michaelis_menten", "logistic4",
+                                  "gauss_peak", "lorentz_peak"])
+def test_guess_on_dense_data(name):
+    # many points with little noise (invented): a coarse scan must not settle in a
+    # wrong basin, and large data are thinned for the guess (20000 points here)
+    p, x = CASES[name]
+    m = get_model(name)
+    p = np.array(p, float)
+    x = np.linspace(float(np.min(x)), float(np.max(x)), 20000)
+    y = m(x, p) + 0.01 * np.ptp(m(x, p)) * np.random.default_rng(2).standard_normal(x.size)
+    g = m.guess(x, y)
+    ratio = g / p
+    assert np.all(ratio > 0.8) and np.all(ratio < 1.25), f"{name}: {g} vs {p}"
+
+
 def test_guess_handles_negative_and_falling_data():
     # a falling exponential rise (negative plateau) and a dip instead of a peak
     m = get_model("exp_rise")
