@@ -21,7 +21,7 @@ import numpy as np
 import pyqtgraph as pg
 from pyqtgraph import functions as fn
 from pyqtgraph.Qt import internals as pg_internals
-from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtCore import QLineF, QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QBrush, QColor, QPainter, QPen, QPixmap
 
 from .commands import MaskCommand
@@ -65,7 +65,18 @@ class PointsItem(pg.GraphicsObject):
     (used / down-weighted / excluded) and a selected flag. Symbols for every
     (style, selected, level) are rendered once into one pixmap; a paint maps the
     points to device pixels with numpy and draws them with ``drawPixmapFragments``.
+
+    The work is cached: setters only store arrays and mark what changed; a paint
+    maps positions to device pixels only when the view or the positions changed, and
+    rebuilds the fragment list only when that or a style changed. With more than
+    :attr:`DEDUP_MIN` visible points, points that land on the same device pixel with
+    the same symbol are drawn once (same picture, a fraction of the work at 1e5).
+    Paint order: used, down-weighted, excluded, then the selected; within a style the
+    larger symbols first, so a smaller one on top of a larger one stays visible.
     """
+
+    #: above this many visible points, identical symbols on one pixel are drawn once
+    DEDUP_MIN = 3000
 
     def __init__(self, scale: float = 1.0):
         super().__init__()
@@ -75,13 +86,19 @@ class PointsItem(pg.GraphicsObject):
         self.level = np.zeros(0, np.int8)
         self.style = np.zeros(0, np.int8)
         self.selected = np.zeros(0, bool)
-        self._order = np.zeros(0, np.intp)
         self._finite = np.zeros(0, bool)
+        self._any_finite = False
         self._bounds = QRectF()
         self._frags = pg_internals.PrimitiveArray(QPainter.PixmapFragment, 10)
         self._atlas = None
         self._atlas_dpr = None
         self._cell = int(np.ceil(MAX_SIZE * self._scale)) + 6
+        self._pos_version = 0
+        self._style_version = 0
+        self._dev_key = None   # (transform, position version) of the cached device coordinates
+        self._dev = None       # (2, n) device coordinates of every point
+        self._frag_key = None  # what the cached fragment list was built from
+        self._n_frags = 0
 
     # ------------------------------------------------------------- data
     def set_points(self, x, y):
@@ -94,42 +111,44 @@ class PointsItem(pg.GraphicsObject):
             self.level = np.full(n, N_LEVELS - 1, np.int8)
             self.style = np.zeros(n, np.int8)
             self.selected = np.zeros(n, bool)
+            self._style_version += 1
         self._finite = np.isfinite(self.x) & np.isfinite(self.y)
-        if self._finite.any():
+        self._any_finite = bool(self._finite.any())
+        if self._any_finite:
             xs, ys = self.x[self._finite], self.y[self._finite]
             x0, x1, y0, y1 = xs.min(), xs.max(), ys.min(), ys.max()
             self._bounds = QRectF(x0, y0, max(x1 - x0, 1e-300), max(y1 - y0, 1e-300))
         else:
             self._bounds = QRectF()
-        self._reorder()
+        self._pos_version += 1
         self.informViewBoundsChanged()
         self.update()
 
     def set_style(self, level=None, style=None, selected=None):
-        """New size levels, styles and/or selection flags (arrays of length n)."""
-        if level is not None:
-            self.level = np.asarray(level, np.int8)
-        if style is not None:
-            self.style = np.asarray(style, np.int8)
-        if selected is not None:
-            self.selected = np.asarray(selected, bool)
-        self._reorder()
-        self.update()
+        """New size levels, styles and/or selection flags (arrays of length n).
 
-    def _reorder(self):
-        # paint order: used, down-weighted, excluded, then the selected on top
-        key = self.style.astype(np.int16) + 4 * self.selected
-        idx = np.flatnonzero(self._finite)
-        if key.size == self._finite.size and idx.size:
-            idx = idx[np.argsort(key[idx], kind="stable")]
-        self._order = idx
+        Arrays equal to the current ones change nothing (no repaint).
+        """
+        changed = False
+        for name, value, dtype in (("level", level, np.int8), ("style", style, np.int8),
+                                   ("selected", selected, bool)):
+            if value is None:
+                continue
+            value = np.asarray(value, dtype)
+            old = getattr(self, name)
+            if value.shape != old.shape or not np.array_equal(value, old):
+                setattr(self, name, value)
+                changed = True
+        if changed:
+            self._style_version += 1
+            self.update()
 
     # ------------------------------------------------------------- geometry
     def dataBounds(self, ax, frac=1.0, orthoRange=None):
-        if not self._finite.any():
+        if not self._any_finite:
             return (None, None)
-        v = (self.x if ax == 0 else self.y)[self._finite]
-        return (float(v.min()), float(v.max()))
+        b = self._bounds
+        return (b.left(), b.right()) if ax == 0 else (b.top(), b.bottom())
 
     def pixelPadding(self):
         return self._cell / 2.0
@@ -179,57 +198,179 @@ class PointsItem(pg.GraphicsObject):
         p.end()
         self._atlas = pm
         self._atlas_dpr = dpr
+        self._frag_key = None
 
     # ------------------------------------------------------------- painting
-    def paint(self, p, option, widget=None):
-        idx = self._order
-        if idx.size == 0:
-            return
-        dpr = widget.devicePixelRatioF() if widget is not None else 1.0
-        if self._atlas is None or self._atlas_dpr != dpr:
-            self._make_atlas(dpr)
-        pts = fn.transformCoordinates(p.transform(), np.vstack([self.x[idx], self.y[idx]]))
-        dev = p.device()
-        w, h = (dev.width(), dev.height()) if dev is not None else (1e9, 1e9)
+    def _device_coords(self, tr):
+        """(2, n) device coordinates of all points for painter transform ``tr`` (cached)."""
+        tkey = (tr.m11(), tr.m12(), tr.m21(), tr.m22(), tr.dx(), tr.dy(), tr.m13(), tr.m23())
+        key = (tkey, self._pos_version)
+        if key != self._dev_key:
+            if tr.isAffine():
+                with np.errstate(invalid="ignore"):
+                    self._dev = np.vstack([tkey[0] * self.x + tkey[2] * self.y + tkey[4],
+                                           tkey[1] * self.x + tkey[3] * self.y + tkey[5]])
+            else:
+                self._dev = fn.transformCoordinates(tr, np.vstack([self.x, self.y]))
+            self._dev_key = key
+        return self._dev
+
+    def _build_fragments(self, tr, w: float, h: float, dpr: float) -> int:
+        """Fill the fragment array for the current state; returns the fragment count."""
+        dev = self._device_coords(tr)
+        key = (self._dev_key, w, h, dpr, self._style_version)
+        if key == self._frag_key:
+            return self._n_frags
         pad = self._cell
-        vis = (pts[0] > -pad) & (pts[0] < w + pad) & (pts[1] > -pad) & (pts[1] < h + pad)
-        if not vis.all():
-            pts = pts[:, vis]
-            idx = idx[vis]
+        px, py = dev[0], dev[1]
+        with np.errstate(invalid="ignore"):
+            vis = self._finite & (px > -pad) & (px < w + pad) & (py > -pad) & (py < h + pad)
+        idx = np.flatnonzero(vis)
         if idx.size == 0:
-            return
-        p.resetTransform()
+            self._frag_key, self._n_frags = key, 0
+            return 0
+        # paint class: order key (style, selected) then larger symbols first
+        top = N_LEVELS - 1
+        cls = ((self.style[idx].astype(np.int64) + 4 * self.selected[idx]) * N_LEVELS
+               + (top - self.level[idx]))
+        if idx.size > self.DEDUP_MIN:
+            # one fragment per (class, device pixel); the sorted keys give the paint order
+            ix = np.rint((px[idx] + pad) * dpr).astype(np.int64)
+            iy = np.rint((py[idx] + pad) * dpr).astype(np.int64)
+            k = np.sort((cls << 40) | (iy << 20) | ix)
+            keep = np.empty(k.size, bool)
+            keep[0] = True
+            np.not_equal(k[1:], k[:-1], out=keep[1:])
+            k = k[keep]
+            cls = k >> 40
+            fx = (k & 0xFFFFF) / dpr - pad
+            fy = ((k >> 20) & 0xFFFFF) / dpr - pad
+        else:
+            order = np.argsort(cls, kind="stable")
+            cls = cls[order]
+            fx, fy = px[idx[order]], py[idx[order]]
+        ok = cls // N_LEVELS                 # style + 4 * selected
+        row = (ok & 3) + 3 * (ok >> 2)       # atlas row: style + 3 * selected
+        lev = top - (cls % N_LEVELS)
         cell = self._cell * dpr
-        self._frags.resize(idx.size)
+        m = int(cls.size)
+        self._frags.resize(m)
         fr = self._frags.ndarray()
-        fr[:, 0] = pts[0]
-        fr[:, 1] = pts[1]
-        fr[:, 2] = self.level[idx] * cell
-        fr[:, 3] = (self.style[idx] + 3 * self.selected[idx]) * cell
+        fr[:, 0] = fx
+        fr[:, 1] = fy
+        fr[:, 2] = lev * cell
+        fr[:, 3] = row * cell
         fr[:, 4] = cell
         fr[:, 5] = cell
         fr[:, 6:10] = [1.0 / dpr, 1.0 / dpr, 0.0, 1.0]
+        self._frag_key, self._n_frags = key, m
+        return m
+
+    def paint(self, p, option, widget=None):
+        if not self._any_finite:
+            return
+        dpr = widget.devicePixelRatioF() if widget is not None else p.device().devicePixelRatioF()
+        if self._atlas is None or self._atlas_dpr != dpr:
+            self._make_atlas(dpr)
+        dev = p.device()
+        w, h = (dev.width(), dev.height()) if dev is not None else (1e6, 1e6)
+        w, h = min(float(w), 60000.0), min(float(h), 60000.0)
+        tr = p.transform()
+        if self._build_fragments(tr, w, h, dpr) == 0:
+            return
+        p.resetTransform()
         p.drawPixmapFragments(*self._frags.drawargs(), self._atlas)
+        p.setTransform(tr)
 
     # ------------------------------------------------------------- hit tests
     def nearest(self, pos: QPointF, radius_px: float = HIT_RADIUS) -> int | None:
         """Index of the drawn point nearest to ``pos`` (item coordinates) within a radius."""
-        idx = np.flatnonzero(self._finite)
-        if idx.size == 0:
+        if not self._any_finite:
             return None
         px, py = self.pixelWidth(), self.pixelHeight()
         if not (px > 0 and py > 0):
             return None
-        d2 = ((self.x[idx] - pos.x()) / px) ** 2 + ((self.y[idx] - pos.y()) / py) ** 2
+        with np.errstate(invalid="ignore"):
+            d2 = ((self.x - pos.x()) / px) ** 2 + ((self.y - pos.y()) / py) ** 2
+        d2[~self._finite] = np.inf
         k = int(np.argmin(d2))
-        return int(idx[k]) if d2[k] <= radius_px**2 else None
+        return k if d2[k] <= radius_px**2 else None
 
     def inside(self, rect: QRectF) -> np.ndarray:
         """Indices of the points inside ``rect`` (item coordinates)."""
         r = rect.normalized()
-        m = self._finite & (self.x >= r.left()) & (self.x <= r.right()) \
-            & (self.y >= r.top()) & (self.y <= r.bottom())
+        with np.errstate(invalid="ignore"):
+            m = self._finite & (self.x >= r.left()) & (self.x <= r.right()) \
+                & (self.y >= r.top()) & (self.y <= r.bottom())
         return np.flatnonzero(m)
+
+
+class GridItem(pg.GraphicsObject):
+    """Light grid lines at the axis ticks of one plot, drawn in one call per level.
+
+    Replaces pyqtgraph's axis grid (which costs several ms per axis on every
+    repaint); the lines follow the axes' own tick values, so they also fit log axes.
+    """
+
+    MAJOR = QColor(226, 229, 234)
+    MINOR = QColor(242, 243, 246)
+
+    def __init__(self, plot_item):
+        super().__init__()
+        self._plot = plot_item
+        self.setZValue(-1e6)
+        self._pens = []
+        for c in (self.MAJOR, self.MINOR):
+            pen = QPen(c)
+            pen.setCosmetic(True)
+            pen.setWidth(1)
+            self._pens.append(pen)
+
+    def boundingRect(self):
+        vb = self._plot.vb
+        return vb.viewRect() if vb is not None else QRectF()
+
+    def viewRangeChanged(self):
+        self.prepareGeometryChange()
+        self.update()
+
+    def dataBounds(self, ax, frac=1.0, orthoRange=None):
+        return (None, None)
+
+    def paint(self, p, option, widget=None):
+        vb = self._plot.vb
+        (x0, x1), (y0, y1) = vb.viewRange()
+        tr = p.transform()
+        a = tr.map(QPointF(x0, y0))
+        b = tr.map(QPointF(x1, y1))
+        left, right = sorted((a.x(), b.x()))
+        top, bottom = sorted((a.y(), b.y()))
+        if right - left < 2 or bottom - top < 2:
+            return
+        sx = (b.x() - a.x()) / (x1 - x0) if x1 != x0 else 0.0
+        sy = (b.y() - a.y()) / (y1 - y0) if y1 != y0 else 0.0
+        levels = []
+        for name, lo, hi, size in (("bottom", x0, x1, right - left), ("left", y0, y1, bottom - top)):
+            try:
+                levels.append(self._plot.getAxis(name).tickValues(lo, hi, size)[:2])
+            except Exception:  # noqa: BLE001 - an axis that cannot tick: no grid lines
+                levels.append([])
+        p.resetTransform()
+        p.setRenderHint(QPainter.Antialiasing, False)
+        for lev in (1, 0):  # minor lines first, major on top
+            lines = []
+            for (_, vals) in (levels[0][lev:lev + 1] or [(0, [])]):
+                for v in vals:
+                    X = round(a.x() + (v - x0) * sx) + 0.5
+                    lines.append(QLineF(X, top, X, bottom))
+            for (_, vals) in (levels[1][lev:lev + 1] or [(0, [])]):
+                for v in vals:
+                    Y = round(a.y() + (v - y0) * sy) + 0.5
+                    lines.append(QLineF(left, Y, right, Y))
+            if lines:
+                p.setPen(self._pens[lev])
+                p.drawLines(lines)
+        p.setTransform(tr)
 
 
 class PickViewBox(pg.ViewBox):
@@ -319,8 +460,11 @@ class PlotView(pg.GraphicsLayoutWidget):
         self.ci.layout.setRowStretchFactor(0, 3)
         self.ci.layout.setRowStretchFactor(1, 1)
         self.resid_plot.setXLink(self.data_plot)
+        self.grids = []
         for plot in (self.data_plot, self.resid_plot):
-            plot.showGrid(x=True, y=True, alpha=0.15)
+            grid = GridItem(plot)  # own grid: pyqtgraph's axis grid costs ms per repaint
+            plot.addItem(grid, ignoreBounds=True)
+            self.grids.append(grid)
             plot.hideButtons()
             for ax in ("left", "bottom"):
                 plot.getAxis(ax).setPen(pg.mkPen(60, 60, 60))
@@ -331,7 +475,9 @@ class PlotView(pg.GraphicsLayoutWidget):
         self.band_lo = pg.PlotCurveItem(pen=pg.mkPen(None))
         self.band_hi = pg.PlotCurveItem(pen=pg.mkPen(None))
         self.band = pg.FillBetweenItem(self.band_lo, self.band_hi, brush=pg.mkBrush(31, 92, 170, 45))
-        self.curve = pg.PlotCurveItem(pen=pg.mkPen(20, 20, 20, width=2))
+        self._curve_pen = pg.mkPen(20, 20, 20, width=2)
+        self._stale_pen = pg.mkPen(120, 120, 120, width=2, style=Qt.DashLine)
+        self.curve = pg.PlotCurveItem(pen=self._curve_pen)
         self.points = PointsItem()
         for item in (self.band_lo, self.band_hi, self.band):
             self.data_plot.addItem(item, ignoreBounds=True)
@@ -454,10 +600,12 @@ class PlotView(pg.GraphicsLayoutWidget):
             else:
                 msg = "stale: refitting..."
             self.stale_text.setText(msg)
-            self.curve.setPen(pg.mkPen(120, 120, 120, width=2, style=Qt.DashLine))
+            if self.curve.opts["pen"] is not self._stale_pen:
+                self.curve.setPen(self._stale_pen)
         else:
             self.stale_text.setText("")
-            self.curve.setPen(pg.mkPen(20, 20, 20, width=2))
+            if self.curve.opts["pen"] is not self._curve_pen:
+                self.curve.setPen(self._curve_pen)
         vr = self.data_plot.vb.viewRange()
         self.stale_text.setPos(vr[0][0], vr[1][1])
 
