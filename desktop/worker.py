@@ -1,19 +1,27 @@
-"""Running fits for the window: debounced, superseding, off the GUI thread when large.
+"""Running fits for the window: throttled, superseding, off the GUI thread when large.
 
 :class:`FitRunner` watches the document. After a change to the fit inputs it fits
-right away if nothing was fitted in the last ``debounce_ms`` (so a single click is
-answered at once), and otherwise waits until the changes pause (so a box drag gives
-one fit, not fifty). Small fits run inline; fits over ``thread_threshold`` points,
-or any fit once one took longer than ``slow_fit_s``, run in a ``QThreadPool`` worker
-so the window keeps processing events. Each request carries the document's
-generation number; a result for older inputs is dropped, and while one fit runs only
-the newest waiting request is kept.
+at once when the last inline fit ended at least a short gap ago (``debounce_ms``,
+or as long as that fit took, whichever is longer), so a single click is answered
+without delay; changes that come faster than that (a box drag) are collected and
+the newest inputs are fitted when the gap has passed, so a drag gives a live fit a
+few times a second, never one fit per mouse move, and the window keeps time to
+process events between fits. Small fits run inline; fits over ``thread_threshold``
+points, or any fit once one took longer than ``slow_fit_s``, run in a
+``QThreadPool`` worker so the window keeps processing events. While a worker fit
+runs, the interpreter's thread switch interval is shortened so the GUI thread gets
+the interpreter lock back within about 0.1 ms (the default 5 ms wait, paid on
+each of the many calls a repaint makes into Python, made the window stutter). Each
+request carries the document's generation number; a result for older inputs is
+dropped, and while one fit runs only the newest waiting request is kept.
 """
 from __future__ import annotations
 
+import sys
 import time
 import traceback
 
+import numpy as np
 from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal, Slot
 
 from .document import Document
@@ -63,7 +71,9 @@ class FitRunner(QObject):
     document
         The document to fit.
     debounce_ms
-        Quiet time that ends a burst of changes.
+        Shortest gap between the end of one inline fit and the start of the next
+        while changes keep coming (the gap is also at least as long as the last
+        fit took, up to a quarter second).
     thread_threshold
         Fits with more points than this run in the worker thread.
     """
@@ -73,7 +83,10 @@ class FitRunner(QObject):
     #: a result or failure was delivered to the document
     finished = Signal()
 
-    def __init__(self, document: Document, debounce_ms: int = 150, thread_threshold: int = 20000,
+    #: thread switch interval (s) while a worker fit runs
+    SWITCH_INTERVAL_S = 0.0001
+
+    def __init__(self, document: Document, debounce_ms: int = 20, thread_threshold: int = 20000,
                  slow_fit_s: float = 0.06, parent=None):
         super().__init__(parent)
         self.document = document
@@ -92,6 +105,9 @@ class FitRunner(QObject):
         self._cooldown.setSingleShot(True)
         self._cooldown.timeout.connect(self._on_cooldown)
         self._dirty = False
+        self._last_end = -float("inf")  # perf_counter() when the last fit was delivered
+        self._saved_switch = None
+        self._last_threaded = False
         document.subscribe(self._on_document)
 
     # ------------------------------------------------------------------ triggers
@@ -100,21 +116,33 @@ class FitRunner(QObject):
             self.schedule()
 
     def schedule(self):
-        """Ask for a fit of the current inputs (debounced)."""
+        """Ask for a fit of the current inputs (at once, or after the gap; see the class)."""
         if not self.document.has_data:
             return
         if self._cooldown.isActive():
-            self._dirty = True
-            self._cooldown.start(self.debounce_ms)  # wait until the burst pauses
+            self._dirty = True  # the timer fits the newest inputs when the gap has passed
             return
-        self._cooldown.start(self.debounce_ms)
-        self._dirty = False
-        self.fit_now()
+        wait = self.gap_seconds() - (time.perf_counter() - self._last_end)
+        if wait <= 0:
+            self._dirty = False
+            self.fit_now()
+            return
+        self._dirty = True
+        self._cooldown.start(max(1, int(np.ceil(wait * 1000))))
+
+    def gap_seconds(self) -> float:
+        """Least time between the end of a fit and the start of the next in a burst.
+
+        Only inline fits (which hold the window while they run) need a gap; a
+        worker fit runs beside the window, and the newest request waits for it.
+        """
+        if self._last_threaded:
+            return 0.0
+        return max(self.debounce_ms / 1000.0, min(self.last_seconds, 0.25))
 
     def _on_cooldown(self):
         if self._dirty:
             self._dirty = False
-            self._cooldown.start(self.debounce_ms)
             self.fit_now()
 
     @property
@@ -132,6 +160,7 @@ class FitRunner(QObject):
         if self._running:
             self._pending = request  # supersedes any older waiting request
             return
+        self._last_threaded = threaded
         if not threaded:
             t0 = time.perf_counter()
             res, msg = run_fit(request)
@@ -140,9 +169,17 @@ class FitRunner(QObject):
         self._start(request)
 
     def _start(self, request):
+        if not self._running and self._saved_switch is None:
+            self._saved_switch = sys.getswitchinterval()
+            sys.setswitchinterval(min(self._saved_switch, self.SWITCH_INTERVAL_S))
         self._running = True
         self.busy_changed.emit(True)
         self._pool.start(_FitTask(request, self._signals))
+
+    def _restore_switch(self):
+        if self._saved_switch is not None:
+            sys.setswitchinterval(self._saved_switch)
+            self._saved_switch = None
 
     @Slot(object, object, int, float)
     def _on_done(self, res, msg, generation, seconds):
@@ -154,10 +191,12 @@ class FitRunner(QObject):
         elif pending is not None:
             self._start(self.document.fit_request())
         else:
+            self._restore_switch()
             self.busy_changed.emit(False)
 
     def _deliver(self, res, msg, generation, seconds):
         self.last_seconds = seconds
+        self._last_end = time.perf_counter()
         doc = self.document
         if res is None:
             doc.reject_fit(msg, generation)
