@@ -319,6 +319,7 @@ class GridItem(pg.GraphicsObject):
         super().__init__()
         self._plot = plot_item
         self.setZValue(-1e6)
+        self._tick_key, self._ticks = None, [[], []]
         self._pens = []
         for c in (self.MAJOR, self.MINOR):
             pen = QPen(c)
@@ -349,12 +350,18 @@ class GridItem(pg.GraphicsObject):
             return
         sx = (b.x() - a.x()) / (x1 - x0) if x1 != x0 else 0.0
         sy = (b.y() - a.y()) / (y1 - y0) if y1 != y0 else 0.0
-        levels = []
-        for name, lo, hi, size in (("bottom", x0, x1, right - left), ("left", y0, y1, bottom - top)):
-            try:
-                levels.append(self._plot.getAxis(name).tickValues(lo, hi, size)[:2])
-            except Exception:  # noqa: BLE001 - an axis that cannot tick: no grid lines
-                levels.append([])
+        axes = [self._plot.getAxis(name) for name in ("bottom", "left")]
+        key = (x0, x1, y0, y1, round(right - left), round(bottom - top),
+               axes[0].logMode, axes[1].logMode)
+        if key != self._tick_key:
+            levels = []
+            for ax, lo, hi, size in ((axes[0], x0, x1, right - left), (axes[1], y0, y1, bottom - top)):
+                try:
+                    levels.append(ax.tickValues(lo, hi, size)[:2])
+                except Exception:  # noqa: BLE001 - an axis that cannot tick: no grid lines
+                    levels.append([])
+            self._tick_key, self._ticks = key, levels
+        levels = self._ticks
         p.resetTransform()
         p.setRenderHint(QPainter.Antialiasing, False)
         for lev in (1, 0):  # minor lines first, major on top
@@ -599,11 +606,13 @@ class PlotView(pg.GraphicsLayoutWidget):
                 msg = f"previous result (stale): {doc.fit_message}"
             else:
                 msg = "stale: refitting..."
-            self.stale_text.setText(msg)
+            if self.stale_text.textItem.toPlainText() != msg:
+                self.stale_text.setText(msg)
             if self.curve.opts["pen"] is not self._stale_pen:
                 self.curve.setPen(self._stale_pen)
         else:
-            self.stale_text.setText("")
+            if self.stale_text.textItem.toPlainText():
+                self.stale_text.setText("")
             if self.curve.opts["pen"] is not self._curve_pen:
                 self.curve.setPen(self._curve_pen)
         vr = self.data_plot.vb.viewRange()

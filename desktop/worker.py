@@ -1,9 +1,9 @@
 """Running fits for the window: throttled, superseding, off the GUI thread when large.
 
 :class:`FitRunner` watches the document. After a change to the fit inputs it fits
-at once when the last inline fit ended at least a short gap ago (``debounce_ms``,
-or as long as that fit took, whichever is longer), so a single click is answered
-without delay; changes that come faster than that (a box drag) are collected and
+at once when it is the first change for a while (``QUIET_S``) or when the last
+inline fit ended at least a short gap ago (``debounce_ms``, or as long as that fit
+took, whichever is longer), so a single click is answered without delay; changes that come faster than that (a box drag) are collected and
 the newest inputs are fitted when the gap has passed, so a drag gives a live fit a
 few times a second, never one fit per mouse move, and the window keeps time to
 process events between fits. Small fits run inline; fits over ``thread_threshold``
@@ -73,7 +73,7 @@ class FitRunner(QObject):
     debounce_ms
         Shortest gap between the end of one inline fit and the start of the next
         while changes keep coming (the gap is also at least as long as the last
-        fit took, up to a quarter second).
+        fit took, up to ``slow_fit_s``).
     thread_threshold
         Fits with more points than this run in the worker thread.
     """
@@ -83,10 +83,12 @@ class FitRunner(QObject):
     #: a result or failure was delivered to the document
     finished = Signal()
 
+    #: a change this long after the previous one starts a new burst: it fits at once
+    QUIET_S = 0.1
     #: thread switch interval (s) while a worker fit runs
     SWITCH_INTERVAL_S = 0.0001
 
-    def __init__(self, document: Document, debounce_ms: int = 20, thread_threshold: int = 20000,
+    def __init__(self, document: Document, debounce_ms: int = 10, thread_threshold: int = 20000,
                  slow_fit_s: float = 0.06, parent=None):
         super().__init__(parent)
         self.document = document
@@ -106,6 +108,7 @@ class FitRunner(QObject):
         self._cooldown.timeout.connect(self._on_cooldown)
         self._dirty = False
         self._last_end = -float("inf")  # perf_counter() when the last fit was delivered
+        self._last_request = -float("inf")  # perf_counter() of the last change
         self._saved_switch = None
         self._last_threaded = False
         document.subscribe(self._on_document)
@@ -119,11 +122,14 @@ class FitRunner(QObject):
         """Ask for a fit of the current inputs (at once, or after the gap; see the class)."""
         if not self.document.has_data:
             return
+        now = time.perf_counter()
+        quiet = now - self._last_request >= self.QUIET_S
+        self._last_request = now
         if self._cooldown.isActive():
             self._dirty = True  # the timer fits the newest inputs when the gap has passed
             return
-        wait = self.gap_seconds() - (time.perf_counter() - self._last_end)
-        if wait <= 0:
+        wait = self.gap_seconds() - (now - self._last_end)
+        if quiet or wait <= 0:
             self._dirty = False
             self.fit_now()
             return
@@ -138,7 +144,7 @@ class FitRunner(QObject):
         """
         if self._last_threaded:
             return 0.0
-        return max(self.debounce_ms / 1000.0, min(self.last_seconds, 0.25))
+        return max(self.debounce_ms / 1000.0, min(self.last_seconds, self.slow_fit_s))
 
     def _on_cooldown(self):
         if self._dirty:
