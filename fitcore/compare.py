@@ -305,6 +305,7 @@ def reading_text(alpha, alpha_u, interval, shift, shift_param) -> str:
     gaussian = interval[1] >= 2.0 - 1e-9
     has_shift = shift_param is not None and math.isfinite(shift)
     where = f" ({shift_param})" if has_shift else ""
+    where_in = f", for {shift_param}" if has_shift else ""
     if gaussian:
         head = f"Tails close to Gaussian ({phrase})"
         if not has_shift or shift <= 1.0:
@@ -317,7 +318,7 @@ def reading_text(alpha, alpha_u, interval, shift, shift_param) -> str:
         return f"{head}: a robust loss is advisable (the least-squares fit failed)."
     if shift <= 1.0:
         return (f"{head}: a robust loss changes the answer by less than one standard "
-                f"uncertainty (at most {shift:.1f}{where}), but its estimates are more "
+                f"uncertainty (at most {shift:.1f}{where_in}), but its estimates are more "
                 f"reliable with such tails.")
     return (f"{head}: a robust loss changes the answer by up to {shift:.1f} standard "
             f"uncertainties{where}.")
