@@ -29,7 +29,7 @@ from .document import Document
 
 #: number of size levels the weights are quantised to
 N_LEVELS = 8
-MIN_SIZE = 3.0   # px, weight 0
+MIN_SIZE = 4.5   # px, weight 0 (still easy to see: low weights are the points to look at)
 MAX_SIZE = 10.0  # px, weight 1
 #: styles (rows of the symbol atlas)
 USED, DOWN, EXCLUDED = 0, 1, 2
@@ -39,6 +39,18 @@ COLOURS = {
     EXCLUDED: (None, QColor(200, 30, 45)),
 }
 SELECT_COLOUR = QColor(255, 200, 0)
+
+
+def _hex(c: QColor) -> str:
+    return c.name()
+
+
+#: one line above the plot saying what the symbols mean
+SYMBOL_KEY = (
+    f"<span style='color:{_hex(COLOURS[USED][0])}'>&#9679;</span> used, size = weight"
+    f"&nbsp;&nbsp;<span style='color:{_hex(COLOURS[DOWN][0])}'>&#9679;</span> down-weighted (w &lt; 0.5)"
+    f"&nbsp;&nbsp;<span style='color:{_hex(COLOURS[EXCLUDED][1])}'>&#8855;</span> excluded"
+)
 HIT_RADIUS = 8.0  # px
 
 
@@ -478,13 +490,20 @@ class PlotView(pg.GraphicsLayoutWidget):
                 plot.getAxis(ax).setTextPen(pg.mkPen(30, 30, 30))
         self.data_plot.getAxis("left").setWidth(70)
         self.resid_plot.getAxis("left").setWidth(70)
+        for plot in (self.data_plot, self.resid_plot):
+            for ax in ("left", "bottom"):
+                # units come from the file; a "(x0.001)" scale factor after them misleads
+                plot.getAxis(ax).enableAutoSIPrefix(False)
+        # the residual plot underneath carries the shared x label
+        self.data_plot.getAxis("bottom").showLabel(False)
+        self.data_plot.setTitle(SYMBOL_KEY, size="9pt", color="#333333")
 
         self.band_lo = pg.PlotCurveItem(pen=pg.mkPen(None))
         self.band_hi = pg.PlotCurveItem(pen=pg.mkPen(None))
         self.band = pg.FillBetweenItem(self.band_lo, self.band_hi, brush=pg.mkBrush(31, 92, 170, 45))
         self._curve_pen = pg.mkPen(20, 20, 20, width=2)
         self._stale_pen = pg.mkPen(120, 120, 120, width=2, style=Qt.DashLine)
-        self.curve = pg.PlotCurveItem(pen=self._curve_pen)
+        self.curve = pg.PlotCurveItem(pen=self._curve_pen, antialias=True)
         self.points = PointsItem()
         for item in (self.band_lo, self.band_hi, self.band):
             self.data_plot.addItem(item, ignoreBounds=True)
@@ -554,6 +573,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         if event == "data":
             m = self.document.measurements
             self.data_plot.setLabel("bottom", m.label("x"))
+            self.data_plot.getAxis("bottom").showLabel(False)  # shown under the residuals
             self.data_plot.setLabel("left", m.label("y"))
             self.resid_plot.setLabel("bottom", m.label("x"))
             self.resid_plot.setLabel("left", f"residual ({m.y_unit})" if m.y_unit else "residual")
