@@ -230,7 +230,7 @@ class PointsItem(pg.GraphicsObject):
     def _build_fragments(self, tr, w: float, h: float, dpr: float) -> int:
         """Fill the fragment array for the current state; returns the fragment count."""
         dev = self._device_coords(tr)
-        key = (self._dev_key, w, h, dpr, self._style_version)
+        key = (self._dev_key, w, h, dpr, self._style_version, self.DEDUP_MIN)
         if key == self._frag_key:
             return self._n_frags
         pad = self._cell
