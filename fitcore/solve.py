@@ -359,6 +359,14 @@ def _refine_linear_ls(prob: _Problem, theta: np.ndarray, steps: int = 8):
 
 # --------------------------------------------------------------------------- L1
 def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
+    """Exact least-absolute-deviations fit ``min sum |b - A theta|`` by linear programming.
+
+    An L1 minimiser need not be unique (a whole edge of the LP can be optimal); the rows
+    are put in a canonical order first so that the vertex returned does not depend on
+    the order of the points in the file.
+    """
+    order = np.lexsort(np.vstack([b[None, :], A.T[::-1]]))
+    A, b = A[order], b[order]
     n, k = A.shape
     c = np.concatenate([np.zeros(k), np.ones(2 * n)])
     eye = sparse.identity(n, format="csr")
