@@ -338,6 +338,8 @@ def _shifts(l2: FitResult | None, ad: FitResult) -> dict[str, float]:
 
 
 def adaptive_reading(model, x, y, *, fits: dict | None = None, alphas=None,
+                     progress: Callable[[int, int], None] | None = None,
+                     cancel: Callable[[], bool] | None = None,
                      **fit_kwargs) -> AdaptiveReading:
     """Fit the adaptive loss and read its shape alpha in plain language.
 
@@ -351,24 +353,41 @@ def adaptive_reading(model, x, y, *, fits: dict | None = None, alphas=None,
         same data and settings (e.g. ``LossComparison.results``); missing ones are fitted.
     alphas
         Grid for the profile (default 41 points from 0 to 2).
+    progress
+        ``progress(i, 3)`` after each stage (adaptive fit, least-squares fit, profile).
+    cancel
+        ``cancel() -> True`` is checked between the stages; a cancelled reading raises
+        :class:`FitError`.
 
     Raises
     ------
     FitError
-        When the adaptive fit itself fails.
+        When the adaptive fit itself fails, or on cancel.
     """
     _check_kwargs(fit_kwargs, FIT_KWARGS, "adaptive_reading")
     mdl = _resolve(model)
     fits = dict(fits or {})
+
+    def stage(i):
+        if progress is not None:
+            progress(i, 3)
+        if cancel is not None and cancel():
+            raise FitError("the adaptive reading was cancelled")
+
+    stage(0)
     ad = fits.get("adaptive")
     if ad is None:
         ad = fit(mdl, x, y, loss="adaptive", **fit_kwargs)
+    stage(1)
     l2 = fits.get("l2")
     if l2 is None:
         l2, _ = _safe_fit(mdl, x, y, "l2", fit_kwargs)
+    stage(2)
     grid = np.linspace(0.0, 2.0, 41) if alphas is None else np.asarray(alphas, dtype=float)
     prof_kw = {k: fit_kwargs[k] for k in ("sigma", "excluded", "p0", "fixed") if k in fit_kwargs}
     a_grid, nll, _ = alpha_profile(mdl, x, y, grid, **prof_kw)
+    if progress is not None:
+        progress(3, 3)
     alpha = float(ad.alpha)
     interval = lr_interval(a_grid, nll, alpha, float(ad.info.get("nll", float("nan"))))
     shifts = _shifts(l2, ad)

@@ -220,3 +220,13 @@ def test_reading_text_rules():
     assert t.startswith("Tails heavier than Gaussian") and "less than one" in t
     t = cmpmod.reading_text(2.0, None, (1.5, 2.0), 2.5, "a")
     assert "yet a robust loss changes the answer by 2.5" in t
+
+
+def test_reading_progress_and_cancel(decay_with_outliers):
+    x, y = decay_with_outliers
+    calls = []
+    adaptive_reading("exp_decay", x, y, alphas=np.linspace(0, 2, 5),
+                     progress=lambda i, n: calls.append((i, n)))
+    assert calls == [(0, 3), (1, 3), (2, 3), (3, 3)]
+    with pytest.raises(fitcore.FitError, match="cancelled"):
+        adaptive_reading("exp_decay", x, y, cancel=lambda: True)
