@@ -356,9 +356,17 @@ class MainWindow(QMainWindow):
         try:
             sel = QItemSelection()
             ncol = self.proxy.columnCount() - 1
-            for r in list(rows)[:5000]:
-                pi = self.proxy.mapFromSource(self.points_model.index(int(r), 0))
-                sel.select(pi, self.proxy.index(pi.row(), ncol))
+            rows = np.asarray(rows, np.intp)
+            if self.proxy.sortColumn() < 0 and self.proxy.rowCount() == self.points_model.rowCount():
+                prow = np.unique(rows)  # unsorted table: table row = point index
+            else:
+                prow = np.unique([self.proxy.mapFromSource(self.points_model.index(int(r), 0)).row()
+                                  for r in rows[:5000]])
+            prow = prow[prow >= 0]
+            if prow.size:  # one selection range per run of adjacent rows (a box drag: a few)
+                cut = np.flatnonzero(np.diff(prow) != 1) + 1
+                for a, b in zip(prow[np.r_[0, cut]], prow[np.r_[cut - 1, prow.size - 1]]):
+                    sel.select(self.proxy.index(int(a), 0), self.proxy.index(int(b), ncol))
             sm.select(sel, QItemSelectionModel.ClearAndSelect)
             if len(rows):
                 pi = self.proxy.mapFromSource(self.points_model.index(int(rows[0]), 0))

@@ -209,3 +209,24 @@ def test_grid_lines_sit_at_the_axis_ticks(qtbot, log_x):
             assert arr[int(px.y()), col - 1:col + 2].min() < 250
             drawn.append(v)
     assert drawn
+
+
+# ---------------------------------------------------------------------------- selection sync
+@pytest.mark.parametrize("sort_column", [None, 2])
+def test_plot_selection_selects_the_same_points_in_the_table(qtbot, settings_file, sort_column):
+    from PySide6.QtCore import QSettings
+
+    from desktop.main_window import MainWindow
+
+    win = MainWindow(QSettings(settings_file, QSettings.IniFormat))
+    qtbot.addWidget(win)
+    doc = demo_doc(40)
+    win.load_measurements(doc.measurements, doc.settings)
+    assert win.runner.wait()
+    if sort_column is not None:
+        win.table.sortByColumn(sort_column, Qt.DescendingOrder)
+    chosen = [0, 1, 2, 3, 10, 11, 25, 39]  # runs and single points
+    win.document.set_selection(chosen, origin="plot")
+    assert win.selected_points().tolist() == chosen
+    win.document.set_selection([], origin="plot")
+    assert win.selected_points().tolist() == []
