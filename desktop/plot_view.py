@@ -668,7 +668,8 @@ class PlotView(pg.GraphicsLayoutWidget):
                 try:
                     b_lo, b_hi = res.band(grid)
                     ok = np.isfinite(b_lo) & np.isfinite(b_hi)
-                    ok &= ~self.log_y | ((b_lo > 0) & (b_hi > 0))
+                    if self.log_y:  # (``~False`` is -1, which made every band fail here)
+                        ok &= (b_lo > 0) & (b_hi > 0)
                     self.band_lo.setData(self._tx(grid[ok]), self._ty(b_lo[ok]))
                     self.band_hi.setData(self._tx(grid[ok]), self._ty(b_hi[ok]))
                 except Exception:  # noqa: BLE001 - no band (e.g. dof = 0)

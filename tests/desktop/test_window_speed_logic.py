@@ -230,3 +230,30 @@ def test_plot_selection_selects_the_same_points_in_the_table(qtbot, settings_fil
     assert win.selected_points().tolist() == chosen
     win.document.set_selection([], origin="plot")
     assert win.selected_points().tolist() == []
+
+
+# ---------------------------------------------------------------------------- band
+@pytest.mark.parametrize("log_y", [False, True])
+def test_confidence_band_is_drawn_from_the_result(qtbot, settings_file, log_y):
+    """The band shown is FitResult.band on the curve's grid (log y: its log10)."""
+    from PySide6.QtCore import QSettings
+
+    from desktop.main_window import MainWindow
+
+    win = MainWindow(QSettings(settings_file, QSettings.IniFormat))
+    qtbot.addWidget(win)
+    doc = demo_doc(40)
+    win.load_measurements(doc.measurements, doc.settings)
+    assert win.runner.wait()
+    win.plot.set_log(log_y=log_y)
+    bx, blo = win.plot.band_lo.getData()
+    _, bhi = win.plot.band_hi.getData()
+    assert bx is not None and len(bx) > 100
+    lo, hi = win.document.result.band(bx)
+    if log_y:
+        lo, hi = np.log10(lo), np.log10(hi)
+    np.testing.assert_allclose(blo, lo, rtol=1e-12)
+    np.testing.assert_allclose(bhi, hi, rtol=1e-12)
+    assert np.all(bhi > blo)
+    win.band_action.setChecked(False)
+    assert not win.plot.band.isVisible()
