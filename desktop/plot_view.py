@@ -392,6 +392,35 @@ class GridItem(pg.GraphicsObject):
         p.setTransform(tr)
 
 
+class BandItem(pg.QtWidgets.QGraphicsPathItem):
+    """The confidence band: one filled polygon, built once per result.
+
+    (pyqtgraph's fill-between item rebuilds its path in Python once per bounding
+    curve on every change, and paints through Python; this one paints in C++.)
+    """
+
+    BRUSH = QColor(31, 92, 170, 45)
+
+    def __init__(self):
+        super().__init__()
+        self.setPen(QPen(Qt.NoPen))
+        self.setBrush(QBrush(self.BRUSH))
+        self.x = self.lo = self.hi = np.zeros(0)
+
+    def set_band(self, x, lo, hi):
+        """Fill between ``lo`` and ``hi`` over ``x`` (plot coordinates; empty = no band)."""
+        self.x, self.lo, self.hi = (np.asarray(a, float) for a in (x, lo, hi))
+        if self.x.size < 2:
+            self.setPath(pg.QtGui.QPainterPath())
+            return
+        path = fn.arrayToQPath(np.r_[self.x, self.x[::-1]], np.r_[self.hi, self.lo[::-1]], connect="all")
+        path.closeSubpath()
+        self.setPath(path)
+
+    def dataBounds(self, ax, frac=1.0, orthoRange=None):
+        return (None, None)
+
+
 class PickViewBox(pg.ViewBox):
     """A view box that reports clicks and rectangle drags to a handler.
 
@@ -498,15 +527,12 @@ class PlotView(pg.GraphicsLayoutWidget):
         self.data_plot.getAxis("bottom").showLabel(False)
         self.data_plot.setTitle(SYMBOL_KEY, size="9pt", color="#333333")
 
-        self.band_lo = pg.PlotCurveItem(pen=pg.mkPen(None))
-        self.band_hi = pg.PlotCurveItem(pen=pg.mkPen(None))
-        self.band = pg.FillBetweenItem(self.band_lo, self.band_hi, brush=pg.mkBrush(31, 92, 170, 45))
+        self.band = BandItem()
         self._curve_pen = pg.mkPen(20, 20, 20, width=2)
         self._stale_pen = pg.mkPen(120, 120, 120, width=2, style=Qt.DashLine)
         self.curve = pg.PlotCurveItem(pen=self._curve_pen, antialias=True)
         self.points = PointsItem()
-        for item in (self.band_lo, self.band_hi, self.band):
-            self.data_plot.addItem(item, ignoreBounds=True)
+        self.data_plot.addItem(self.band, ignoreBounds=True)
         self.data_plot.addItem(self.curve, ignoreBounds=True)
         self.data_plot.addItem(self.points)
         self.zero = pg.InfiniteLine(pos=0, angle=0, pen=pg.mkPen(90, 90, 90, width=1))
@@ -644,8 +670,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         m = doc.measurements
         if res is None or m.n == 0 or len(res.weights) != m.n:
             self.curve.setData([], [])
-            self.band_lo.setData([], [])
-            self.band_hi.setData([], [])
+            self.band.set_band([], [], [])
             self.resid_points.set_points(self._tx(m.x), np.full(m.n, np.nan))
             self._mark_stale()
             return
@@ -670,11 +695,9 @@ class PlotView(pg.GraphicsLayoutWidget):
                     ok = np.isfinite(b_lo) & np.isfinite(b_hi)
                     if self.log_y:  # (``~False`` is -1, which made every band fail here)
                         ok &= (b_lo > 0) & (b_hi > 0)
-                    self.band_lo.setData(self._tx(grid[ok]), self._ty(b_lo[ok]))
-                    self.band_hi.setData(self._tx(grid[ok]), self._ty(b_hi[ok]))
+                    self.band.set_band(self._tx(grid[ok]), self._ty(b_lo[ok]), self._ty(b_hi[ok]))
                 except Exception:  # noqa: BLE001 - no band (e.g. dof = 0)
-                    self.band_lo.setData([], [])
-                    self.band_hi.setData([], [])
+                    self.band.set_band([], [], [])
         self.resid_points.set_points(self._tx(m.x), np.asarray(res.residuals, float))
         self._mark_stale()
 

@@ -246,8 +246,9 @@ def test_confidence_band_is_drawn_from_the_result(qtbot, settings_file, log_y):
     win.load_measurements(doc.measurements, doc.settings)
     assert win.runner.wait()
     win.plot.set_log(log_y=log_y)
-    bx, blo = win.plot.band_lo.getData()
-    _, bhi = win.plot.band_hi.getData()
+    band = win.plot.band
+    bx, blo, bhi = band.x, band.lo, band.hi
+    assert band.path().elementCount() == 2 * len(bx) + 1  # the polygon, closed
     assert bx is not None and len(bx) > 100
     lo, hi = win.document.result.band(bx)
     if log_y:
