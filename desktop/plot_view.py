@@ -538,6 +538,8 @@ class PlotView(pg.GraphicsLayoutWidget):
         self.zero = pg.InfiniteLine(pos=0, angle=0, pen=pg.mkPen(90, 90, 90, width=1))
         self.resid_plot.addItem(self.zero, ignoreBounds=True)
         self.resid_points = PointsItem(scale=0.8)
+        self._resid_manual = False  # the analyst zoomed or panned the residual plot
+        self.vb_resid.sigRangeChangedManually.connect(self._resid_range_changed_by_hand)
         self.resid_plot.addItem(self.resid_points)
         self.resid_plot.setLabel("left", "residual")
         self.stale_text = pg.TextItem("", color=(200, 30, 45), anchor=(0, 0))
@@ -558,7 +560,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         self._set_positions()
         self._draw_result()
         self.data_plot.enableAutoRange()
-        self.resid_plot.enableAutoRange()
+        self._auto_resid_range(reset=True)
         self.axes_changed.emit()
 
     def set_band_visible(self, on: bool):
@@ -607,7 +609,7 @@ class PlotView(pg.GraphicsLayoutWidget):
             self._restyle()
             self._draw_result()
             self.data_plot.enableAutoRange()
-            self.resid_plot.enableAutoRange()
+            self._auto_resid_range(reset=True)
         elif event == "mask":
             self._restyle()
         elif event == "selection":
@@ -699,7 +701,37 @@ class PlotView(pg.GraphicsLayoutWidget):
                 except Exception:  # noqa: BLE001 - no band (e.g. dof = 0)
                     self.band.set_band([], [], [])
         self.resid_points.set_points(self._tx(m.x), np.asarray(res.residuals, float))
+        self._auto_resid_range()
         self._mark_stale()
+
+    def _auto_resid_range(self, reset: bool = False):
+        """Fit the residual plot's y range to the residuals, but only when they left it.
+
+        A refit moves every residual a little; re-ranging the axis on each one made
+        it jitter (and re-laid out its ticks on every click). The range is renewed
+        when a residual falls outside it or the residuals use under 60 % of it, and
+        not at all once the analyst zoomed or panned the residual plot (until new
+        data or a change of log axes).
+        """
+        vb = self.vb_resid
+        if reset:
+            self._resid_manual = False
+        if self._resid_manual:
+            return
+        vb.enableAutoRange(x=True, y=False)
+        pts = self.resid_points
+        r = pts.y[pts._finite] if pts._any_finite else np.zeros(0)
+        if r.size == 0:
+            return
+        lo, hi = float(r.min()), float(r.max())
+        span = hi - lo if hi > lo else max(abs(hi), 1e-300)
+        y0, y1 = vb.viewRange()[1]
+        if not reset and y0 <= lo and hi <= y1 and span >= 0.6 * (y1 - y0):
+            return
+        vb.setYRange(lo - 0.08 * span, hi + 0.08 * span, padding=0)
+
+    def _resid_range_changed_by_hand(self, *_):
+        self._resid_manual = True
 
     # ---------------------------------------------------------------- picking
     def _item_for(self, vb):

@@ -258,3 +258,43 @@ def test_confidence_band_is_drawn_from_the_result(qtbot, settings_file, log_y):
     assert np.all(bhi > blo)
     win.band_action.setChecked(False)
     assert not win.plot.band.isVisible()
+
+
+# ---------------------------------------------------------------------------- residual range
+def test_residual_range_holds_still_until_residuals_leave_it(qtbot, settings_file):
+    from PySide6.QtCore import QSettings
+
+    from desktop.commands import MaskCommand
+    from desktop.main_window import MainWindow
+
+    win = MainWindow(QSettings(settings_file, QSettings.IniFormat))
+    qtbot.addWidget(win)
+    doc = demo_doc(40)
+    win.load_measurements(doc.measurements, doc.settings)
+    assert win.runner.wait()
+    doc = win.document
+    vb = win.plot.vb_resid
+    r = doc.result.residuals
+    y0, y1 = vb.viewRange()[1]
+    assert y0 < r.min() and r.max() < y1
+    # excluding an ordinary point moves every residual a little: the range stays
+    win.push(MaskCommand(doc, doc.make_mask_change([20], True)))
+    assert win.runner.wait()
+    assert doc.result_generation == doc.generation
+    assert vb.viewRange()[1] == pytest.approx([y0, y1])
+    # a range the residuals leave, or use under 60 % of, is renewed at the next refit
+    r = doc.result.residuals
+    for a, b in ((r.min() / 2, r.max() / 2), (r.min() - 10 * np.ptp(r), r.max() + 10 * np.ptp(r))):
+        vb.setYRange(a, b, padding=0)
+        win.undo_stack.undo() if doc.excluded.any() else win.undo_stack.redo()
+        assert win.runner.wait()
+        r = doc.result.residuals
+        z0, z1 = vb.viewRange()[1]
+        assert z0 < r.min() and r.max() < z1
+        assert np.ptp(r) >= 0.6 * (z1 - z0)
+    # once the analyst zooms the residual plot, refits leave the range alone
+    vb.sigRangeChangedManually.emit([False, True])
+    vb.setYRange(-1.0, 1.0, padding=0)
+    win.undo_stack.undo()
+    assert win.runner.wait()
+    assert vb.viewRange()[1] == pytest.approx([-1.0, 1.0])
