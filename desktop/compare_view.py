@@ -66,7 +66,17 @@ def _loss_names() -> tuple[str, ...]:
         return DEFAULT_LOSSES
 
 
+SHORT_TITLES = {"l2": "least squares", "l1": "L1", "huber": "Huber", "pseudo_huber": "pseudo-Huber",
+                "cauchy": "Cauchy", "geman_mcclure": "Geman-McClure", "welsch": "Welsch",
+                "tukey": "Tukey", "general": "general", "adaptive": "adaptive"}
+
+
 def _loss_title(name: str) -> str:
+    """Short name for headers and the legend (the long title is in the tooltips)."""
+    return SHORT_TITLES.get(name, name)
+
+
+def _long_title(name: str) -> str:
     try:
         from fitcore.losses import LOSS_TITLES
 
@@ -128,6 +138,9 @@ def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: boo
         extra = {}
         if _accepts(adaptive_reading, "cancel"):
             extra["cancel"] = flag
+        n_loss = len(request["losses"])
+        if progress is not None and _accepts(adaptive_reading, "progress"):
+            extra["progress"] = lambda i, t: progress(n_loss + i, n_loss + t)
         done = {k: cmp.results.get(k) for k in ("l2", "adaptive") if cmp.results.get(k) is not None}
         if done:
             extra["fits"] = done
@@ -192,6 +205,9 @@ class AdaptivePanel(QGroupBox):
         a, u = float(reading.alpha), reading.alpha_u
         if u is not None and np.isfinite(u) and u > 0:
             self.alpha_label.setText(f"alpha = {fmt_value(a, float(u))}")
+        elif a <= 1e-9 or a >= 2.0 - 1e-9:
+            self.alpha_label.setText(f"alpha = {a:.2f} (at the {'lower' if a < 1 else 'upper'} end "
+                                     "of [0, 2]: no standard uncertainty)")
         else:
             self.alpha_label.setText(f"alpha = {a:.3g}")
         prof = getattr(reading, "profile", None)
@@ -201,8 +217,7 @@ class AdaptivePanel(QGroupBox):
             if ok.any():
                 d = nll[ok] - np.min(nll[ok])
                 self.curve.setData(al[ok], d)
-                top = float(min(max(np.max(d), 2.5), 30.0))
-                self.plot.setYRange(0, top, padding=0.05)
+                self.plot.setYRange(0, float(max(np.max(d), 2.5)), padding=0.05)
         iv = getattr(reading, "interval", None)
         if iv is not None and len(iv) == 2 and np.all(np.isfinite(iv)):
             self.interval.setRegion((float(iv[0]), float(iv[1])))
@@ -258,9 +273,10 @@ class CompareView(QWidget):
         for k, name in enumerate(_loss_names()):
             cb = QCheckBox(_loss_title(name))
             cb.setChecked(name in DEFAULT_LOSSES)
-            cb.setToolTip(name)
+            cb.setToolTip(_long_title(name))
             self.checks[name] = cb
             grid.addWidget(cb, k // 5, k % 5)
+        grid.setHorizontalSpacing(14)
         lay.addWidget(box)
         row = QHBoxLayout()
         self.run_button = QPushButton("Compare")
@@ -407,6 +423,7 @@ class CompareView(QWidget):
             hdr = self.table.horizontalHeaderItem(c)
             hdr.setForeground(QBrush(QColor(*LOSS_PENS.get(loss, ((60, 60, 60), 0))[0])))
             hdr.setData(VALUE_ROLE, loss)
+            hdr.setToolTip(_long_title(loss))
         flagged = self.differing()
         bold = QFont()
         bold.setBold(True)
@@ -496,7 +513,6 @@ class CompareView(QWidget):
         self.curves = {}
         if self.legend is not None:
             sc = self.legend.scene()
-            self.legend.setParentItem(None)
             if sc is not None:
                 sc.removeItem(self.legend)
             self.legend = None

@@ -46,13 +46,18 @@ def ramp_colormap() -> pg.ColorMap:
 
 
 def _method_label(d) -> str:
-    m = str(getattr(d, "method", "") or "")
-    low = m.lower()
-    if "one" in low and "step" in low:
-        return "one-step approximation"
-    if "exact" in low or "refit" in low:
-        return "exact refits"
-    return m or "unknown method"
+    """Short name of the influence method: "exact refits", "one-step" or "mixed"."""
+    exact = np.asarray(getattr(d, "exact", []), bool)
+    lev = np.asarray(d.leverage, float)
+    used = np.isfinite(lev)
+    if exact.size == lev.size and used.any():
+        if exact[used].all():
+            return "exact refits"
+        if not exact[used].any():
+            return "one-step"
+        return "mixed"
+    m = str(getattr(d, "method", "") or "").lower()
+    return "one-step" if "step" in m else ("exact refits" if "exact" in m else "?")
 
 
 def diagnostic_columns(d, param_names, free=None) -> list[ExtraColumn]:
@@ -64,20 +69,27 @@ def diagnostic_columns(d, param_names, free=None) -> list[ExtraColumn]:
         infl = infl[:, None]
     high = np.asarray(getattr(d, "high_leverage", np.zeros(lev.size, bool)), bool)
     method = _method_label(d)
-    with np.errstate(all="ignore"):
-        absinf = np.abs(infl)
-        any_ok = np.isfinite(absinf).any(axis=1)
-        worst = np.where(any_ok, np.nanmax(np.where(np.isfinite(absinf), absinf, -1.0), axis=1), np.nan)
+    worst = getattr(d, "max_influence", None)
+    if worst is None:
+        with np.errstate(all="ignore"):
+            absinf = np.abs(infl)
+            any_ok = np.isfinite(absinf).any(axis=1)
+            worst = np.where(any_ok, np.nanmax(np.where(np.isfinite(absinf), absinf, -1.0), axis=1),
+                             np.nan)
+    worst = np.asarray(worst, float)
+    full_method = str(getattr(d, "method", "") or method)
+    short = "refits" if method == "exact refits" else method
     flag_tip = "High leverage: " + HIGH_LEVERAGE_NOTE
     cols = [
         ExtraColumn("leverage", lev, "{:.4f}",
                     "Leverage (hat value; J-based for nonlinear models). Points far out in x "
                     "have high leverage.", high, flag_tip),
-        ExtraColumn("diag. std. residual", std, "{:.3f}",
-                    "Standardised residual from the point diagnostics", None),
-        ExtraColumn("max |influence|", worst, "{:.3f}",
+        ExtraColumn("stud. residual", std, "{:.3f}",
+                    "Standardised residual corrected for leverage, u / sqrt(1 - h) (for least "
+                    "squares the internally studentised residual)", None),
+        ExtraColumn(f"max |infl.| ({short})", worst, "{:.3f}",
                     f"Largest change of any parameter, in its standard uncertainties, when this "
-                    f"point alone is excluded ({method})", None),
+                    f"point alone is excluded. Method: {full_method}", None),
     ]
     for k, name in enumerate(param_names):
         if free is not None and k < len(free) and not free[k]:
@@ -86,7 +98,7 @@ def diagnostic_columns(d, param_names, free=None) -> list[ExtraColumn]:
             break
         cols.append(ExtraColumn(f"infl. {name}", infl[:, k], "{:+.3f}",
                                 f"Change of {name}, in standard uncertainties of {name}, when this "
-                                f"point alone is excluded ({method})", None))
+                                f"point alone is excluded. Method: {full_method}", None))
     return cols
 
 
@@ -242,14 +254,16 @@ class DiagnosticsController(QObject):
         d = self.diagnostics
         if d is None:
             return ""
-        lines = [f"Point diagnostics: influence by {_method_label(d)}."]
+        lines = [f"Point diagnostics: influence by {getattr(d, 'method', '') or _method_label(d)}."]
         hi = self.high_leverage_points()
-        if hi.size:
-            shown = ", ".join(f"#{i + 1}" for i in hi[:12]) + (" ..." if hi.size > 12 else "")
-            lines.append(f"{hi.size} high-leverage point{'s' if hi.size != 1 else ''}: {shown}.")
-            lines.append(str(getattr(d, "note", "") or HIGH_LEVERAGE_NOTE))
-        elif getattr(d, "note", ""):
-            lines.append(str(d.note))
+        note = str(getattr(d, "note", "") or "")
+        if note:
+            lines.append(note)
+        elif hi.size:
+            shown = ", ".join(f"{i + 1}" for i in hi[:12]) + (" ..." if hi.size > 12 else "")
+            lines.append(f"High leverage: points {shown}. {HIGH_LEVERAGE_NOTE}")
+        else:
+            lines.append("No high-leverage points.")
         return " ".join(lines)
 
     def _set_note(self, text: str):
@@ -270,6 +284,8 @@ class DiagnosticsController(QObject):
             return None
         if self.colour_mode == "leverage":
             return np.asarray(d.leverage, float)
+        if getattr(d, "max_influence", None) is not None:
+            return np.asarray(d.max_influence, float)
         infl = np.abs(np.asarray(d.influence, float))
         if infl.ndim == 1:
             return infl
@@ -287,7 +303,6 @@ class DiagnosticsController(QObject):
             self._colour_bar = None
         if self._legend is not None:
             sc = self._legend.scene()
-            self._legend.setParentItem(None)
             if sc is not None:
                 sc.removeItem(self._legend)
             self._legend = None

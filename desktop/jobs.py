@@ -78,8 +78,9 @@ class Job(QObject):
         early with a partial answer; then ``cancelled`` is emitted instead).
     failed(message)
         The function raised; ``message`` is plain language.
-    cancelled()
-        Cancel was asked and the job stopped.
+    cancelled(partial)
+        Cancel was asked (``partial`` is None), or the function returned a result
+        marked ``cancelled``.
     busy_changed(bool)
     """
 
@@ -120,9 +121,21 @@ class Job(QObject):
         self._pool.start(_Task(fn, self._token, self._bridge, self._stop, self.progress_ms))
 
     def cancel(self) -> None:
-        """Ask the running job to stop (it ends at its next cancel check)."""
+        """Stop the running job.
+
+        The worker is asked to stop at its next cancel check; the window does not wait
+        for that: ``cancelled`` is emitted at once and whatever the worker still
+        returns is dropped (a new start queues behind it).
+        """
         if self._stop is not None:
             self._stop.set()
+        if self._running:
+            self._token += 1  # drop the abandoned run's answer
+            self._running = False
+            self._stop = None
+            self.seconds = time.perf_counter() - self._t0
+            self.busy_changed.emit(False)
+            self.cancelled.emit(None)
 
     @Slot(int, int)
     def _on_progress(self, done, total):
@@ -160,3 +173,7 @@ class Job(QObject):
         """Cancel and wait for the worker (window closing)."""
         self.cancel()
         self._pool.waitForDone(timeout_ms)
+
+    def idle_worker(self, timeout_ms: int = 30000) -> bool:
+        """Wait until the worker thread itself is idle (also after a cancel)."""
+        return self._pool.waitForDone(timeout_ms)
