@@ -456,6 +456,9 @@ class MainWindow(QMainWindow):
         self.bootstrap_dialog = None
 
         menu = self.menuBar().addMenu("&Analyse")
+        from . import analysis_worker
+
+        menu.aboutToShow.connect(analysis_worker.warm_up)  # a warm child process for the jobs
         help_menu = next((a for a in self.menuBar().actions() if a.text() == "&Help"), None)
         if help_menu is not None:
             self.menuBar().insertMenu(help_menu, menu)
@@ -521,6 +524,9 @@ class MainWindow(QMainWindow):
             self.diagnostics.shutdown()
         if getattr(self, "bootstrap_dialog", None) is not None:
             self.bootstrap_dialog.job.shutdown()
+        from . import analysis_worker
+
+        analysis_worker.shutdown()
 
 
 def first_sample_set():
