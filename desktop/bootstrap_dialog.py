@@ -48,13 +48,27 @@ class BootstrapRecord:
         return str(getattr(self.bootstrap, "method_text", ""))
 
 
-def run_bootstrap(res, kind: str, B: int, seed: int, level: float, progress=None, cancel=None):
+def run_bootstrap(res, kind: str, B: int, seed: int, level: float, progress=None, cancel=None,
+                  use_child: bool | None = None):
+    """``fitcore.bootstrap.bootstrap`` of ``res``, in a child process (see
+    :mod:`desktop.analysis_worker`; fitcore spreads a long run over its own pool there)."""
+    from . import analysis_worker as aw
+
+    if use_child is None:
+        use_child = int(res.n_used) <= aw.CHILD_MAX_POINTS
+    if use_child:
+        desc = aw.model_description(res.model, res.x, res.values)
+        if desc is not None:
+            msg = {"kind": "bootstrap", "model": desc, "result": aw.encode(res), "boot_kind": kind,
+                   "B": int(B), "seed": int(seed), "level": float(level)}
+            try:
+                return aw.run_in_child(msg, progress, cancel, model=res.model)
+            except aw.ChildError:
+                pass  # no child process here: run in this thread instead
     from fitcore.bootstrap import bootstrap
 
-    from .compare_view import _Flag
-
     return bootstrap(res, kind=kind, B=int(B), seed=int(seed), level=float(level),
-                     progress=progress, cancel=None if cancel is None else _Flag(cancel))
+                     progress=progress, cancel=None if cancel is None else aw._Flag(cancel))
 
 
 class BootstrapDialog(QDialog):

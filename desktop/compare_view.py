@@ -16,7 +16,6 @@ Closing the comparison removes the overlays and brings back the single fit.
 from __future__ import annotations
 
 import html
-import inspect
 
 import numpy as np
 import pyqtgraph as pg
@@ -85,30 +84,6 @@ def _long_title(name: str) -> str:
         return name
 
 
-class _Flag:
-    """A cancel flag both callable (``flag()``) and event-like (``flag.is_set()``)."""
-
-    def __init__(self, fn):
-        self._fn = fn
-
-    def __call__(self) -> bool:
-        return bool(self._fn())
-
-    def is_set(self) -> bool:
-        return bool(self._fn())
-
-    def __bool__(self) -> bool:
-        return bool(self._fn())
-
-
-def _accepts(fn, name: str) -> bool:
-    try:
-        sig = inspect.signature(fn)
-    except (TypeError, ValueError):
-        return False
-    return name in sig.parameters or any(p.kind == p.VAR_KEYWORD for p in sig.parameters.values())
-
-
 def comparison_request(document: Document, losses) -> dict:
     """Copies of everything one comparison needs (safe to hand to a worker)."""
     req = document.fit_request()
@@ -124,31 +99,31 @@ def comparison_request(document: Document, losses) -> dict:
             "losses": tuple(losses), "generation": req["generation"]}
 
 
-def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: bool = True):
-    """``(cmp, reading or None, reading error or None)`` for one request (worker side)."""
-    from fitcore.compare import adaptive_reading, compare_losses
+def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: bool = True,
+                   use_child: bool | None = None):
+    """``(cmp, reading or None, reading error or None)`` for one request (worker side).
 
-    kw = dict(request["kwargs"])
-    flag = _Flag(cancel) if cancel is not None else None
-    cmp = compare_losses(request["model"], request["x"], request["y"], losses=request["losses"],
-                         progress=progress, cancel=flag, **kw)
-    reading, err = None, None
-    if with_adaptive and not getattr(cmp, "cancelled", False) and not (flag and flag()):
-        akw = {k: v for k, v in kw.items() if k != "alpha"}
-        extra = {}
-        if _accepts(adaptive_reading, "cancel"):
-            extra["cancel"] = flag
-        n_loss = len(request["losses"])
-        if progress is not None and _accepts(adaptive_reading, "progress"):
-            extra["progress"] = lambda i, t: progress(n_loss + i, n_loss + t)
-        done = {k: cmp.results.get(k) for k in ("l2", "adaptive") if cmp.results.get(k) is not None}
-        if done:
-            extra["fits"] = done
+    Runs in a child process (:mod:`desktop.analysis_worker`) up to
+    ``CHILD_MAX_POINTS`` points, else in the calling thread.
+    """
+    from . import analysis_worker as aw
+
+    n = int(np.size(request["x"]))
+    if use_child is None:
+        use_child = n <= aw.CHILD_MAX_POINTS
+    if use_child:
+        from fitcore.models import resolve_model
+
+        model = resolve_model(request["model"])
+        msg = {"kind": "compare", "model": request["model"], "x": aw.encode(request["x"]),
+               "y": aw.encode(request["y"]), "kwargs": aw.encode(request["kwargs"]),
+               "losses": list(request["losses"]), "with_adaptive": bool(with_adaptive)}
         try:
-            reading = adaptive_reading(request["model"], request["x"], request["y"], **akw, **extra)
-        except ValueError as e:  # FitError and friends: the comparison still stands
-            err = str(e)
-    return cmp, reading, err
+            return tuple(aw.run_in_child(msg, progress, cancel, model=model))
+        except aw.ChildError:
+            pass  # no child process here: run in this thread instead
+    return aw.run_comparison_core(request["model"], request["x"], request["y"], request["kwargs"],
+                                  request["losses"], progress, cancel, with_adaptive)
 
 
 class AdaptivePanel(QGroupBox):

@@ -102,17 +102,31 @@ def diagnostic_columns(d, param_names, free=None) -> list[ExtraColumn]:
     return cols
 
 
-def run_diagnostics(res, progress=None, cancel=None, exact_limit: int = 500):
+def run_diagnostics(res, progress=None, cancel=None, exact_limit: int = 500,
+                    use_child: bool | None = None):
+    """``fitcore.diagnostics.point_diagnostics(res)``, in a child process when it refits.
+
+    The exact refits (up to ``exact_limit`` used points) run in a child process
+    (:mod:`desktop.analysis_worker`) so the window keeps its GIL; the one-step
+    approximation for larger data is a few vectorised numpy calls and runs here.
+    """
+    from . import analysis_worker as aw
+
+    if use_child is None:
+        use_child = int(res.n_used) <= exact_limit
+    if use_child:
+        desc = aw.model_description(res.model, res.x, res.values)
+        if desc is not None:
+            msg = {"kind": "diagnostics", "model": desc, "result": aw.encode(res),
+                   "exact_limit": int(exact_limit)}
+            try:
+                return aw.run_in_child(msg, progress, cancel, model=res.model)
+            except aw.ChildError:
+                pass  # no child process here: run in this thread instead
     from fitcore.diagnostics import point_diagnostics
 
-    kw = {"exact_limit": exact_limit}
-    if progress is not None:
-        kw["progress"] = progress
-    if cancel is not None:
-        from .compare_view import _Flag
-
-        kw["cancel"] = _Flag(cancel)
-    return point_diagnostics(res, **kw)
+    return point_diagnostics(res, exact_limit=exact_limit, progress=progress,
+                             cancel=None if cancel is None else aw._Flag(cancel))
 
 
 class DiagnosticsController(QObject):

@@ -163,20 +163,44 @@ def test_cancel_stops_and_keeps_the_single_fit(loaded, qtbot):
 
 
 def test_cancel_flag_reaches_fitcore(loaded):
-    """The worker side: a cancel asked before the first loss returns no fits."""
+    """The worker side: a cancel asked before the first loss returns no fits (in a
+    thread), and ends the child process at once (in a child)."""
     from desktop.compare_view import comparison_request
+    from desktop.jobs import Cancelled
 
     req = comparison_request(loaded.document, DEFAULT_LOSSES)
     seen = []
     cmp, reading, err = run_comparison(req, progress=lambda i, t: seen.append((i, t)),
-                                       cancel=lambda: True)
+                                       cancel=lambda: True, use_child=False)
     assert cmp.cancelled and all(r is None for r in cmp.results.values())
     assert reading is None and seen == []
+    t0 = time.perf_counter()
+    with pytest.raises(Cancelled):
+        run_comparison(req, cancel=lambda: True, use_child=True)
+    assert time.perf_counter() - t0 < 2.0
+
+
+def test_child_process_answers_equal_fitcore_in_process(loaded):
+    """The comparison made in the child process is bit for bit the in-process one."""
+    from desktop.compare_view import comparison_request
+
+    req = comparison_request(loaded.document, DEFAULT_LOSSES)
+    here = run_comparison(req, use_child=False)
+    there = run_comparison(req, use_child=True)
+    for loss in DEFAULT_LOSSES:
+        a, b = here[0].results[loss], there[0].results[loss]
+        assert np.array_equal(a.values, b.values) and np.array_equal(a.covariance, b.covariance)
+        assert np.array_equal(a.weights, b.weights) and a.scale == b.scale
+        np.testing.assert_array_equal(a.predict(np.linspace(0, 15, 7)), b.predict(np.linspace(0, 15, 7)))
+    assert here[1].text == there[1].text
+    np.testing.assert_array_equal(here[1].profile[1], there[1].profile[1])
 
 
 def test_failed_loss_is_shown_as_failed(loaded, monkeypatch):
     import fitcore.compare as fc
+    from desktop import analysis_worker
 
+    monkeypatch.setattr(analysis_worker, "CHILD_MAX_POINTS", 0)  # in-thread, so the patch counts
     real = fc.compare_losses
 
     def one_fails(*a, **kw):
@@ -212,8 +236,9 @@ def test_window_keeps_processing_events_during_comparison(loaded):
     """A 10 ms timer keeps ticking while the comparison runs in the worker.
 
     The comparison plus the adaptive profile takes about a second here; run in the
-    GUI thread it would stall the timer for all of it. The bound (250 ms) is looser
-    than the 100 ms aim because the test machine is shared.
+    GUI thread (or in a worker thread: the GIL) it would stall the timer for most of it.
+    The bound (150 ms) is a little looser than the 100 ms aim because the test machine
+    is shared; measured here: about 50 ms.
     """
     view = loaded.compare_view
     loaded.compare_dock.show()
@@ -238,5 +263,5 @@ def test_window_keeps_processing_events_during_comparison(loaded):
     timer.stop()
     assert view.comparison is not None
     assert len(gaps) > 5
-    assert max(gaps) < 0.25, (max(gaps), took)
+    assert max(gaps) < 0.15, (max(gaps), took)
 
