@@ -730,7 +730,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     try:
         if n_used > 2000 and (p0 is None or isinstance(p0, dict)):
             # start values need no more than a few thousand points (a seeded subsample)
-            pick = np.sort(np.random.default_rng(7).choice(n_used, 500, replace=False))
+            pick = np.sort(np.random.default_rng(7).choice(n_used, 300, replace=False))
             start = mdl.start_values(xu[pick], yu[pick], p0)
         else:
             start = mdl.start_values(xu, yu, p0)
@@ -814,7 +814,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             if n_used > _LARGE:
                 # the whole procedure on a subsample gives a robust start and scale, so
                 # the full data need only a few iterations
-                sub = _subproblem(prob)
+                sub = _subproblem(prob, _SUBSAMPLE if linear else 1500)
                 w_inner, w_s, w_it = _m_estimate(sub, start_theta, loss_obj, fixed_scale,
                                                  linear=linear, max_iter=max_iter)
                 start_theta, n_iter, warm_started = w_inner.theta, w_it, True
