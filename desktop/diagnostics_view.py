@@ -17,11 +17,9 @@ then
 """
 from __future__ import annotations
 
-import html
-
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QObject, Signal
+from PySide6.QtCore import QObject, Qt, Signal
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import QLabel
 
@@ -153,6 +151,8 @@ class DiagnosticsController(QObject):
         self.points_model = points_model
         self.plot = plot
         self.note_label = note_label
+        if note_label is not None:
+            note_label.setTextFormat(Qt.PlainText)
         self.exact_limit = int(exact_limit)
         self.enabled = False
         self.colour_mode = "none"
@@ -288,7 +288,7 @@ class DiagnosticsController(QObject):
             self.note_label.setStyleSheet("color: #3f1a6b; background: #efe6fa; padding: 4px;")
         else:
             self.note_label.setStyleSheet("color: #333; padding: 2px;")
-        self.note_label.setText(html.escape(text))
+        self.note_label.setText(text)
         self.note_label.setVisible(bool(text))
 
     # ------------------------------------------------------------ plot
