@@ -237,7 +237,8 @@ class BootstrapDialog(QDialog):
                     it.setData(VALUE_ROLE, (float(iv[r, 0]), float(iv[r, 1])))
                 self.table.setItem(r, c, it)
         text = rec.method_text or f"{b.kind} bootstrap, B = {b.B}"
-        self.method.setText(f"<b>Method</b>: {html.escape(text)} (seed {rec.seed}). "
+        seed = "" if "seed" in text else f" (seed {rec.seed})"
+        self.method.setText(f"<b>Method</b>: {html.escape(text)}{seed}. "
                             f"Analytic: {html.escape(str(res.covariance_recipe))}, Student t.")
 
     def _on_document(self, event, **info):

@@ -272,11 +272,26 @@ class CompareView(QWidget):
         lay.addWidget(self.status)
 
         split = QSplitter(Qt.Horizontal)
+        left = QWidget()
+        left_lay = QVBoxLayout(left)
+        left_lay.setContentsMargins(0, 0, 0, 0)
         self.table = QTableWidget(0, 0)
         self.table.setEditTriggers(QTableWidget.NoEditTriggers)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
         self.table.verticalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
-        split.addWidget(self.table)
+        left_lay.addWidget(self.table, 1)
+        foot = QHBoxLayout()
+        self.legend_note = QLabel("<span style='background:#ffddd6'>&nbsp;bold, shaded&nbsp;</span>: "
+                                  "differs from another loss by more than the combined standard "
+                                  "uncertainty (hover for the pairs)")
+        self.legend_note.setWordWrap(True)
+        self.copy_button = QPushButton("Copy table")
+        self.copy_button.setToolTip("Copy the comparison as tab-separated text")
+        self.copy_button.clicked.connect(self.copy)
+        foot.addWidget(self.legend_note, 1)
+        foot.addWidget(self.copy_button)
+        left_lay.addLayout(foot)
+        split.addWidget(left)
         self.adaptive = AdaptivePanel()
         split.addWidget(self.adaptive)
         split.setStretchFactor(0, 3)
@@ -523,6 +538,16 @@ class CompareView(QWidget):
                     it = self.table.item(r, c)
                     if it is not None:
                         it.setForeground(Qt.gray)
+
+    def copy(self) -> str:
+        """Put :meth:`text` on the clipboard (returns it)."""
+        from PySide6.QtGui import QGuiApplication
+
+        text = self.text()
+        if text:
+            reading = self.reading.text if self.reading is not None else ""
+            QGuiApplication.clipboard().setText(text + (f"\n\n{reading}" if reading else ""))
+        return text
 
     def text(self) -> str:
         """The comparison table as tab-separated text (for copying)."""

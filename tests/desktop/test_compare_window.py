@@ -265,3 +265,14 @@ def test_window_keeps_processing_events_during_comparison(loaded):
     assert len(gaps) > 5
     assert max(gaps) < 0.15, (max(gaps), took)
 
+
+
+def test_copy_table_puts_the_numbers_on_the_clipboard(loaded):
+    view = run_and_wait(loaded)
+    view.copy_button.click()
+    text = QGuiApplication.clipboard().text()
+    lines = text.splitlines()
+    assert lines[0].split("\t")[1:] == ["least squares", "Huber", "Cauchy", "Tukey", "adaptive"]
+    ref = view.comparison.results["huber"]
+    assert fmt_value(ref.values[0], ref.stderr[0]) == lines[1].split("\t")[2]
+    assert view.reading.text in text
