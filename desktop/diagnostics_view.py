@@ -243,6 +243,7 @@ class DiagnosticsController(QObject):
         self.diagnostics = None
         self.for_result = None
         self.points_model.set_extra_columns([])
+        self.points_model.set_row_flags(None)
         self._remove_plot_items()
         self._set_note(note)
         self.changed.emit()
@@ -252,6 +253,9 @@ class DiagnosticsController(QObject):
         if d is None or res is None:
             return
         self.points_model.set_extra_columns(diagnostic_columns(d, res.param_names, res.free))
+        hi = np.asarray(getattr(d, "high_leverage", []), bool)
+        self.points_model.set_row_flags(hi if hi.any() else None,
+                                        "High leverage: " + HIGH_LEVERAGE_NOTE)
         self._draw_plot()
         self._set_note(self.note_text())
         self.changed.emit()

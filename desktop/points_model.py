@@ -81,6 +81,9 @@ class PointsModel(QAbstractTableModel):
         self._bold = QFont()
         self._bold.setBold(True)
         self.extra: list[ExtraColumn] = []
+        #: rows marked in the "#" column (high-leverage points), with the tooltip
+        self.row_flags: np.ndarray | None = None
+        self.row_flag_tip = ""
         self._cache_result()
         document.subscribe(self._on_document)
 
@@ -143,6 +146,13 @@ class PointsModel(QAbstractTableModel):
         if new and self.document.n:
             self.headerDataChanged.emit(Qt.Horizontal, _NCOL, _NCOL + new - 1)
             self.dataChanged.emit(self.index(0, _NCOL), self.index(self.document.n - 1, _NCOL + new - 1))
+
+    def set_row_flags(self, flags, tip: str = "") -> None:
+        """Mark rows in the "#" column (None: no marks)."""
+        self.row_flags = None if flags is None else np.asarray(flags, bool)
+        self.row_flag_tip = tip
+        if self.document.n:
+            self.dataChanged.emit(self.index(0, 0), self.index(self.document.n - 1, 0))
 
     def _extra_data(self, row: int, col: ExtraColumn, r: int):
         v = float(col.values[row]) if row < len(col.values) else float("nan")
@@ -245,6 +255,9 @@ class PointsModel(QAbstractTableModel):
         if r == _ALIGN:
             return _LEFT if name in ("status", "reason") else _RIGHT
         if r == _BACKGROUND:
+            if name == "#" and self.row_flags is not None and row < len(self.row_flags) \
+                    and self.row_flags[row]:
+                return _FLAG_BG
             st = self._status[row] if row < len(self._status) else 0
             return _EXCLUDED_BG if st == 2 else (_DOWN_BG if st == 1 else None)
         if r == _FOREGROUND:
@@ -254,6 +267,9 @@ class PointsModel(QAbstractTableModel):
         if r == _FONT:
             return self._italic if doc.excluded[row] else None
         if r == _TOOLTIP:
+            if name == "#" and self.row_flags is not None and row < len(self.row_flags) \
+                    and self.row_flags[row]:
+                return self.row_flag_tip or None
             if name == "status":
                 return "Uncheck to exclude this point; check to restore it"
             if name == "reason" and doc.excluded[row]:

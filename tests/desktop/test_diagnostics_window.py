@@ -127,6 +127,8 @@ def test_stars_giants_are_flagged_high_leverage(stars):
     for obs in (11, 20, 30, 34):
         assert pm.data(pm.index(obs - 1, c), Qt.BackgroundRole) is not None
         assert pm.data(pm.index(obs - 1, c), Qt.FontRole).bold()
+        assert pm.data(pm.index(obs - 1, 0), Qt.BackgroundRole) is not None  # the "#" cell too
+    assert pm.data(pm.index(0, 0), Qt.BackgroundRole) is None
     note = stars.diag_note.text()
     assert "High leverage" in note and "11" in note and "robust loss" in note
     # the plot marks the four giants and says why in its legend
