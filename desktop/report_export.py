@@ -27,11 +27,17 @@ import os
 from pathlib import Path
 
 import numpy as np
-from PySide6.QtCore import QBuffer, QByteArray, QIODevice, QMarginsF, QMimeData, QSizeF, Qt, QUrl
-from PySide6.QtGui import QGuiApplication, QImage, QPageLayout, QPageSize, QTextDocument
+from pyqtgraph import functions as fn
+from PySide6.QtCore import (
+    QBuffer, QByteArray, QIODevice, QMarginsF, QMimeData, QPointF, QSizeF, Qt, QUrl,
+)
+from PySide6.QtGui import (
+    QBrush, QGuiApplication, QImage, QPageLayout, QPageSize, QPainter, QPen, QTextDocument,
+)
 from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 
 from . import dialogs
+from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -91,6 +97,27 @@ def parse_size(text: str):
 
 
 # ============================================================================ helpers
+_EXIT_GUARD = []
+
+
+def _clear_internal_clipboard():
+    app = QGuiApplication.instance()
+    if app is not None and QGuiApplication.platformName() in ("offscreen", "minimal"):
+        app.clipboard().clear()
+
+
+def _guard_clipboard_at_exit():
+    """On platforms whose clipboard lives inside the process (offscreen, minimal: tests,
+    scripts) Qt 6.11 crashes at interpreter exit when it still holds a QMimeData set
+    from Python; clear it first. The contents die with the process there anyway; a
+    desktop platform's clipboard is left alone."""
+    if not _EXIT_GUARD:
+        import atexit
+
+        atexit.register(_clear_internal_clipboard)
+        _EXIT_GUARD.append(True)
+
+
 def _h(s) -> str:
     return html.escape(str(s), quote=True)
 
@@ -205,6 +232,43 @@ def _bordered(table_html: str, cls: str = "") -> str:
 
 
 # ============================================================================ plot images
+class _VectorPoints(PointsItem):
+    """The window's points item painted as vector circles (for SVG export)."""
+
+    def paint(self, p, option, widget=None):
+        # only public state of PointsItem: positions, size levels and styles
+        x, y = np.asarray(self.x, float), np.asarray(self.y, float)
+        idx = np.flatnonzero(np.isfinite(x) & np.isfinite(y))
+        if idx.size == 0:
+            return
+        style = np.asarray(self.style, np.int64)
+        level = np.asarray(self.level, np.int64)
+        # paint order: used, down-weighted, excluded; within a style larger symbols first
+        idx = idx[np.lexsort((-level[idx], style[idx]))]
+        pts = fn.transformCoordinates(p.transform(), np.vstack([x[idx], y[idx]]))
+        p.save()
+        p.resetTransform()
+        p.setRenderHint(QPainter.Antialiasing, True)
+        for k, i in enumerate(idx):
+            st = int(self.style[i])
+            fill, edge = COLOURS[st]
+            lev = N_LEVELS - 1 if st == EXCLUDED else int(self.level[i])
+            r = level_size(lev) * self._scale / 2
+            c = QPointF(float(pts[0, k]), float(pts[1, k]))
+            if st == EXCLUDED:
+                p.setPen(QPen(edge, 1.6))
+                p.setBrush(Qt.NoBrush)
+                p.drawEllipse(c, r, r)
+                q = r * 0.44
+                p.drawLine(QPointF(c.x() - q, c.y() - q), QPointF(c.x() + q, c.y() + q))
+                p.drawLine(QPointF(c.x() - q, c.y() + q), QPointF(c.x() + q, c.y() - q))
+            else:
+                p.setPen(QPen(edge, 1.0))
+                p.setBrush(QBrush(fill))
+                p.drawEllipse(c, r, r)
+        p.restore()
+
+
 class _ExportPlot:
     """A hidden copy of the window's plot at an exact pixel size (same view and options)."""
 
@@ -215,6 +279,7 @@ class _ExportPlot:
         self.document = window.document
         self.view = PlotView(self.document, lambda _cmd: None)
         v = self.view
+        self._keep = []
         v.setAttribute(Qt.WA_DontShowOnScreen, True)
         v.resize(int(width), int(height))
         v.set_band_visible(getattr(src, "show_band", True))
@@ -225,6 +290,20 @@ class _ExportPlot:
         for a, b in ((src.data_plot, v.data_plot), (src.resid_plot, v.resid_plot)):
             (x0, x1), (y0, y1) = a.vb.viewRange()
             b.vb.setRange(xRange=(x0, x1), yRange=(y0, y1), padding=0)
+        QApplication.processEvents()
+
+    def use_vector_points(self):
+        """Draw the points as vector circles (for SVG) instead of the pixmap atlas."""
+        v = self.view
+        for plot, name in ((v.data_plot, "points"), (v.resid_plot, "resid_points")):
+            old = getattr(v, name)
+            new = _VectorPoints(old._scale)
+            new.set_points(old.x, old.y)
+            new.set_style(old.level, old.style, np.zeros(old.x.size, bool))
+            new.setZValue(old.zValue())
+            old.setVisible(False)  # hidden, not removed: the plot view still refers to it
+            plot.addItem(new)
+            self._keep.append(new)
         QApplication.processEvents()
 
     def image(self) -> QImage:
@@ -266,11 +345,32 @@ def _single_plot_image(window, which: str, width: int, height: int) -> QImage:
 
 def write_plot_svg(window, path, width: int, height: int) -> None:
     """The plot as SVG at ``width`` x ``height`` (pyqtgraph's SVG exporter)."""
-    from pyqtgraph.exporters import SVGExporter
+    from PySide6.QtCore import QRect, QRectF, QSize
+    from PySide6.QtSvg import QSvgGenerator
 
     ex = _ExportPlot(window, width, height)
     try:
-        SVGExporter(ex.view.scene()).export(str(path))
+        ex.use_vector_points()
+        tmp = str(path) + ".part"
+        gen = QSvgGenerator()
+        gen.setFileName(tmp)
+        gen.setSize(QSize(int(width), int(height)))
+        gen.setViewBox(QRect(0, 0, int(width), int(height)))
+        gen.setResolution(96)  # so the drawing is width x height CSS pixels
+        gen.setTitle("Ballast plot")
+        gen.setDescription("data, fitted curve, confidence band and residuals")
+        p = QPainter()
+        if not p.begin(gen):
+            raise OSError(f"could not write {path}")
+        try:
+            p.setRenderHint(QPainter.Antialiasing, True)
+            ex.view.render(p, QRectF(0, 0, width, height), ex.view.viewport().rect())
+        finally:
+            p.end()
+        del gen
+        if not os.path.isfile(tmp) or os.path.getsize(tmp) == 0:
+            raise OSError(f"could not write {path}")
+        os.replace(tmp, str(path))
     finally:
         ex.close()
 
@@ -377,6 +477,7 @@ class ReportExporter:
             fmt, full = spec[key]
             text = self.estimates(fmt, full, res=res)
             mime.setText(text)
+        _guard_clipboard_at_exit()
         QGuiApplication.clipboard().setMimeData(mime)
         note = " (stale: from earlier settings)" if self.document.stale else ""
         self._status(f"Estimates copied to the clipboard{note}.")
@@ -544,7 +645,7 @@ class ReportExporter:
         out += ["<h2>Estimates</h2>",
                 f"<p class=\"small\">Value with its standard uncertainty in parentheses, in units "
                 f"of the last digit (GUM 7.2.2); {pct} confidence intervals.</p>",
-                _bordered(_table_part(est).replace("<td>", '<td class="num">'))]
+                _bordered(_table_part(est))]
 
         out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, m.source, y_unit))}</p>",
                 '<table border="1" cellspacing="0" cellpadding="3">']
