@@ -10,7 +10,8 @@ import sys
 
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="ballast", description="Outlier-aware curve fitting of lab measurements.")
-    p.add_argument("file", nargs="?", help="measurement file to open (CSV, TSV, XLSX, ODS)")
+    p.add_argument("file", nargs="?",
+                   help="measurement file (CSV, TSV, XLSX, ODS) or session (.ballast) to open")
     p.add_argument("--samples", action="store_true", help="start with the sample-set picker")
     return p
 
@@ -24,10 +25,24 @@ def main(argv=None) -> int:
     app.setOrganizationName("Ballast")
     app.setApplicationName("Ballast")
 
+    create_window(args)
+    return app.exec()
+
+
+def create_window(args, qsettings=None, recovery_dir=None):
+    """The program's window, shown, with its first content (a QApplication must exist).
+
+    Work a crash left behind is offered first (restored: nothing else is opened);
+    then the file named on the command line (measurements or a ``.ballast`` session),
+    the sample picker, or the first sample set.
+    """
     from .main_window import MainWindow, first_sample_set
 
-    win = MainWindow()
+    win = MainWindow(qsettings, recovery_dir=recovery_dir)
+    win.sessions.interactive = True  # ask before closing with unsaved work
     win.show()
+    if win.sessions.offer_recovery():
+        return win
     if args.file:
         win.open_path(args.file)
     elif args.samples:
@@ -36,7 +51,7 @@ def main(argv=None) -> int:
         first = first_sample_set()
         if first:
             win.open_path(first)
-    return app.exec()
+    return win
 
 
 if __name__ == "__main__":
