@@ -67,7 +67,12 @@ def _accepts(fn, name: str) -> bool:
 
 def run_comparison_core(model, x, y, kwargs: dict, losses, progress=None, cancel=None,
                         with_adaptive: bool = True):
-    """``(cmp, reading or None, reading error or None)``: the loss comparison job."""
+    """``(cmp, reading or None, reading error or None, leverage note)``: the comparison job.
+
+    The leverage note (``fitcore.diagnostics`` on the least-squares fit, or the first
+    fit that worked; "" when no point has high leverage) warns that all the losses can
+    agree because a point far out in x pulls every one of them.
+    """
     from fitcore.compare import adaptive_reading, compare_losses
 
     kw = dict(kwargs)
@@ -89,7 +94,16 @@ def run_comparison_core(model, x, y, kwargs: dict, losses, progress=None, cancel
             reading = adaptive_reading(model, x, y, **akw, **extra)
         except ValueError as e:  # FitError and friends: the comparison still stands
             err = str(e)
-    return cmp, reading, err
+    note = ""
+    base = cmp.results.get("l2") or next((r for r in cmp.results.values() if r is not None), None)
+    if base is not None and not getattr(cmp, "cancelled", False):
+        from fitcore.diagnostics import point_diagnostics
+
+        try:
+            note = point_diagnostics(base, exact_limit=0).note
+        except ValueError:
+            note = ""
+    return cmp, reading, err, note
 
 
 # ---------------------------------------------------------------------------- encoding

@@ -101,7 +101,7 @@ def comparison_request(document: Document, losses) -> dict:
 
 def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: bool = True,
                    use_child: bool | None = None):
-    """``(cmp, reading or None, reading error or None)`` for one request (worker side).
+    """``(cmp, reading or None, reading error or None, leverage note)`` (worker side).
 
     Runs in a child process (:mod:`desktop.analysis_worker`) up to
     ``CHILD_MAX_POINTS`` points, else in the calling thread.
@@ -270,6 +270,12 @@ class CompareView(QWidget):
             row.addWidget(w)
         lay.addLayout(row)
         lay.addWidget(self.status)
+        self.leverage_note = QLabel("")
+        self.leverage_note.setWordWrap(True)
+        self.leverage_note.setTextFormat(Qt.PlainText)
+        self.leverage_note.setStyleSheet("color: #3f1a6b; background: #efe6fa; padding: 4px;")
+        self.leverage_note.setVisible(False)
+        lay.addWidget(self.leverage_note)
 
         split = QSplitter(Qt.Horizontal)
         left = QWidget()
@@ -355,7 +361,7 @@ class CompareView(QWidget):
 
     def _on_finished(self, out):
         self._idle()
-        cmp, reading, reading_err = out
+        cmp, reading, reading_err, lev_note = out
         if getattr(cmp, "cancelled", False):
             self._on_cancelled(cmp)
             return
@@ -364,6 +370,9 @@ class CompareView(QWidget):
         self.generation = self._pending_generation
         self._fill_table()
         self._draw_curves()
+        self.leverage_note.setText(("Agreement between the losses does not clear these points. "
+                                    + lev_note) if lev_note else "")
+        self.leverage_note.setVisible(bool(lev_note))
         if reading is not None:
             self.adaptive.show_reading(reading)
         else:
@@ -518,6 +527,8 @@ class CompareView(QWidget):
         self.table.setColumnCount(0)
         self.adaptive.clear()
         self.status.setText("")
+        self.leverage_note.setText("")
+        self.leverage_note.setVisible(False)
         if hasattr(self.plot, "set_single_fit_visible"):
             self.plot.set_single_fit_visible(True)
         self.closed.emit()

@@ -170,7 +170,7 @@ def test_cancel_flag_reaches_fitcore(loaded):
 
     req = comparison_request(loaded.document, DEFAULT_LOSSES)
     seen = []
-    cmp, reading, err = run_comparison(req, progress=lambda i, t: seen.append((i, t)),
+    cmp, reading, err, note = run_comparison(req, progress=lambda i, t: seen.append((i, t)),
                                        cancel=lambda: True, use_child=False)
     assert cmp.cancelled and all(r is None for r in cmp.results.values())
     assert reading is None and seen == []
@@ -276,3 +276,19 @@ def test_copy_table_puts_the_numbers_on_the_clipboard(loaded):
     ref = view.comparison.results["huber"]
     assert fmt_value(ref.values[0], ref.stderr[0]) == lines[1].split("\t")[2]
     assert view.reading.text in text
+
+
+def test_stars_comparison_warns_that_agreement_does_not_clear_high_leverage(win, reference_dir):
+    """CYG OB1 stars (starsCYG.csv, NOTES.md): the four giants pull every M-estimate, so
+    the losses agree; the comparison must say that this does not clear them."""
+    assert win.open_path(str(reference_dir / "robust" / "starsCYG.csv"),
+                         columns=("log.Te", "log.light", None))
+    assert win.runner.wait()
+    view = run_and_wait(win)
+    note = view.leverage_note.text()
+    assert view.leverage_note.isVisible()
+    for obs in ("11", "20", "30", "34"):
+        assert obs in note
+    assert "robust loss does not protect" in note
+    view.close_button.click()
+    assert not view.leverage_note.isVisible()
