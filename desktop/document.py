@@ -142,22 +142,28 @@ class MaskChange:
     times_after: list[str] = field(default_factory=list)
 
     def merged_with(self, later: "MaskChange") -> "MaskChange":
-        """One change equivalent to ``self`` followed by ``later``."""
-        first = {int(i): k for k, i in enumerate(self.indices)}
-        second = {int(i): k for k, i in enumerate(later.indices)}
-        idx = sorted(set(first) | set(second))
-        out = MaskChange(np.array(idx, dtype=np.intp), np.zeros(len(idx), bool), np.zeros(len(idx), bool))
-        for j, i in enumerate(idx):
-            a, b = first.get(i), second.get(i)
-            src_b = (self, a) if a is not None else (later, b)
-            src_a = (later, b) if b is not None else (self, a)
-            out.before[j] = src_b[0].before[src_b[1]]
-            out.reasons_before.append(src_b[0].reasons_before[src_b[1]])
-            out.times_before.append(src_b[0].times_before[src_b[1]])
-            out.after[j] = src_a[0].after[src_a[1]]
-            out.reasons_after.append(src_a[0].reasons_after[src_a[1]])
-            out.times_after.append(src_a[0].times_after[src_a[1]])
-        return out
+        """One change equivalent to ``self`` followed by ``later`` (vectorised).
+
+        The "before" state of a point comes from the first change that touches it, the
+        "after" state from the last one.
+        """
+        idx = np.union1d(self.indices, later.indices).astype(np.intp)
+        n = idx.size
+        pa = np.searchsorted(idx, self.indices)
+        pb = np.searchsorted(idx, later.indices)
+
+        def obj(values):
+            out = np.empty(len(values), dtype=object)
+            out[:] = values
+            return out
+
+        before, after = np.zeros(n, bool), np.zeros(n, bool)
+        rb, ra, tb, ta = (np.empty(n, dtype=object) for _ in range(4))
+        before[pb], rb[pb], tb[pb] = later.before, obj(later.reasons_before), obj(later.times_before)
+        before[pa], rb[pa], tb[pa] = self.before, obj(self.reasons_before), obj(self.times_before)
+        after[pa], ra[pa], ta[pa] = self.after, obj(self.reasons_after), obj(self.times_after)
+        after[pb], ra[pb], ta[pb] = later.after, obj(later.reasons_after), obj(later.times_after)
+        return MaskChange(idx, before, after, rb.tolist(), ra.tolist(), tb.tolist(), ta.tolist())
 
     def without_no_ops(self) -> "MaskChange":
         """The same change without the points whose state it leaves as it was."""
