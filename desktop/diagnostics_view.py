@@ -17,9 +17,11 @@ then
 """
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QObject, Qt, Signal
+from PySide6.QtCore import QObject, Qt, QTimer, Signal
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import QLabel
 
@@ -166,6 +168,11 @@ class DiagnosticsController(QObject):
         self.job.progress.connect(self.progress)
         self.job.busy_changed.connect(self.busy_changed)
         self._job_result = None
+        # a burst of refits (clicking through points) starts one computation, not ten
+        self._debounce = QTimer(self)
+        self._debounce.setSingleShot(True)
+        self._debounce.setInterval(200)
+        self._debounce.timeout.connect(self.refresh)
         self._colour_item = None
         self._colour_bar = None
         self._lev_item = None
@@ -210,7 +217,16 @@ class DiagnosticsController(QObject):
                                                                 self.exact_limit))
 
     def wait(self, timeout_ms: int = 60000) -> bool:
-        return self.job.wait(timeout_ms)
+        """Process events until the diagnostics are up to date (tests and scripts)."""
+        from PySide6.QtCore import QCoreApplication, QDeadlineTimer
+
+        deadline = QDeadlineTimer(timeout_ms)
+        while self._debounce.isActive():
+            QCoreApplication.processEvents()
+            time.sleep(0.005)
+            if deadline.hasExpired():
+                return False
+        return self.job.wait(max(1, int(deadline.remainingTime())))
 
     # ------------------------------------------------------------ results
     def _on_document(self, event, **info):
@@ -218,7 +234,8 @@ class DiagnosticsController(QObject):
             return
         if event == "result":
             if self.document.result is not self.for_result:
-                self.refresh()
+                self._set_note("Point diagnostics: updating for the new fit...")
+                self._debounce.start()
         elif event in ("data",):
             self.job.cancel()
             self._clear()
