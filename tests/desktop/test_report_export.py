@@ -1,0 +1,283 @@
+"""Copy formats, the HTML/PDF report and the CSV/PNG/SVG exports, through the window.
+
+What the window copies or writes is checked against ``fitcore.report`` run side by
+side on ``fitcore.fit`` of the same inputs (the window adds nothing to the numbers),
+and the exported confidence band of a least-squares line against statsmodels'
+``OLS.get_prediction().conf_int()`` (an outside implementation of the same formula).
+"""
+from __future__ import annotations
+
+import base64
+import csv
+import io
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+from PySide6.QtCore import QSettings
+from PySide6.QtGui import QGuiApplication, QImage
+
+import fitcore
+from fitcore import report as fr
+from desktop import dialogs, report_export, worker
+from desktop.commands import MaskCommand
+from desktop.document import Settings
+from desktop.main_window import MainWindow
+
+pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
+
+
+def write_line_csv(path, n=30, seed=3):
+    """Invented demo data: a line with noise and two gross outliers."""
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0.5, 15.0, n)
+    y = 4.0 + 1.5 * x + rng.normal(0, 0.2, n)
+    y[5] += 9.0
+    y[20] -= 7.0
+    lines = ["Time (s),Signal (mV)"] + [f"{a:.6f},{b:.6f}" for a, b in zip(x, y)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+@pytest.fixture
+def errors(monkeypatch):
+    seen = []
+    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
+    return seen
+
+
+@pytest.fixture
+def win(qtbot, tmp_path, errors):
+    w = MainWindow(QSettings(str(tmp_path / "t.ini"), QSettings.IniFormat),
+                   recovery_dir=tmp_path / "recovery")
+    qtbot.addWidget(w)
+    w.resize(1300, 820)
+    w.show()
+    qtbot.waitExposed(w)
+    data = write_line_csv(tmp_path / "line.csv")
+    assert w.open_path(str(data))
+    doc = w.document
+    doc.apply_settings(Settings(model="line", loss="huber"))
+    assert w.runner.wait()
+    w.push(MaskCommand(doc, doc.make_mask_change([5], True, reason="pipette bubble")))
+    assert w.runner.wait()
+    return w
+
+
+def side_by_side(doc):
+    m = doc.measurements
+    return fitcore.fit(doc.settings.model, m.x, m.y, sigma=m.sigma, excluded=doc.excluded.copy(),
+                       **doc.settings.fit_kwargs())
+
+
+# ---------------------------------------------------------------------------- copy
+@pytest.mark.parametrize("key,fmt,full", [
+    (k, f, full) for k, _t, f, full in report_export.COPY_FORMATS if k != "html"])
+def test_every_copy_format_equals_fitcore_report_side_by_side(win, key, fmt, full):
+    text = win.reports.copy(key)
+    clip = QGuiApplication.clipboard().text()
+    assert clip == text
+    res = side_by_side(win.document)
+    assert clip == fr.estimates_text(res, fmt, level=0.95, full_precision=full,
+                                     x_unit="s", y_unit="mV")
+
+
+def test_default_copy_carries_html_and_plain_text(win):
+    text = win.copy_estimates()  # Ctrl+Shift+C
+    md = QGuiApplication.clipboard().mimeData()
+    assert md.hasText() and md.hasHtml()
+    assert md.text() == text == fr.estimates_text(side_by_side(win.document), "plain",
+                                                  x_unit="s", y_unit="mV")
+    h = md.html()
+    assert h.startswith("<table border=\"1\"") and "<td>a</td>" in h and "<td>b</td>" in h
+    # the shortcut is wired to it
+    acts = [a for a in win.findChildren(type(win.undo_action)) if a.shortcut().toString() == "Ctrl+Shift+C"]
+    assert acts
+
+
+def test_copied_text_states_how_the_numbers_were_obtained(win):
+    text = win.reports.copy("plain")
+    res = win.document.result
+    import fitcore as fc
+
+    for words in ("Huber", "tuning constant 1.345", "scale", "29 used, 1 excluded",
+                  f"degrees of freedom  {res.dof}", "covariance", "95 % two-sided",
+                  f"Ballast {fc.__version__}", "b ", "mV/s"):
+        assert words in text, words
+    assert fr.CAUTION in text
+    # reads as a lab report line: "b = 1.4987(93) mV/s   95 % CI ..."
+    assert re.search(r"^\s+b\s+= \d+\.\d+\(\d+\) mV/s   95 % CI ", text, re.M)
+
+
+def test_full_precision_tsv_round_trips_the_estimates(win):
+    text = win.reports.copy("tsv_full")
+    rows = list(csv.reader(io.StringIO(text), delimiter="\t"))
+    res = win.document.result
+    got = {r[0]: (float(r[1]), float(r[2])) for r in rows[1:] if r and r[0] in res.param_names}
+    for i, name in enumerate(res.param_names):
+        assert got[name] == (res.values[i], res.stderr[i])  # exact, not rounded
+
+
+def test_copy_menu_offers_every_format(win):
+    menus = [a.menu() for a in win.menuBar().actions() if a.text() == "&Edit"]
+    sub = [a.menu() for a in menus[0].actions() if a.menu() is not None
+           and "Copy estimates" in a.text()][0]
+    assert len(sub.actions()) == len(report_export.COPY_FORMATS)
+    sub.actions()[3].trigger()  # Markdown
+    assert QGuiApplication.clipboard().text().startswith("| Quantity | Estimate |")
+
+
+# ---------------------------------------------------------------------------- report
+def test_html_report_is_self_contained_and_complete(win, tmp_path):
+    path = win.reports.write_html(tmp_path / "r.html")
+    assert path
+    text = (tmp_path / "r.html").read_text(encoding="utf-8")
+    res = win.document.result
+    # self-contained: no link to any outside file; the plots are embedded PNGs
+    assert not re.search(r"(src|href)=\"(?!data:)", text)
+    pngs = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', text)
+    assert len(pngs) == 2
+    sizes = []
+    for b in pngs:
+        img = QImage.fromData(base64.b64decode(b), "PNG")
+        assert not img.isNull()
+        sizes.append((img.width(), img.height()))
+    assert sizes == [report_export.REPORT_PLOT_SIZE, report_export.REPORT_RESID_SIZE]
+    # estimates as fitcore formats them, correlation, method in words, caution
+    est = fr.estimates_text(side_by_side(win.document), "html", x_unit="s", y_unit="mV")
+    first_row = est.split("\n")[2]
+    assert first_row in text
+    corr_row = fr.correlation_text(res, "html").split("\n")[2]
+    assert corr_row.replace("<td>", '<td class="num">') in text
+    assert "was fitted to 29 of the 30 points in line.csv" in text
+    assert "Huber loss with tuning constant 1.345" in text
+    assert html_escape(fr.CAUTION) in text
+    # exclusion record: point, value, reason, when
+    when = win.document.times[5]
+    assert re.search(rf"<td class=\"num\">6</td><td class=\"num\">{res.x[5]:.10g}</td>"
+                     rf"<td class=\"num\">{res.y[5]:.10g}</td><td>pipette bubble</td>"
+                     rf"<td>{re.escape(when)}</td>", text)
+    # the points table: one row per point with its weight
+    rows = re.findall(r"<tr[^>]*><td class=\"num\">(\d+)</td>.*?<td class=\"num\">([0-9.]+)</td>"
+                      r"<td>(used|down-weighted|excluded)</td>", text)
+    assert [int(r[0]) for r in rows] == list(range(1, 31))
+    assert [float(r[1]) for r in rows] == [round(float(w), 3) for w in res.weights]
+    assert [r[2] for r in rows] == fr.point_status(res)
+    assert "SHA-256" in text and win.sessions.source_sha256 in text
+
+
+def html_escape(s):
+    import html
+
+    return html.escape(s, quote=True)
+
+
+def test_pdf_report_prints_through_qt(win, tmp_path):
+    path = win.reports.write_pdf(tmp_path / "r.pdf")
+    assert path
+    raw = (tmp_path / "r.pdf").read_bytes()
+    assert raw.startswith(b"%PDF-") and raw.rstrip().endswith(b"%%EOF")
+    assert not (tmp_path / "r.pdf.part").exists()
+    tdoc = win.reports.text_document()
+    plain = tdoc.toPlainText()
+    for words in ("Fit report: line.csv", "Estimates", "Method", "Correlation of the estimates",
+                  "Exclusion record", "pipette bubble", "Points", "Caution."):
+        assert words in plain, words
+    if shutil.which("pdftoppm"):  # poppler reads the file Qt wrote
+        out = subprocess.run(["pdftoppm", "-r", "30", "-f", "1", "-l", "1", "-png",
+                              str(tmp_path / "r.pdf"), str(tmp_path / "page")],
+                             capture_output=True, timeout=60)
+        assert out.returncode == 0, out.stderr
+        page = QImage(str(next(tmp_path.glob("page*.png"))))
+        assert page.height() > page.width() > 200  # A4 portrait
+
+
+def test_report_refuses_a_stale_result(win, tmp_path, errors, monkeypatch):
+    monkeypatch.setattr(worker, "run_fit", lambda request: (None, "the solver gave up"))
+    doc = win.document
+    doc.apply_settings(doc.settings.with_(loss="cauchy"))
+    assert win.runner.wait()
+    assert doc.stale and doc.fit_failed
+    assert not win.reports.write_html(tmp_path / "stale.html")
+    assert not (tmp_path / "stale.html").exists()
+    assert errors and "the solver gave up" in errors[-1][1]
+
+
+# ---------------------------------------------------------------------------- CSV
+def test_curve_csv_matches_the_result_and_statsmodels_band(win, tmp_path):
+    import statsmodels.api as sm
+
+    doc = win.document
+    doc.apply_settings(Settings(model="line", loss="l2"))
+    assert win.runner.wait()
+    assert win.reports.write_curve_csv(tmp_path / "c.csv")
+    rows = list(csv.reader(open(tmp_path / "c.csv", encoding="utf-8")))
+    assert rows[0] == ["x (s)", "fitted (mV)", "band low 95% (mV)", "band high 95% (mV)"]
+    a = np.array(rows[1:], float)
+    assert a.shape == (report_export.CURVE_POINTS, 4)
+    m = doc.measurements
+    assert a[0, 0] == m.x.min() and a[-1, 0] == m.x.max()
+    res = doc.result
+    assert np.array_equal(a[:, 1], res.predict(a[:, 0]))
+    lo, hi = res.band(a[:, 0])
+    assert np.array_equal(a[:, 2], lo) and np.array_equal(a[:, 3], hi)
+    keep = ~doc.excluded
+    ols = sm.OLS(m.y[keep], sm.add_constant(m.x[keep])).fit()
+    ci = ols.get_prediction(sm.add_constant(a[:, 0])).conf_int(alpha=0.05)
+    np.testing.assert_allclose(a[:, 2], ci[:, 0], rtol=1e-9)
+    np.testing.assert_allclose(a[:, 3], ci[:, 1], rtol=1e-9)
+
+
+def test_points_csv_has_residuals_weights_and_reasons(win, tmp_path):
+    assert win.reports.write_points_csv(tmp_path / "p.csv")
+    rows = list(csv.DictReader(open(tmp_path / "p.csv", encoding="utf-8")))
+    res = win.document.result
+    assert len(rows) == 30
+    assert [float(r["weight"]) for r in rows] == [float(w) for w in res.weights]
+    assert [float(r["residual (mV)"]) for r in rows] == [float(v) for v in res.residuals]
+    assert rows[5]["status"] == "excluded" and rows[5]["exclusion reason"] == "pipette bubble"
+    down = [i for i, r in enumerate(rows) if r["status"] == "down-weighted"]
+    assert down == [i for i in range(30) if res.weights[i] < 0.5 and not res.excluded[i]]
+    assert 20 in down  # the other gross outlier, left in, is down-weighted by Huber
+
+
+# ---------------------------------------------------------------------------- plot
+def test_plot_png_and_svg_at_the_chosen_size(win, tmp_path, monkeypatch):
+    monkeypatch.setattr(report_export, "ask_plot_size", lambda parent, w, h: (640, 360))
+    monkeypatch.setattr(report_export, "ask_save_path",
+                        lambda parent, title, start, filt: str(tmp_path / "plot.png"))
+    assert win.reports.write_plot()
+    img = QImage(str(tmp_path / "plot.png"))
+    assert (img.width(), img.height()) == (640, 360)
+    # the excluded point's red ring is in the picture
+    red = 0
+    for yy in range(0, img.height(), 2):
+        for xx in range(0, img.width(), 2):
+            c = img.pixelColor(xx, yy)
+            red += c.red() > 170 and c.green() < 90 and c.blue() < 100
+    assert red > 0
+
+    assert win.reports.write_plot(tmp_path / "plot.svg", (1000, 700))
+    svg = (tmp_path / "plot.svg").read_text(encoding="utf-8")
+    assert 'viewBox="0 0 1000 700"' in svg
+    assert "<image" not in svg  # vector symbols, no embedded bitmaps
+    assert "#c81e2d" in svg  # the excluded point's ring colour (plot_view.COLOURS)
+    from PySide6.QtSvg import QSvgRenderer
+
+    assert QSvgRenderer(str(tmp_path / "plot.svg")).isValid()
+    # the window's own plot is untouched by exports
+    assert win.plot.isVisible() and win.plot.points.isVisible()
+
+
+@pytest.mark.parametrize("text,size", [("1200 x 800", (1200, 800)), ("640x480", (640, 480)),
+                                       ("300, 200", (300, 200)), ("1024×768", (1024, 768))])
+def test_parse_size(text, size):
+    assert report_export.parse_size(text) == size
+
+
+@pytest.mark.parametrize("text", ["", "big", "100", "5 x 5", "1e6 x 10", "a x b"])
+def test_parse_size_refuses_with_a_message(text):
+    with pytest.raises(ValueError, match="width x height|whole numbers|between"):
+        report_export.parse_size(text)
