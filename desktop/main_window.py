@@ -488,8 +488,7 @@ class MainWindow(QMainWindow):
         """Open the loss comparison and run it for the ticked losses."""
         self.compare_dock.show()
         self.compare_dock.raise_()
-        if self.document.has_data:
-            self.compare_view.run()
+        self.compare_view.run()  # says so when there are no data
 
     def set_colour_mode(self, mode: str):
         self.diagnostics.set_colour_mode(mode)
