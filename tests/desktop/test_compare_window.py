@@ -292,3 +292,17 @@ def test_stars_comparison_warns_that_agreement_does_not_clear_high_leverage(win,
     assert "robust loss does not protect" in note
     view.close_button.click()
     assert not view.leverage_note.isVisible()
+
+
+def test_closing_the_dock_returns_to_the_single_fit(loaded):
+    view = run_and_wait(loaded)
+    assert view.curves and not loaded.plot.curve.isVisible()
+    loaded.compare_dock.close()
+    assert view.curves == {} and view.comparison is None
+    assert loaded.plot.curve.isVisible() and loaded.plot.band.isVisible()
+
+
+def test_no_data_says_so(win):
+    win.show_comparison()
+    assert "No data" in win.compare_view.status.text()
+    assert not win.compare_view.job.running
