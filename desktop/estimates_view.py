@@ -19,8 +19,11 @@ from PySide6.QtWidgets import (
 
 from .document import Document
 
-CAUTION = ("Robust weights are not a licence to discard data: follow your laboratory's "
-           "procedures and the applicable standards when excluding or down-weighting points.")
+try:  # one wording everywhere: the window, the copies and the report
+    from fitcore.report import CAUTION
+except ImportError:  # pragma: no cover - fitcore without its report module
+    CAUTION = ("Robust weights are not a licence to discard data: follow your laboratory's "
+               "procedures and the applicable standards when excluding or down-weighting points.")
 LEVEL = 0.95
 
 
