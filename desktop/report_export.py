@@ -42,8 +42,10 @@ from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 LEVEL = 0.95
 #: points in the curve/band CSV
 CURVE_POINTS = 1001
-#: rows of the points table printed in a report (the CSV export always has all)
+#: rows of the points table printed in a report (the CSV export always has all); the
+#: PDF prints fewer (Qt's text layout of long tables takes seconds)
 REPORT_MAX_ROWS = 2000
+PDF_MAX_ROWS = 500
 #: default pixel size of the report's plot images
 REPORT_PLOT_SIZE = (900, 430)
 REPORT_RESID_SIZE = (900, 220)
@@ -104,6 +106,17 @@ def _clear_internal_clipboard():
     app = QGuiApplication.instance()
     if app is not None and QGuiApplication.platformName() in ("offscreen", "minimal"):
         app.clipboard().clear()
+
+
+class _busy:
+    """Wait cursor while a report is composed."""
+
+    def __enter__(self):
+        QApplication.setOverrideCursor(Qt.WaitCursor)
+
+    def __exit__(self, *exc):
+        QApplication.restoreOverrideCursor()
+        return False
 
 
 def _guard_clipboard_at_exit():
@@ -569,7 +582,8 @@ class ReportExporter:
         return path
 
     # ------------------------------------------------------------------ report
-    def report_html(self, res=None, images: str = "embed", resources: dict | None = None) -> str:
+    def report_html(self, res=None, images: str = "embed", resources: dict | None = None,
+                    max_rows: int = REPORT_MAX_ROWS) -> str:
         """The report as HTML text.
 
         ``images="embed"``: plots as base64 ``data:`` URLs (a self-contained file).
@@ -678,7 +692,7 @@ class ReportExporter:
         out.append("<h2>Points</h2>")
         status = point_status(res)
         n = m.n
-        shown = min(n, REPORT_MAX_ROWS)
+        shown = min(n, int(max_rows))
         if shown < n:
             out.append(f"<p class=\"small\">The first {shown} of {n} points; the points CSV "
                        "export holds all of them.</p>")
@@ -711,12 +725,15 @@ class ReportExporter:
         path = self._target("Write report (HTML)", "-report.html", "HTML (*.html *.htm)", path)
         if not path:
             return ""
-        return path if self._write_text(path, self.report_html(res), "report") else ""
+        with _busy():
+            text = self.report_html(res)
+        return path if self._write_text(path, text, "report") else ""
 
     def text_document(self, res=None) -> QTextDocument:
         """The report as a ``QTextDocument`` (what the PDF prints)."""
         resources: dict = {}
-        text = self.report_html(res, images="resource", resources=resources)
+        text = self.report_html(res, images="resource", resources=resources,
+                                max_rows=PDF_MAX_ROWS)
         tdoc = QTextDocument()
         tdoc.setDefaultStyleSheet("")
         for url, im in resources.items():
@@ -743,10 +760,11 @@ class ReportExporter:
                                               QMarginsF(16, 14, 16, 14), QPageLayout.Millimeter))
             printer.setDocName("Ballast report")
             printer.setCreator("Ballast")
-            tdoc = self.text_document(res)
-            # lay the page out at a screen-like width so the 900 px plots fit the page
-            tdoc.setPageSize(QSizeF(960, 960 * 297 / 210))
-            tdoc.print_(printer)
+            with _busy():
+                tdoc = self.text_document(res)
+                # lay the page out at a screen-like width so the 900 px plots fit the page
+                tdoc.setPageSize(QSizeF(960, 960 * 297 / 210))
+                tdoc.print_(printer)
             del printer
             if not os.path.isfile(tmp) or os.path.getsize(tmp) == 0:
                 raise OSError("Qt's PDF printer wrote nothing")
