@@ -496,6 +496,8 @@ _LATEX_SPECIAL = {
     "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#",
     "_": r"\_", "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}",
     "^": r"\textasciicircum{}",
+    # outside math mode the old OT1 font encoding prints "<" and ">" as inverted marks
+    "<": r"\textless{}", ">": r"\textgreater{}",
 }
 
 

@@ -281,3 +281,12 @@ def test_parse_size(text, size):
 def test_parse_size_refuses_with_a_message(text):
     with pytest.raises(ValueError, match="width x height|whole numbers|between"):
         report_export.parse_size(text)
+
+
+def test_latex_copies_have_no_bare_angle_brackets(win):
+    # common practice: with LaTeX's default OT1 encoding a text-mode "<" prints as an
+    # inverted exclamation mark, so "weight < 0.5" must be written with \textless{}
+    for key in ("latex", "siunitx"):
+        text = win.reports.copy(key)
+        assert r"weight \textless{} 0.5" in text
+        assert "<" not in text and ">" not in text
