@@ -20,9 +20,13 @@ negative log-likelihood (None when alpha sits at a bound of [0, 2]) and a 95 %
 likelihood-ratio interval from the profile (:func:`fitcore.solve.alpha_profile`): the
 alphas where ``nll - min(nll) <= chi2(0.95, 1)/2 = 1.92`` (Wilks' theorem; at the
 bounds of [0, 2] the interval is cut there). "Close to Gaussian" means alpha = 2 lies
-inside that interval. The change of the answer is the largest ``|v_adaptive - v_l2| /
-u_l2`` over the fitted parameters: the shift, in standard uncertainties of the
-least-squares estimate, that the robust (adaptive) fit makes.
+inside that interval. The change of the answer is the largest
+``|v_adaptive - v_l2| / sqrt(u_adaptive^2 + u_l2^2)`` over the fitted parameters: the
+shift the robust (adaptive) fit makes, in the same combined standard uncertainty that
+:meth:`LossComparison.differences` uses, so a reading of "more than one standard
+uncertainty" goes with a highlighted difference between l2 and adaptive. (The
+least-squares uncertainty alone is not used: with outliers and sigma taken as
+absolute it can be far too small, which would exaggerate the shift.)
 """
 from __future__ import annotations
 
@@ -227,8 +231,9 @@ class AdaptiveReading:
     close_to_gaussian
         True when alpha = 2 (least squares) lies inside ``interval``.
     shift, shift_param
-        Largest ``|v_adaptive - v_l2| / u_l2`` over the fitted parameters and the
-        parameter where it occurs (NaN / None when the least-squares fit failed).
+        Largest ``|v_adaptive - v_l2| / sqrt(u_adaptive^2 + u_l2^2)`` over the fitted
+        parameters and the parameter where it occurs (NaN / None when the
+        least-squares fit failed).
     shifts
         ``param -> shift`` for every fitted parameter.
     text
@@ -331,7 +336,7 @@ def _shifts(l2: FitResult | None, ad: FitResult) -> dict[str, float]:
     for j, name in enumerate(ad.param_names):
         if name in ad.fixed:
             continue
-        u = float(l2.stderr[j])
+        u = math.hypot(float(l2.stderr[j]), float(ad.stderr[j]))
         if math.isfinite(u) and u > 0:
             out[name] = abs(float(ad.values[j] - l2.values[j])) / u
     return out

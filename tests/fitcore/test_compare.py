@@ -188,10 +188,10 @@ def test_reading_heavy_tails_on_student_t_noise(seed):
     assert r.text.startswith("Heavy tails (alpha = ")
     assert "standard uncertaint" in r.text
     assert r.interval[1] < 2.0 and r.interval[0] <= r.alpha <= r.interval[1]
-    # the shift is |adaptive - l2| / u_l2, computed side by side
+    # the shift is |adaptive - l2| / sqrt(u_ad^2 + u_l2^2), computed side by side
     l2 = fitcore.fit("line", x, y)
     ad = fitcore.fit("line", x, y, loss="adaptive")
-    expect = np.abs(ad.values - l2.values) / l2.stderr
+    expect = np.abs(ad.values - l2.values) / np.hypot(l2.stderr, ad.stderr)
     assert r.shift == pytest.approx(float(expect.max()), rel=1e-9)
     assert r.shift_param == l2.param_names[int(np.argmax(expect))]
     assert f"{r.shift:.1f}" in r.text and r.shift_param in r.text
@@ -230,3 +230,13 @@ def test_reading_progress_and_cancel(decay_with_outliers):
     assert calls == [(0, 3), (1, 3), (2, 3), (3, 3)]
     with pytest.raises(fitcore.FitError, match="cancelled"):
         adaptive_reading("exp_decay", x, y, cancel=lambda: True)
+
+
+def test_reading_shift_agrees_with_highlighting(comparison, decay_with_outliers):
+    """A shift above one standard uncertainty goes with a highlighted l2/adaptive pair."""
+    x, y = decay_with_outliers
+    r = adaptive_reading("exp_decay", x, y, fits=comparison.results,
+                         alphas=np.linspace(0, 2, 11))
+    pairs = {p for p, a, b, _, _ in comparison.differences() if (a, b) == ("l2", "adaptive")}
+    for name, shift in r.shifts.items():
+        assert (shift > 1.0) == (name in pairs)
