@@ -43,6 +43,12 @@ _LAZY = {
     "Table": ("io", "Table"),
     "ReadError": ("io", "ReadError"),
     "format_value": ("report", "format_value"),
+    "read_clipboard_text": ("io", "read_clipboard_text"),
+    "model_info": ("models", "model_info"),
+    "GAS_CONSTANT": ("models", "GAS_CONSTANT"),
+    "compare_losses": ("compare", "compare_losses"),
+    "adaptive_reading": ("compare", "adaptive_reading"),
+    "point_diagnostics": ("diagnostics", "point_diagnostics"),
 }
 
 __all__ = sorted(_LAZY) + ["__version__"]

@@ -94,3 +94,19 @@ def test_scipy_least_squares_same_loss(ours, theirs):
     # and the robust fit really differs from least squares here (the check can fail)
     l2 = fitcore.fit(model, x, y, loss="l2")
     assert np.max(np.abs(l2.values - ref.x) / np.abs(ref.x)) > 1e-2
+
+
+@pytest.mark.parametrize("loss,norm,params", [
+    # check-values.md 6 items 12 and 15: statsmodels 0.15 RLM defaults on stack loss [C/D]
+    ("huber", "HuberT", [-41.02649835, 0.82938433, 0.92606597, -0.12784672]),
+    ("tukey", "TukeyBiweight", [-42.28535078, 0.92755732, 0.65071769, -0.11233315]),
+])
+def test_automatic_scale_matches_statsmodels_defaults(stackloss, loss, norm, params):
+    """scale='auto' re-estimates the normalised MAD of the residuals to convergence, as
+    statsmodels' RLM does by default, so the two agree without fixing the scale."""
+    X, y = stackloss
+    res = fitcore.fit(design_model(X), np.arange(y.size, dtype=float), y, loss=loss)
+    rlm = sm.RLM(y, X, M=getattr(sm.robust.norms, norm)()).fit(tol=1e-14, maxiter=2000)
+    assert np.allclose(res.values, rlm.params, rtol=1e-7)
+    assert res.scale == pytest.approx(float(rlm.scale), rel=1e-7)
+    assert np.allclose(res.values, params, rtol=1e-7)

@@ -119,14 +119,16 @@ def test_telef_statsmodels_tukey_side_by_side(telef):
     assert np.all(ours.weights[rl.weights < 0.05] < 0.2)
 
 
-@pytest.mark.xfail(strict=False, reason=(
-    "engine limitation found here: with scale 'auto' (proposal 2 from a Huber start) the "
-    "Tukey fit stays near least squares on these data (scale ~5.7, recording errors keep "
-    "weights 0.6-1); statsmodels' MAD scale does not have this problem"))
 def test_telef_tukey_with_automatic_scale(telef):
+    """With scale 'auto' (MAD scale from an L1 start, the rule statsmodels' RLM also
+    uses) Tukey rejects the recording-error years; 1970 (obs 21), which NOTES.md calls
+    visibly high as well, is rejected with them."""
     x, y, obs = telef
     res = fitcore.fit("line", x, y, loss="tukey")
-    assert set(obs[np.argsort(res.weights)[:6]]) == RECORDING_ERRORS
+    bad = np.isin(obs, list(RECORDING_ERRORS))
+    good = ~bad & (obs != 21)
+    assert np.all(res.weights[bad] < 0.05)
+    assert res.weights[bad].max() < res.weights[good].min()
 
 
 def test_telef_comparison_flags_l2_against_robust(telef):
