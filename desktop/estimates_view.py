@@ -135,27 +135,66 @@ class EstimatesView(QWidget):
         caution.setStyleSheet("color: #6b4e00; background: #fff6d6; padding: 4px;")
         lay.addWidget(caution)
         self.corr_button.toggled.connect(self._show_corr)
+        self._shown = None  # the result whose cells are on screen
+        self._shown_stale = False
         document.subscribe(self._on_document)
         self.refresh()
 
     def _on_document(self, event, **info):
-        if event in ("result", "data", "mask", "settings"):
+        # An exclusion or a method change only makes the shown result stale: grey the
+        # cells and say so (cheap). The cells are rebuilt once, when a new result
+        # arrives; a failed refit keeps the same result object and is only re-marked.
+        if event == "result":
+            self.refresh(force=False)
+        elif event in ("mask", "settings"):
+            self._mark()
+        elif event == "data":
             self.refresh()
 
     def _show_corr(self, on: bool):
         self.corr_table.setVisible(on)
         self.refresh()
 
-    def refresh(self):
+    def _banner(self) -> None:
         doc = self.document
         res = doc.result
         if doc.stale and res is not None:
-            self.banner.setText(f"Stale: the previous result is shown. {doc.fit_message}"
-                                if doc.fit_failed else "Stale: refitting...")
+            text = (f"Stale: the previous result is shown. {doc.fit_message}"
+                    if doc.fit_failed else "Stale: refitting...")
         elif res is None and doc.fit_message:
-            self.banner.setText(f"The fit failed: {doc.fit_message}")
+            text = f"The fit failed: {doc.fit_message}"
         else:
-            self.banner.setText("")
+            text = ""
+        if text != self.banner.text():
+            self.banner.setText(text)
+
+    def _mark(self) -> None:
+        """Banner and cell colour for the current stale state, without rebuilding cells."""
+        self._banner()
+        if self.document.result is not self._shown:
+            self.refresh()
+            return
+        stale = bool(self.document.stale)
+        if stale == self._shown_stale:
+            return
+        self._shown_stale = stale
+        colour = Qt.gray if stale else self.table.palette().text()
+        for r in range(self.table.rowCount()):
+            for c in range(self.table.columnCount()):
+                it = self.table.item(r, c)
+                if it is not None:
+                    it.setForeground(colour)
+
+    def refresh(self, force: bool = True):
+        """Rebuild the cells (``force=False``: only when the result object is new)."""
+        doc = self.document
+        res = doc.result
+        if not force and res is not None and res is self._shown:
+            self._mark()
+            return
+        self._banner()
+        self._shown = res
+        self._shown_stale = bool(doc.stale)
         if res is None:
             self.table.setRowCount(0)
             self.summary.setText("No fit yet." if doc.has_data else "No data: open a file or a sample set.")
