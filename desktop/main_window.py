@@ -247,13 +247,13 @@ class MainWindow(QMainWindow):
 
     def open_sample_picker(self):
         dlg = dialogs.SamplePicker(self)
-        if dlg.exec() and dlg.path():
+        if dlg.exec() and dlg.path():  # safe: Qt dialog event loop
             self.open_path(dlg.path())
 
     def choose_columns(self, table):
         """``(x, y, sigma)`` for a table with more than two numeric columns; None = cancel."""
         dlg = dialogs.ColumnDialog(table, self)
-        return dlg.choice() if dlg.exec() else None
+        return dlg.choice() if dlg.exec() else None  # safe: Qt dialog event loop
 
     def open_path(self, path, columns=None) -> bool:
         """Read a file and show it. On any problem an error box; the data stay as they were."""

@@ -47,7 +47,7 @@ def ask_restore(parent, text: str) -> bool:
     box.button(QMessageBox.Yes).setText("Restore")
     box.button(QMessageBox.No).setText("Discard")
     box.setDefaultButton(QMessageBox.Yes)
-    return box.exec() == QMessageBox.Yes
+    return box.exec() == QMessageBox.Yes  # safe: Qt dialog event loop
 
 
 def ask_unsaved(parent, text: str) -> str:

@@ -80,7 +80,7 @@ class RealAbs(sympy.Function):
     nargs = 1
 
     @classmethod
-    def eval(cls, arg):
+    def eval(cls, arg):  # safe: sympy Function.eval hook, not Python eval
         if arg.is_Number and arg.is_real:
             return sympy.Abs(arg)
         return None
@@ -95,7 +95,7 @@ class RealSign(sympy.Function):
     nargs = 1
 
     @classmethod
-    def eval(cls, arg):
+    def eval(cls, arg):  # safe: sympy Function.eval hook, not Python eval
         if arg.is_Number and arg.is_real:
             return sympy.sign(arg)
         return None
