@@ -26,7 +26,7 @@ def main(argv=None) -> int:
     app.setApplicationName("Ballast")
 
     create_window(args)
-    return app.exec()
+    return app.exec()  # safe: Qt event loop
 
 
 def create_window(args, qsettings=None, recovery_dir=None):
