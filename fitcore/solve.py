@@ -203,10 +203,14 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     theta = _project(np.asarray(theta, dtype=float).copy(), lower, upper)
     r = prob.resid(theta)
     if not np.all(np.isfinite(r)):
-        bad = int(np.sum(~np.isfinite(r)))
+        badmask = ~np.isfinite(r)
+        bad = int(np.sum(badmask))
+        xs = ", ".join(f"{v:.6g}" for v in prob.x[badmask][:3])
         raise FitError(
             f"the model cannot be evaluated at the start values: it gives a non-finite "
-            f"value at {bad} of {r.size} points; give other start values"
+            f"value at {bad} of {r.size} points (x = {xs}{', ...' if bad > 3 else ''}); "
+            f"check that x lies where the model is defined (e.g. doses >= 0 for a "
+            f"log-logistic curve) or give other start values"
         )
     phi = _objective(loss, r, s)
     lam = 0.0 if linear else None
