@@ -209,3 +209,25 @@ def test_robust_standard_errors_match_sampling_spread():
         ses.append(r.stderr)
     ratio = np.mean(ses, axis=0) / np.std(est, axis=0, ddof=1)
     assert np.all((ratio > 0.8) & (ratio < 1.25)), ratio
+
+
+@pytest.mark.parametrize("loss,model", [("huber", "line"), ("tukey", "line"), ("cauchy", "exp_decay")])
+def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model):
+    """Above 20 000 points a subsample warm start and Newton steps replace the plain
+    loop (for speed); both must reach the same M-estimate and scale."""
+    import fitcore.solve as solve
+
+    rng = np.random.default_rng(9)
+    n = 30_000
+    x = np.linspace(0, 8, n)
+    y = (1.0 + 0.5 * x) if model == "line" else (3.0 * np.exp(-x / 2.0) + 0.5)
+    y = y + rng.normal(0, 0.05, n)
+    out = rng.random(n) < 0.08
+    y[out] += rng.uniform(0.5, 3.0, out.sum())
+    fast = fitcore.fit(model, x, y, loss=loss)
+    monkeypatch.setattr(solve, "_LARGE", 10**9)
+    plain = fitcore.fit(model, x, y, loss=loss)
+    assert fast.converged and plain.converged
+    assert np.allclose(fast.values, plain.values, rtol=1e-8, atol=1e-12)
+    assert fast.scale == pytest.approx(plain.scale, rel=1e-8)
+    assert np.allclose(fast.stderr, plain.stderr, rtol=1e-6)
