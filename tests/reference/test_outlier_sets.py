@@ -89,14 +89,16 @@ RECORDING_ERRORS = {15, 16, 17, 18, 19, 20}  # years 1964-1969 (NOTES.md, R&L p.
 @pytest.mark.parametrize("loss", ["tukey", "welsch", "cauchy"])
 def test_telef_recording_errors_get_smallest_weights_when_started_well(telef, loss):
     """'Started well' here: from the L1 (least absolute deviations) fit, with the scale
-    held at the normalised MAD of its residuals. (The engine's automatic scale does
-    not do it on these data; see the next test.)"""
+    held at the normalised MAD of its residuals. The recording errors get weights below
+    0.05 and below every good year; 1970 (obs 21, 'visibly high' in NOTES.md) may be
+    rejected with them, so it is left out of the comparison."""
     x, y, obs = telef
     l1 = fitcore.fit("line", x, y, loss="l1")
     res = fitcore.fit("line", x, y, loss=loss, p0=l1.as_dict(), scale=l1.scale)
-    lowest6 = set(obs[np.argsort(res.weights)[:6]])
-    assert lowest6 == RECORDING_ERRORS
-    assert np.max(res.weights[np.isin(obs, list(RECORDING_ERRORS))]) < 0.05
+    bad = np.isin(obs, list(RECORDING_ERRORS))
+    good = ~bad & (obs != 21)
+    assert np.max(res.weights[bad]) < 0.05
+    assert np.max(res.weights[bad]) < np.min(res.weights[good])
 
 
 def test_telef_adaptive_loss_rejects_recording_errors_from_default_start(telef):
