@@ -81,7 +81,10 @@ class _Problem:
         self.n_eval += 1
         if self.model.is_linear:
             A = self.jac(theta)
-            return (self.y - self._offset) / self.sig - A @ theta
+            b = getattr(self, "_b", None)
+            if b is None:
+                b = self._b = (self.y - self._offset) / self.sig
+            return b - A @ theta
         with np.errstate(all="ignore"):
             f = np.asarray(self.model.f(self.x, self.full(theta)), dtype=float)
             return (self.y - f) / self.sig
@@ -545,8 +548,9 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             return None
         new_theta = _project(theta + step[:k], lower, upper)
         new_s = min(max(s + step[k], 0.5 * s), 2.0 * s)
-        small = np.all(np.abs(new_theta - theta) <= 1e-12 * (np.abs(theta) + 1e-12 * (1 + np.abs(theta).max())))
-        small = small and abs(new_s - s) <= 1e-12 * s
+        # quadratic convergence: a step below 1e-10 leaves an error far below rounding
+        small = np.all(np.abs(new_theta - theta) <= 1e-10 * (np.abs(theta) + 1e-10 * (1 + np.abs(theta).max())))
+        small = small and abs(new_s - s) <= 1e-10 * s
         theta, s = new_theta, new_s
         r = prob.resid(theta)
         if small:
