@@ -567,6 +567,11 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
     loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False)
     inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
     total = inner.n_iter
+    if not loss.redescending and prob.n >= 200:
+        # monotone psi: from here Newton on the joint equations settles in a few steps
+        got = _newton_with_mad(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss)
+        if got is not None:
+            return got[0], got[1], total + got[2]
     for _ in range(60):
         g = _safe_scale(mad(inner.r), inner.r, prob)
         if abs(g - s) <= 1e-10 * s:
