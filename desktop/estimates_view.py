@@ -39,6 +39,18 @@ def fmt_value(value: float, u: float) -> str:
         return f"{value:.6g} ± {u:.2g}"
 
 
+def interval_text(lo: float, hi: float, u: float) -> str:
+    """``[lo, hi]`` quoted to the last digit of the rounded uncertainty (two significant
+    digits, as the estimate beside it), so the column stays narrow; 5 significant
+    digits where that would not read well (very large or small numbers, no u)."""
+    big = max(abs(lo), abs(hi))
+    if np.isfinite(u) and u > 0 and np.isfinite(big) and 1e-4 <= big < 1e7:
+        d = max(0, 1 - int(np.floor(np.log10(u))))
+        if d <= 8:
+            return f"[{lo:.{d}f}, {hi:.{d}f}]"
+    return f"[{lo:.5g}, {hi:.5g}]"
+
+
 def unit_of(expr: str, x_unit: str, y_unit: str) -> str:
     """Turn a model's unit expression ("y/x", "1/x", "x") into real units."""
     if not expr:
@@ -216,7 +228,7 @@ class EstimatesView(QWidget):
         self.table.setRowCount(len(rows))
         for r, (n, v, u, lo, hi, unit, held) in enumerate(rows):
             cells = [n + (" (held)" if held else ""), fmt_value(v, u), f"{u:.2g}",
-                     f"[{lo:.5g}, {hi:.5g}]", unit]
+                     interval_text(lo, hi, u), unit]
             for c, text in enumerate(cells):
                 it = QTableWidgetItem(text)
                 if c in (1, 2, 3):

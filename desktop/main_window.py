@@ -21,7 +21,7 @@ from .document import Document, Measurements, Settings
 from .estimates_view import CAUTION, EstimatesView
 from .method_panel import MethodPanel
 from .plot_view import PlotView
-from .points_model import PointsModel, make_proxy
+from .points_model import ColumnFitter, PointsModel, make_proxy
 from .report_export import ReportExporter
 from .session_io import SessionManager
 from .worker import FitRunner
@@ -54,6 +54,7 @@ class MainWindow(QMainWindow):
         self.proxy = make_proxy(self.points_model, self)
         self.table = QTableView()
         self.table.setModel(self.proxy)
+        self.column_fitter = ColumnFitter(self.table, self.document)
         self.table.setSortingEnabled(True)
         self.table.sortByColumn(-1, Qt.AscendingOrder)
         self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
@@ -75,7 +76,7 @@ class MainWindow(QMainWindow):
         scroll.setWidget(self.method_panel)
         scroll.setWidgetResizable(True)
         scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarAlwaysOff)
-        scroll.setMinimumWidth(330)
+        scroll.setMinimumWidth(300)
         self.main_split = QSplitter(Qt.Horizontal)
         self.main_split.addWidget(scroll)
         self.main_split.addWidget(self.centre)
@@ -83,7 +84,7 @@ class MainWindow(QMainWindow):
         self.main_split.setStretchFactor(0, 0)
         self.main_split.setStretchFactor(1, 3)
         self.main_split.setStretchFactor(2, 1)
-        self.main_split.setSizes([330, 640, 480])
+        self.main_split.setSizes([300, 756, 424])  # the points table fits beside the plot
         self.setCentralWidget(self.main_split)
 
         self.busy_label = QLabel("")

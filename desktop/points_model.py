@@ -42,6 +42,12 @@ _EXCLUDED_BG = QBrush(QColor(255, 236, 230))
 _DOWN_BG = QBrush(QColor(255, 248, 220))
 _FLAG_BG = QBrush(QColor(226, 214, 245))
 _NCOL = len(COLUMNS)
+#: display formats of the computed columns (narrow, so that the whole table fits beside
+#: the plot; the data columns keep 6 significant digits, sorting uses the raw values)
+_FORMATS = {"fitted": "{:.6g}", "residual": "{:.4g}", "std. residual": "{:.3g}", "weight": "{:.2f}"}
+#: widest a column gets from "fit to contents" (px); "reason" takes what is left
+_COLUMN_CAPS = {"#": 56, "x": 110, "y": 110, "sigma_y": 96, "fitted": 96, "residual": 88,
+                "std. residual": 96, "weight": 64, "status": 128}
 
 
 @dataclass
@@ -240,9 +246,8 @@ class PointsModel(QAbstractTableModel):
                 return str(v)
             if v != v or v in (_INF, -_INF):
                 return ""
-            if name == "weight":
-                return f"{v:.3f}"
-            return f"{v:.6g}"
+            fmt = _FORMATS.get(name)
+            return fmt.format(v) if fmt else f"{v:.6g}"
         if r == _SORT:
             v = self.raw(row, col)
             if isinstance(v, float) and v != v:
@@ -326,3 +331,58 @@ def make_proxy(model: PointsModel, parent=None) -> QSortFilterProxyModel:
     proxy.setSortRole(SORT_ROLE)
     proxy.setDynamicSortFilter(False)
     return proxy
+
+
+class ColumnFitter:
+    """Fits the points table's column widths to their contents when a data set (and its
+    first result) arrives, each capped (:data:`_COLUMN_CAPS`), so that x to reason fit
+    beside the plot without scrolling. Widths the analyst drags stay until the next data
+    set. Only a few rows are measured, so this is cheap at any size."""
+
+    SAMPLE_ROWS = 60
+
+    def __init__(self, view, document: Document):
+        from PySide6.QtCore import QTimer
+
+        self.view = view
+        self.document = document
+        self._pending = False
+        self._had_result = False
+        self._timer = QTimer(view)
+        self._timer.setSingleShot(True)
+        self._timer.setInterval(0)
+        self._timer.timeout.connect(self.fit)
+        header = view.horizontalHeader()
+        header.setResizeContentsPrecision(self.SAMPLE_ROWS)
+        header.setStretchLastSection(True)
+        header.setMinimumSectionSize(28)
+        document.subscribe(self._on_document)
+
+    def _on_document(self, event, **info):
+        if event == "data":
+            self._had_result = False
+            self._timer.start()
+        elif event == "result" and not self._had_result and self.document.result is not None:
+            self._had_result = True
+            self._timer.start()
+
+    def fit(self) -> None:
+        view = self.view
+        model = view.model()
+        if model is None:
+            return
+        header = view.horizontalHeader()
+        fm = header.fontMetrics()
+        ncol = model.columnCount()
+        for c in range(ncol):
+            name = COLUMNS[c] if c < _NCOL else None
+            if name == "reason":  # stretched to the rest (it may be the last column)
+                header.resizeSection(c, fm.horizontalAdvance("reason") + 10)
+                continue
+            # the cells' own width, and the header's text with a small margin (the
+            # header's size hint also reserves room for a sort arrow on every column)
+            text = str(model.headerData(c, Qt.Horizontal) or "")
+            width = max(view.sizeHintForColumn(c), fm.horizontalAdvance(text) + 10)
+            if name == "#":  # the widest row number, wherever it is
+                width = max(width, view.fontMetrics().horizontalAdvance(str(model.rowCount())) + 12)
+            header.resizeSection(c, min(width, _COLUMN_CAPS.get(name, 96)))
