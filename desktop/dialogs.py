@@ -29,6 +29,24 @@ SAMPLE_METHODS = {
 }
 
 
+#: suggested view per sample set: doses spaced by factors of about 3 read best on a log x axis
+SAMPLE_VIEWS = {
+    "05": dict(log_x=True),
+}
+
+
+def sample_view(path):
+    """Suggested view (``log_x``, ``log_y``) for a sample-set file, or None for other files.
+
+    Every sample set gets a full answer (linear axes unless listed in :data:`SAMPLE_VIEWS`),
+    so one sample's log axis does not carry over to the next sample opened.
+    """
+    p = Path(path).resolve()
+    if p.parent != SAMPLE_DIR:
+        return None
+    return dict(dict(log_x=False, log_y=False), **SAMPLE_VIEWS.get(p.name[:2], {}))
+
+
 def sample_method(path):
     """Suggested settings fields for a sample-set file, or None for other files."""
     p = Path(path).resolve()

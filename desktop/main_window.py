@@ -156,9 +156,9 @@ class MainWindow(QMainWindow):
         v = mb.addMenu("&View")
         self.band_action = self._action(v, "Confidence &band", self.plot.set_band_visible, "Ctrl+B",
                                         checkable=True, checked=True)
-        self.logx_action = self._action(v, "Log &x axis", lambda on: self.plot.set_log(log_x=on),
+        self.logx_action = self._action(v, "Log &x axis", lambda on: self._set_log(log_x=on),
                                         "Ctrl+L", checkable=True)
-        self.logy_action = self._action(v, "Log &y axis", lambda on: self.plot.set_log(log_y=on),
+        self.logy_action = self._action(v, "Log &y axis", lambda on: self._set_log(log_y=on),
                                         "Ctrl+Shift+L", checkable=True)
         self.box_action = self._action(v, "Box &mode (drag excludes)", self.plot.set_box_mode, "Ctrl+M",
                                        checkable=True,
@@ -270,9 +270,39 @@ class MainWindow(QMainWindow):
         suggested = dialogs.sample_method(path)
         settings = Settings(**suggested) if suggested else None
         if self._load_table(table, columns, settings):
+            view = dialogs.sample_view(path)
+            if view is not None:  # a sample set opens with the axes it is meant to be seen on
+                self.logx_action.setChecked(view["log_x"])
+                self.logy_action.setChecked(view["log_y"])
             self._add_recent(str(path))
+            note = self.log_axis_note()
+            if note:
+                self.statusBar().showMessage(f"{self.statusBar().currentMessage()} {note}", 15000)
             return True
         return False
+
+    def _set_log(self, log_x=None, log_y=None):
+        self.plot.set_log(log_x=log_x, log_y=log_y)
+        note = self.log_axis_note()
+        if note:
+            self.statusBar().showMessage(note, 15000)
+
+    def log_axis_note(self) -> str:
+        """Which points a log axis cannot draw (x or y <= 0), or "" when all are drawn."""
+        m = self.document.measurements
+        if not self.document.has_data:
+            return ""
+        parts = []
+        for on, name, values in ((self.plot.log_x, "x", m.x), (self.plot.log_y, "y", m.y)):
+            if not on:
+                continue
+            bad = np.flatnonzero(~(np.asarray(values, float) > 0))
+            if bad.size:
+                shown = ", ".join(f"#{i + 1}" for i in bad[:8]) + (", ..." if bad.size > 8 else "")
+                parts.append(f"log {name} axis: {bad.size} point{'s' if bad.size > 1 else ''} with "
+                             f"{name} <= 0 not drawn ({shown}); still fitted")
+        return ("Note: " + "; ".join(parts) + ". Switch the log axis off (View menu) to see them."
+                if parts else "")
 
     def paste_table(self):
         text = QGuiApplication.clipboard().text()
@@ -349,7 +379,9 @@ class MainWindow(QMainWindow):
                 self.statusBar().showMessage(f"Fit failed: {self.document.fit_message} "
                                              "(the previous result is kept, marked stale)", 15000)
             elif res is not None:
-                self.statusBar().showMessage(f"Fitted {res.n_used} points ({res.loss}).", 4000)
+                note = self.log_axis_note()
+                self.statusBar().showMessage(f"Fitted {res.n_used} points ({res.loss})." +
+                                             (f" {note}" if note else ""), 15000 if note else 4000)
 
     def _select_rows(self, rows):
         sm = self.table.selectionModel()
