@@ -38,6 +38,7 @@ from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
+from .estimates_view import fmt_value
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -674,6 +675,8 @@ class ReportExporter:
         else:
             out.append("<p>Only one free parameter: no correlations.</p>")
 
+        out += self._analysis_sections(res)
+
         out.append("<h2>Exclusion record</h2>")
         record = doc.exclusion_record()
         if record:
@@ -717,6 +720,60 @@ class ReportExporter:
         out += [f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
                 "</body></html>"]
         return "\n".join(out) + "\n"
+
+    def _analysis_sections(self, res) -> list[str]:
+        """Bootstrap intervals, point-diagnostics note and loss comparison, each only
+        when it was computed for ``res`` as it is on screen (not for an earlier fit)."""
+        win, doc = self.window, self.document
+        current = res is doc.result and not doc.stale
+        out: list[str] = []
+        rec = win.current_bootstrap() if current and hasattr(win, "current_bootstrap") else None
+        if rec is not None and rec.result is res:
+            b = rec.bootstrap
+            iv = np.asarray(b.intervals, float)
+            ci = res.intervals(rec.level)
+            pct = f"{100 * rec.level:.6g} %"
+            text = rec.method_text or f"{getattr(b, 'kind', '')} bootstrap, B = {getattr(b, 'B', '')}"
+            seed = "" if "seed" in text else f" (seed {rec.seed})"
+            nf = int(getattr(b, "n_failed", 0) or 0)
+            out += ["<h2>Bootstrap intervals</h2>",
+                    f"<p>{_h(text)}{_h(seed)}."
+                    + (f" {nf} resamples failed to fit and were left out." if nf else "")
+                    + f" Analytic intervals: {_h(str(res.covariance_recipe))}, Student t.</p>",
+                    '<table border="1" cellspacing="0" cellpadding="3">',
+                    f"<tr><th>parameter</th><th>estimate</th><th>analytic {pct} interval</th>"
+                    f"<th>bootstrap {pct} percentile interval</th></tr>"]
+            for k, name in enumerate(res.param_names):
+                held = name in res.fixed
+                boot = ("-" if held or not np.all(np.isfinite(iv[k]))
+                        else f"[{_g(iv[k, 0])}, {_g(iv[k, 1])}]")
+                out.append(f"<tr><td>{_h(name)}{' (held)' if held else ''}</td>"
+                           f'<td class="num">{_h(fmt_value(float(res.values[k]), float(res.stderr[k])))}</td>'
+                           f'<td class="num">[{_g(ci[k, 0])}, {_g(ci[k, 1])}]</td>'
+                           f'<td class="num">{_h(boot)}</td></tr>')
+            out.append("</table>")
+        diag = getattr(win, "diagnostics", None)
+        if current and diag is not None and getattr(diag, "diagnostics", None) is not None \
+                and getattr(diag, "for_result", None) is res:
+            note = diag.note_text()
+            if note:
+                out += ["<h2>Point diagnostics</h2>"]
+                out += [f"<p>{_h(line)}</p>" for line in note.splitlines() if line.strip()]
+        cv = getattr(win, "compare_view", None)
+        if (current and cv is not None and getattr(cv, "comparison", None) is not None
+                and not cv.is_stale and doc.result_generation == doc.generation):
+            rows = [r.split("\t") for r in cv.text().splitlines()]
+            if len(rows) > 1:
+                out += ["<h2>Loss comparison</h2>",
+                        '<p class="small">The same data and exclusions fitted with each loss; '
+                        "values with standard uncertainty.</p>",
+                        '<table border="1" cellspacing="0" cellpadding="3">',
+                        "<tr>" + "".join(f"<th>{_h(c)}</th>" for c in rows[0]) + "</tr>"]
+                for r in rows[1:]:
+                    out.append("<tr>" + (f"<th>{_h(r[0])}</th>" if r else "")
+                               + "".join(f'<td class="num">{_h(c)}</td>' for c in r[1:]) + "</tr>")
+                out.append("</table>")
+        return out
 
     def write_html(self, path=None) -> str:
         res = self._result("write a report")

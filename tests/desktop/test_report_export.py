@@ -290,3 +290,55 @@ def test_latex_copies_have_no_bare_angle_brackets(win):
         text = win.reports.copy(key)
         assert r"weight \textless{} 0.5" in text
         assert "<" not in text and ">" not in text
+
+
+def test_report_includes_bootstrap_diagnostics_and_comparison_only_for_the_fit_shown(win):
+    """The analyses done on the fit on screen go into the HTML and PDF report; after a
+    refit they belong to an older fit and are left out. The bootstrap intervals are
+    checked against ``fitcore.bootstrap`` run side by side with the same seed."""
+    from fitcore.bootstrap import bootstrap
+
+    res = win.document.result
+    html0 = win.reports.report_html()
+    for title in ("Bootstrap intervals", "Point diagnostics", "Loss comparison"):
+        assert f"<h2>{title}</h2>" not in html0
+    dlg = win.show_bootstrap()
+    dlg.kind.setCurrentIndex(dlg.kind.findData("case"))
+    dlg.B.setValue(99)
+    dlg.seed.setValue(11)
+    assert dlg.run() and dlg.job.wait(120000)
+    QGuiApplication.processEvents()
+    win.diag_action.setChecked(True)
+    assert win.diagnostics.wait()
+    win.show_comparison()
+    assert win.compare_view.job.wait(60000)
+    QGuiApplication.processEvents()
+    assert win.current_bootstrap() is not None and win.document.result is res
+
+    html = win.reports.report_html()
+    ref = bootstrap(res, kind="case", B=99, seed=11, level=0.95)
+    boot = html.split("<h2>Bootstrap intervals</h2>")[1].split("<h2>")[0]
+    assert ref.method_text in boot
+    for k in range(len(res.param_names)):
+        lo, hi = ref.intervals[k]
+        assert f"[{report_export._g(lo)}, {report_export._g(hi)}]" in boot
+        clo, chi = res.intervals(0.95)[k]
+        assert f"[{report_export._g(clo)}, {report_export._g(chi)}]" in boot
+    note = win.diagnostics.note_text()
+    assert note and report_export._h(note.splitlines()[0]) in html
+    cmp_part = html.split("<h2>Loss comparison</h2>")[1].split("<h2>")[0]
+    for cell in win.compare_view.text().splitlines()[1].split("\t")[1:]:
+        assert report_export._h(cell) in cmp_part
+    plain = win.reports.text_document().toPlainText()  # what the PDF prints
+    for title in ("Bootstrap intervals", "Point diagnostics", "Loss comparison"):
+        assert title in plain
+
+    # a refit: the analyses belong to the previous fit and are not reported with the new one
+    doc = win.document
+    win.push(MaskCommand(doc, doc.make_mask_change([20], True, reason="drift")))
+    assert win.runner.wait()
+    html2 = win.reports.report_html()
+    assert "<h2>Bootstrap intervals</h2>" not in html2
+    assert "<h2>Loss comparison</h2>" not in html2
+    if win.diagnostics.for_result is not doc.result:
+        assert "<h2>Point diagnostics</h2>" not in html2
