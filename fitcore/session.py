@@ -287,8 +287,17 @@ def _enc_tree(obj):
     )
 
 
+def _floats_list(values) -> list:
+    return [_enc(v) for v in np.asarray(values, dtype=float).ravel()]
+
+
 def session_to_dict(session: Session) -> dict:
     """The JSON-ready dict of a session (format version 1)."""
+    return _session_dict(session, _floats_list)
+
+
+def _session_dict(session: Session, floats) -> dict:
+    """:func:`session_to_dict` with ``floats(array)`` encoding the per-point arrays."""
     from . import __version__
 
     m = session.method
@@ -314,9 +323,9 @@ def session_to_dict(session: Session) -> dict:
         "ballast_version": str(__version__),
         "saved_as": str(session.saved_as or ""),
         "data": {
-            "x": [_enc(v) for v in session.x],
-            "y": [_enc(v) for v in session.y],
-            "sigma": None if session.sigma is None else [_enc(v) for v in session.sigma],
+            "x": floats(session.x),
+            "y": floats(session.y),
+            "sigma": None if session.sigma is None else floats(session.sigma),
             "names": {str(k): str(v) for k, v in session.names.items()},
             "units": {str(k): str(v) for k, v in session.units.items()},
             "source_file": str(session.source_file),
@@ -337,15 +346,69 @@ def session_to_dict(session: Session) -> dict:
             {"index": int(e.index), "reason": str(e.reason), "time": str(e.time)}
             for e in sorted(session.exclusions, key=lambda e: e.index)
         ],
-        "result": None if session.result is None else _enc_tree(session.result),
+        "result": None if session.result is None else _result_tree(session.result, floats),
     }
 
 
+def _result_tree(result: Mapping, floats) -> dict:
+    out = {str(k): _enc_tree(v) for k, v in result.items() if k != "weights"}
+    if "weights" in result:
+        out["weights"] = floats(result["weights"])
+    return {str(k): out[str(k)] for k in result}  # the stored order
+
+
+#: JSON text of recently encoded per-point arrays, by content (autosave re-encodes the
+#: same x, y and sigma every few seconds; at 1e5 points that took most of its time)
+_ARRAY_JSON_CACHE: "dict[tuple, str]" = {}
+_ARRAY_JSON_CACHE_SIZE = 8
+
+
+def _floats_json(values) -> str:
+    """JSON text of a float array, exactly as ``json.dumps`` of :func:`_floats_list`.
+
+    Finite floats are written with ``float.__repr__`` (what ``json`` uses); an array
+    holding NaN or infinities takes the general path. The text is kept in a small cache
+    keyed by a hash of the array's bytes, so an unchanged array costs one hash.
+    """
+    a = np.ascontiguousarray(np.asarray(values, dtype=float).ravel())
+    key = (a.size, hashlib.blake2b(a.view(np.uint8), digest_size=20).digest())
+    text = _ARRAY_JSON_CACHE.get(key)
+    if text is not None:
+        return text
+    if np.isfinite(a).all():
+        text = "[" + ",".join(map(float.__repr__, a.tolist())) + "]"
+    else:
+        text = json.dumps(_floats_list(a), allow_nan=False, separators=(",", ":"))
+    if a.size >= 64:  # small arrays are cheap; keep the cache for the big ones
+        if len(_ARRAY_JSON_CACHE) >= _ARRAY_JSON_CACHE_SIZE:
+            _ARRAY_JSON_CACHE.pop(next(iter(_ARRAY_JSON_CACHE)))
+        _ARRAY_JSON_CACHE[key] = text
+    return text
+
+
 def session_to_json(session: Session) -> str:
-    """The session as JSON text (what :func:`save_session` writes)."""
+    """The session as JSON text (what :func:`save_session` writes).
+
+    The same text as ``json.dumps(session_to_dict(session), ...)``; the per-point
+    arrays are encoded by :func:`_floats_json` and spliced in.
+    """
+    token = f"@ballast-array-{os.urandom(8).hex()}@"
+    parts: list[str] = []
+
+    def floats(values):
+        parts.append(_floats_json(values))
+        return f"{token}{len(parts) - 1}{token}"
+
     try:
-        return json.dumps(session_to_dict(session), allow_nan=False, ensure_ascii=False,
+        text = json.dumps(_session_dict(session, floats), allow_nan=False, ensure_ascii=False,
                           separators=(",", ":"))
+        pieces = text.split(f'"{token}')
+        out = [pieces[0]]
+        for piece in pieces[1:]:
+            k, rest = piece.split(f'{token}"', 1)
+            out.append(parts[int(k)])
+            out.append(rest)
+        return "".join(out)
     except (TypeError, ValueError) as exc:
         if isinstance(exc, SessionError):
             raise

@@ -402,3 +402,31 @@ def test_refit_with_builtin_and_held_parameter(tmp_path):
     # changing one datum in its ninth digit changes the estimates: the check can fail
     t.y[0] = t.y[0] * (1 + 1e-9)
     assert not t.reproduces(t.refit())
+
+
+def test_json_text_equals_plain_json_dumps_with_the_array_cache():
+    """session_to_json splices cached array text into the document; the text must be
+    exactly what json.dumps of session_to_dict gives (the standard library's encoder is
+    the reference), also for NaN, infinities, -0.0, subnormals and after the arrays change."""
+    rng = np.random.default_rng(5)
+    n = 500  # above the cache threshold
+    x = np.sort(rng.uniform(0, 10, n))
+    y = 1.0 + 2.0 * x + rng.normal(0, 0.1, n)
+    sigma = rng.uniform(0.05, 0.2, n)
+    y[[3, 4, 5, 6]] = [np.nan, np.inf, -np.inf, -0.0]
+    x[7] = 5e-324
+    res = fitcore.fit("line", x[8:], y[8:], loss="huber")
+    s = Session(x=x, y=y, sigma=sigma, method=Method(model="line", loss="huber"))
+    s.store_result(res)
+
+    def plain():
+        return json.dumps(S.session_to_dict(s), allow_nan=False, ensure_ascii=False,
+                          separators=(",", ":"))
+
+    first = S.session_to_json(s)
+    assert first == plain()
+    assert S.session_to_json(s) == first  # from the cache
+    s.x = x.copy()
+    s.x[0] += 1e-9  # a changed array is encoded anew, not taken from the cache
+    assert S.session_to_json(s) == plain() != first
+    assert S.session_from_json(S.session_to_json(s)).x[0] == s.x[0]
