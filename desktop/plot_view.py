@@ -399,7 +399,7 @@ class BandItem(pg.QtWidgets.QGraphicsPathItem):
     curve on every change, and paints through Python; this one paints in C++.)
     """
 
-    BRUSH = QColor(31, 92, 170, 45)
+    BRUSH = QColor(31, 92, 170, 72)  # light enough for the points, dark enough for a narrow band
 
     def __init__(self):
         super().__init__()
