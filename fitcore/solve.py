@@ -510,13 +510,15 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray):
     return MAD_CONSTANT * med, MAD_CONSTANT * grad
 
 
-def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30):
+def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
+                     with_mad: bool = True):
     """Large data: Newton's method on the M-estimating equations jointly with the MAD.
 
     Unknowns (theta, s); equations ``sum psi(r_i/s) J_i = 0`` and ``MAD(r) - s = 0``.
     Both are piecewise smooth, so from the subsample's nearby start the iteration
     settles in a few steps. Returns None if it does not, and the caller falls back to
-    the alternating reweighting loop.
+    the alternating reweighting loop. ``with_mad=False`` keeps the scale fixed (the
+    first equation alone).
     """
     lower, upper = prob.lower, prob.upper
     k = prob.k
@@ -528,13 +530,17 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         psi = loss.psi(u)
         dpsi = loss.dpsi(u)
         Jd = J * dpsi[:, None]
-        m_val, m_grad = _mad_and_gradient(r, J)
-        M = np.zeros((k + 1, k + 1))
-        M[:k, :k] = (Jd.T @ J) / s          # -dF1/dtheta
-        M[:k, k] = (u @ Jd) / s             # -dF1/ds
-        M[k, :k] = -m_grad                  # -dF2/dtheta
-        M[k, k] = 1.0                       # -dF2/ds
-        F = np.concatenate([psi @ J, [m_val - s]])
+        if with_mad:
+            m_val, m_grad = _mad_and_gradient(r, J)
+            M = np.zeros((k + 1, k + 1))
+            M[:k, :k] = (Jd.T @ J) / s          # -dF1/dtheta
+            M[:k, k] = (u @ Jd) / s             # -dF1/ds
+            M[k, :k] = -m_grad                  # -dF2/dtheta
+            M[k, k] = 1.0                       # -dF2/ds
+            F = np.concatenate([psi @ J, [m_val - s]])
+        else:
+            M = (Jd.T @ J) / s
+            F = psi @ J
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
         norm = float(np.linalg.norm(F / d))
         if not math.isfinite(norm) or norm > 4.0 * norm_prev:
@@ -547,13 +553,15 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         if not np.all(np.isfinite(step)):
             return None
         new_theta = _project(theta + step[:k], lower, upper)
-        new_s = min(max(s + step[k], 0.5 * s), 2.0 * s)
+        new_s = min(max(s + step[k], 0.5 * s), 2.0 * s) if with_mad else s
         # quadratic convergence: a step below 1e-10 leaves an error far below rounding
         small = np.all(np.abs(new_theta - theta) <= 1e-10 * (np.abs(theta) + 1e-10 * (1 + np.abs(theta).max())))
         small = small and abs(new_s - s) <= 1e-10 * s
         theta, s = new_theta, new_s
         r = prob.resid(theta)
         if small:
+            if not with_mad:
+                return _Inner(theta, r, _objective(loss, r, s), it, True, "converged"), s, it
             s_fin = _safe_scale(mad(r), r, prob)
             if abs(s_fin - s) > 1e-10 * s:
                 return None
@@ -590,45 +598,6 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
             break
         s = g
     return inner, s, total
-
-
-def _newton(prob: _Problem, theta, s: float, loss: Loss, *, max_iter: int = 12):
-    """Newton's method on the M-estimating equations at a fixed scale, from a nearby start.
-
-    Solves ``F = sum psi(u_i) J_i = 0`` with ``u = r/s`` (Gauss-Newton curvature
-    ``sum psi'(u_i) J_i J_i^T / s``). Used for large data after a subsample fit has
-    found the right basin: it converges quadratically for piecewise-quadratic losses
-    such as Huber. Returns None when the iteration does not settle, and the caller
-    falls back to the reweighting loop.
-    """
-    lower, upper = prob.lower, prob.upper
-    r = prob.resid(theta)
-    norm_prev = math.inf
-    for it in range(1, max_iter + 1):
-        J = prob.jac(theta)
-        u = r / s
-        psi = loss.psi(u)
-        dpsi = loss.dpsi(u)
-        F = psi @ J
-        M = ((J * dpsi[:, None]).T @ J) / s
-        d = np.sqrt(np.abs(np.diag(M))) + 1e-300
-        norm = float(np.linalg.norm(F / d))
-        if not math.isfinite(norm) or norm > 4.0 * norm_prev:
-            return None
-        norm_prev = norm
-        try:
-            step = np.linalg.solve(M / d / d[:, None], F / d) / d
-        except np.linalg.LinAlgError:
-            return None
-        if not np.all(np.isfinite(step)):
-            return None
-        new_theta = _project(theta + step, lower, upper)
-        small = np.all(np.abs(new_theta - theta) <= 1e-12 * (np.abs(theta) + 1e-12 * (1 + np.abs(theta).max())))
-        theta = new_theta
-        r = prob.resid(theta)
-        if small:
-            return _Inner(theta, r, _objective(loss, r, s), it, True, "converged"), s, it
-    return None
 
 
 # --------------------------------------------------------------------------- adaptive
@@ -932,7 +901,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
                 if auto and rule == "mad":
                     got = _newton_with_mad(prob, start_theta, s_start, loss_obj)
                 else:
-                    got = _newton(prob, start_theta, s_start, loss_obj)
+                    got = _newton_with_mad(prob, start_theta, s_start, loss_obj, with_mad=False)
                 if got is None:
                     got = _robust_with_scale(prob, start_theta, loss_obj, s_start,
                                              linear=linear, auto=auto, max_iter=max_iter,

@@ -211,8 +211,9 @@ def test_robust_standard_errors_match_sampling_spread():
     assert np.all((ratio > 0.8) & (ratio < 1.25)), ratio
 
 
-@pytest.mark.parametrize("loss,model", [("huber", "line"), ("tukey", "line"), ("cauchy", "exp_decay")])
-def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model):
+@pytest.mark.parametrize("loss,model,scale", [("huber", "line", "auto"), ("tukey", "line", "auto"),
+                                              ("cauchy", "exp_decay", "auto"), ("huber", "exp_decay", 0.07)])
+def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model, scale):
     """Above 20 000 points a subsample warm start and Newton steps replace the plain
     loop (for speed); both must reach the same M-estimate and scale."""
     import fitcore.solve as solve
@@ -224,9 +225,9 @@ def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model):
     y = y + rng.normal(0, 0.05, n)
     out = rng.random(n) < 0.08
     y[out] += rng.uniform(0.5, 3.0, out.sum())
-    fast = fitcore.fit(model, x, y, loss=loss)
+    fast = fitcore.fit(model, x, y, loss=loss, scale=scale)
     monkeypatch.setattr(solve, "_LARGE", 10**9)
-    plain = fitcore.fit(model, x, y, loss=loss)
+    plain = fitcore.fit(model, x, y, loss=loss, scale=scale)
     assert fast.converged and plain.converged
     assert np.allclose(fast.values, plain.values, rtol=1e-8, atol=1e-12)
     assert fast.scale == pytest.approx(plain.scale, rel=1e-8)
