@@ -12,3 +12,51 @@ import pytest  # noqa: E402
 def settings_file(tmp_path):
     """Path of a throw-away QSettings ini file (the user's own settings stay untouched)."""
     return str(tmp_path / "ballast-test.ini")
+
+
+def _write_demo_line_csv(path, n=30, seed=3):
+    """Invented demo data: a line with noise and two gross outliers (rows 6 and 21)."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0.5, 15.0, n)
+    y = 4.0 + 1.5 * x + rng.normal(0, 0.2, n)
+    y[5] += 9.0
+    y[20] -= 7.0
+    lines = ["Time (s),Signal (mV)"] + [f"{a:.6f},{b:.6f}" for a, b in zip(x, y)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+@pytest.fixture
+def write_demo_csv():
+    """The writer of the shared invented demo file: ``write_demo_csv(path) -> path``."""
+    return _write_demo_line_csv
+
+
+@pytest.fixture
+def errors(monkeypatch):
+    """Error dialogs are recorded as (title, text) instead of shown."""
+    from desktop import dialogs
+
+    seen = []
+    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
+    return seen
+
+
+@pytest.fixture
+def open_window(qtbot, tmp_path, errors):
+    """Factory for a shown main window with throw-away settings: ``open_window(w, h, **kw)``."""
+    from PySide6.QtCore import QSettings
+
+    from desktop.main_window import MainWindow
+
+    def make(width=1400, height=900, name="window", **kw):
+        w = MainWindow(QSettings(str(tmp_path / f"{name}.ini"), QSettings.IniFormat), **kw)
+        qtbot.addWidget(w)
+        w.resize(width, height)
+        w.show()
+        qtbot.waitExposed(w)
+        return w
+
+    return make

@@ -10,42 +10,24 @@ import time
 
 import numpy as np
 import pytest
-from PySide6.QtCore import QSettings, QTimer
+from PySide6.QtCore import QTimer
 from PySide6.QtGui import QGuiApplication
 
-from desktop import compare_view, dialogs
+from desktop import compare_view
 from desktop.compare_view import DEFAULT_LOSSES, VALUE_ROLE, run_comparison
 from desktop.estimates_view import fmt_value
-from desktop.main_window import MainWindow
 from fitcore.compare import adaptive_reading, compare_losses
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
 
 
-def write_demo_csv(path, n=30, seed=3):
-    """Invented demo data: a line with noise and two gross outliers."""
-    rng = np.random.default_rng(seed)
-    x = np.linspace(0.5, 15.0, n)
-    y = 4.0 + 1.5 * x + rng.normal(0, 0.2, n)
-    y[5] += 9.0
-    y[20] -= 7.0
-    lines = ["Time (s),Signal (mV)"] + [f"{a:.6f},{b:.6f}" for a, b in zip(x, y)]
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+@pytest.fixture
+def win(open_window):
+    return open_window(1400, 900)
 
 
 @pytest.fixture
-def win(qtbot, settings_file, monkeypatch):
-    monkeypatch.setattr(dialogs, "error_box", lambda *a: None)
-    w = MainWindow(QSettings(settings_file, QSettings.IniFormat))
-    qtbot.addWidget(w)
-    w.resize(1400, 900)
-    w.show()
-    qtbot.waitExposed(w)
-    return w
-
-
-@pytest.fixture
-def loaded(win, tmp_path):
+def loaded(win, tmp_path, write_demo_csv):
     path = tmp_path / "demo.csv"
     write_demo_csv(path)
     assert win.open_path(str(path))

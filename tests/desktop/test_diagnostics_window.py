@@ -11,14 +11,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from PySide6.QtCore import QSettings, Qt
+from PySide6.QtCore import Qt
 from PySide6.QtGui import QGuiApplication
 
-from desktop import dialogs
 from desktop.bootstrap_dialog import VALUE_ROLE
 from desktop.commands import MaskCommand
 from desktop.document import Measurements, Settings
-from desktop.main_window import MainWindow
 from desktop.points_model import COLUMNS
 from fitcore.bootstrap import bootstrap
 from fitcore.diagnostics import point_diagnostics
@@ -28,14 +26,8 @@ NCOL = len(COLUMNS)
 
 
 @pytest.fixture
-def win(qtbot, settings_file, monkeypatch):
-    monkeypatch.setattr(dialogs, "error_box", lambda *a: None)
-    w = MainWindow(QSettings(settings_file, QSettings.IniFormat))
-    qtbot.addWidget(w)
-    w.resize(1400, 900)
-    w.show()
-    qtbot.waitExposed(w)
-    return w
+def win(open_window):
+    return open_window(1400, 900)
 
 
 def demo(win, n=30, seed=3, loss="huber"):
@@ -76,7 +68,7 @@ def switch_on(win):
 
 def test_columns_equal_fitcore_diagnostics(win):
     demo(win)
-    ctl = switch_on(win)
+    switch_on(win)
     res = win.document.result
     ref = point_diagnostics(res)
     pm = win.points_model
@@ -165,7 +157,7 @@ def test_colouring_switches_diagnostics_on(win):
 
 def test_diagnostics_follow_the_refit_after_an_exclusion(win):
     demo(win)
-    ctl = switch_on(win)
+    switch_on(win)
     doc = win.document
     win.push(MaskCommand(doc, doc.make_mask_change([5], True)))
     assert win.runner.wait()
@@ -181,7 +173,7 @@ def test_diagnostics_follow_the_refit_after_an_exclusion(win):
 
 def test_large_data_use_the_labelled_one_step_approximation(win):
     demo(win, n=800, seed=5)
-    ctl = switch_on(win)
+    switch_on(win)
     ref = point_diagnostics(win.document.result)
     assert "one-step" in ref.method or "step" in ref.method
     _, c = column_values(win, "max |infl.| (one-step)")

@@ -16,47 +16,21 @@ import subprocess
 
 import numpy as np
 import pytest
-from PySide6.QtCore import QSettings
 from PySide6.QtGui import QGuiApplication, QImage
 
 import fitcore
 from fitcore import report as fr
-from desktop import dialogs, report_export, worker
+from desktop import report_export, worker
 from desktop.commands import MaskCommand
 from desktop.document import Settings
-from desktop.main_window import MainWindow
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
 
 
-def write_line_csv(path, n=30, seed=3):
-    """Invented demo data: a line with noise and two gross outliers."""
-    rng = np.random.default_rng(seed)
-    x = np.linspace(0.5, 15.0, n)
-    y = 4.0 + 1.5 * x + rng.normal(0, 0.2, n)
-    y[5] += 9.0
-    y[20] -= 7.0
-    lines = ["Time (s),Signal (mV)"] + [f"{a:.6f},{b:.6f}" for a, b in zip(x, y)]
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    return path
-
-
 @pytest.fixture
-def errors(monkeypatch):
-    seen = []
-    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
-    return seen
-
-
-@pytest.fixture
-def win(qtbot, tmp_path, errors):
-    w = MainWindow(QSettings(str(tmp_path / "t.ini"), QSettings.IniFormat),
-                   recovery_dir=tmp_path / "recovery")
-    qtbot.addWidget(w)
-    w.resize(1300, 820)
-    w.show()
-    qtbot.waitExposed(w)
-    data = write_line_csv(tmp_path / "line.csv")
+def win(open_window, tmp_path, write_demo_csv):
+    w = open_window(1300, 820, recovery_dir=tmp_path / "recovery")
+    data = write_demo_csv(tmp_path / "line.csv")
     assert w.open_path(str(data))
     doc = w.document
     doc.apply_settings(Settings(model="line", loss="huber"))

@@ -19,7 +19,7 @@ from PySide6.QtCore import QSettings
 import fitcore
 from fitcore import session as fs
 from desktop import app as app_module
-from desktop import dialogs, session_io
+from desktop import session_io
 from desktop.commands import MaskCommand
 from desktop.document import Settings
 from desktop.main_window import MainWindow
@@ -37,13 +37,6 @@ def write_decay_csv(path, n=26, seed=11):
     lines = ["Elapsed (s),Signal (mV)"] + [f"{a:.4f},{b:.5f}" for a, b in zip(x, y)]
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
     return path
-
-
-@pytest.fixture
-def errors(monkeypatch):
-    seen = []
-    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
-    return seen
 
 
 @pytest.fixture

@@ -20,37 +20,13 @@ from desktop.points_model import COL
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
 
 
-def write_demo_csv(path, n=30, seed=3):
-    """Invented demo data: a line with noise and two gross outliers."""
-    rng = np.random.default_rng(seed)
-    x = np.linspace(0.5, 15.0, n)
-    y = 4.0 + 1.5 * x + rng.normal(0, 0.2, n)
-    y[5] += 9.0
-    y[20] -= 7.0
-    lines = ["Time (s),Signal (mV)"] + [f"{a:.6f},{b:.6f}" for a, b in zip(x, y)]
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    return x, y
+@pytest.fixture
+def win(open_window):
+    return open_window(1400, 860)
 
 
 @pytest.fixture
-def errors(monkeypatch):
-    seen = []
-    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
-    return seen
-
-
-@pytest.fixture
-def win(qtbot, settings_file, errors):
-    w = MainWindow(QSettings(settings_file, QSettings.IniFormat))
-    qtbot.addWidget(w)
-    w.resize(1400, 860)
-    w.show()
-    qtbot.waitExposed(w)
-    return w
-
-
-@pytest.fixture
-def loaded(win, tmp_path):
+def loaded(win, tmp_path, write_demo_csv):
     path = tmp_path / "demo.csv"
     write_demo_csv(path)
     assert win.open_path(str(path))
@@ -268,7 +244,7 @@ def test_large_fit_runs_in_worker_and_newest_request_wins(qtbot, loaded):
     np.testing.assert_allclose(doc.result.values, side_by_side(doc).values, rtol=1e-12)
 
 
-def test_window_state_is_remembered(qtbot, settings_file, errors, tmp_path):
+def test_window_state_is_remembered(qtbot, settings_file, errors, tmp_path, write_demo_csv):
     w = MainWindow(QSettings(settings_file, QSettings.IniFormat))
     qtbot.addWidget(w)
     w.logx_action.setChecked(True)
@@ -282,7 +258,7 @@ def test_window_state_is_remembered(qtbot, settings_file, errors, tmp_path):
     assert w2.recent_files()[0].endswith("d.csv")
 
 
-def _sample_files(tmp_path):
+def _sample_files(tmp_path, write_demo_csv):
     files = [str(p) for p in dialogs.sample_sets()]
     if not files:
         p = tmp_path / "invented.csv"
@@ -291,9 +267,9 @@ def _sample_files(tmp_path):
     return files
 
 
-def test_screenshot_of_each_sample_set_is_not_blank(qtbot, win, tmp_path, monkeypatch):
+def test_screenshot_of_each_sample_set_is_not_blank(qtbot, win, tmp_path, monkeypatch, write_demo_csv):
     monkeypatch.setattr(win, "choose_columns", lambda table: tuple(table.numeric_columns()[:3]))
-    for path in _sample_files(tmp_path):
+    for path in _sample_files(tmp_path, write_demo_csv):
         assert win.open_path(path), path
         assert win.runner.wait()
         QGuiApplication.processEvents()
