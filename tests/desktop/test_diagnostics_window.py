@@ -68,7 +68,7 @@ def switch_on(win):
 
 def test_columns_equal_fitcore_diagnostics(win):
     demo(win)
-    switch_on(win)
+    ctl = switch_on(win)
     res = win.document.result
     ref = point_diagnostics(res)
     pm = win.points_model
@@ -157,7 +157,7 @@ def test_colouring_switches_diagnostics_on(win):
 
 def test_diagnostics_follow_the_refit_after_an_exclusion(win):
     demo(win)
-    switch_on(win)
+    ctl = switch_on(win)
     doc = win.document
     win.push(MaskCommand(doc, doc.make_mask_change([5], True)))
     assert win.runner.wait()
