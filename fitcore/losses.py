@@ -119,6 +119,10 @@ class Loss:
     def dpsi(self, u):
         return np.ones_like(_as_array(u))
 
+    def sum_rho(self, u, psi=None) -> float:
+        """``sum rho(u)``; ``psi = psi(u)`` may be passed where a loss can use it."""
+        return float(np.sum(self.rho(u)))
+
     def describe(self) -> str:
         """Loss with its shape and tuning constant, for reports."""
         parts = [self.title]
@@ -179,6 +183,13 @@ class Huber(Loss):
 
     def dpsi(self, u):
         return (np.abs(_as_array(u)) <= self.tuning).astype(float)
+
+    def sum_rho(self, u, psi=None) -> float:
+        # rho = psi (u - psi/2) on both pieces, so the sum is two dot products
+        if psi is None:
+            return super().sum_rho(u)
+        u = _as_array(u)
+        return float(psi @ u - 0.5 * (psi @ psi))
 
 
 @dataclass(frozen=True)

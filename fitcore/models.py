@@ -331,7 +331,8 @@ def _float_array(x):
 def _line():
     def basis(x):
         x = _float_array(x)
-        return np.column_stack([np.ones_like(x), x])
+        # column-major (n, 2): the solver's products run down the columns
+        return np.stack([np.ones_like(x), x]).T
 
     def guess(x, y):
         x, y = _finite_pairs(x, y)

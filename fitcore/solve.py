@@ -63,6 +63,7 @@ class _Problem:
     free: np.ndarray  # bool mask over the model's parameters
     p_fixed: np.ndarray  # full-length vector holding the fixed values
     n_eval: int = 0
+    unit: bool = False  # every sigma is 1 (no uncertainties given): skip the divisions
 
     @property
     def n(self) -> int:
@@ -80,32 +81,43 @@ class _Problem:
     def resid(self, theta: np.ndarray) -> np.ndarray:
         self.n_eval += 1
         if self.model.is_linear:
-            A = self.jac(theta)
-            b = getattr(self, "_b", None)
-            if b is None:
-                b = self._b = (self.y - self._offset) / self.sig
-            return b - A @ theta
+            return self.rhs() - self.jac(theta) @ theta
         with np.errstate(all="ignore"):
             f = np.asarray(self.model.f(self.x, self.full(theta)), dtype=float)
-            return (self.y - f) / self.sig
+            return self.y - f if self.unit else (self.y - f) / self.sig
+
+    def rhs(self) -> np.ndarray:
+        """Linear model: the whitened data less the held parameters' part (cached)."""
+        b = getattr(self, "_b", None)
+        if b is None:
+            self.jac(None)
+            b = self.y if self._offset is None else self.y - self._offset
+            b = self._b = b if self.unit else b / self.sig
+        return b
 
     def jac(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the model values f/sigma w.r.t. the free parameters."""
         if self.model.is_linear:
-            # constant for a linear model: build the (whitened) design matrix once
+            # constant for a linear model: build the (whitened) design matrix once, in
+            # column-major order (the products over the points run faster on columns)
             cached = getattr(self, "_design", None)
             if cached is None:
                 with np.errstate(all="ignore"):
                     A = np.asarray(self.model.basis(self.x), dtype=float).reshape(self.n, -1)
-                cached = A[:, self.free] / self.sig[:, None]
-                self._design = cached
-                self._offset = (A[:, ~self.free] @ self.p_fixed[~self.free]
-                                if np.any(~self.free) else np.zeros(self.n))
+                all_free = bool(self.free.all())
+                cached = A if all_free else A[:, self.free]
+                if not self.unit:
+                    cached = cached / self.sig[:, None]
+                self._design = np.asfortranarray(cached)
+                self._offset = None if all_free else A[:, ~self.free] @ self.p_fixed[~self.free]
+                cached = self._design
             return cached
         with np.errstate(all="ignore"):
             J = np.asarray(self.model.jac(self.x, self.full(theta)), dtype=float)
-        J = J.reshape(self.n, -1)[:, self.free]
-        return J / self.sig[:, None]
+        J = J.reshape(self.n, -1)
+        if not self.free.all():
+            J = J[:, self.free]
+        return J if self.unit else J / self.sig[:, None]
 
     @property
     def lower(self):
@@ -124,6 +136,7 @@ class _Inner:
     n_iter: int
     converged: bool
     message: str
+    stats: dict | None = None  # psi and psi' at the solution, when the solver has them
 
 
 def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
@@ -486,86 +499,104 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     return inner, s, total
 
 
-def _mad_and_gradient(r: np.ndarray, J: np.ndarray):
+def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True):
     """Normalised MAD about zero, ``1.4826 median|r|``, and its gradient w.r.t. theta.
 
     The median of ``|r|`` is attained at one point (two for even n, averaged), so the
     MAD is piecewise linear in the parameters: ``d|r_k|/dtheta = -sign(r_k) J_k``
-    (r = y - f, J = df/dtheta).
+    (r = y - f, J = df/dtheta). With many points the pieces are very short (the gap
+    between neighbouring order statistics), and that one-point slope says nothing
+    about a longer step. ``smooth=True`` averages the slope over the points whose
+    ``|r|`` lies within ``w = ceil(2 sqrt(n))`` ranks of the median: the derivative of
+    the median of the whole residual distribution, which is what a Newton step of
+    more than a few pieces needs. The value is exact either way.
     """
     from .scale import MAD_CONSTANT
 
     a = np.abs(r)
     n = a.size
-    if n % 2:
-        ks = [n // 2]
+    h = n // 2
+    p = np.partition(a, h)
+    upper = float(p[h])
+    med = upper if n % 2 else 0.5 * (float(p[:h].max()) + upper)
+    w = int(math.ceil(2.0 * math.sqrt(n)))
+    if smooth and n >= 20 and h - w >= 0 and h + w < n:
+        low_half, high_half = p[:h], p[h + 1:]  # views of our own copy: reorder in place
+        low_half.partition(h - w)
+        high_half.partition(w - 1)
+        idx = np.flatnonzero((a >= low_half[h - w]) & (a <= high_half[w - 1]))
     else:
-        ks = [n // 2 - 1, n // 2]
-    vals = np.partition(a, ks)[ks]
-    # the points that attain the middle values (a tie picks the first; the gradient
-    # is then one of the equally valid one-sided ones)
-    idx = np.array([int(np.flatnonzero(a == v)[0]) for v in vals])
-    med = float(np.mean(vals))
-    grad = -np.mean(np.sign(r[idx])[:, None] * J[idx], axis=0)
+        vals = [upper] if n % 2 else [float(p[:h].max()), upper]
+        # the points that attain the middle values (a tie picks the first; the gradient
+        # is then one of the equally valid one-sided ones)
+        idx = np.array([int(np.flatnonzero(a == v)[0]) for v in vals])
+    grad = -(np.sign(r[idx]) @ J[idx]) / idx.size
     return MAD_CONSTANT * med, MAD_CONSTANT * grad
 
 
 def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
                      with_mad: bool = True):
-    """Large data: Newton's method on the M-estimating equations jointly with the MAD.
+    """Newton's method on the M-estimating equations with the scale tied to the MAD.
 
-    Unknowns (theta, s); equations ``sum psi(r_i/s) J_i = 0`` and ``MAD(r) - s = 0``.
-    Both are piecewise smooth, so from the subsample's nearby start the iteration
-    settles in a few steps. Returns None if it does not, and the caller falls back to
-    the alternating reweighting loop. ``with_mad=False`` keeps the scale fixed (the
-    first equation alone).
+    Solves ``F(theta) = sum psi(r_i / s(theta)) J_i = 0`` where ``s(theta)`` is the
+    normalised MAD of the residuals at theta, so every iterate carries its own exact
+    MAD scale. The Jacobian is the Gauss-Newton one, ``-(J^T D J + (J^T D u) g^T) / s``
+    with ``D = diag psi'(u)`` and ``g = ds/dtheta`` (smoothed while the steps are long,
+    see :func:`_mad_and_gradient`). Both equations are piecewise smooth, so from a
+    nearby start (a subsample's fit) the iteration settles in a few steps.
+
+    One pass over the data per iteration; the pass at the solution also gives psi and
+    psi' there, returned in ``stats`` for the covariance. Returns None if the
+    iteration does not settle (the caller then falls back to the reweighting loop).
+    ``with_mad=False`` keeps the scale ``s`` fixed.
     """
     lower, upper = prob.lower, prob.upper
-    k = prob.k
-    r = prob.resid(theta)
+    theta = np.asarray(theta, dtype=float)
     norm_prev = math.inf
-    for it in range(1, max_iter + 1):
+    done = False
+    smooth = True
+    for it in range(max_iter + 1):
+        r = prob.resid(theta)
         J = prob.jac(theta)
+        if with_mad:
+            s_new, g = _mad_and_gradient(r, J, smooth)
+            if not (s_new > 0 and math.isfinite(s_new)):
+                return None
+            s = s_new
         u = r / s
         psi = loss.psi(u)
         dpsi = loss.dpsi(u)
+        if done:
+            stats = {"psi": psi, "dpsi": dpsi}
+            with np.errstate(all="ignore"):
+                obj = loss.sum_rho(u, psi)
+            obj = obj if math.isfinite(obj) else math.inf
+            inner = _Inner(theta, r, obj, it, True, "converged", stats)
+            return inner, s, it
         Jd = J * dpsi[:, None]
+        M = Jd.T @ J
         if with_mad:
-            m_val, m_grad = _mad_and_gradient(r, J)
-            M = np.zeros((k + 1, k + 1))
-            M[:k, :k] = (Jd.T @ J) / s          # -dF1/dtheta
-            M[:k, k] = (u @ Jd) / s             # -dF1/ds
-            M[k, :k] = -m_grad                  # -dF2/dtheta
-            M[k, k] = 1.0                       # -dF2/ds
-            F = np.concatenate([psi @ J, [m_val - s]])
-        else:
-            M = (Jd.T @ J) / s
-            F = psi @ J
+            M += np.outer(Jd.T @ u, g)
+        F = psi @ J
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
         norm = float(np.linalg.norm(F / d))
         if not math.isfinite(norm) or norm > 4.0 * norm_prev:
             return None
         norm_prev = norm
         try:
-            step = np.linalg.solve(M / d / d[:, None], F / d) / d
+            step = s * np.linalg.solve(M / d / d[:, None], F / d) / d
         except np.linalg.LinAlgError:
             return None
         if not np.all(np.isfinite(step)):
             return None
-        new_theta = _project(theta + step[:k], lower, upper)
-        new_s = min(max(s + step[k], 0.5 * s), 2.0 * s) if with_mad else s
-        # quadratic convergence: a step below 1e-10 leaves an error far below rounding
-        small = np.all(np.abs(new_theta - theta) <= 1e-10 * (np.abs(theta) + 1e-10 * (1 + np.abs(theta).max())))
-        small = small and abs(new_s - s) <= 1e-10 * s
-        theta, s = new_theta, new_s
-        r = prob.resid(theta)
-        if small:
-            if not with_mad:
-                return _Inner(theta, r, _objective(loss, r, s), it, True, "converged"), s, it
-            s_fin = _safe_scale(mad(r), r, prob)
-            if abs(s_fin - s) > 1e-10 * s:
-                return None
-            return _Inner(theta, r, _objective(loss, r, s_fin), it, True, "converged"), s_fin, it
+        new_theta = _project(theta + step, lower, upper)
+        step = new_theta - theta
+        # step size in units of each parameter's (diagonal) standard error
+        in_se = np.abs(step) * d / s
+        rel = np.abs(step) <= 1e-10 * np.abs(theta)
+        done = bool(np.all(rel | (in_se <= 1e-5)))
+        smooth = smooth and not bool(np.all(rel | (in_se <= 1e-3)))
+        theta = new_theta
     return None
 
 
@@ -798,8 +829,12 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
         raise FitError(f"the model has {k} free parameters but only {n_used} points are used; "
                        f"restore points or hold parameters")
 
-    xu, yu = x[used], y[used]
-    sig_u = sig_all[used] if sig_all is not None else np.ones(n_used)
+    all_used = n_used == n_all
+    xu, yu = (x, y) if all_used else (x[used], y[used])
+    if sig_all is None:
+        sig_u = np.ones(n_used)
+    else:
+        sig_u = sig_all if all_used else sig_all[used]
     try:
         if n_used > 2000 and (p0 is None or isinstance(p0, dict)):
             # start values need no more than a few thousand points (a seeded subsample)
@@ -813,7 +848,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
         raise FitError("the start values are not all finite numbers")
     for name, v in fixed.items():
         start[mdl.param_names.index(name)] = float(v)
-    prob = _Problem(mdl, xu, yu, sig_u, free, start.copy())
+    prob = _Problem(mdl, xu, yu, sig_u, free, start.copy(), unit=sig_all is None)
     theta0 = start[free]
     linear = mdl.is_linear
     dof = n_used - k
@@ -925,7 +960,9 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
         elif loss == "l1":
             cov_free, recipe = unc.cov_l1(Jf, r)
         else:
-            cov_free, recipe = unc.cov_m_estimate(Jf, r / s, s, loss_obj, dof)
+            st = inner.stats or {}
+            cov_free, recipe = unc.cov_m_estimate(Jf, None if st else r / s, s, loss_obj, dof,
+                                                  psi=st.get("psi"), dpsi=st.get("dpsi"))
     except unc.RankDeficient as e:
         converged = False
         message = f"{e}; the estimates are not unique (hold a parameter or add points)"
@@ -946,14 +983,19 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     sig_div = sig_all if sig_all is not None else 1.0
     with np.errstate(all="ignore"):
         std_res = residuals / sig_div / s if s > 0 else residuals * np.nan
-    weights = np.zeros(n_all)
     if loss == "l2":
-        weights[used] = 1.0
+        w_used = np.ones(n_used)
     else:
-        weights[used] = np.clip(loss_obj.weight(r / s), 0.0, 1.0)
-    n_down = int(np.sum(weights[used] < 0.5))
+        w_used = np.asarray(loss_obj.weight(r / s), dtype=float)
+        np.clip(w_used, 0.0, 1.0, out=w_used)
+    if all_used:
+        weights = w_used
+    else:
+        weights = np.zeros(n_all)
+        weights[used] = w_used
+    n_down = int(np.count_nonzero(w_used < 0.5))
     sigma_kind = "none" if sigma is None else sigma_mode
-    rss = float(np.sum(r * r))
+    rss = float(r @ r)
     return FitResult(
         model=mdl, loss=loss, param_names=mdl.param_names, values=p_full, stderr=stderr,
         covariance=cov, weights=weights, residuals=residuals, std_residuals=std_res,
@@ -975,7 +1017,8 @@ _SUBSAMPLE = 4000
 def _subproblem(prob: _Problem, m: int = _SUBSAMPLE) -> _Problem:
     """A deterministic random subsample of the used points (seeded, reproducible)."""
     idx = np.sort(np.random.default_rng(20190611).choice(prob.n, size=min(m, prob.n), replace=False))
-    return _Problem(prob.model, prob.x[idx], prob.y[idx], prob.sig[idx], prob.free, prob.p_fixed)
+    return _Problem(prob.model, prob.x[idx], prob.y[idx], prob.sig[idx], prob.free, prob.p_fixed,
+                    unit=prob.unit)
 
 
 def _scale_rule(loss: Loss) -> str:
@@ -1016,7 +1059,7 @@ def _m_estimate(prob: _Problem, theta, loss: Loss, fixed_scale, *, linear: bool,
 
 def _l1_linear_start(prob: _Problem, theta0) -> np.ndarray:
     A = prob.jac(theta0)
-    b = (prob.y - prob._offset) / prob.sig
+    b = prob.rhs()
     try:
         return _l1_linear(A, b, prob.lower, prob.upper)
     except FitError:

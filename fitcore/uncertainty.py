@@ -51,16 +51,16 @@ def inv_jtj(J: np.ndarray, rcond: float | None = None) -> np.ndarray:
     if p == 0:
         return np.zeros((0, 0))
     # column scaling makes the rank decision independent of parameter units
-    d = np.sqrt(np.sum(J * J, axis=0))
+    d = np.sqrt(np.einsum("ij,ij->j", J, J))
     if np.any(d == 0) or not np.all(np.isfinite(d)):
         raise RankDeficient("a parameter has no effect on the model at the solution")
-    Js = J / d
     if n > 20000:
         # large n: the scaled Gram matrix is accurate enough when well conditioned
-        G = Js.T @ Js
+        G = (J.T @ J) / np.outer(d, d)
         ev = np.linalg.eigvalsh(G)
         if ev[0] > 0 and ev[-1] <= 1e8 * ev[0]:
             return np.linalg.inv(G) / np.outer(d, d)
+    Js = J / d
     U, sv, Vt = np.linalg.svd(Js, full_matrices=False)
     tol = (rcond if rcond is not None else max(n, p) * np.finfo(float).eps) * sv[0]
     if sv[-1] <= tol:
@@ -78,16 +78,24 @@ def cov_least_squares(J, r, dof: int, absolute: bool = False, inv_jtj=None):
     return s2 * base, RECIPE_LS
 
 
-def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto"):
-    """H1 (default) or sandwich covariance for an M-estimate; see module docstring."""
+def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto", *,
+                   psi=None, dpsi=None):
+    """H1 (default) or sandwich covariance for an M-estimate; see module docstring.
+
+    ``psi`` and ``dpsi`` may pass ``loss.psi(u)`` and ``loss.dpsi(u)`` when the solver
+    already has them (``u`` is then not used).
+    """
     J = np.asarray(J, dtype=float)
     n, p = J.shape
-    psi = loss.psi(u)
-    dpsi = loss.dpsi(u)
+    if psi is None:
+        psi = loss.psi(u)
+    if dpsi is None:
+        dpsi = loss.dpsi(u)
     m = float(np.mean(dpsi))
-    sig2_psi = s * s * float(np.sum(psi * psi)) / dof if dof > 0 else float("nan")
+    sig2_psi = s * s * float(psi @ psi) / dof if dof > 0 else float("nan")
     if recipe in ("auto", "H1") and m > 0.05:
-        K = 1.0 + (p / n) * float(np.var(dpsi)) / (m * m)
+        var_dpsi = max(float(dpsi @ dpsi) / n - m * m, 0.0)
+        K = 1.0 + (p / n) * var_dpsi / (m * m)
         return (K * K * sig2_psi / (m * m)) * inv_jtj(J), RECIPE_H1
     if recipe == "H1":
         raise RankDeficient("H1 covariance undefined: mean psi' is not positive")
