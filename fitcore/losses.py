@@ -168,21 +168,26 @@ class L1(Loss):
 
 @dataclass(frozen=True)
 class Huber(Loss):
+    # (in-place arithmetic on fresh arrays: these run over every point in each pass)
     def rho(self, u):
         u = np.abs(_as_array(u))
         k = self.tuning
         return np.where(u <= k, 0.5 * u * u, k * u - 0.5 * k * k)
 
     def psi(self, u):
-        u = _as_array(u)
-        return np.minimum(np.maximum(u, -self.tuning), self.tuning)
+        return np.clip(_as_array(u), -self.tuning, self.tuning)
 
     def weight(self, u):
-        a = np.abs(_as_array(u))
-        return np.minimum(1.0, self.tuning / np.maximum(a, 1e-300))
+        u = _as_array(u)
+        w = np.abs(u, out=np.empty_like(u))
+        np.maximum(w, 1e-300, out=w)
+        np.divide(self.tuning, w, out=w)
+        return np.minimum(w, 1.0, out=w)
 
     def dpsi(self, u):
-        return (np.abs(_as_array(u)) <= self.tuning).astype(float)
+        u = _as_array(u)
+        a = np.abs(u, out=np.empty_like(u))
+        return np.less_equal(a, self.tuning, out=a)  # 1.0 inside, 0.0 outside
 
     def sum_rho(self, u, psi=None) -> float:
         # rho = psi (u - psi/2) on both pieces, so the sum is two dot products
@@ -225,11 +230,20 @@ class Cauchy(Loss):
         return 0.5 * k * k * np.log1p((_as_array(u) / k) ** 2)
 
     def weight(self, u):
-        return 1.0 / (1.0 + (_as_array(u) / self.tuning) ** 2)
+        u = _as_array(u)
+        w = np.divide(u, self.tuning, out=np.empty_like(u))
+        np.multiply(w, w, out=w)
+        w += 1.0
+        return np.reciprocal(w, out=w)
 
     def dpsi(self, u):
-        t = (_as_array(u) / self.tuning) ** 2
-        return (1.0 - t) / (1.0 + t) ** 2
+        u = _as_array(u)
+        t = np.divide(u, self.tuning, out=np.empty_like(u))
+        np.multiply(t, t, out=t)
+        d = np.add(t, 1.0, out=np.empty_like(t))
+        np.multiply(d, d, out=d)
+        np.subtract(1.0, t, out=t)
+        return np.divide(t, d, out=t)
 
 
 @dataclass(frozen=True)

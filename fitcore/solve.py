@@ -499,7 +499,7 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     return inner, s, total
 
 
-def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True):
+def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: dict | None = None):
     """Normalised MAD about zero, ``1.4826 median|r|``, and its gradient w.r.t. theta.
 
     The median of ``|r|`` is attained at one point (two for even n, averaged), so the
@@ -509,14 +509,22 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True):
     about a longer step. ``smooth=True`` averages the slope over the points whose
     ``|r|`` lies within ``w = ceil(2 sqrt(n))`` ranks of the median: the derivative of
     the median of the whole residual distribution, which is what a Newton step of
-    more than a few pieces needs. The value is exact either way.
+    more than a few pieces needs. The value is exact either way. ``work`` (a dict)
+    keeps the two scratch arrays between calls.
     """
     from .scale import MAD_CONSTANT
 
-    a = np.abs(r)
-    n = a.size
+    n = r.size
+    if work is not None and work.get("n") == n:
+        a, p = work["a"], work["p"]
+    else:
+        a, p = np.empty(n), np.empty(n)
+        if work is not None:
+            work.update(n=n, a=a, p=p)
+    np.abs(r, out=a)
+    p[...] = a
     h = n // 2
-    p = np.partition(a, h)
+    p.partition(h)
     upper = float(p[h])
     med = upper if n % 2 else 0.5 * (float(p[:h].max()) + upper)
     w = int(math.ceil(2.0 * math.sqrt(n)))
@@ -555,11 +563,16 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     norm_prev = math.inf
     done = False
     smooth = True
+    work: dict = {}  # scratch arrays reused by every pass (fresh ones cost page faults)
+    jd = None
     for it in range(max_iter + 1):
         r = prob.resid(theta)
         J = prob.jac(theta)
         if with_mad:
-            s_new, g = _mad_and_gradient(r, J, smooth)
+            if done:  # the solution: its scale, no slope needed
+                s_new, g = mad(r), None
+            else:
+                s_new, g = _mad_and_gradient(r, J, smooth, work)
             if not (s_new > 0 and math.isfinite(s_new)):
                 return None
             s = s_new
@@ -573,10 +586,11 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             obj = obj if math.isfinite(obj) else math.inf
             inner = _Inner(theta, r, obj, it, True, "converged", stats)
             return inner, s, it
-        Jd = J * dpsi[:, None]
-        M = Jd.T @ J
-        if with_mad:
-            M += np.outer(Jd.T @ u, g)
+        if jd is None or jd.shape != J.shape:
+            jd = np.empty_like(J)
+        Jd = np.multiply(J, dpsi[:, None], out=jd)
+        G = Jd.T @ J
+        M = G + np.outer(Jd.T @ u, g) if with_mad else G
         F = psi @ J
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
         norm = float(np.linalg.norm(F / d))
@@ -591,11 +605,20 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             return None
         new_theta = _project(theta + step, lower, upper)
         step = new_theta - theta
-        # step size in units of each parameter's (diagonal) standard error
-        in_se = np.abs(step) * d / s
+        # step size in units of each parameter's standard error, s sqrt(diag G^-1)
+        # (G = J^T D J; correlated parameters have far larger errors than 1/sqrt(G_jj))
+        try:
+            se = s * np.sqrt(np.abs(np.diag(np.linalg.inv(G / d / d[:, None])))) / d
+        except np.linalg.LinAlgError:
+            se = s / d
+        with np.errstate(all="ignore"):
+            in_se = np.where(se > 0, np.abs(step) / se, np.inf)
         rel = np.abs(step) <= 1e-10 * np.abs(theta)
-        done = bool(np.all(rel | (in_se <= 1e-5)))
-        smooth = smooth and not bool(np.all(rel | (in_se <= 1e-3)))
+        # converged once a step is below 1e-4 standard errors (or 1e-10 relative): the
+        # iteration contracts by 50x or more per step here, so the error left is some
+        # 1e-6 standard errors, far below anything a result could show
+        done = bool(np.all(rel | (in_se <= 1e-4)))
+        smooth = smooth and not bool(np.all(rel | (in_se <= 1e-2)))
         theta = new_theta
     return None
 
@@ -832,7 +855,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     all_used = n_used == n_all
     xu, yu = (x, y) if all_used else (x[used], y[used])
     if sig_all is None:
-        sig_u = np.ones(n_used)
+        sig_u = np.broadcast_to(1.0, (n_used,))  # read-only; never divided by (unit)
     else:
         sig_u = sig_all if all_used else sig_all[used]
     try:
@@ -922,12 +945,24 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             if n_used > _LARGE:
                 # the whole procedure on a subsample gives a robust start and scale, so
                 # the full data need only a few iterations
-                sub = _subproblem(prob, 2000 if linear else 1500)
+                sizes = _stage_sizes(n_used, 2000 if linear else 1500)
+                sub = _subproblem(prob, sizes[0])
                 w_inner, w_s, w_it = _m_estimate(sub, start_theta, loss_obj, fixed_scale,
-                                                 linear=linear, max_iter=max_iter)
+                                                 linear=linear, max_iter=max_iter,
+                                                 l1_start=False)
                 start_theta, n_iter, warm_started = w_inner.theta, w_it, True
                 if auto:
                     s_start = w_s
+                # larger subsamples in turn: each Newton pass there costs a fraction of
+                # one over all the points, and each stage starts the next one closer
+                for m in sizes[1:]:
+                    staged = _newton_with_mad(_subproblem(prob, m), start_theta, s_start,
+                                              loss_obj, with_mad=auto)
+                    if staged is None:
+                        break
+                    start_theta, n_iter = staged[0].theta, n_iter + staged[2]
+                    if auto:
+                        s_start = staged[1]
             if not warm_started:
                 inner, s, it = _m_estimate(prob, start_theta, loss_obj, fixed_scale,
                                            linear=linear, max_iter=max_iter)
@@ -978,11 +1013,18 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
 
     # ---------------------------------------------------------------- per point
     with np.errstate(all="ignore"):
-        fitted = np.asarray(mdl.f(x, p_full), dtype=float)
+        if linear and all_used and prob.unit and free.all():
+            fitted = prob.jac(theta) @ theta  # the design the fit used: no rebuild
+        else:
+            fitted = np.asarray(mdl.f(x, p_full), dtype=float)
     residuals = y - fitted
-    sig_div = sig_all if sig_all is not None else 1.0
     with np.errstate(all="ignore"):
-        std_res = residuals / sig_div / s if s > 0 else residuals * np.nan
+        if not s > 0:
+            std_res = residuals * np.nan
+        elif sig_all is None:
+            std_res = residuals / s
+        else:
+            std_res = residuals / sig_all / s
     if loss == "l2":
         w_used = np.ones(n_used)
     else:
@@ -1014,6 +1056,15 @@ _LARGE = 20000  # above this many used points, robust fits start from a subsampl
 _SUBSAMPLE = 4000
 
 
+def _stage_sizes(n: int, first: int, factor: int = 12, margin: int = 6) -> list[int]:
+    """Subsample sizes for the large-data warm start: ``first``, then ``factor`` times
+    larger while a stage stays ``margin`` times smaller than the data."""
+    sizes = [first]
+    while sizes[-1] * factor * margin <= n:
+        sizes.append(sizes[-1] * factor)
+    return sizes
+
+
 def _subproblem(prob: _Problem, m: int = _SUBSAMPLE) -> _Problem:
     """A deterministic random subsample of the used points (seeded, reproducible)."""
     idx = np.sort(np.random.default_rng(20190611).choice(prob.n, size=min(m, prob.n), replace=False))
@@ -1031,18 +1082,21 @@ SCALE_METHOD = {
 }
 
 
-def _m_estimate(prob: _Problem, theta, loss: Loss, fixed_scale, *, linear: bool, max_iter: int):
+def _m_estimate(prob: _Problem, theta, loss: Loss, fixed_scale, *, linear: bool, max_iter: int,
+                l1_start: bool = True):
     """M-estimate from a plain start.
 
     Redescending losses start from a Huber fit, itself started (with an automatic
     scale) from the exact L1 fit of a linear model, and use the MAD scale rule: a
     proposal-2 scale has too low a breakdown point to keep a quarter of gross outliers
     from inflating it, after which a redescending loss would accept them.
+    ``l1_start=False`` skips the L1 start (the large-data warm start, whose robust
+    guess is refined by later stages anyway).
     """
     auto = fixed_scale is None
     n_iter = 0
     rule = _scale_rule(loss)
-    if auto and linear and prob.n <= 2000:
+    if auto and linear and prob.n <= 2000 and l1_start:
         theta = _l1_linear_start(prob, theta)
     s_start = _start_scale(prob, theta, linear) if auto else fixed_scale
     if loss.redescending:
