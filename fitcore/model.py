@@ -66,6 +66,10 @@ class Model:
         ``"1/x"``, ``""`` (dimensionless) ... The window substitutes real units.
     derived
         Quantities computed from the parameters, reported with propagated uncertainty.
+    f_jac
+        Optional ``f_jac(x, p) -> (f, J)``: both at once, sharing the work (the
+        large-data solver calls it once per pass). It must agree with ``f`` and
+        ``jac``.
     """
 
     name: str
@@ -81,6 +85,7 @@ class Model:
     descriptions: Mapping[str, str] = field(default_factory=dict)
     units: Mapping[str, str] = field(default_factory=dict)
     derived: tuple[Derived, ...] = ()
+    f_jac: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]] | None = None
 
     def __post_init__(self):
         names = tuple(self.param_names)

@@ -81,10 +81,20 @@ def _finite_pairs(x, y, limit=_GUESS_MAX_POINTS):
 
 
 def _fast_median(v):
+    # one selection plus the maximum of the lower half (a two-index partition is
+    # several times slower); equal to np.median
     n = v.size
     h = n // 2
-    part = np.partition(v, [h - 1, h] if n % 2 == 0 else h)
-    return 0.5 * (part[h - 1] + part[h]) if n % 2 == 0 else part[h]
+    part = np.partition(v, h)
+    return 0.5 * (part[:h].max() + part[h]) if n % 2 == 0 else part[h]
+
+
+def _row_medians(v):
+    """np.median(v, axis=1) for a 2-d array, by the same one-selection route."""
+    n = v.shape[1]
+    h = n // 2
+    part = np.partition(v, h, axis=1)
+    return 0.5 * (part[:, :h].max(axis=1) + part[:, h]) if n % 2 == 0 else part[:, h]
 
 
 def _mad(r):
@@ -211,6 +221,98 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     return coef, r
 
 
+def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
+    """:func:`_robust_lstsq` for a stack of design matrices ``As`` (G, n, k) sharing
+    one ``y``: the same iterations, run on every matrix at once.
+
+    Each matrix stops on its own conditions, exactly as in the single version; a
+    matrix with an all-zero column, or whose small normal equations are singular, is
+    handed to the single version. Returns ``(coefs (G, k), residuals (G, n))``.
+    """
+    As = np.asarray(As, dtype=float)
+    y = np.asarray(y, dtype=float)
+    G, n, k = As.shape
+    coefs = np.zeros((G, k))
+    resid = np.empty((G, n))
+    with np.errstate(all="ignore"):
+        norms = np.sqrt(np.einsum("gij,gij->gj", As, As))
+    plain = np.all(np.isfinite(norms) & (norms > 0), axis=1) if n else np.zeros(G, bool)
+    for g in np.flatnonzero(~plain):
+        coefs[g], resid[g] = _robust_lstsq(As[g], y, n_huber, n_tukey)
+    idx = np.flatnonzero(plain)
+    if idx.size == 0:
+        return coefs, resid
+    Z = As[idx] / norms[idx][:, None, :]
+
+    Zt = np.ascontiguousarray(Z.transpose(0, 2, 1))  # (G, k, n): the products run on rows
+    everything = slice(None)
+
+    def wls(sel, w):
+        """Weighted solves for the stack; None where the single version would fall back."""
+        Zw = Zt[sel] * w[:, None, :]
+        M = np.matmul(Zw, Z[sel])
+        rhs = np.matmul(Zw, y)[:, :, None]
+        try:
+            c = np.linalg.solve(M, rhs)[:, :, 0]
+        except np.linalg.LinAlgError:
+            return None
+        d = np.prod(np.diagonal(M, axis1=1, axis2=2), axis=1)
+        ok = np.all(np.isfinite(c), axis=1) & (np.abs(np.linalg.det(M)) > 1e-10 * d)
+        return c if ok.all() else None
+
+    with np.errstate(all="ignore"):
+        c = wls(everything, np.ones((idx.size, n)))
+        if c is None:  # rare: let the single version decide every matrix
+            for g in idx:
+                coefs[g], resid[g] = _robust_lstsq(As[g], y, n_huber, n_tukey)
+            return coefs, resid
+        r = y - np.matmul(Z, c[:, :, None])[:, :, 0]
+        live = np.ones(idx.size, bool)
+        for it in range(n_huber + n_tukey):
+            rows = np.flatnonzero(live)
+            if rows.size == 0:
+                break
+            rr = r[rows] if rows.size < live.size else r
+            centre = _row_medians(rr)
+            sc = 1.482602218505602 * _row_medians(np.abs(rr - centre[:, None]))
+            stop = ~((sc > 0) & np.isfinite(sc))
+            u = np.abs(rr) / np.where(stop, 1.0, sc)[:, None]
+            if it < n_huber:
+                w = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
+            else:
+                w = np.where(u < 4.685, (1.0 - (u / 4.685) ** 2) ** 2, 0.0)
+            stop |= np.count_nonzero(w, axis=1) <= k
+            if stop.any():
+                go = rows[~stop]
+                live[rows[stop]] = False
+                w = w[~stop]
+            else:
+                go = rows
+            if go.size == 0:
+                break
+            sel = everything if go.size == live.size else go
+            c_new = wls(sel, w)
+            if c_new is None:
+                # some matrix would take the single version's fallback solve: finish
+                # those one by one from the start (the single version is the reference)
+                for j in go:
+                    g = idx[j]
+                    coefs[g], resid[g] = _robust_lstsq(As[g], y, n_huber, n_tukey)
+                    live[j] = False
+                    c[j] = coefs[g] * norms[g]
+                    r[j] = resid[g]
+                continue
+            c_old = c[sel]
+            small = np.max(np.abs(c_new - c_old), axis=1) <= 1e-10 * (1.0 + np.max(np.abs(c_old), axis=1))
+            c[sel] = c_new
+            r[sel] = y - np.matmul(Z[sel], c_new[:, :, None])[:, :, 0]
+            if it >= n_huber:
+                live[go[small]] = False
+    coefs[idx] = c / norms[idx]
+    resid[idx] = r
+    return coefs, resid
+
+
 def _noise_scale(x, y):
     """Model-free robust noise level: normalised MAD of successive differences of y
     (sorted by x) divided by sqrt 2, with a floor (see below)."""
@@ -246,15 +348,23 @@ def _profile(basis_of: Callable[[float], np.ndarray], y, grid, scale, refine=2):
 
     def scan(values):
         nonlocal best
+        ts, mats = [], []
         for t in values:
             with np.errstate(all="ignore"):
-                A = basis_of(float(t))
-            if not np.all(np.isfinite(A)):
-                continue
-            coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
-            crit = _criterion(r, scale)
-            if crit < best[2]:
-                best = (float(t), coef, crit)
+                A = np.asarray(basis_of(float(t)), dtype=float)
+            if np.all(np.isfinite(A)):
+                ts.append(float(t))
+                mats.append(A)
+        if not ts:
+            return
+        # every grid value at once (the same iterations as one _robust_lstsq each)
+        coefs, res = _robust_lstsq_many(np.stack(mats), y, n_huber=5, n_tukey=3)
+        with np.errstate(all="ignore"):
+            crit = np.sum(np.minimum((res / scale) ** 2, 9.0), axis=1)
+        crit[~np.isfinite(crit)] = np.inf
+        j = int(np.argmin(crit))  # the first of equal values, as a sequential scan
+        if crit[j] < best[2]:
+            best = (ts[j], coefs[j], float(crit[j]))
 
     grid = np.asarray(grid, dtype=float)
     scan(grid)
@@ -483,13 +593,26 @@ def _exp_decay(rate: bool = False):
         with np.errstate(over="ignore", under="ignore", divide="ignore"):
             return A * np.exp(-x / tau) + C
 
-    def jac(x, p):
+    def f_jac(x, p):
+        # one exponential for both; J column-major (n, 3)
         A, tau, C = p
+        x = np.asarray(x, dtype=float).ravel()
+        J = np.empty((x.size, 3), order="F")
         with np.errstate(all="ignore"):
-            z = x / tau
-            e = np.exp(-z)
-            dtau = np.where(e == 0.0, 0.0, A * e * z / tau)
-        return np.column_stack([e, dtau, np.ones_like(x)])
+            z = np.divide(x, tau, out=J[:, 1])
+            e = np.exp(-z, out=J[:, 0])
+            fx = A * e
+            fx += C
+            dtau = J[:, 1]
+            np.multiply(dtau, e, out=dtau)
+            dtau *= A / tau
+            if not np.all(np.isfinite(dtau)):
+                dtau[e == 0.0] = 0.0
+        J[:, 2] = 1.0
+        return fx, J
+
+    def jac(x, p):
+        return f_jac(x, p)[1]
 
     def guess(x, y):
         x, y = _finite_pairs(x, y)
@@ -507,7 +630,7 @@ def _exp_decay(rate: bool = False):
                 "rate constant (1/tau)", "1/x"),
     )
     return Model(
-        "exp_decay", names, f, jac, guess=guess,
+        "exp_decay", names, f, jac, guess=guess, f_jac=f_jac,
         lower=(-np.inf, 0.0, -np.inf), formula="y = A*exp(-x/tau) + C",
         title="Exponential decay (time constant)",
         descriptions={"A": "amplitude (decaying part at x = 0)",

@@ -78,12 +78,19 @@ class _Problem:
         p[self.free] = theta
         return p
 
-    def resid(self, theta: np.ndarray) -> np.ndarray:
+    def resid(self, theta: np.ndarray, with_jac: bool = False) -> np.ndarray:
+        """Whitened residuals at theta. ``with_jac`` also evaluates the Jacobian in the
+        same call where the model can share the work (kept for the next ``jac``)."""
         self.n_eval += 1
         if self.model.is_linear:
             return self.rhs() - self.jac(theta) @ theta
         with np.errstate(all="ignore"):
-            f = np.asarray(self.model.f(self.x, self.full(theta)), dtype=float)
+            if with_jac and self.model.f_jac is not None:
+                f, J = self.model.f_jac(self.x, self.full(theta))
+                self._jac_at = (np.asarray(theta, dtype=float).tobytes(), J)
+            else:
+                f = self.model.f(self.x, self.full(theta))
+            f = np.asarray(f, dtype=float)
             return self.y - f if self.unit else (self.y - f) / self.sig
 
     def rhs(self) -> np.ndarray:
@@ -112,8 +119,12 @@ class _Problem:
                 self._offset = None if all_free else A[:, ~self.free] @ self.p_fixed[~self.free]
                 cached = self._design
             return cached
-        with np.errstate(all="ignore"):
-            J = np.asarray(self.model.jac(self.x, self.full(theta)), dtype=float)
+        kept = getattr(self, "_jac_at", None)
+        if kept is not None and kept[0] == np.asarray(theta, dtype=float).tobytes():
+            J = np.asarray(kept[1], dtype=float)
+        else:
+            with np.errstate(all="ignore"):
+                J = np.asarray(self.model.jac(self.x, self.full(theta)), dtype=float)
         J = J.reshape(self.n, -1)
         if not self.free.all():
             J = J[:, self.free]
@@ -456,7 +467,8 @@ def _safe_scale(s: float, r: np.ndarray, prob: _Problem) -> float:
 
 
 def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bool,
-                       auto: bool, max_iter: int, rule: str = "proposal2") -> tuple[_Inner, float, int]:
+                       auto: bool, max_iter: int, rule: str = "proposal2",
+                       quick: bool = False) -> tuple[_Inner, float, int]:
     """M-estimate at a fixed scale, or jointly with an automatic scale.
 
     With ``auto`` the parameters and the scale are alternated (loose inner tolerance)
@@ -467,7 +479,8 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     used with redescending losses, as statsmodels' RLM does).
     """
     if auto and rule == "mad":
-        return _robust_with_mad(prob, theta, loss, s0, linear=linear, max_iter=max_iter)
+        return _robust_with_mad(prob, theta, loss, s0, linear=linear, max_iter=max_iter,
+                                quick=quick)
     s = _safe_scale(s0, prob.resid(theta), prob)
     total = 0
     if auto:
@@ -566,7 +579,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     work: dict = {}  # scratch arrays reused by every pass (fresh ones cost page faults)
     jd = None
     for it in range(max_iter + 1):
-        r = prob.resid(theta)
+        r = prob.resid(theta, with_jac=True)
         J = prob.jac(theta)
         if with_mad:
             if done:  # the solution: its scale, no slope needed
@@ -623,16 +636,38 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     return None
 
 
+def _is_minimum(prob: _Problem, inner: _Inner, s: float) -> bool:
+    """True when ``J^T diag(psi') J`` is positive definite at the solution."""
+    dpsi = (inner.stats or {}).get("dpsi")
+    if dpsi is None:
+        return False
+    J = prob.jac(inner.theta)
+    G = (J * dpsi[:, None]).T @ J
+    d = np.sqrt(np.abs(np.diag(G))) + 1e-300
+    try:
+        ev = np.linalg.eigvalsh(G / d / d[:, None])
+    except np.linalg.LinAlgError:
+        return False
+    return bool(ev[0] > 1e-10 * max(ev[-1], 1e-300))
+
+
 def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bool,
-                     max_iter: int) -> tuple[_Inner, float, int]:
+                     max_iter: int, quick: bool = False) -> tuple[_Inner, float, int]:
     s = _safe_scale(s0, prob.resid(theta), prob)
+    if quick and prob.n >= 200:
+        # a warm start for later stages: Newton straight from the robust start values
+        got = _newton_with_mad(prob, theta, s, loss)
+        if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
+            return got
     loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False)
     inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
     total = inner.n_iter
-    if not loss.redescending and prob.n >= 200:
-        # monotone psi: from here Newton on the joint equations settles in a few steps
+    if prob.n >= 200:
+        # from here Newton on the joint equations settles in a few steps; for a
+        # redescending psi its root counts only where the curvature is positive
+        # definite there (a minimum, not a saddle), else the alternation below decides
         got = _newton_with_mad(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss)
-        if got is not None:
+        if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
             return got[0], got[1], total + got[2]
     for _ in range(60):
         g = _safe_scale(mad(inner.r), inner.r, prob)
@@ -945,11 +980,11 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             if n_used > _LARGE:
                 # the whole procedure on a subsample gives a robust start and scale, so
                 # the full data need only a few iterations
-                sizes = _stage_sizes(n_used, 2000 if linear else 1500)
+                sizes = _stage_sizes(n_used, 2000 if linear else 1000)
                 sub = _subproblem(prob, sizes[0])
                 w_inner, w_s, w_it = _m_estimate(sub, start_theta, loss_obj, fixed_scale,
                                                  linear=linear, max_iter=max_iter,
-                                                 l1_start=False)
+                                                 quick=True)
                 start_theta, n_iter, warm_started = w_inner.theta, w_it, True
                 if auto:
                     s_start = w_s
@@ -1083,31 +1118,31 @@ SCALE_METHOD = {
 
 
 def _m_estimate(prob: _Problem, theta, loss: Loss, fixed_scale, *, linear: bool, max_iter: int,
-                l1_start: bool = True):
+                quick: bool = False):
     """M-estimate from a plain start.
 
     Redescending losses start from a Huber fit, itself started (with an automatic
     scale) from the exact L1 fit of a linear model, and use the MAD scale rule: a
     proposal-2 scale has too low a breakdown point to keep a quarter of gross outliers
     from inflating it, after which a redescending loss would accept them.
-    ``l1_start=False`` skips the L1 start (the large-data warm start, whose robust
-    guess is refined by later stages anyway).
+    ``quick=True`` (the large-data warm start, refined by later stages anyway) skips
+    the L1 start and tries Newton's method straight from the robust start values.
     """
     auto = fixed_scale is None
     n_iter = 0
     rule = _scale_rule(loss)
-    if auto and linear and prob.n <= 2000 and l1_start:
+    if auto and linear and prob.n <= 2000 and not quick:
         theta = _l1_linear_start(prob, theta)
     s_start = _start_scale(prob, theta, linear) if auto else fixed_scale
     if loss.redescending:
         pre, s_pre, n_iter = _robust_with_scale(prob, theta, get_loss("huber"), s_start,
                                                 linear=linear, auto=auto, max_iter=max_iter,
-                                                rule=rule)
+                                                rule=rule, quick=quick)
         theta = pre.theta
         if auto:
             s_start = s_pre
     inner, s, it = _robust_with_scale(prob, theta, loss, s_start, linear=linear, auto=auto,
-                                      max_iter=max_iter, rule=rule)
+                                      max_iter=max_iter, rule=rule, quick=quick)
     return inner, s, n_iter + it
 
 
