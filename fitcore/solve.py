@@ -556,7 +556,7 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
 
 
 def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
-                     with_mad: bool = True):
+                     with_mad: bool = True, tol: float = 1e-4):
     """Newton's method on the M-estimating equations with the scale tied to the MAD.
 
     Solves ``F(theta) = sum psi(r_i / s(theta)) J_i = 0`` where ``s(theta)`` is the
@@ -569,7 +569,8 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     One pass over the data per iteration; the pass at the solution also gives psi and
     psi' there, returned in ``stats`` for the covariance. Returns None if the
     iteration does not settle (the caller then falls back to the reweighting loop).
-    ``with_mad=False`` keeps the scale ``s`` fixed.
+    ``with_mad=False`` keeps the scale ``s`` fixed. ``tol``: the last step's size in
+    standard errors at which the iteration counts as converged.
     """
     lower, upper = prob.lower, prob.upper
     theta = np.asarray(theta, dtype=float)
@@ -630,7 +631,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         # converged once a step is below 1e-4 standard errors (or 1e-10 relative): the
         # iteration contracts by 50x or more per step here, so the error left is some
         # 1e-6 standard errors, far below anything a result could show
-        done = bool(np.all(rel | (in_se <= 1e-4)))
+        done = bool(np.all(rel | (in_se <= tol)))
         smooth = smooth and not bool(np.all(rel | (in_se <= 1e-2)))
         theta = new_theta
     return None
@@ -991,8 +992,10 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
                 # larger subsamples in turn: each Newton pass there costs a fraction of
                 # one over all the points, and each stage starts the next one closer
                 for m in sizes[1:]:
+                    # (a stage needs no more than a fraction of its own standard
+                    # errors: the next stage's start error is several of them)
                     staged = _newton_with_mad(_subproblem(prob, m), start_theta, s_start,
-                                              loss_obj, with_mad=auto)
+                                              loss_obj, with_mad=auto, tol=1e-2)
                     if staged is None:
                         break
                     start_theta, n_iter = staged[0].theta, n_iter + staged[2]

@@ -1,0 +1,174 @@
+"""The large-data path and the fast primitives under it.
+
+Above 20 000 used points a robust fit is warm-started from subsamples and finished by
+Newton's method with the scale tied to the MAD (fitcore.solve). These tests check that
+path against the plain one and its building blocks against plain references: numpy's
+median, finite differences, each built-in model's own f and jac, and the single
+(unbatched) start-value routine. The outside checks of the estimates themselves (NIST,
+statsmodels, scipy) live in tests/reference; they run through the same code.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+import fitcore
+import fitcore.models as models
+import fitcore.solve as solve
+from fitcore.losses import LOSS_NAMES, get_loss
+from fitcore.scale import MAD_CONSTANT, mad, median
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.floats(-1e6, 1e6), min_size=1, max_size=60))
+def test_median_equals_numpy(values):
+    v = np.array(values)
+    assert median(v) == np.median(v)
+    w = v.copy()
+    assert median(w, overwrite=True) == np.median(v)
+    assert models._fast_median(v) == np.median(v)
+
+
+def test_row_medians_equal_numpy():
+    rng = np.random.default_rng(3)
+    for n in (1, 2, 3, 10, 11, 300):
+        v = rng.normal(size=(7, n))
+        assert np.array_equal(models._row_medians(v), np.median(v, axis=1))
+
+
+def test_mad_value_and_slopes():
+    rng = np.random.default_rng(4)
+    n = 200_001
+    x = rng.uniform(0, 10, n)
+    J = np.column_stack([np.ones(n), x])
+    theta = np.array([1.0, 2.0])
+    y = J @ theta + rng.standard_t(3, n) * 0.5 + (rng.random(n) < 0.1) * 4.0
+    r = y - J @ theta
+    value, g_exact = solve._mad_and_gradient(r, J, smooth=False)
+    value_s, g_smooth = solve._mad_and_gradient(r, J, smooth=True)
+    assert value == value_s == pytest.approx(MAD_CONSTANT * np.median(np.abs(r)), rel=1e-15)
+    assert value == pytest.approx(mad(r), rel=1e-15)
+    # within one piece the MAD is linear: a tiny step (far below the ~1e-5 gap between
+    # neighbouring order statistics) agrees with the one-point slope
+    h = 1e-9
+    for j in range(2):
+        e = np.zeros(2)
+        e[j] = h
+        fd = (mad(y - J @ (theta + e)) - mad(y - J @ (theta - e))) / (2 * h)
+        assert fd == pytest.approx(g_exact[j], rel=1e-3, abs=1e-3)
+    # over many pieces the smoothed slope is the one that matters (central difference
+    # over a step that crosses some thousands of order statistics)
+    h = 2e-3
+    for j in range(2):
+        e = np.zeros(2)
+        e[j] = h
+        fd = (mad(y - J @ (theta + e)) - mad(y - J @ (theta - e))) / (2 * h)
+        assert fd == pytest.approx(g_smooth[j], abs=0.05 * (1 + abs(fd)))
+
+
+def test_batched_start_fit_equals_the_single_one():
+    rng = np.random.default_rng(5)
+    for trial in range(60):
+        n = int(rng.integers(4, 200))
+        x = np.sort(rng.uniform(0, 10, n))
+        y = rng.uniform(-3, 3) * np.exp(-x / rng.uniform(0.3, 8)) + rng.normal(0, 0.2, n)
+        if trial % 3 == 0:
+            bad = rng.random(n) < 0.2
+            y[bad] += rng.uniform(-5, 5, bad.sum())
+        if trial % 13 == 0:
+            y[:] = 1.0  # zero scale: the iterations stop at once
+        taus = np.geomspace(0.05, 50, 12)
+        As = np.stack([np.column_stack([np.exp(-x / t), np.ones_like(x)]) for t in taus])
+        if trial % 7 == 0:
+            As[2][:, 0] = 0.0  # an all-zero column goes to the single routine
+        coefs, res = models._robust_lstsq_many(As, y, 5, 3)
+        for g in range(taus.size):
+            c1, r1 = models._robust_lstsq(As[g], y, 5, 3)
+            assert np.allclose(coefs[g], c1, rtol=1e-9, atol=1e-12)
+            assert np.allclose(res[g], r1, rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("name", [m for m in fitcore.builtin_models()
+                                  if fitcore.get_model(m).f_jac is not None])
+def test_models_f_jac_agree_with_f_and_jac(name):
+    m = fitcore.get_model(name)
+    rng = np.random.default_rng(6)
+    x = np.linspace(0.01, 12, 501)
+    p = np.asarray(m.guess(x, m.f(x, m.start_values(x, x))), dtype=float)
+    p = p * (1 + 0.1 * rng.standard_normal(p.size))
+    f, J = m.f_jac(x, p)
+    assert np.allclose(f, m.f(x, p), rtol=1e-15, atol=0)
+    assert np.allclose(J, m.jac(x, p), rtol=1e-15, atol=0)
+    # central differences (a relative step on each parameter)
+    for j in range(p.size):
+        h = 1e-6 * max(abs(p[j]), 1e-3)
+        e = np.zeros(p.size)
+        e[j] = h
+        fd = (m.f(x, p + e) - m.f(x, p - e)) / (2 * h)
+        assert np.allclose(J[:, j], fd, rtol=1e-5, atol=1e-7 * np.max(np.abs(fd)) + 1e-12)
+
+
+def test_exp_decay_jacobian_stays_finite_where_exp_underflows():
+    m = fitcore.get_model("exp_decay")
+    J = m.jac(np.array([0.0, 1e300, np.inf]), np.array([1.0, 1e-300, 0.0]))
+    assert np.all(np.isfinite(J))
+
+
+@pytest.mark.parametrize("name", [n for n in LOSS_NAMES if n != "adaptive"])
+def test_loss_functions_leave_their_input_alone(name):
+    loss = get_loss(name, alpha=0.7 if name == "general" else None)
+    u = np.array([-7.3, -1.2, 0.0, 0.3, 2.2, 5.5])
+    keep = u.copy()
+    for fn in (loss.rho, loss.psi, loss.weight, loss.dpsi):
+        out = fn(u)
+        assert np.array_equal(u, keep)
+        assert out is not u
+        # scalars and lists work as well as arrays
+        assert np.allclose(np.asarray(fn(2.2)), out[4])
+        assert np.allclose(fn([2.2, 5.5]), out[4:])
+    assert loss.sum_rho(u, loss.psi(u)) == pytest.approx(float(np.sum(loss.rho(u))), rel=1e-14)
+
+
+def test_stage_sizes():
+    assert solve._stage_sizes(30_000, 2000) == [2000]
+    assert solve._stage_sizes(1_000_000, 2000) == [2000, 24000]
+    assert solve._stage_sizes(100_000, 1000) == [1000, 12000]
+
+
+@pytest.mark.parametrize("loss,model,n", [("huber", "line", 160_000), ("cauchy", "exp_decay", 80_000),
+                                          ("tukey", "exp_decay", 80_000)])
+def test_staged_large_data_path_equals_the_plain_path(monkeypatch, loss, model, n):
+    """With two warm-start stages (n above 72 000 / 144 000) the estimate, scale and
+    standard errors still equal the plain loop's."""
+    rng = np.random.default_rng(11)
+    x = np.linspace(0, 8, n)
+    y = (1.0 + 0.5 * x) if model == "line" else (3.0 * np.exp(-x / 2.0) + 0.5)
+    y = y + rng.normal(0, 0.05, n)
+    out = rng.random(n) < 0.08
+    y[out] += rng.uniform(0.5, 3.0, out.sum())
+    fast = fitcore.fit(model, x, y, loss=loss)
+    monkeypatch.setattr(solve, "_LARGE", 10**9)
+    plain = fitcore.fit(model, x, y, loss=loss)
+    assert fast.converged and plain.converged
+    assert np.allclose(fast.values, plain.values, rtol=1e-8, atol=1e-12)
+    assert fast.scale == pytest.approx(plain.scale, rel=1e-8)
+    assert np.allclose(fast.stderr, plain.stderr, rtol=1e-6)
+    # the MAD scale is exactly the MAD of the final residuals
+    assert fast.scale == pytest.approx(mad(fast.residuals), rel=1e-14)
+
+
+def test_newton_solution_solves_the_estimating_equations():
+    rng = np.random.default_rng(12)
+    n = 50_000
+    x = rng.uniform(0, 5, n)
+    y = 2.0 - 0.7 * x + rng.normal(0, 0.3, n)
+    y[rng.random(n) < 0.1] += 5.0
+    res = fitcore.fit("line", x, y, loss="huber")
+    u = res.residuals / res.scale
+    J = np.column_stack([np.ones(n), x])
+    F = get_loss("huber").psi(u) @ J
+    # the gradient, in units of its own standard deviation, is far below rounding noise
+    # of the statistics involved
+    sd = np.sqrt(np.sum(J ** 2, axis=0))
+    assert np.all(np.abs(F) / sd < 1e-6)
