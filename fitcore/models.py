@@ -256,8 +256,14 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
             c = np.linalg.solve(M, rhs)[:, :, 0]
         except np.linalg.LinAlgError:
             return None
-        d = np.prod(np.diagonal(M, axis1=1, axis2=2), axis=1)
-        ok = np.all(np.isfinite(c), axis=1) & (np.abs(np.linalg.det(M)) > 1e-10 * d)
+        d = M.diagonal(axis1=1, axis2=2).prod(axis=1)
+        if k == 1:
+            det = M[:, 0, 0]
+        elif k == 2:
+            det = M[:, 0, 0] * M[:, 1, 1] - M[:, 0, 1] * M[:, 1, 0]
+        else:
+            det = np.linalg.det(M)
+        ok = np.isfinite(c).all(axis=1) & (np.abs(det) > 1e-10 * d)
         return c if ok.all() else None
 
     with np.errstate(all="ignore"):
@@ -303,7 +309,7 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
                     r[j] = resid[g]
                 continue
             c_old = c[sel]
-            small = np.max(np.abs(c_new - c_old), axis=1) <= 1e-10 * (1.0 + np.max(np.abs(c_old), axis=1))
+            small = np.abs(c_new - c_old).max(axis=1) <= 1e-10 * (1.0 + np.abs(c_old).max(axis=1))
             c[sel] = c_new
             r[sel] = y - np.matmul(Z[sel], c_new[:, :, None])[:, :, 0]
             if it >= n_huber:

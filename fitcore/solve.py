@@ -520,9 +520,10 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     (r = y - f, J = df/dtheta). With many points the pieces are very short (the gap
     between neighbouring order statistics), and that one-point slope says nothing
     about a longer step. ``smooth=True`` averages the slope over the points whose
-    ``|r|`` lies within ``w = ceil(2 sqrt(n))`` ranks of the median: the derivative of
-    the median of the whole residual distribution, which is what a Newton step of
-    more than a few pieces needs. The value is exact either way. ``work`` (a dict)
+    ``|r|`` lies within ``w = ceil(n^(2/3))`` ranks of the median (over every
+    ``n // 50000``-th point when n is larger): the derivative of the median of the
+    whole residual distribution, which is what a Newton step of more than a few pieces
+    needs. The value is exact either way. ``work`` (a dict)
     keeps the two scratch arrays between calls.
     """
     from .scale import MAD_CONSTANT
@@ -540,12 +541,25 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     p.partition(h)
     upper = float(p[h])
     med = upper if n % 2 else 0.5 * (float(p[:h].max()) + upper)
-    w = int(math.ceil(2.0 * math.sqrt(n)))
-    if smooth and n >= 20 and h - w >= 0 and h + w < n:
-        low_half, high_half = p[:h], p[h + 1:]  # views of our own copy: reorder in place
-        low_half.partition(h - w)
+    # the smoothed slope is a kernel estimate: beyond 50 000 points a regular thinning
+    # of the points estimates it as well, at a fraction of the cost
+    step = max(1, n // 50000)
+    m = -(-n // step)
+    w = int(math.ceil(m ** (2.0 / 3.0)))
+    if smooth and m >= 20 and m // 2 - w >= 0 and m // 2 + w < m:
+        if step == 1:
+            hm = h
+            low_half, high_half = p[:h], p[h + 1:]  # views of our own copy: reorder in place
+        else:
+            thin = a[::step].copy()
+            hm = m // 2
+            thin.partition(hm)
+            low_half, high_half = thin[:hm], thin[hm + 1:]
+        low_half.partition(hm - w)
         high_half.partition(w - 1)
-        idx = np.flatnonzero((a >= low_half[h - w]) & (a <= high_half[w - 1]))
+        lo, hi = low_half[hm - w], high_half[w - 1]
+        at = a[::step]
+        idx = np.flatnonzero((at >= lo) & (at <= hi)) * step
     else:
         vals = [upper] if n % 2 else [float(p[:h].max()), upper]
         # the points that attain the middle values (a tie picks the first; the gradient
