@@ -123,6 +123,10 @@ class Loss:
         """``sum rho(u)``; ``psi = psi(u)`` may be passed where a loss can use it."""
         return float(np.sum(self.rho(u)))
 
+    def psi_dpsi(self, u):
+        """``(psi(u), dpsi(u))``, sharing work where a loss can (equal to the two)."""
+        return self.psi(u), self.dpsi(u)
+
     def describe(self) -> str:
         """Loss with its shape and tuning constant, for reports."""
         parts = [self.title]
@@ -189,6 +193,12 @@ class Huber(Loss):
         a = np.abs(u, out=np.empty_like(u))
         return np.less_equal(a, self.tuning, out=a)  # 1.0 inside, 0.0 outside
 
+    def psi_dpsi(self, u):
+        u = _as_array(u)
+        psi = self.psi(u)
+        # psi' = 1 exactly where the clip left u alone (|u| <= k), else 0
+        return psi, np.equal(psi, u, out=np.empty_like(psi))
+
     def sum_rho(self, u, psi=None) -> float:
         # rho = psi (u - psi/2) on both pieces, so the sum is two dot products
         if psi is None:
@@ -244,6 +254,18 @@ class Cauchy(Loss):
         np.multiply(d, d, out=d)
         np.subtract(1.0, t, out=t)
         return np.divide(t, d, out=t)
+
+    def psi_dpsi(self, u):
+        # the same arithmetic as psi (= u * weight) and dpsi, sharing t = (u/k)^2
+        u = _as_array(u)
+        t = np.divide(u, self.tuning, out=np.empty_like(u))
+        np.multiply(t, t, out=t)
+        d = np.add(t, 1.0, out=np.empty_like(t))
+        psi = np.reciprocal(d)
+        np.multiply(u, psi, out=psi)
+        np.multiply(d, d, out=d)
+        np.subtract(1.0, t, out=t)
+        return psi, np.divide(t, d, out=t)
 
 
 @dataclass(frozen=True)

@@ -588,11 +588,14 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     """
     lower, upper = prob.lower, prob.upper
     theta = np.asarray(theta, dtype=float)
+    n, k = prob.n, prob.k
     norm_prev = math.inf
     done = False
     smooth = True
-    work: dict = {}  # scratch arrays reused by every pass (fresh ones cost page faults)
-    jd = None
+    work: dict = {}  # scratch reused by every pass (fresh large arrays cost page faults)
+    iu, ju = np.triu_indices(k)
+    Q = None  # products J_i J_j (i <= j): J^T D J is then one matrix-vector product
+    constant_J = prob.model.is_linear
     for it in range(max_iter + 1):
         r = prob.resid(theta, with_jac=True)
         J = prob.jac(theta)
@@ -605,8 +608,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
                 return None
             s = s_new
         u = r / s
-        psi = loss.psi(u)
-        dpsi = loss.dpsi(u)
+        psi, dpsi = loss.psi_dpsi(u)
         if done:
             stats = {"psi": psi, "dpsi": dpsi}
             with np.errstate(all="ignore"):
@@ -614,12 +616,20 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             obj = obj if math.isfinite(obj) else math.inf
             inner = _Inner(theta, r, obj, it, True, "converged", stats)
             return inner, s, it
-        if jd is None or jd.shape != J.shape:
-            jd = np.empty_like(J)
-        Jd = np.multiply(J, dpsi[:, None], out=jd)
-        G = Jd.T @ J
-        M = G + np.outer(Jd.T @ u, g) if with_mad else G
+        if Q is None or not constant_J:
+            if Q is None:
+                Q = np.empty((n, iu.size), order="F")
+            for col, (i, j) in enumerate(zip(iu, ju)):
+                np.multiply(J[:, i], J[:, j], out=Q[:, col])
+        G = np.empty((k, k))
+        G[iu, ju] = dpsi @ Q
+        G[ju, iu] = G[iu, ju]
         F = psi @ J
+        if with_mad:
+            np.multiply(dpsi, u, out=u)  # u is not needed again in this pass
+            M = G + np.outer(u @ J, g)
+        else:
+            M = G
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
         norm = float(np.linalg.norm(F / d))
         if not math.isfinite(norm) or norm > 4.0 * norm_prev:
