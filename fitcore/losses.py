@@ -184,8 +184,8 @@ class Huber(Loss):
     def weight(self, u):
         u = _as_array(u)
         w = np.abs(u, out=np.empty_like(u))
-        np.maximum(w, 1e-300, out=w)
-        np.divide(self.tuning, w, out=w)
+        with np.errstate(divide="ignore"):
+            np.divide(self.tuning, w, out=w)  # k/0 = inf, then min(1, inf) = 1
         return np.minimum(w, 1.0, out=w)
 
     def dpsi(self, u):

@@ -83,7 +83,8 @@ class _Problem:
         same call where the model can share the work (kept for the next ``jac``)."""
         self.n_eval += 1
         if self.model.is_linear:
-            return self.rhs() - self.jac(theta) @ theta
+            out = self.jac(theta) @ theta
+            return np.subtract(self.rhs(), out, out=out)  # one fresh array, not two
         with np.errstate(all="ignore"):
             if with_jac and self.model.f_jac is not None:
                 f, J = self.model.f_jac(self.x, self.full(theta))
@@ -529,36 +530,46 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     from .scale import MAD_CONSTANT
 
     n = r.size
-    if work is not None and work.get("n") == n:
-        a, p = work["a"], work["p"]
-    else:
-        a, p = np.empty(n), np.empty(n)
-        if work is not None:
-            work.update(n=n, a=a, p=p)
-    np.abs(r, out=a)
-    p[...] = a
     h = n // 2
-    p.partition(h)
-    upper = float(p[h])
-    med = upper if n % 2 else 0.5 * (float(p[:h].max()) + upper)
     # the smoothed slope is a kernel estimate: beyond 50 000 points a regular thinning
     # of the points estimates it as well, at a fraction of the cost
     step = max(1, n // 50000)
     m = -(-n // step)
     w = int(math.ceil(m ** (2.0 / 3.0)))
-    if smooth and m >= 20 and m // 2 - w >= 0 and m // 2 + w < m:
+    smooth = smooth and m >= 20 and m // 2 - w >= 0 and m // 2 + w < m
+    # |r| in point order is needed afterwards only by the one-point slope and by an
+    # unthinned window; otherwise the selection may reorder it in place
+    keep_order = not smooth or step == 1
+    if work is not None and work.get("n") == n:
+        a, p = work["a"], work["p"]
+    else:
+        a, p = np.empty(n), (np.empty(n) if keep_order else None)
+        if work is not None:
+            work.update(n=n, a=a, p=p)
+    np.abs(r, out=a)
+    if keep_order:
+        if p is None:
+            p = work["p"] = np.empty(n)
+        p[...] = a
+    else:
+        p = a
+    p.partition(h)
+    upper = float(p[h])
+    med = upper if n % 2 else 0.5 * (float(p[:h].max()) + upper)
+    if smooth:
         if step == 1:
             hm = h
             low_half, high_half = p[:h], p[h + 1:]  # views of our own copy: reorder in place
+            at = a
         else:
-            thin = a[::step].copy()
+            at = np.abs(r[::step])
+            thin = at.copy()
             hm = m // 2
             thin.partition(hm)
             low_half, high_half = thin[:hm], thin[hm + 1:]
         low_half.partition(hm - w)
         high_half.partition(w - 1)
         lo, hi = low_half[hm - w], high_half[w - 1]
-        at = a[::step]
         idx = np.flatnonzero((at >= lo) & (at <= hi)) * step
     else:
         vals = [upper] if n % 2 else [float(p[:h].max()), upper]
