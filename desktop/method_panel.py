@@ -169,7 +169,11 @@ class MethodPanel(QWidget):
         pl = QVBoxLayout(pbox)
         self.param_table = QTableWidget(0, 3)
         self.param_table.setHorizontalHeaderLabels(["parameter", "start / held value", "hold"])
-        self.param_table.horizontalHeader().setSectionResizeMode(QHeaderView.Stretch)
+        header = self.param_table.horizontalHeader()
+        # the value column takes the spare width, so its header is not cut short
+        header.setSectionResizeMode(0, QHeaderView.ResizeToContents)
+        header.setSectionResizeMode(1, QHeaderView.Stretch)
+        header.setSectionResizeMode(2, QHeaderView.ResizeToContents)
         self.param_table.verticalHeader().setVisible(False)
         self.param_table.setMaximumHeight(150)
         pl.addWidget(self.param_table)

@@ -284,7 +284,7 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
             stop = ~((sc > 0) & np.isfinite(sc))
             u = np.abs(rr) / np.where(stop, 1.0, sc)[:, None]
             if it < n_huber:
-                w = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
+                w = np.minimum(1.345 / u, 1.0)  # (1.345/0 = inf -> 1), as the single version
             else:
                 w = np.where(u < 4.685, (1.0 - (u / 4.685) ** 2) ** 2, 0.0)
             stop |= np.count_nonzero(w, axis=1) <= k
@@ -342,35 +342,39 @@ def _criterion(r, s, cap=3.0):
     return v if np.isfinite(v) else np.inf
 
 
-def _profile(basis_of: Callable[[float], np.ndarray], y, grid, scale, refine=2):
+def _profile(basis_of: Callable[[float], np.ndarray], y, grid, scale, refine=2,
+             bases_of: Callable[[np.ndarray], np.ndarray] | None = None):
     """Scan a nonlinear parameter over ``grid``; linear coefficients by robust fit.
 
-    ``basis_of(theta)`` returns the design matrix for the linear parameters. After the
-    coarse scan the neighbourhood of the best value is scanned again ``refine`` times
-    on a finer grid. Returns ``(theta, coef, criterion)``; ``theta`` is None when no
-    grid value gave a finite criterion.
+    ``basis_of(theta)`` returns the design matrix for the linear parameters;
+    ``bases_of(thetas)``, where given, returns them all at once (G, n, k) and must
+    agree with it. After the coarse scan the neighbourhood of the best value is scanned
+    again ``refine`` times on a finer grid. Returns ``(theta, coef, criterion)``;
+    ``theta`` is None when no grid value gave a finite criterion.
     """
     best = (None, None, np.inf)
 
     def scan(values):
         nonlocal best
-        ts, mats = [], []
-        for t in values:
-            with np.errstate(all="ignore"):
-                A = np.asarray(basis_of(float(t)), dtype=float)
-            if np.all(np.isfinite(A)):
-                ts.append(float(t))
-                mats.append(A)
-        if not ts:
+        values = np.asarray(values, dtype=float)
+        with np.errstate(all="ignore"):
+            if bases_of is not None:
+                stack = np.asarray(bases_of(values), dtype=float)
+            else:
+                stack = np.stack([np.asarray(basis_of(float(t)), dtype=float) for t in values])
+        ok = np.isfinite(stack).all(axis=(1, 2))
+        if not ok.any():
             return
+        ts = values[ok]
         # every grid value at once (the same iterations as one _robust_lstsq each)
-        coefs, res = _robust_lstsq_many(np.stack(mats), y, n_huber=5, n_tukey=3)
+        coefs, res = _robust_lstsq_many(stack[ok] if not ok.all() else stack, y,
+                                        n_huber=5, n_tukey=3)
         with np.errstate(all="ignore"):
             crit = np.sum(np.minimum((res / scale) ** 2, 9.0), axis=1)
         crit[~np.isfinite(crit)] = np.inf
         j = int(np.argmin(crit))  # the first of equal values, as a sequential scan
         if crit[j] < best[2]:
-            best = (ts[j], coefs[j], float(crit[j]))
+            best = (float(ts[j]), coefs[j], float(crit[j]))
 
     grid = np.asarray(grid, dtype=float)
     scan(grid)
@@ -543,7 +547,12 @@ def _exp_grid_fit(x, y):
     def basis(tau):
         return np.column_stack([np.exp(-(x - x_min) / tau), np.ones_like(x)])
 
-    tau, coef, _ = _profile(basis, y, grid, _noise_scale(x, y))
+    def bases(taus):
+        out = np.ones((taus.size, x.size, 2))
+        out[:, :, 0] = np.exp(-(x - x_min)[None, :] / taus[:, None])
+        return out
+
+    tau, coef, _ = _profile(basis, y, grid, _noise_scale(x, y), bases_of=bases)
     if tau is None:
         return _median_or(y) - np.min(y), span / 3.0, float(np.min(y))
     amp_shift, c = coef
