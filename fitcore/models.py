@@ -342,6 +342,31 @@ def _criterion(r, s, cap=3.0):
     return v if np.isfinite(v) else np.inf
 
 
+def _criteria(stack, y, scale, finite_only: bool = False):
+    """:func:`_criterion` of the 5 Huber + 3 Tukey robust fit for every design matrix in
+    ``stack`` (G, n, k) at once. Returns ``(criteria (G,), coefficients (G, k))``;
+    ``finite_only`` gives inf to a matrix with a non-finite entry (without fitting it).
+    """
+    stack = np.asarray(stack, dtype=float)
+    crit = np.full(stack.shape[0], np.inf)
+    coefs = np.zeros((stack.shape[0], stack.shape[2]))
+    ok = np.isfinite(stack).all(axis=(1, 2)) if finite_only else np.ones(stack.shape[0], bool)
+    if ok.any():
+        c, res = _robust_lstsq_many(stack if ok.all() else stack[ok], y, n_huber=5, n_tukey=3)
+        with np.errstate(all="ignore"):
+            v = np.sum(np.minimum((res / scale) ** 2, 9.0), axis=1)
+        v[~np.isfinite(v)] = np.inf
+        crit[ok], coefs[ok] = v, c
+    return crit, coefs
+
+
+def _first_better(crit, best):
+    """Index of the first smallest criterion if it beats ``best`` (as a sequential scan
+    with ``<`` would find it), else None."""
+    j = int(np.argmin(crit))
+    return j if crit[j] < best else None
+
+
 def _profile(basis_of: Callable[[float], np.ndarray], y, grid, scale, refine=2,
              bases_of: Callable[[np.ndarray], np.ndarray] | None = None):
     """Scan a nonlinear parameter over ``grid``; linear coefficients by robust fit.
@@ -397,8 +422,13 @@ def _smoothed(x, y):
     order = np.argsort(x, kind="mergesort")
     xs, ys = x[order], y[order]
     ux, start = np.unique(xs, return_index=True)
-    groups = np.split(ys, start[1:])
-    uy = np.array([np.median(g) for g in groups]) if ux.size else np.array([])
+    if ux.size == xs.size:  # every x once (the usual case): no medians to take
+        uy = ys.astype(float, copy=True)
+    else:
+        counts = np.diff(np.append(start, xs.size))
+        uy = ys[start].astype(float)
+        for i in np.flatnonzero(counts > 1):
+            uy[i] = np.median(ys[start[i]:start[i] + counts[i]])
     m = ux.size
     width = 7 if m >= 25 else 5 if m >= 9 else 3 if m >= 3 else 1
     return ux, _running_median(uy, width)
@@ -839,10 +869,15 @@ def _logistic_start(x, y):
     return bottom, top, hill, ec50
 
 
-def _logistic_crit(x, y, hill, ec50, scale):
+def _logistic_design(x, hill, ec50):
+    """Design matrix [1 - g, g] of the plateaus at (hill, EC50)."""
     z, _ = _logistic_z(x, hill, ec50)
     g = special.expit(-z)
-    A = np.column_stack([1.0 - g, g])
+    return np.column_stack([1.0 - g, g])
+
+
+def _logistic_crit(x, y, hill, ec50, scale):
+    A = _logistic_design(x, hill, ec50)
     if not np.all(np.isfinite(A)):
         return np.inf, (0.0, 0.0)
     coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
@@ -867,18 +902,25 @@ def _logistic_guess(x, y):
         (s * h, e) for s in (1.0, -1.0) for h in (0.5, 1.0, 2.0, 4.0)
         for e in _geomgrid(lo / 2.0, hi * 2.0, 18)
     ]
-    scored = sorted(((_logistic_crit(x, y, h, e, noise)[0], h, e) for h, e in cands),
-                    key=lambda t: t[0])
+    def crits(pairs):
+        # every candidate at once (the same robust fit as _logistic_crit for each)
+        return _criteria(np.stack([_logistic_design(x, h, e) for h, e in pairs]), y, noise,
+                         finite_only=True)[0]
+
+    coarse = crits(cands)
+    order = sorted(range(len(cands)), key=lambda i: coarse[i])  # stable, as before
     best_crit, best = np.inf, (h0, e0)
-    for _, h_start, e_start in scored[:3]:  # refine the three best coarse candidates
-        crit0, h1, e1 = _logistic_crit(x, y, h_start, e_start, noise)[0], h_start, e_start
+    for i in order[:3]:  # refine the three best coarse candidates
+        h1, e1 = cands[i]
+        crit0 = coarse[i]
         for hr, er in ((1.5, 1.6), (1.15, 1.15)):
             hc, ec = h1, e1
-            for h in hc * np.geomspace(1.0 / hr, hr, 5):
-                for e in ec * np.geomspace(1.0 / er, er, 7):
-                    crit = _logistic_crit(x, y, h, e, noise)[0]
-                    if crit < crit0:
-                        crit0, h1, e1 = crit, h, e
+            local = [(h, e) for h in hc * np.geomspace(1.0 / hr, hr, 5)
+                     for e in ec * np.geomspace(1.0 / er, er, 7)]
+            v = crits(local)
+            j = _first_better(v, crit0)
+            if j is not None:
+                crit0, (h1, e1) = v[j], local[j]
         if crit0 < best_crit:
             best_crit, best = crit0, (h1, e1)
     h, e = best
@@ -1085,26 +1127,39 @@ def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
         return np.column_stack([shape(x, xc, w), np.ones_like(x)])
 
     best = (np.inf, None, None, None)
-    for xc in centres:
-        w, coef, crit = _profile(lambda w: basis(xc, w), y, grid, noise, refine=0)
-        if w is not None and crit < best[0]:
-            best = (crit, xc, w, coef)
+    # the width scan of every candidate centre at once (as _profile without refinement,
+    # centre by centre), then each centre's best width fitted with the full iterations
+    with np.errstate(all="ignore"):
+        stack = np.stack([basis(xc, w) for xc in centres for w in grid])
+    scan_crit, _ = _criteria(stack, y, noise, finite_only=True)
+    scan_crit = scan_crit.reshape(len(centres), len(grid))
+    picked = [(xc, float(grid[int(np.argmin(v))])) for xc, v in zip(centres, scan_crit)
+              if np.min(v) < np.inf]
+    if picked:
+        with np.errstate(all="ignore"):
+            finals = np.stack([basis(xc, w) for xc, w in picked])
+        coefs, res = _robust_lstsq_many(finals, y)
+        for (xc, w), coef, r in zip(picked, coefs, res):
+            crit = _criterion(r, noise)
+            if crit < best[0]:
+                best = (crit, xc, w, coef)
     if best[1] is None:
         med = float(np.median(sy))
         return float(np.max(sy) - med), float(ux[int(np.argmax(sy))]), span / 10.0, med
     for _ in range(2):
+        # each local grid at once (the same robust fit per candidate as one by one)
         crit, x0, w, coef = best
-        for xc in x0 + w * np.linspace(-0.5, 0.5, 11):
-            c, r = _robust_lstsq(basis(xc, w), y, n_huber=5, n_tukey=3)
-            cr = _criterion(r, noise)
-            if cr < best[0]:
-                best = (cr, float(xc), w, c)
+        xcs = x0 + w * np.linspace(-0.5, 0.5, 11)
+        v, cs = _criteria(np.stack([basis(xc, w) for xc in xcs]), y, noise)
+        j = _first_better(v, best[0])
+        if j is not None:
+            best = (v[j], float(xcs[j]), w, cs[j])
         crit, x0, w, coef = best
-        for wc in w * np.geomspace(0.6, 1.6, 9):
-            c, r = _robust_lstsq(basis(x0, wc), y, n_huber=5, n_tukey=3)
-            cr = _criterion(r, noise)
-            if cr < best[0]:
-                best = (cr, x0, float(wc), c)
+        wcs = w * np.geomspace(0.6, 1.6, 9)
+        v, cs = _criteria(np.stack([basis(x0, wc) for wc in wcs]), y, noise)
+        j = _first_better(v, best[0])
+        if j is not None:
+            best = (v[j], x0, float(wcs[j]), cs[j])
     _, x0, w, _ = best
     coef, _ = _robust_lstsq(basis(x0, w), y)
     return float(coef[0]), float(x0), float(w), float(coef[1])

@@ -172,3 +172,35 @@ def test_newton_solution_solves_the_estimating_equations():
     # of the statistics involved
     sd = np.sqrt(np.sum(J ** 2, axis=0))
     assert np.all(np.abs(F) / sd < 1e-6)
+
+
+def test_batched_criteria_equal_one_by_one():
+    """The start-value scans (logistic, peaks) score candidates in one batch; each score
+    equals the single robust fit's capped sum of squares."""
+    rng = np.random.default_rng(13)
+    x = np.geomspace(0.01, 100, 80)
+    y = 1 + 3 / (1 + (x / 5.0) ** 1.3) + rng.normal(0, 0.05, x.size)
+    y[::9] += 2.0
+    pairs = [(h, e) for h in (-2.0, 0.7, 1.3, 3.0) for e in (0.1, 5.0, 80.0)]
+    stack = np.stack([models._logistic_design(x, h, e) for h, e in pairs])
+    stack[3, 0, 0] = np.nan  # a candidate that cannot be evaluated scores inf
+    crit, coefs = models._criteria(stack, y, 0.05, finite_only=True)
+    for g, (h, e) in enumerate(pairs):
+        if g == 3:
+            assert crit[g] == np.inf
+            continue
+        c1, r1 = models._robust_lstsq(stack[g], y, n_huber=5, n_tukey=3)
+        assert crit[g] == pytest.approx(models._criterion(r1, 0.05), rel=1e-9)
+        assert np.allclose(coefs[g], c1, rtol=1e-9, atol=1e-12)
+    assert models._first_better(np.array([3.0, 1.0, 1.0]), 2.0) == 1
+    assert models._first_better(np.array([3.0, 2.5]), 2.0) is None
+
+
+def test_smoothed_takes_the_median_of_repeated_x():
+    x = np.array([3.0, 1.0, 1.0, 2.0, 1.0, 3.0])
+    y = np.array([5.0, 1.0, 9.0, 4.0, 2.0, 7.0])
+    ux, _ = models._smoothed(x, y)
+    assert np.array_equal(ux, [1.0, 2.0, 3.0])
+    # group medians 2 (of 1, 9, 2), 4, 6 (of 5, 7); then a running median of width 3
+    # with shrinking ends: median(2, 4) = 3, median(2, 4, 6) = 4, median(4, 6) = 5
+    assert np.array_equal(models._smoothed(x, y)[1], [3.0, 4.0, 5.0])
