@@ -705,11 +705,19 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         got = _newton_with_mad(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss)
         if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
             return got[0], got[1], total + got[2]
+    newton_tries = 3 if prob.n >= 200 else 0
     for _ in range(60):
         g = _safe_scale(mad(inner.r), inner.r, prob)
         if abs(g - s) <= 1e-10 * s:
             s = g
             break
+        if newton_tries and abs(g - s) <= 0.05 * s:
+            # near the fixed point now (Newton failed from further away, e.g. when the
+            # scale still had far to fall): try it again rather than creep there
+            newton_tries -= 1
+            got = _newton_with_mad(prob, inner.theta, g, loss)
+            if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
+                return got[0], got[1], total + got[2]
         s = g
         inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter, **loose)
         total += inner.n_iter
