@@ -524,8 +524,8 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     ``|r|`` lies within ``w = ceil(n^(2/3))`` ranks of the median (over every
     ``n // 50000``-th point when n is larger): the derivative of the median of the
     whole residual distribution, which is what a Newton step of more than a few pieces
-    needs. The value is exact either way. ``work`` (a dict)
-    keeps the two scratch arrays between calls.
+    needs. The value is exact either way. ``work`` (a dict) keeps the scratch arrays
+    between calls.
     """
     from .scale import MAD_CONSTANT
 
@@ -663,9 +663,9 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         with np.errstate(all="ignore"):
             in_se = np.where(se > 0, np.abs(step) / se, np.inf)
         rel = np.abs(step) <= 1e-10 * np.abs(theta)
-        # converged once a step is below 1e-4 standard errors (or 1e-10 relative): the
-        # iteration contracts by 50x or more per step here, so the error left is some
-        # 1e-6 standard errors, far below anything a result could show
+        # converged once a step is below ``tol`` standard errors (1e-4 by default) or
+        # 1e-10 relative: the iteration contracts by 50x or more per step here, so the
+        # error left is some 1e-6 standard errors, far below anything a result shows
         done = bool(np.all(rel | (in_se <= tol)))
         smooth = smooth and not bool(np.all(rel | (in_se <= 1e-2)))
         theta = new_theta
