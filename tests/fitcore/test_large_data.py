@@ -168,10 +168,11 @@ def test_newton_solution_solves_the_estimating_equations():
     u = res.residuals / res.scale
     J = np.column_stack([np.ones(n), x])
     F = get_loss("huber").psi(u) @ J
-    # the gradient, in units of its own standard deviation, is far below rounding noise
-    # of the statistics involved
+    # the gradient in units of its own standard deviation: the iteration stops after a
+    # step below 1e-4 standard errors and contracts some 50-fold per step, so what is
+    # left is of order 1e-6 standard errors
     sd = np.sqrt(np.sum(J ** 2, axis=0))
-    assert np.all(np.abs(F) / sd < 1e-6)
+    assert np.all(np.abs(F) / sd < 1e-5)
 
 
 def test_batched_criteria_equal_one_by_one():
