@@ -580,7 +580,7 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     return MAD_CONSTANT * med, MAD_CONSTANT * grad
 
 
-_HESSIAN_ROWS_FROM = 50000  # from this many points the Newton matrix uses a subset
+_HESSIAN_ROWS_FROM = 200000  # from this many points the Newton matrix uses a subset
 
 
 def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
