@@ -594,9 +594,12 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     see :func:`_mad_and_gradient`). Both equations are piecewise smooth, so from a
     nearby start (a subsample's fit) the iteration settles in a few steps.
 
-    One pass over the data per iteration; the pass at the solution also gives psi and
-    psi' there, returned in ``stats`` for the covariance. Returns None if the
-    iteration does not settle (the caller then falls back to the reweighting loop).
+    One pass over the data per iteration. When the Newton step from an iterate is
+    below ``tol/10`` standard errors that iterate is returned as it is (its scale and
+    psi are exactly its own; the step is the distance to the root); when it is below
+    ``tol`` the step is taken and one more pass gives the scale and psi there. psi and
+    psi' at the solution are returned in ``stats`` for the covariance. Returns None if
+    the iteration does not settle (the caller then falls back to the reweighting loop).
     ``with_mad=False`` keeps the scale ``s`` fixed. ``tol``: the last step's size in
     standard errors at which the iteration counts as converged.
 
@@ -610,6 +613,13 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     lower, upper = prob.lower, prob.upper
     theta = np.asarray(theta, dtype=float)
     n, k = prob.n, prob.k
+
+    def _converged(theta, r, u, psi, dpsi):
+        with np.errstate(all="ignore"):
+            obj = loss.sum_rho(u, psi)
+        obj = obj if math.isfinite(obj) else math.inf
+        return _Inner(theta, r, obj, it, True, "converged", {"psi": psi, "dpsi": dpsi})
+
     norm_prev = math.inf
     done = False
     smooth = True
@@ -636,12 +646,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         u = r / s
         if done:
             psi, dpsi = loss.psi_dpsi(u)
-            stats = {"psi": psi, "dpsi": dpsi}
-            with np.errstate(all="ignore"):
-                obj = loss.sum_rho(u, psi)
-            obj = obj if math.isfinite(obj) else math.inf
-            inner = _Inner(theta, r, obj, it, True, "converged", stats)
-            return inner, s, it
+            return _converged(theta, r, u, psi, dpsi), s, it
         if rows is not None:
             psi = loss.psi(u)
             F = psi @ J
@@ -654,6 +659,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             M = G + np.outer((us @ Jd) * up, g) if with_mad else G
         else:
             psi, dpsi = loss.psi_dpsi(u)
+            dpsi_here = dpsi
             if Q is None or not constant_J:
                 if Q is None:
                     Q = np.empty((n, iu.size), order="F")
@@ -664,8 +670,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             G[ju, iu] = G[iu, ju]
             F = psi @ J
             if with_mad:
-                np.multiply(dpsi, u, out=u)  # u is not needed again in this pass
-                M = G + np.outer(u @ J, g)
+                M = G + np.outer((dpsi * u) @ J, g)
             else:
                 M = G
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
@@ -690,9 +695,16 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         with np.errstate(all="ignore"):
             in_se = np.where(se > 0, np.abs(step) / se, np.inf)
         rel = np.abs(step) <= 1e-10 * np.abs(theta)
+        if bool(np.all(rel | (in_se <= 0.1 * tol))):
+            # the step to the root is negligible (1e-5 standard errors by default): this
+            # iterate is the solution, with its scale and psi exactly its own, and no
+            # further pass is needed
+            dpsi_all = dpsi_here if rows is None else loss.dpsi(u)
+            return _converged(theta, r, u, psi, dpsi_all), s, it
         # converged once a step is below ``tol`` standard errors (1e-4 by default) or
         # 1e-10 relative: the iteration contracts by 50x or more per step here, so the
-        # error left is some 1e-6 standard errors, far below anything a result shows
+        # error left after it is some 1e-6 standard errors, far below anything a result
+        # shows; one more pass gives the scale and psi there
         done = bool(np.all(rel | (in_se <= tol)))
         smooth = smooth and not bool(np.all(rel | (in_se <= 1e-2)))  # (full matrix only)
         theta = new_theta

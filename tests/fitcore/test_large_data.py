@@ -153,9 +153,11 @@ def test_staged_large_data_path_equals_the_plain_path(monkeypatch, loss, model, 
     monkeypatch.setattr(solve, "_LARGE", 10**9)
     plain = fitcore.fit(model, x, y, loss=loss)
     assert fast.converged and plain.converged
-    assert np.allclose(fast.values, plain.values, rtol=1e-8, atol=1e-12)
-    assert fast.scale == pytest.approx(plain.scale, rel=1e-8)
-    assert np.allclose(fast.stderr, plain.stderr, rtol=1e-6)
+    # both stop once Newton's step to the root is below 1e-5 standard errors, so they
+    # agree to that order (the same root; a different one would differ by far more)
+    assert np.all(np.abs(fast.values - plain.values) <= 1e-4 * plain.stderr)
+    assert fast.scale == pytest.approx(plain.scale, rel=1e-6)
+    assert np.allclose(fast.stderr, plain.stderr, rtol=1e-5)
     # the MAD scale is exactly the MAD of the final residuals
     assert fast.scale == pytest.approx(mad(fast.residuals), rel=1e-14)
 
