@@ -387,19 +387,12 @@ def _profile(basis_of: Callable[[float], np.ndarray], y, grid, scale, refine=2,
                 stack = np.asarray(bases_of(values), dtype=float)
             else:
                 stack = np.stack([np.asarray(basis_of(float(t)), dtype=float) for t in values])
-        ok = np.isfinite(stack).all(axis=(1, 2))
-        if not ok.any():
-            return
-        ts = values[ok]
-        # every grid value at once (the same iterations as one _robust_lstsq each)
-        coefs, res = _robust_lstsq_many(stack[ok] if not ok.all() else stack, y,
-                                        n_huber=5, n_tukey=3)
-        with np.errstate(all="ignore"):
-            crit = np.sum(np.minimum((res / scale) ** 2, 9.0), axis=1)
-        crit[~np.isfinite(crit)] = np.inf
-        j = int(np.argmin(crit))  # the first of equal values, as a sequential scan
-        if crit[j] < best[2]:
-            best = (float(ts[j]), coefs[j], float(crit[j]))
+        # every grid value at once (the same iterations as one _robust_lstsq each); a
+        # value whose basis cannot be evaluated scores inf and is never picked
+        crit, coefs = _criteria(stack, y, scale, finite_only=True)
+        j = _first_better(crit, best[2])
+        if j is not None:
+            best = (float(values[j]), coefs[j], float(crit[j]))
 
     grid = np.asarray(grid, dtype=float)
     scan(grid)
@@ -876,14 +869,6 @@ def _logistic_design(x, hill, ec50):
     return np.column_stack([1.0 - g, g])
 
 
-def _logistic_crit(x, y, hill, ec50, scale):
-    A = _logistic_design(x, hill, ec50)
-    if not np.all(np.isfinite(A)):
-        return np.inf, (0.0, 0.0)
-    coef, r = _robust_lstsq(A, y, n_huber=5, n_tukey=3)
-    return _criterion(r, scale), (float(coef[0]), float(coef[1]))
-
-
 def _logistic_guess(x, y):
     """(bottom, top, hill, EC50): robust scan over hill and EC50, plateaus linear.
 
@@ -903,7 +888,7 @@ def _logistic_guess(x, y):
         for e in _geomgrid(lo / 2.0, hi * 2.0, 18)
     ]
     def crits(pairs):
-        # every candidate at once (the same robust fit as _logistic_crit for each)
+        # every candidate at once (one 5 Huber + 3 Tukey robust fit each)
         return _criteria(np.stack([_logistic_design(x, h, e) for h, e in pairs]), y, noise,
                          finite_only=True)[0]
 
