@@ -726,13 +726,22 @@ def _is_minimum(prob: _Problem, inner: _Inner, s: float) -> bool:
     return bool(ev[0] > 1e-10 * max(ev[-1], 1e-300))
 
 
+def _newton_accepted(prob: _Problem, theta, s: float, loss: Loss):
+    """:func:`_newton_with_mad` from (theta, s), kept only if it settles, and for a
+    redescending psi only at a minimum (positive definite curvature), not a saddle."""
+    got = _newton_with_mad(prob, theta, s, loss)
+    if got is None or (loss.redescending and not _is_minimum(prob, got[0], got[1])):
+        return None
+    return got
+
+
 def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bool,
                      max_iter: int, quick: bool = False) -> tuple[_Inner, float, int]:
     s = _safe_scale(s0, prob.resid(theta), prob)
     if quick and prob.n >= 200:
         # a warm start for later stages: Newton straight from the robust start values
-        got = _newton_with_mad(prob, theta, s, loss)
-        if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
+        got = _newton_accepted(prob, theta, s, loss)
+        if got is not None:
             return got
     loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False)
     inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
@@ -741,8 +750,8 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         # from here Newton on the joint equations settles in a few steps; for a
         # redescending psi its root counts only where the curvature is positive
         # definite there (a minimum, not a saddle), else the alternation below decides
-        got = _newton_with_mad(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss)
-        if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
+        got = _newton_accepted(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss)
+        if got is not None:
             return got[0], got[1], total + got[2]
     newton_tries = 3 if prob.n >= 200 else 0
     for _ in range(60):
@@ -754,8 +763,8 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
             # near the fixed point now (Newton failed from further away, e.g. when the
             # scale still had far to fall): try it again rather than creep there
             newton_tries -= 1
-            got = _newton_with_mad(prob, inner.theta, g, loss)
-            if got is not None and (not loss.redescending or _is_minimum(prob, got[0], got[1])):
+            got = _newton_accepted(prob, inner.theta, g, loss)
+            if got is not None:
                 return got[0], got[1], total + got[2]
         s = g
         inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter, **loose)
