@@ -123,8 +123,13 @@ class Loss:
         """``sum rho(u)``; ``psi = psi(u)`` may be passed where a loss can use it."""
         return float(np.sum(self.rho(u)))
 
-    def psi_dpsi(self, u):
-        """``(psi(u), dpsi(u))``, sharing work where a loss can (equal to the two)."""
+    def psi_dpsi(self, u, out=None):
+        """``(psi(u), dpsi(u))``, sharing work where a loss can (equal to the two).
+
+        ``out``: optionally three float arrays shaped like ``u`` (psi, psi', scratch)
+        that a loss may write into instead of allocating; the returned arrays may then
+        be the first two. Losses without an in-place form ignore it.
+        """
         return self.psi(u), self.dpsi(u)
 
     def describe(self) -> str:
@@ -193,11 +198,16 @@ class Huber(Loss):
         a = np.abs(u, out=np.empty_like(u))
         return np.less_equal(a, self.tuning, out=a)  # 1.0 inside, 0.0 outside
 
-    def psi_dpsi(self, u):
+    def psi_dpsi(self, u, out=None):
         u = _as_array(u)
-        psi = self.psi(u)
+        if out is None:
+            psi = self.psi(u)
+            d = np.empty_like(psi)
+        else:
+            psi = np.clip(u, -self.tuning, self.tuning, out=out[0])
+            d = out[1]
         # psi' = 1 exactly where the clip left u alone (|u| <= k), else 0
-        return psi, np.equal(psi, u, out=np.empty_like(psi))
+        return psi, np.equal(psi, u, out=d)
 
     def sum_rho(self, u, psi=None) -> float:
         # rho = psi (u - psi/2) on both pieces, so the sum is two dot products
@@ -255,17 +265,18 @@ class Cauchy(Loss):
         np.subtract(1.0, t, out=t)
         return np.divide(t, d, out=t)
 
-    def psi_dpsi(self, u):
+    def psi_dpsi(self, u, out=None):
         # the same arithmetic as psi (= u * weight) and dpsi, sharing t = (u/k)^2
         u = _as_array(u)
-        t = np.divide(u, self.tuning, out=np.empty_like(u))
+        P, D, T = (None, None, None) if out is None else out
+        t = np.divide(u, self.tuning, out=np.empty_like(u) if T is None else T)
         np.multiply(t, t, out=t)
-        d = np.add(t, 1.0, out=np.empty_like(t))
-        psi = np.reciprocal(d)
+        d = np.add(t, 1.0, out=np.empty_like(t) if D is None else D)
+        psi = np.reciprocal(d, out=P)
         np.multiply(u, psi, out=psi)
         np.multiply(d, d, out=d)
         np.subtract(1.0, t, out=t)
-        return psi, np.divide(t, d, out=t)
+        return psi, np.divide(t, d, out=t if D is None else d)
 
 
 @dataclass(frozen=True)

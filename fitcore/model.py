@@ -67,9 +67,11 @@ class Model:
     derived
         Quantities computed from the parameters, reported with propagated uncertainty.
     f_jac
-        Optional ``f_jac(x, p) -> (f, J)``: both at once, sharing the work (the
-        large-data solver calls it once per pass). It must agree with ``f`` and
-        ``jac``.
+        Optional ``f_jac(x, p, out=None) -> (f, J)``: both at once, sharing the
+        work (the large-data solver calls it once per pass). It must agree with ``f``
+        and ``jac``. ``out``, when given, is ``(f, J)``: a float array of ``x``'s size
+        and a column-major ``(n, n_params)`` one to write the results into (the solver
+        reuses them across passes).
     """
 
     name: str

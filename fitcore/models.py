@@ -631,15 +631,19 @@ def _exp_decay(rate: bool = False):
         with np.errstate(over="ignore", under="ignore", divide="ignore"):
             return A * np.exp(-x / tau) + C
 
-    def f_jac(x, p):
-        # one exponential for both; J column-major (n, 3)
+    def f_jac(x, p, out=None):
+        # one exponential for both; J column-major (n, 3); ``out`` = (f, J) to fill
         A, tau, C = p
         x = np.asarray(x, dtype=float).ravel()
-        J = np.empty((x.size, 3), order="F")
+        if out is None:
+            fx, J = None, np.empty((x.size, 3), order="F")
+        else:
+            fx, J = out
         with np.errstate(all="ignore"):
             z = np.divide(x, tau, out=J[:, 1])
-            e = np.exp(-z, out=J[:, 0])
-            fx = A * e
+            np.negative(z, out=J[:, 0])
+            e = np.exp(J[:, 0], out=J[:, 0])
+            fx = np.multiply(e, A, out=fx)
             fx += C
             dtau = J[:, 1]
             np.multiply(dtau, e, out=dtau)

@@ -32,8 +32,11 @@ Solvers
 from __future__ import annotations
 
 import math
+import threading
 import warnings
+from collections import OrderedDict
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Callable
 
 import numpy as np
@@ -78,21 +81,44 @@ class _Problem:
         p[self.free] = theta
         return p
 
-    def resid(self, theta: np.ndarray, with_jac: bool = False) -> np.ndarray:
+    def resid(self, theta: np.ndarray, with_jac: bool = False,
+              scratch: "_Scratch | None" = None) -> np.ndarray:
         """Whitened residuals at theta. ``with_jac`` also evaluates the Jacobian in the
-        same call where the model can share the work (kept for the next ``jac``)."""
+        same call where the model can share the work (kept for the next ``jac``).
+        ``scratch``: work arrays to write the residuals (and f, J) into; the result is
+        then overwritten by the next call with the same scratch."""
         self.n_eval += 1
         if self.model.is_linear:
-            out = self.jac(theta) @ theta
+            A = self.jac(theta)
+            out = None if scratch is None else scratch.get("r", (self.n,))
+            out = np.matmul(A, theta, out=out)
             return np.subtract(self.rhs(), out, out=out)  # one fresh array, not two
         with np.errstate(all="ignore"):
             if with_jac and self.model.f_jac is not None:
-                f, J = self.model.f_jac(self.x, self.full(theta))
-                self._jac_at = (np.asarray(theta, dtype=float).tobytes(), J)
+                p = self.full(theta)
+                bufs = None if scratch is None else (
+                    scratch.get("f", (self.n,)), scratch.get("J", (self.n, p.size), "F"))
+                f, J = self.model.f_jac(self.x, p, out=bufs)
+                key = np.asarray(theta, dtype=float).tobytes()
+                held = None if scratch is None else (scratch, scratch.stamp("J"))
+                self._jac_at = (key, J, held)
+                if scratch is not None:
+                    self._f_at = (key, f, scratch, scratch.stamp("f"))
             else:
                 f = self.model.f(self.x, self.full(theta))
             f = np.asarray(f, dtype=float)
-            return self.y - f if self.unit else (self.y - f) / self.sig
+            out = None if scratch is None else scratch.get("r", (self.n,))
+            r = np.subtract(self.y, f, out=out)
+            return r if self.unit else np.divide(r, self.sig, out=r)
+
+    def kept_f(self, theta: np.ndarray) -> np.ndarray | None:
+        """The model values at theta from the last pass that wrote them into a
+        scratch array, while it still holds them; else None."""
+        kept = getattr(self, "_f_at", None)
+        if (kept is None or kept[0] != np.asarray(theta, dtype=float).tobytes()
+                or not kept[2].holds("f", kept[3])):
+            return None
+        return kept[1]
 
     def rhs(self) -> np.ndarray:
         """Linear model: the whitened data less the held parameters' part (cached)."""
@@ -121,7 +147,8 @@ class _Problem:
                 cached = self._design
             return cached
         kept = getattr(self, "_jac_at", None)
-        if kept is not None and kept[0] == np.asarray(theta, dtype=float).tobytes():
+        if (kept is not None and kept[0] == np.asarray(theta, dtype=float).tobytes()
+                and (kept[2] is None or kept[2][0].holds("J", kept[2][1]))):
             J = np.asarray(kept[1], dtype=float)
         else:
             with np.errstate(all="ignore"):
@@ -149,6 +176,68 @@ class _Inner:
     converged: bool
     message: str
     stats: dict | None = None  # psi and psi' at the solution, when the solver has them
+
+
+class _Scratch:
+    """Named work arrays reused by the Newton passes, within a solve and across solves.
+
+    A fresh array of the data's size costs a page fault per 4 KiB on first touch
+    (large blocks come straight from the operating system), which on 1e5 points costs
+    as much as the arithmetic on it. The Newton passes write into these arrays
+    instead, so whatever is read from one is overwritten by the next pass or solve on
+    the same thread: a solve's final arrays (residuals, psi, psi') are valid only
+    until the next solve of the same size. ``fit`` uses them before it returns and
+    hands out fresh arrays; a Jacobian kept in a scratch array is checked by its
+    stamp before reuse (:meth:`_Problem.jac`).
+    """
+
+    def __init__(self):
+        self._arrays: dict[str, np.ndarray] = {}
+        self._stamps: dict[str, object] = {}
+
+    def get(self, name: str, shape: tuple, order: str = "C") -> np.ndarray:
+        a = self._arrays.get(name)
+        if a is None or a.shape != shape or (order == "F" and not a.flags.f_contiguous):
+            a = self._arrays[name] = np.empty(shape, order=order)
+        return a
+
+    def stamp(self, name: str) -> object:
+        """A new token for the contents just written to ``name``."""
+        token = self._stamps[name] = object()
+        return token
+
+    def holds(self, name: str, token: object) -> bool:
+        """True while ``name`` still holds what was written when ``token`` was made."""
+        return self._stamps.get(name) is token
+
+
+_POOL = threading.local()
+_POOL_SIZES = 3  # problem sizes whose scratch a thread keeps (most recently used)
+_POOL_MAX_POINTS = 200000  # larger problems get a scratch of their own per solve
+
+
+def _scratch_for(n: int) -> _Scratch:
+    """The calling thread's scratch for problems of ``n`` points.
+
+    At most ``_POOL_SIZES`` sizes up to ``_POOL_MAX_POINTS`` points are kept (some
+    13 MB for a three-parameter model on 1e5 points); :func:`_release_scratch` drops
+    them.
+    """
+    if n > _POOL_MAX_POINTS:
+        return _Scratch()
+    pools = getattr(_POOL, "by_n", None)
+    if pools is None:
+        pools = _POOL.by_n = OrderedDict()
+    sc = pools.pop(n, None) or _Scratch()
+    pools[n] = sc
+    while len(pools) > _POOL_SIZES:
+        pools.popitem(last=False)
+    return sc
+
+
+def _release_scratch() -> None:
+    """Drop the calling thread's kept scratch arrays."""
+    _POOL.by_n = OrderedDict()
 
 
 def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
@@ -513,7 +602,8 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     return inner, s, total
 
 
-def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: dict | None = None):
+def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True,
+                      work: _Scratch | None = None):
     """Normalised MAD about zero, ``1.4826 median|r|``, and its gradient w.r.t. theta.
 
     The median of ``|r|`` is attained at one point (two for even n, averaged), so the
@@ -524,8 +614,7 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     ``|r|`` lies within ``w = ceil(n^(2/3))`` ranks of the median (over every
     ``n // 50000``-th point when n is larger): the derivative of the median of the
     whole residual distribution, which is what a Newton step of more than a few pieces
-    needs. The value is exact either way. ``work`` (a dict) keeps the scratch arrays
-    between calls.
+    needs. The value is exact either way. ``work`` supplies the scratch arrays.
     """
     from .scale import MAD_CONSTANT
 
@@ -540,16 +629,12 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
     # |r| in point order is needed afterwards only by the one-point slope and by an
     # unthinned window; otherwise the selection may reorder it in place
     keep_order = not smooth or step == 1
-    if work is not None and work.get("n") == n:
-        a, p = work["a"], work["p"]
-    else:
-        a, p = np.empty(n), (np.empty(n) if keep_order else None)
-        if work is not None:
-            work.update(n=n, a=a, p=p)
-    np.abs(r, out=a)
+    def buf(name, size):
+        return np.empty(size) if work is None else work.get(name, (size,))
+
+    a = np.abs(r, out=buf("mad_a", n))
     if keep_order:
-        if p is None:
-            p = work["p"] = np.empty(n)
+        p = buf("mad_p", n)
         p[...] = a
     else:
         p = a
@@ -562,8 +647,9 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
             low_half, high_half = p[:h], p[h + 1:]  # views of our own copy: reorder in place
             at = a
         else:
-            at = np.abs(r[::step])
-            thin = at.copy()
+            at = np.abs(r[::step], out=buf("mad_at", m))
+            thin = buf("mad_thin", m)
+            thin[...] = at
             hm = m // 2
             thin.partition(hm)
             low_half, high_half = thin[:hm], thin[hm + 1:]
@@ -578,6 +664,16 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True, work: d
         idx = np.array([int(np.flatnonzero(a == v)[0]) for v in vals])
     grad = -(np.sign(r[idx]) @ J[idx]) / idx.size
     return MAD_CONSTANT * med, MAD_CONSTANT * grad
+
+
+def _mad_into(r: np.ndarray, work: _Scratch) -> float:
+    """``mad(r)`` with the absolute values in a scratch array."""
+    a = np.abs(r, out=work.get("mad_a", (r.size,)))
+    if not np.isfinite(a).all():
+        return mad(r)
+    from .scale import MAD_CONSTANT, median
+
+    return MAD_CONSTANT * median(a, overwrite=True)
 
 
 _HESSIAN_ROWS_FROM = 200000  # from this many points the Newton matrix uses a subset
@@ -614,39 +710,41 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     theta = np.asarray(theta, dtype=float)
     n, k = prob.n, prob.k
 
-    def _converged(theta, r, u, psi, dpsi):
+    def _converged(theta, r, s, u, psi, dpsi):
         with np.errstate(all="ignore"):
             obj = loss.sum_rho(u, psi)
         obj = obj if math.isfinite(obj) else math.inf
-        return _Inner(theta, r, obj, it, True, "converged", {"psi": psi, "dpsi": dpsi})
+        stats = {"psi": psi, "dpsi": dpsi, "u": u, "s": s}  # (u = r / s)
+        return _Inner(theta, r, obj, it, True, "converged", stats)
 
     norm_prev = math.inf
     done = False
     smooth = True
-    work: dict = {}  # scratch reused by every pass (fresh large arrays cost page faults)
+    work = _scratch_for(n)  # reused by every pass (fresh large arrays cost page faults)
     iu, ju = np.triu_indices(k)
     Q = None  # products J_i J_j (i <= j): J^T D J is then one matrix-vector product
     constant_J = prob.model.is_linear
     rows = None
     if n >= _HESSIAN_ROWS_FROM:
         m = max(10000, n // 20)
-        rows = np.sort(np.random.default_rng(20190612).choice(n, size=m, replace=False))
+        rows = _sample_rows(n, m, 20190612)
         up = n / m
     for it in range(max_iter + 1):
-        r = prob.resid(theta, with_jac=True)
+        r = prob.resid(theta, with_jac=True, scratch=work)
         J = prob.jac(theta)
         if with_mad:
             if done or rows is not None:  # the value over all points; slope below
-                s_new, g = mad(r), None
+                s_new, g = _mad_into(r, work), None
             else:
                 s_new, g = _mad_and_gradient(r, J, smooth, work)
             if not (s_new > 0 and math.isfinite(s_new)):
                 return None
             s = s_new
-        u = r / s
+        u = np.divide(r, s, out=work.get("u", (n,)))
+        pd_out = (work.get("psi", (n,)), work.get("dpsi", (n,)), work.get("t", (n,)))
         if done:
-            psi, dpsi = loss.psi_dpsi(u)
-            return _converged(theta, r, u, psi, dpsi), s, it
+            psi, dpsi = loss.psi_dpsi(u, out=pd_out)
+            return _converged(theta, r, s, u, psi, dpsi), s, it
         if rows is not None:
             psi = loss.psi(u)
             F = psi @ J
@@ -658,11 +756,11 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             G = (Jd.T @ Js) * up
             M = G + np.outer((us @ Jd) * up, g) if with_mad else G
         else:
-            psi, dpsi = loss.psi_dpsi(u)
+            psi, dpsi = loss.psi_dpsi(u, out=pd_out)
             dpsi_here = dpsi
             if Q is None or not constant_J:
                 if Q is None:
-                    Q = np.empty((n, iu.size), order="F")
+                    Q = work.get("Q", (n, iu.size), "F")
                 for col, (i, j) in enumerate(zip(iu, ju)):
                     np.multiply(J[:, i], J[:, j], out=Q[:, col])
             G = np.empty((k, k))
@@ -670,7 +768,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             G[ju, iu] = G[iu, ju]
             F = psi @ J
             if with_mad:
-                M = G + np.outer((dpsi * u) @ J, g)
+                M = G + np.outer(np.multiply(dpsi, u, out=pd_out[2]) @ J, g)
             else:
                 M = G
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
@@ -700,7 +798,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             # iterate is the solution, with its scale and psi exactly its own, and no
             # further pass is needed
             dpsi_all = dpsi_here if rows is None else loss.dpsi(u)
-            return _converged(theta, r, u, psi, dpsi_all), s, it
+            return _converged(theta, r, s, u, psi, dpsi_all), s, it
         # converged once a step is below ``tol`` standard errors (1e-4 by default) or
         # 1e-10 relative: the iteration contracts by 50x or more per step here, so the
         # error left after it is some 1e-6 standard errors, far below anything a result
@@ -1142,8 +1240,11 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
 
     # ---------------------------------------------------------------- per point
     with np.errstate(all="ignore"):
+        kept_f = None if linear or not all_used else prob.kept_f(theta)
         if linear and all_used and prob.unit and free.all():
             fitted = prob.jac(theta) @ theta  # the design the fit used: no rebuild
+        elif kept_f is not None:
+            fitted = kept_f.copy()  # the solver's last pass computed exactly these
         else:
             fitted = np.asarray(mdl.f(x, p_full), dtype=float)
     residuals = y - fitted
@@ -1157,7 +1258,9 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     if loss == "l2":
         w_used = np.ones(n_used)
     else:
-        w_used = np.asarray(loss_obj.weight(r / s), dtype=float)
+        st = inner.stats or {}
+        u_kept = st.get("u") if st.get("s") == s else None  # r / s, when the solver kept it
+        w_used = np.asarray(loss_obj.weight(r / s if u_kept is None else u_kept), dtype=float)
         np.clip(w_used, 0.0, 1.0, out=w_used)
     if all_used:
         weights = w_used
@@ -1194,9 +1297,22 @@ def _stage_sizes(n: int, first: int, factor: int = 12, margin: int = 6) -> list[
     return sizes
 
 
+@lru_cache(maxsize=16)
+def _sampled_rows(n: int, m: int, seed: int) -> np.ndarray:
+    idx = np.sort(np.random.default_rng(seed).choice(n, size=m, replace=False))
+    idx.flags.writeable = False  # shared by every caller
+    return idx
+
+
+def _sample_rows(n: int, m: int, seed: int) -> np.ndarray:
+    """``m`` of ``range(n)`` drawn without replacement by a seeded generator, sorted
+    (the same draw for the same arguments; cached, as drawing costs a permutation)."""
+    return _sampled_rows(int(n), int(m), int(seed))
+
+
 def _subproblem(prob: _Problem, m: int = _SUBSAMPLE) -> _Problem:
     """A deterministic random subsample of the used points (seeded, reproducible)."""
-    idx = np.sort(np.random.default_rng(20190611).choice(prob.n, size=min(m, prob.n), replace=False))
+    idx = _sample_rows(prob.n, min(m, prob.n), 20190611)
     return _Problem(prob.model, prob.x[idx], prob.y[idx], prob.sig[idx], prob.free, prob.p_fixed,
                     unit=prob.unit)
 

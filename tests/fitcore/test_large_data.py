@@ -109,6 +109,102 @@ def test_models_f_jac_agree_with_f_and_jac(name):
         assert np.allclose(J[:, j], fd, rtol=1e-5, atol=1e-7 * np.max(np.abs(fd)) + 1e-12)
 
 
+@pytest.mark.parametrize("name", [m for m in fitcore.builtin_models()
+                                  if fitcore.get_model(m).f_jac is not None])
+def test_models_f_jac_into_given_arrays_equals_fresh(name):
+    m = fitcore.get_model(name)
+    x = np.linspace(0.01, 12, 301)
+    p = np.asarray(m.guess(x, m.f(x, m.start_values(x, x))), dtype=float)
+    f0, J0 = m.f_jac(x, p)
+    fb, Jb = np.full(x.size, np.nan), np.full((x.size, p.size), np.nan, order="F")
+    f1, J1 = m.f_jac(x, p, out=(fb, Jb))
+    assert f1 is fb and J1 is Jb
+    assert np.array_equal(f1, f0) and np.array_equal(J1, J0)
+
+
+@pytest.mark.parametrize("name", [n for n in LOSS_NAMES if n != "adaptive"])
+def test_psi_dpsi_into_given_arrays_equals_fresh(name):
+    loss = get_loss(name, alpha=0.7 if name == "general" else None)
+    u = np.random.default_rng(5).standard_cauchy(1001)
+    psi, dpsi = loss.psi(u), loss.dpsi(u)
+    p0, d0 = loss.psi_dpsi(u)
+    out = tuple(np.full(u.size, np.nan) for _ in range(3))
+    p1, d1 = loss.psi_dpsi(u, out=out)
+    for a, b in ((p0, psi), (d0, dpsi), (p1, psi), (d1, dpsi)):
+        assert np.array_equal(a, b)
+
+
+def _decay_data(n, seed):
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0, 8, n)
+    y = 3.0 * np.exp(-x / 2.0) + 0.5 + rng.normal(0, 0.05, n)
+    y[rng.random(n) < 0.08] += 2.0
+    return x, y
+
+
+def test_kept_scratch_arrays_never_leak_into_results():
+    """The Newton passes write into per-thread scratch arrays kept between fits: a
+    later fit of the same size must not change an earlier result, and a fit with the
+    scratch kept must equal one with a fresh scratch exactly."""
+    x, y1 = _decay_data(60_000, 21)
+    _, y2 = _decay_data(60_000, 22)
+    solve._release_scratch()
+    first = fitcore.fit("exp_decay", x, y1, loss="cauchy")
+    snapshot = {k: np.copy(getattr(first, k)) for k in
+                ("values", "stderr", "covariance", "weights", "residuals", "std_residuals", "fitted")}
+    second = fitcore.fit("exp_decay", x, y2, loss="cauchy")
+    for k, v in snapshot.items():
+        assert np.array_equal(getattr(first, k), v), k
+    again = fitcore.fit("exp_decay", x, y1, loss="cauchy")  # scratch now holds y2's passes
+    solve._release_scratch()
+    fresh = fitcore.fit("exp_decay", x, y1, loss="cauchy")
+    for k in snapshot:
+        assert np.array_equal(getattr(again, k), getattr(fresh, k)), k
+    assert not np.allclose(second.values, first.values, rtol=1e-9)
+    # the fitted values handed on from the last pass are the model's own
+    assert np.array_equal(first.fitted, first.model.f(x, first.values))
+
+
+def test_a_kept_jacobian_is_not_reused_once_its_scratch_is_overwritten():
+    x, y1 = _decay_data(5000, 23)
+    _, y2 = _decay_data(5000, 24)
+    m = fitcore.get_model("exp_decay")
+    free, fixed = np.ones(3, bool), np.zeros(3)
+    a = solve._Problem(m, x, y1, np.ones_like(x), free, fixed, unit=True)
+    b = solve._Problem(m, x, y2, np.ones_like(x), free, fixed, unit=True)
+    work = solve._scratch_for(x.size)
+    ta, tb = np.array([3.0, 2.0, 0.5]), np.array([2.0, 1.0, 0.1])
+    a.resid(ta, with_jac=True, scratch=work)
+    assert np.array_equal(a.jac(ta), m.jac(x, ta))
+    assert a.kept_f(ta) is not None
+    b.resid(tb, with_jac=True, scratch=work)  # the same arrays, now b's
+    assert np.array_equal(a.jac(ta), m.jac(x, ta))  # evaluated afresh, not b's
+    assert a.kept_f(ta) is None
+    assert np.array_equal(b.jac(tb), m.jac(x, tb))
+
+
+def test_fits_in_parallel_threads_equal_sequential_ones():
+    from concurrent.futures import ThreadPoolExecutor
+
+    data = [_decay_data(40_000, 30 + i) for i in range(4)]
+    seq = [fitcore.fit("exp_decay", x, y, loss="cauchy").values for x, y in data]
+    with ThreadPoolExecutor(max_workers=4) as ex:
+        par = list(ex.map(lambda d: fitcore.fit("exp_decay", d[0], d[1], loss="cauchy").values,
+                          data))
+    for a, b in zip(seq, par):
+        assert np.array_equal(a, b)
+
+
+def test_scratch_pool_is_bounded():
+    solve._release_scratch()
+    for n in (100, 200, 300, 400, 500):
+        solve._scratch_for(n)
+    assert list(solve._POOL.by_n) == [300, 400, 500]
+    big = solve._POOL_MAX_POINTS + 1
+    solve._scratch_for(big)
+    assert big not in solve._POOL.by_n
+
+
 def test_exp_decay_jacobian_stays_finite_where_exp_underflows():
     m = fitcore.get_model("exp_decay")
     J = m.jac(np.array([0.0, 1e300, np.inf]), np.array([1.0, 1e-300, 0.0]))
