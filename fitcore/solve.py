@@ -21,10 +21,11 @@ Solvers
 * L1 (least absolute deviations) is solved exactly as a linear programme (HiGHS) for
   linear models, and by sequential linear programming with a trust region for
   nonlinear ones.
-* Scale "auto": the normalised MAD of the residuals of a convex start, refined by
-  Huber's proposal 2 (``sum psi(r_i/s)^2 = (n - p) E[psi(Z)^2]``) jointly with the
-  parameters. Redescending losses start from a converged Huber fit, never from raw
-  least squares.
+* Scale "auto": the normalised MAD of the residuals, re-estimated jointly with the
+  parameters until it is a fixed point. Redescending losses start from an L1 fit
+  (exact for linear models, near-L1 for nonlinear ones) and the MAD of its residuals,
+  never from raw least squares, nor from a Huber fit whose scale has grown with
+  one-sided outliers.
 * The adaptive loss alternates the parameter step with a maximum-likelihood step for
   Barron's shape ``alpha`` in [0, 2] and scale ``c`` (negative log-likelihood
   ``sum rho_B(r_i/c, alpha) + n log c + n log Z(alpha)``); each block step lowers it.
@@ -824,11 +825,24 @@ def _is_minimum(prob: _Problem, inner: _Inner, s: float) -> bool:
     return bool(ev[0] > 1e-10 * max(ev[-1], 1e-300))
 
 
+_SCALE_JUMP = 1.5
+
+
 def _newton_accepted(prob: _Problem, theta, s: float, loss: Loss):
     """:func:`_newton_with_mad` from (theta, s), kept only if it settles, and for a
-    redescending psi only at a minimum (positive definite curvature), not a saddle."""
+    redescending psi only at a minimum (positive definite curvature), not a saddle,
+    whose scale is at most ``_SCALE_JUMP`` times the start's.
+
+    With many one-sided outliers the MAD equations have a second root inside the
+    outliers, with a scale several times larger; from a robust start a Newton step
+    can jump there, while the reweighting loop stays with the majority. Starts come
+    from L1-type fits, whose scale is if anything too large, so a root with a much
+    larger scale is the other one and the loop decides instead.
+    """
     got = _newton_with_mad(prob, theta, s, loss)
-    if got is None or (loss.redescending and not _is_minimum(prob, got[0], got[1])):
+    if got is None:
+        return None
+    if loss.redescending and (got[1] > _SCALE_JUMP * s or not _is_minimum(prob, got[0], got[1])):
         return None
     return got
 
@@ -1331,38 +1345,66 @@ def _m_estimate(prob: _Problem, theta, loss: Loss, fixed_scale, *, linear: bool,
                 quick: bool = False):
     """M-estimate from a plain start.
 
-    Redescending losses start from a Huber fit, itself started (with an automatic
-    scale) from the exact L1 fit of a linear model, and use the MAD scale rule: a
-    proposal-2 scale has too low a breakdown point to keep a quarter of gross outliers
-    from inflating it, after which a redescending loss would accept them.
+    With an automatic scale, redescending losses start from the exact L1 fit of a
+    linear model (up to 2000 points) or else from a near-L1 fit (:func:`_near_l1`), and
+    from the MAD of its residuals; a Huber start with the MAD re-estimated follows
+    one-sided outliers, and from about 30 % of them its grown scale lets a
+    redescending loss accept them (tests/fitcore/test_breakdown.py). With a fixed
+    scale they start from a Huber fit at that scale. The MAD scale rule is used
+    throughout: a proposal-2 scale has too low a breakdown point to keep a quarter of
+    gross outliers from inflating it.
     ``quick=True`` (the large-data warm start, refined by later stages anyway) skips
     the L1 start and tries Newton's method straight from the robust start values.
     """
     auto = fixed_scale is None
     n_iter = 0
     rule = _scale_rule(loss)
+    exact_l1 = False
     if auto and linear and prob.n <= 2000 and not quick:
-        theta = _l1_linear_start(prob, theta)
+        theta, exact_l1 = _l1_linear_start(prob, theta)
     s_start = _start_scale(prob, theta, linear) if auto else fixed_scale
-    if loss.redescending:
+    if loss.redescending and auto:
+        # the start must not follow the outliers, nor its scale: an L1 fit (exact, or
+        # near-L1 below) and the MAD of its residuals
+        if not exact_l1:
+            pre = _near_l1(prob, theta, s_start, linear=linear, max_iter=max_iter)
+            theta, n_iter = pre.theta, pre.n_iter
+            s_start = _safe_scale(mad(pre.r), pre.r, prob)
+    elif loss.redescending:
         pre, s_pre, n_iter = _robust_with_scale(prob, theta, get_loss("huber"), s_start,
-                                                linear=linear, auto=auto, max_iter=max_iter,
+                                                linear=linear, auto=False, max_iter=max_iter,
                                                 rule=rule, quick=quick)
         theta = pre.theta
-        if auto:
-            s_start = s_pre
     inner, s, it = _robust_with_scale(prob, theta, loss, s_start, linear=linear, auto=auto,
                                       max_iter=max_iter, rule=rule, quick=quick)
     return inner, s, n_iter + it
 
 
-def _l1_linear_start(prob: _Problem, theta0) -> np.ndarray:
+def _l1_linear_start(prob: _Problem, theta0) -> tuple[np.ndarray, bool]:
+    """The exact L1 fit of a linear model, and whether it was found."""
     A = prob.jac(theta0)
     b = prob.rhs()
     try:
-        return _l1_linear(A, b, prob.lower, prob.upper)
+        return _l1_linear(A, b, prob.lower, prob.upper), True
     except FitError:
-        return theta0
+        return theta0, False
+
+
+_NEAR_L1_TUNING = 0.05
+
+
+def _near_l1(prob: _Problem, theta, s: float, *, linear: bool, max_iter: int) -> _Inner:
+    """A near-L1 start for a redescending loss: Huber with ``k = 0.05`` at the scale
+    ``s`` held fixed, to loose tolerances (1e-4 relative step, 1e-7 relative gain).
+
+    Its psi is bounded and almost the sign of the residual, so like L1 it is pulled
+    by how many points lie on each side, not by how far; the scale is held, so it
+    cannot grow with the outliers and let them back in (a Huber start with the MAD
+    re-estimated does that from about 30 % of one-sided gross outliers; see
+    tests/fitcore/test_breakdown.py). Cheaper than an exact nonlinear L1 fit.
+    """
+    return _irls_lm(prob, theta, get_loss("huber", tuning=_NEAR_L1_TUNING), s, linear=linear,
+                    max_iter=max_iter, xtol=1e-4, ftol=1e-7, polish_steps=False)
 
 
 def _start_scale(prob: _Problem, theta, linear: bool) -> float:
