@@ -34,10 +34,12 @@ def _one_sided(model, n, frac, seed):
     return x, y, y0
 
 
-@pytest.mark.parametrize("loss", ["tukey", "welsch"])
+@pytest.mark.parametrize("loss,frac", [("tukey", 0.3), ("tukey", 0.4), ("welsch", 0.3),
+                                       ("welsch", 0.4), ("cauchy", 0.3), ("geman_mcclure", 0.3)])
 @pytest.mark.parametrize("model", ["line", "exp_decay"])
-@pytest.mark.parametrize("frac", [0.3, 0.4])
 def test_redescending_fit_stays_with_the_majority(model, loss, frac):
+    # (Cauchy and Geman-McClure, whose psi falls off slowly, still pull towards 40 %
+    # of one-sided outliers enough to grow the MAD: they break in 1-6 of 10 sets there)
     # before the L1 start, a Huber start with the MAD re-estimated broke in 1 of 10 of
     # these data sets at 30 % and in 6-7 of 10 at 40 %
     broken = []
