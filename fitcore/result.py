@@ -97,6 +97,60 @@ class FitResult:
             r = self.covariance / np.outer(se, se)
         return r
 
+    @property
+    def warnings(self) -> tuple[str, ...]:
+        """Plain sentences on signs that this fit should not be trusted as it stands.
+
+        A converged fit can still be a poor one. Checked here (common practice; the
+        thresholds are ours):
+
+        * a robust loss counted more than a quarter of the used points less than half
+          (more than half of them for the adaptive loss, whose weights run lower): a
+          robust fit assumes most points follow the model;
+        * two fitted parameters of a nonlinear model correlate beyond 0.999: the data
+          do not tell them apart (the model may have more freedom than the data
+          support, or may not suit them);
+        * a fitted parameter ended on a bound of the model (e.g. a time constant at 0).
+        """
+        out: list[str] = []
+        robust = self.loss not in ("l2",)
+        if robust and self.n_used > 0:
+            share = self.n_downweighted / self.n_used
+            limit = 0.5 if self.loss == "adaptive" else 0.25
+            if share > limit:
+                out.append(
+                    f"{self.n_downweighted} of {self.n_used} used points ({100 * share:.0f} %) "
+                    f"count less than half: a robust fit assumes that most points follow "
+                    f"the model; check the model and the data before relying on it"
+                )
+        free = np.flatnonzero(self.free)
+        if not self.model.is_linear and free.size >= 2:
+            rho = self.correlation
+            worst, pair = 0.0, None
+            for a in range(free.size):
+                for b in range(a + 1, free.size):
+                    v = rho[free[a], free[b]]
+                    if np.isfinite(v) and abs(v) > max(worst, 0.999):
+                        worst, pair = abs(v), (free[a], free[b], v)
+            if pair is not None:
+                i, j, v = pair
+                out.append(
+                    f"{self.param_names[i]} and {self.param_names[j]} are almost "
+                    f"interchangeable (correlation {v:+.4f}): the data do not determine "
+                    f"them separately; a simpler model may suit these data better"
+                )
+        lo, hi = np.asarray(self.model.lower, float), np.asarray(self.model.upper, float)
+        for i in free:
+            v = float(self.values[i])
+            for b, side in ((lo[i], "lower"), (hi[i], "upper")):
+                if np.isfinite(b) and abs(v - b) <= 1e-11 * abs(b) + 1e-290:
+                    out.append(
+                        f"{self.param_names[i]} ended on its {side} bound ({b:g}): the best "
+                        f"fit wants a value the model does not allow, so the model may not "
+                        f"suit these data, or the start values were far off"
+                    )
+        return tuple(out)
+
     def t_quantile(self, level: float = 0.95) -> float:
         """Two-sided Student t quantile with ``dof`` degrees of freedom."""
         if self.dof <= 0:
