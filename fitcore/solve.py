@@ -331,6 +331,18 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             f"log-logistic curve) or give other start values"
         )
     phi = _objective(loss, r, s)
+    if not math.isfinite(phi):
+        with np.errstate(all="ignore"):
+            umax = float(np.max(np.abs(r / s)))
+        raise FitError(
+            f"the loss ({loss.describe()}) is not finite at the start values: it overflows for "
+            f"residuals of {umax:.3g} scale units; give a larger fixed scale, or choose a "
+            f"loss that grows more slowly (alpha <= 2)"
+        )
+    # reweighted steps of a linear model go undamped while they descend (they do for
+    # every loss whose weight psi(u)/u does not grow with |u|); after an uphill one the
+    # damped rule takes over, as for a nonlinear model
+    undamped = linear
     lam = 0.0 if linear else None
     nu = 2.0
     dmax = np.zeros(theta.size)
@@ -356,7 +368,7 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             lam = 1e-3  # relative to diag(J^T W J) through D
         accepted = False
         for _ in range(80):
-            use_lam = 0.0 if polish else lam
+            use_lam = 0.0 if (polish or undamped) else lam
             step = step_solver.solve(use_lam)
             cand = _project(theta + step, lower, upper)
             step = cand - theta
@@ -368,23 +380,28 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             # directions: accept a Gauss-Newton step that does not raise it beyond that
             # (and a reweighted step of a linear model descends in exact arithmetic: near
             # the minimum its objective change drowns in rounding, so the same applies)
-            tol_phi = 1e-12 * phi if (polish or linear) else 0.0
-            if phi_new <= phi + tol_phi and (gain > 0 or phi_new < phi or polish or linear):
+            tol_phi = 1e-12 * phi if (polish or undamped) else 0.0
+            if phi_new <= phi + tol_phi and (gain > 0 or phi_new < phi or polish or undamped):
                 accepted = True
-                if not linear and not polish:
+                if not undamped and not polish:
                     lam *= max(1.0 / 3.0, 1.0 - (2.0 * gain - 1.0) ** 3) if gain > 0 else 1.0
                     nu = 2.0
                 break
-            if linear or polish:
+            if polish:
                 break
+            if undamped:
+                # uphill: the reweighted quadratic does not bound this loss from above
+                # (weights growing with |u|, as the general loss has beyond alpha = 2)
+                undamped, lam, nu = False, 1e-3, 2.0
+                continue
             lam *= nu
             nu *= 2.0
             if lam > 1e30:
                 break
         if not accepted:
-            if polish or linear or lam > 1e30:
+            if polish or undamped or lam > 1e30:
                 converged = True
-                if not polish and not linear:
+                if not polish and not undamped:
                     message = "converged (no further decrease possible in double precision)"
                 break
             continue

@@ -234,3 +234,33 @@ def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model, scale):
     assert np.all(np.abs(fast.values - plain.values) <= 1e-4 * plain.stderr)
     assert fast.scale == pytest.approx(plain.scale, rel=1e-6)
     assert np.allclose(fast.stderr, plain.stderr, rtol=1e-5)
+
+
+@pytest.mark.parametrize("alpha", [2.5, 3.0, 4.0, 10.0])
+def test_general_loss_beyond_alpha_2_reaches_the_minimum(alpha):
+    """Beyond alpha = 2 the weight psi(u)/u grows with |u|, so an undamped reweighted
+    step of a linear model can go uphill; the fit must still reach the minimum.
+    Reference: scipy.optimize.minimize (Nelder-Mead) on the same objective."""
+    from scipy.optimize import minimize
+
+    x = np.arange(10.0)
+    y = np.array([1.1, 2.9, 25.6, 7.1, 8.5, 11.4, 14.3, 15.9, 1.3, 17.7])
+    res = fitcore.fit("line", x, y, "general", alpha=alpha, scale=1.0)
+    loss = fitcore.get_loss("general", alpha=alpha, tuning=res.tuning)
+    obj = lambda p: float(np.sum(loss.rho(y - p[0] - p[1] * x)))  # noqa: E731
+    ref = minimize(obj, [1.0, 1.0], method="Nelder-Mead",
+                   options=dict(xatol=1e-12, fatol=1e-14, maxiter=20000))
+    assert res.converged
+    assert res.objective <= ref.fun * (1 + 1e-12)
+    assert np.allclose(res.values, ref.x, rtol=1e-6, atol=1e-7)
+
+
+@pytest.mark.parametrize("model", ["line", "exp_decay"])
+def test_an_overflowing_loss_is_explained(model):
+    # alpha = inf grows like exp(u^2 / 2): beyond some 38 scale units it overflows
+    x = np.arange(10.0)
+    y = np.array([1.1, 2.9, 25.6, 7.1, 8.5, 11.4, 14.3, 15.9, 1.3, 17.7])
+    with pytest.raises(FitError, match="not finite at the start values"):
+        fitcore.fit(model, x, y, "general", alpha=np.inf, scale=0.1)
+    res = fitcore.fit("line", x, y, "general", alpha=np.inf, scale=100.0)
+    assert res.converged and np.all(np.isfinite(res.values))
