@@ -499,34 +499,158 @@ def _refine_linear_ls(prob: _Problem, theta: np.ndarray, steps: int = 8):
 
 
 # --------------------------------------------------------------------------- L1
+_L1_DIRECT_MAX = 6000  # up to this many points one LP over all of them
+
+
+def _pow2(v: float) -> float:
+    """The power of two nearest below ``v`` (1 when v is 0 or not finite): scaling by
+    it is exact in floating point."""
+    if not (v > 0 and math.isfinite(v)):
+        return 1.0
+    return math.ldexp(1.0, math.frexp(v)[1] - 1)
+
+
+def _lad_dual(A, b, lo, hi, g=None):
+    """Solve ``min sum |b - A t| (+ g^T t)`` over ``lo <= t <= hi`` through its dual.
+
+    The dual, ``max b^T d + lo^T mu - hi^T nu`` subject to ``A^T d + mu - nu = g``,
+    ``-1 <= d <= 1``, ``mu, nu >= 0`` (one mu per finite lower bound, one nu per finite
+    upper bound), has k equality constraints instead of n and is solved much faster
+    than the primal with its 2n slack columns; t is the (negated) multiplier vector of
+    its equality constraints. Returns t, or None when HiGHS gives no usable answer.
+    """
+    n, k = A.shape
+    fl, fh = np.flatnonzero(np.isfinite(lo)), np.flatnonzero(np.isfinite(hi))
+    c = np.concatenate([-b, -lo[fl], hi[fh]])
+    if fl.size or fh.size:
+        E = np.zeros((k, fl.size + fh.size))
+        E[fl, np.arange(fl.size)] = 1.0
+        E[fh, fl.size + np.arange(fh.size)] = -1.0
+        Aeq = np.hstack([A.T, E])
+    else:
+        Aeq = A.T
+    bounds = np.empty((n + fl.size + fh.size, 2))
+    bounds[:n] = (-1.0, 1.0)
+    bounds[n:] = (0.0, np.inf)
+    beq = np.zeros(k) if g is None else g
+    res = optimize.linprog(c, A_eq=Aeq, b_eq=beq, bounds=bounds, method="highs")
+    if res.status != 0 or res.eqlin is None:
+        return None
+    t = -np.asarray(res.eqlin.marginals, dtype=float)
+    return t if np.all(np.isfinite(t)) else None
+
+
+def _lad_primal(A, b, lo, hi):
+    """The primal LP ``min 1^T (e+ + e-)``, ``A t + e+ - e- = b`` (the fallback)."""
+    n, k = A.shape
+    c = np.concatenate([np.zeros(k), np.ones(2 * n)])
+    eye = sparse.identity(n, format="csr")
+    Aeq = sparse.hstack([sparse.csr_matrix(A), eye, -eye], format="csr")
+    bounds = [(a if np.isfinite(a) else None, z if np.isfinite(z) else None)
+              for a, z in zip(lo, hi)] + [(0, None)] * (2 * n)
+    res = optimize.linprog(c, A_eq=Aeq, b_eq=b, bounds=bounds, method="highs")
+    if res.status != 0:
+        raise FitError(f"the L1 linear programme failed: {res.message}")
+    return res.x[:k]
+
+
+def _lad_globbed(A, b, lo, hi):
+    """Exact L1 fit of many points by Portnoy and Koenker's preprocessing (*Statistical
+    Science* 12, 1997, section 4): an L1 fit of a seeded subsample of about
+    ``(k n)^(2/3)`` points predicts the sign of most residuals; the points confidently
+    above (below) the fit are merged into one linear term ``g^T t`` of the objective
+    (their residuals' sum, whose sign is then fixed), and only the band of uncertain
+    points goes into the LP. The answer is checked on every point: where a merged
+    point's residual has the wrong sign it goes back into the band and the LP is
+    solved again, so the result is the exact L1 solution of all the points."""
+    n, k = A.shape
+    m = min(n, max(2000, int(2.0 * (k * n) ** (2.0 / 3.0))))
+    pick = np.sort(np.random.default_rng(20240611).choice(n, m, replace=False))
+    t = _lad_dual(A[pick], b[pick], lo, hi)
+    if t is None:
+        return None
+    band = min(n, 2 * m)
+    for _ in range(8):
+        r = b - A @ t
+        order = np.argsort(r, kind="stable")
+        mid = n // 2
+        # the points nearest the median of the residuals go into the LP (the L1 fit has
+        # about as many residuals above as below it)
+        a = max(0, mid - band // 2)
+        z = min(n, a + band)
+        a = max(0, z - band)
+        keep = np.zeros(n, bool)
+        keep[order[a:z]] = True
+        hi_set = np.zeros(n, bool)
+        hi_set[order[z:]] = True
+        low_set = ~(keep | hi_set)
+        for _ in range(8):
+            g = -(A[hi_set].sum(axis=0) - A[low_set].sum(axis=0))
+            t_new = _lad_dual(A[keep], b[keep], lo, hi, g=g)
+            if t_new is None:
+                return None
+            r = b - A @ t_new
+            tol = 1e-10 * (1.0 + np.abs(b))
+            wrong = (hi_set & (r < -tol)) | (low_set & (r > tol))
+            n_wrong = int(wrong.sum())
+            t = t_new
+            if n_wrong == 0:
+                return t
+            if n_wrong > 0.1 * band:
+                break  # the band was too narrow: widen it and start again
+            keep |= wrong
+            hi_set &= ~wrong
+            low_set &= ~wrong
+        band = min(n, 2 * band)
+        if band >= n:
+            return _lad_dual(A, b, lo, hi)
+    return None
+
+
 def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
     """Exact least-absolute-deviations fit ``min sum |b - A theta|`` by linear programming.
 
     An L1 minimiser need not be unique (a whole edge of the LP can be optimal); the rows
     are put in a canonical order first so that the vertex returned does not depend on
     the order of the points in the file.
+
+    HiGHS's feasibility and optimality tolerances are absolute (about 1e-7), so the LP
+    is posed in normalised units: b less a least-squares fit, divided by the median of
+    those residuals, and each column of A divided by its root mean square (powers of
+    two, so the scaling itself is exact); the bounds follow. The answer is then
+    equivariant under rescaling y or x (y of 1e-12 and of 1e12 give the same fit).
     """
+    A = np.asarray(A, dtype=float)
+    b = np.asarray(b, dtype=float)
+    lower = np.asarray(lower, dtype=float)
+    upper = np.asarray(upper, dtype=float)
+    if not (np.all(np.isfinite(A)) and np.all(np.isfinite(b))):
+        raise FitError("the L1 linear programme got non-finite model values or "
+                       "derivatives; check that x lies where the model is defined")
     order = np.lexsort(np.vstack([b[None, :], A.T[::-1]]))
     A, b = A[order], b[order]
     n, k = A.shape
-    if not (np.any(np.isfinite(lower)) or np.any(np.isfinite(upper))):
-        # the dual, max b^T d subject to A^T d = 0 and -1 <= d <= 1, has k equality
-        # constraints instead of n, and is solved about 15x faster; the parameters are
-        # the (negated) multipliers of its equality constraints
-        res = optimize.linprog(-b, A_eq=A.T, b_eq=np.zeros(k), bounds=(-1, 1), method="highs")
-        if res.status == 0 and res.eqlin is not None:
-            theta = -np.asarray(res.eqlin.marginals, dtype=float)
-            if np.all(np.isfinite(theta)):
-                return theta
-    c = np.concatenate([np.zeros(k), np.ones(2 * n)])
-    eye = sparse.identity(n, format="csr")
-    Aeq = sparse.hstack([sparse.csr_matrix(A), eye, -eye], format="csr")
-    bounds = [(lo if np.isfinite(lo) else None, hi if np.isfinite(hi) else None)
-              for lo, hi in zip(lower, upper)] + [(0, None)] * (2 * n)
-    res = optimize.linprog(c, A_eq=Aeq, b_eq=b, bounds=bounds, method="highs")
-    if res.status != 0:
-        raise FitError(f"the L1 linear programme failed: {res.message}")
-    return res.x[:k]
+    dA = np.array([_pow2(v) for v in np.sqrt(np.einsum("ij,ij->j", A, A) / max(n, 1))])
+    As = A / dA
+    with np.errstate(all="ignore"):
+        t0 = np.linalg.lstsq(As, b, rcond=None)[0]
+    t0 = np.where(np.isfinite(t0), t0, 0.0)
+    theta0 = np.clip(t0 / dA, lower, upper)
+    theta0 = np.where(np.isfinite(theta0), theta0, 0.0)
+    bc = b - A @ theta0
+    ab = np.abs(bc)
+    med = float(np.median(ab)) if n else 0.0
+    sb = _pow2(med if med > 0 else (float(np.max(ab)) if n else 0.0))
+    bs = bc / sb
+    with np.errstate(all="ignore"):
+        lo = (lower - theta0) * dA / sb
+        hi = (upper - theta0) * dA / sb
+    t = _lad_globbed(As, bs, lo, hi) if n > _L1_DIRECT_MAX else None
+    if t is None:
+        t = _lad_dual(As, bs, lo, hi)
+    if t is None:
+        t = _lad_primal(As, bs, lo, hi)
+    return theta0 + t * sb / dA
 
 
 def _l1_nonlinear(prob: _Problem, theta: np.ndarray, max_iter: int = 200) -> _Inner:
@@ -864,9 +988,42 @@ def _newton_accepted(prob: _Problem, theta, s: float, loss: Loss):
     return got
 
 
+_EXACT = 1e-13  # a MAD below this fraction of max |y| (whitened) counts as zero
+
+
+def _exact_floor(prob: _Problem) -> float:
+    ref = float(np.max(np.abs(prob.y / prob.sig))) if prob.n else 0.0
+    return _EXACT * ref if ref > 0 and math.isfinite(ref) else 1e-300
+
+
+def _exact_fit(prob: _Problem, theta, loss: Loss, floor: float, *, linear: bool,
+               max_iter: int, total: int) -> tuple[_Inner, float, int] | None:
+    """More than half of the residuals are zero (to rounding): the MAD scale is 0.
+
+    Exact or synthetic data, or very few points (an L1 start interpolates p of them).
+    The M-estimate then tends to the fit through that exact majority, and points off
+    it get weight 0; the scale carries no information about scatter, so the caller
+    reports no uncertainties. The fit is solved at the floor scale; None if its
+    residuals are then not mostly zero after all.
+    """
+    inner = _irls_lm(prob, theta, loss, floor, linear=linear, max_iter=max_iter)
+    if not mad(inner.r) <= floor:
+        return None
+    stats = dict(inner.stats or {}, exact=True)
+    msg = "converged (more than half of the points lie exactly on the curve)"
+    return (_Inner(inner.theta, inner.r, inner.objective, inner.n_iter, inner.converged, msg,
+                   stats), floor, total + inner.n_iter)
+
+
 def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bool,
                      max_iter: int, quick: bool = False) -> tuple[_Inner, float, int]:
-    s = _safe_scale(s0, prob.resid(theta), prob)
+    floor = _exact_floor(prob)
+    r0 = prob.resid(theta)
+    if mad(r0) <= floor:
+        got = _exact_fit(prob, theta, loss, floor, linear=linear, max_iter=max_iter, total=0)
+        if got is not None:
+            return got
+    s = _safe_scale(s0, r0, prob)
     if quick and prob.n >= 200:
         # a warm start for later stages: Newton straight from the robust start values
         got = _newton_accepted(prob, theta, s, loss)
@@ -884,7 +1041,13 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
             return got[0], got[1], total + got[2]
     newton_tries = 3 if prob.n >= 200 else 0
     for _ in range(60):
-        g = _safe_scale(mad(inner.r), inner.r, prob)
+        g = mad(inner.r)
+        if g <= floor:
+            got = _exact_fit(prob, inner.theta, loss, floor, linear=linear,
+                             max_iter=max_iter, total=total)
+            if got is not None:
+                return got
+        g = _safe_scale(g, inner.r, prob)
         if abs(g - s) <= 1e-10 * s:
             s = g
             break
@@ -903,8 +1066,22 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
     for _ in range(10):
         inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
         total += inner.n_iter
-        g = _safe_scale(mad(inner.r), inner.r, prob)
+        g = mad(inner.r)
+        if g <= floor:
+            got = _exact_fit(prob, inner.theta, loss, floor, linear=linear,
+                             max_iter=max_iter, total=total)
+            if got is not None:
+                return got
+        g = _safe_scale(g, inner.r, prob)
         if abs(g - s) <= 1e-14 * s:
+            break
+        if abs(g - s) > 1e-6 * s and _ == 9:
+            # no fixed point reached: return the fit with the scale it was solved at
+            # (a pair that belongs together), marked as not converged
+            msg = (f"the MAD scale did not settle (it moved from {s:.6g} to {g:.6g} in the "
+                   f"last round); give a fixed scale or check the data")
+            inner = _Inner(inner.theta, inner.r, inner.objective, inner.n_iter, False, msg,
+                           inner.stats)
             break
         s = g
     return inner, s, total
@@ -1254,12 +1431,17 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             cov_free, recipe = unc.cov_l1(Jf, r)
         else:
             st = inner.stats or {}
-            cov_free, recipe = unc.cov_m_estimate(Jf, None if st else r / s, s, loss_obj, dof,
+            cov_free, recipe = unc.cov_m_estimate(Jf, None if "psi" in st else r / s, s, loss_obj, dof,
                                                   psi=st.get("psi"), dpsi=st.get("dpsi"))
     except unc.RankDeficient as e:
         converged = False
         message = f"{e}; the estimates are not unique (hold a parameter or add points)"
         recipe = recipe or "not available"
+    if (inner.stats or {}).get("exact"):
+        cov_free = np.full((k, k), np.nan)
+        message += ("; the robust scale is zero, so the uncertainties cannot be estimated "
+                    "from the scatter (give sigma or a fixed scale); points off the curve "
+                    "get weight 0")
     if dof <= 0:
         message += "; no degrees of freedom left, so uncertainties cannot be estimated"
         cov_free = np.full((k, k), np.nan)

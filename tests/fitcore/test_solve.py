@@ -264,3 +264,27 @@ def test_an_overflowing_loss_is_explained(model):
         fitcore.fit(model, x, y, "general", alpha=np.inf, scale=0.1)
     res = fitcore.fit("line", x, y, "general", alpha=np.inf, scale=100.0)
     assert res.converged and np.all(np.isfinite(res.values))
+
+
+@pytest.mark.parametrize("loss", ["huber", "tukey", "cauchy"])
+def test_exact_majority_gives_the_exact_fit_without_uncertainties(loss):
+    """More than half of the points exactly on a line (synthetic or exact data): the
+    MAD scale is 0 and the M-estimate is the line through them (common practice: the
+    limit of the estimator; the earlier code cycled between scales and returned a fit
+    that solved neither). The points off the line get weight 0, and no uncertainty is
+    claimed from a scatter of zero."""
+    x = np.arange(12.0)
+    y = 1 + 2 * x
+    y[[3, 6, 9]] += [12.0, 0.1, -0.1]
+    res = fitcore.fit("line", x, y, loss)
+    assert res.converged
+    assert np.allclose(res.values, [1.0, 2.0], rtol=0, atol=1e-10)
+    assert np.array_equal(res.weights < 1e-6, np.isin(np.arange(12), [3, 6, 9]))
+    assert np.all(np.isnan(res.stderr))
+    assert "exactly on the curve" in res.message and "cannot be estimated" in res.message
+    # one point fewer on the line than off it is no longer a majority: ordinary fit
+    y2 = y.copy()
+    y2[[0, 1, 2]] += [0.05, -0.04, 0.03]
+    y2 += np.random.default_rng(0).normal(0, 0.01, 12)
+    res2 = fitcore.fit("line", x, y2, loss)
+    assert res2.converged and np.all(np.isfinite(res2.stderr))
