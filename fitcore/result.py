@@ -167,13 +167,16 @@ class FitResult:
         """Model values at ``x`` with the fitted parameters."""
         return self.model.f(np.asarray(x, dtype=float), self.values)
 
-    def band(self, x, level: float = 0.95, kind: str = "confidence"):
+    def band(self, x, level: float = 0.95, kind: str = "confidence", sigma_new=None):
         """Pointwise confidence band of the fitted curve (delta method).
 
         Returns ``(lower, upper)``: ``f(x) -/+ t * sqrt(g^T C g)`` with ``g`` the model
         gradient at x and t the Student quantile with ``dof`` degrees of freedom.
-        ``kind="prediction"`` adds the residual variance (scale^2, times sigma^2 is not
-        known at new x, so it uses the scale alone) for a prediction band.
+        ``kind="prediction"`` adds the variance of one new measurement at x, in y
+        units: ``scale^2`` without sigma; with sigma, ``sigma_new^2`` when the sigma
+        were absolute and ``(scale * sigma_new)^2`` when relative. ``sigma_new`` (a
+        number or one per x) is the new measurement's sigma; by default the median
+        sigma of the used points.
         """
         x = np.asarray(x, dtype=float)
         yhat = self.predict(x)
@@ -181,7 +184,17 @@ class FitResult:
         var = np.einsum("ij,jk,ik->i", J, self.covariance, J)
         var = np.maximum(var, 0.0)
         if kind == "prediction":
-            var = var + self.scale**2
+            if self.sigma is None:
+                var = var + self.scale**2
+            else:
+                if sigma_new is None:
+                    used = ~np.asarray(self.excluded, dtype=bool)
+                    sig_used = np.asarray(self.sigma, dtype=float)[used]
+                    sig_used = sig_used[np.isfinite(sig_used)]
+                    sigma_new = float(np.median(sig_used)) if sig_used.size else float("nan")
+                sn = np.broadcast_to(np.asarray(sigma_new, dtype=float), x.shape)
+                factor = 1.0 if self.sigma_mode == "absolute" else self.scale**2
+                var = var + factor * sn**2
         elif kind != "confidence":
             raise ValueError("kind must be 'confidence' or 'prediction'")
         half = self.t_quantile(level) * np.sqrt(var)
