@@ -420,11 +420,23 @@ def _make(name: str, tuning: float | None, alpha: float | None) -> Loss:
     raise ValueError(f"unknown loss {name!r}; choose one of {', '.join(LOSS_NAMES)}")
 
 
+_GENERAL_ALWAYS_EFFICIENT = 1.0  # width where every width is 95 % efficient
+
+
 def default_general_tuning(alpha: float) -> float:
-    """95 %-efficiency width of the general loss at shape ``alpha`` (1 for alpha = 2)."""
+    """95 %-efficiency width of the general loss at shape ``alpha``.
+
+    From about alpha = 1.55 up to 2 the loss is more than 95 % efficient at every
+    width (its tails grow like ``|u|^alpha``, nearly quadratic), so the convention
+    has no solution; the width is then 1 scale unit, as for alpha >= 2 (Barron's
+    ``c`` equal to the scale).
+    """
     if alpha >= 2.0:
         return 1.0
-    return tuning_for_efficiency("general", 0.95, float(alpha))
+    alpha = float(alpha)
+    if efficiency(_make("general", 0.05, alpha)) >= 0.95:
+        return _GENERAL_ALWAYS_EFFICIENT
+    return tuning_for_efficiency("general", 0.95, alpha)
 
 
 def get_loss(name: str, tuning: float | None = None, alpha: float | None = None) -> Loss:

@@ -12,6 +12,8 @@ import numpy as np
 import pytest
 from scipy.special import k1
 
+import fitcore
+
 from fitcore.losses import (LOSS_NAMES, barron_rho, barron_weight, efficiency, get_loss,
                             tuning_for_efficiency)
 from fitcore.partition import log_partition, log_partition_quad
@@ -179,3 +181,25 @@ def test_bad_loss_arguments():
         get_loss("general")
     with pytest.raises(ValueError, match="positive"):
         get_loss("huber", tuning=-1)
+
+
+@pytest.mark.parametrize("alpha", [1.6, 1.8, 1.99])
+def test_general_loss_near_alpha_2_has_a_default_width(alpha):
+    # every width is more than 95 % efficient here (so no width gives exactly 95 %);
+    # the default is then 1, as at alpha = 2, and the fit runs (it raised scipy's
+    # "f(a) and f(b) must have different signs" before)
+    from fitcore.losses import _make, default_general_tuning, efficiency
+
+    assert efficiency(_make("general", 0.05, alpha)) > 0.95
+    assert default_general_tuning(alpha) == 1.0
+    x = np.arange(10.0)
+    res = fitcore.fit("line", x, 1 + 2 * x + np.sin(x), "general", alpha=alpha)
+    assert res.converged and res.tuning == 1.0
+
+
+def test_general_loss_width_solves_the_efficiency_below_the_threshold():
+    from fitcore.losses import _make, default_general_tuning, efficiency
+
+    for alpha in (0.0, 1.0, 1.5):
+        k = default_general_tuning(alpha)
+        assert efficiency(_make("general", k, alpha)) == pytest.approx(0.95, abs=1e-9)
