@@ -36,10 +36,17 @@ __all__ = [
     "CAUTION",
     "FORMATS",
     "format_value",
+    "format_uncertainty",
+    "interval_limits",
+    "format_interval",
     "format_correlation",
     "estimates_text",
     "correlation_text",
     "method_lines",
+    "loss_label",
+    "convergence_text",
+    "excluded_points_text",
+    "resolve_unit",
     "point_status",
     "points_csv",
     "curve_csv",
@@ -158,6 +165,33 @@ def _exact_text(value: float, exponent, kind: str, group: bool) -> str:
     return _fixed(d.scaleb(-n, _CTX), group) + _times_ten(n, kind)
 
 
+def _plan(value: float, u: float, digits: int, rounding: str, exponent):
+    """How ``value(u)`` is quoted: ``(rounded value, rounded u, exponent of the last
+    quoted digit, power of ten written)``. The one place the GUM 7.2.6 rounding and the
+    exponent rule are decided; ``u`` must be finite and positive."""
+    with localcontext(_CTX):
+        ur, qexp = _round_uncertainty(_decimal(u), int(digits), rounding)
+        vr = _decimal(value).quantize(_quantum(qexp), rounding=ROUND_HALF_UP)
+        if vr == 0:
+            vr = abs(vr)  # never print "-0.00"
+        n_value = vr.adjusted() if vr != 0 else ur.adjusted()
+        return vr, ur, qexp, _choose_exponent(n_value, exponent)
+
+
+def _check_common(rich, rounding, digits) -> str:
+    try:
+        kind = _RICH_KINDS[rich]
+    except (KeyError, TypeError):
+        raise ValueError(
+            f"rich must be False, True, 'unicode', 'html' or 'latex', not {rich!r}"
+        ) from None
+    if rounding not in _ROUNDINGS:
+        raise ValueError(f"rounding must be one of {', '.join(_ROUNDINGS)}, not {rounding!r}")
+    if isinstance(digits, bool) or not isinstance(digits, (int, np.integer)) or digits < 1:
+        raise ValueError(f"digits must be a whole number of at least 1, not {digits!r}")
+    return kind
+
+
 def format_value(
     value,
     u,
@@ -240,16 +274,7 @@ def format_value(
     """
     if style not in ("paren", "pm"):
         raise ValueError(f"style must be 'paren' or 'pm', not {style!r}")
-    try:
-        kind = _RICH_KINDS[rich]
-    except (KeyError, TypeError):
-        raise ValueError(
-            f"rich must be False, True, 'unicode', 'html' or 'latex', not {rich!r}"
-        ) from None
-    if rounding not in _ROUNDINGS:
-        raise ValueError(f"rounding must be one of {', '.join(_ROUNDINGS)}, not {rounding!r}")
-    if isinstance(digits, bool) or not isinstance(digits, (int, np.integer)) or digits < 1:
-        raise ValueError(f"digits must be a whole number of at least 1, not {digits!r}")
+    kind = _check_common(rich, rounding, digits)
     try:
         value = float(value)
         u = float(u)
@@ -272,12 +297,7 @@ def format_value(
         return _exact_text(value, exponent, kind, group_digits) + " " + marker
 
     with localcontext(_CTX):
-        ur, qexp = _round_uncertainty(_decimal(u), int(digits), rounding)
-        vr = _decimal(value).quantize(_quantum(qexp), rounding=ROUND_HALF_UP)
-        if vr == 0:
-            vr = abs(vr)  # never print "-0.00"
-        n_value = vr.adjusted() if vr != 0 else ur.adjusted()
-        n = _choose_exponent(n_value, exponent)
+        vr, ur, qexp, n = _plan(value, u, int(digits), rounding, exponent)
         mant = vr.scaleb(-n)
         um = ur.scaleb(-n)
         vtext = _fixed(mant, group_digits)
@@ -289,6 +309,124 @@ def format_value(
         pm = r" \pm " if kind == "latex" else " ± "
         body = f"{vtext}{pm}{_fixed(um, group_digits)}"
         return f"({body}){suffix}" if suffix else body
+
+
+def _number(x) -> float:
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        raise TypeError(f"expected a number, got {x!r}") from None
+
+
+def format_uncertainty(
+    value,
+    u,
+    *,
+    digits: int = 2,
+    exponent=None,
+    rich=False,
+    rounding: str = "nearest",
+    group_digits: bool = False,
+) -> str:
+    """The standard uncertainty alone, as it stands beside ``format_value(value, u)``.
+
+    ``u`` is rounded to ``digits`` significant digits (GUM 7.2.6), written to the same
+    last decimal as the rounded value and with the same power of ten, so that a table
+    column of uncertainties reads like the ``"pm"`` form: ``0.00538(90)`` gives
+    ``0.00090``, ``6.0(20)`` gives ``2.0``, ``12480(160)`` gives ``160`` and
+    ``1.2(26)e5`` gives ``2.6e5``. Trailing zeros are kept; no exponent is used where
+    the value has none.
+
+    ``u == 0`` gives ``"0"``; a NaN or infinite ``u`` gives ``"unknown"``; a NaN or
+    infinite value gives ``u`` to ``digits`` significant digits on its own.
+
+    Examples
+    --------
+    >>> format_uncertainty(0.00538, 0.0009)
+    '0.00090'
+    >>> format_uncertainty(6.674301e-11, 1.5e-15)
+    '0.00015e-11'
+    """
+    kind = _check_common(rich, rounding, digits)
+    value, u = _number(value), _number(u)
+    if u < 0:
+        raise ValueError(f"a standard uncertainty cannot be negative (got u = {u!r})")
+    if not math.isfinite(u):
+        return "unknown"
+    if u == 0:
+        return "0"
+    if not math.isfinite(value):
+        value = 0.0  # only the uncertainty's own digits are meaningful then
+    with localcontext(_CTX):
+        _vr, ur, _qexp, n = _plan(value, u, int(digits), rounding, exponent)
+        text = _fixed(ur.scaleb(-n), group_digits)
+    return text + (_times_ten(n, kind) if n != 0 else "")
+
+
+def interval_limits(
+    low,
+    high,
+    value,
+    u,
+    *,
+    digits: int = 2,
+    exponent=None,
+    rich=False,
+    rounding: str = "nearest",
+    group_digits: bool = False,
+) -> tuple[str, str]:
+    """The two limits of an interval about ``value``, quoted like ``value(u)`` itself.
+
+    The rule, used for every interval Ballast prints (analytic, derived, bootstrap):
+    each limit is rounded (to nearest, halves away from zero) to the same last decimal
+    as the estimate rounded by :func:`format_value` with the same ``u``, ``digits`` and
+    ``rounding`` (GUM 7.2.6: the value is given to the decimal of the last digit of its
+    two-digit uncertainty), and written in the same notation: positional where the
+    estimate is, with the estimate's power of ten where it has one. Trailing zeros are
+    kept (``1001.537(32)`` has limits ``1001.474`` and ``1001.600``).
+
+    With ``rich="latex"`` the limits are math-mode text (minus ``-`` and
+    ``\\times 10^{n}``): the caller puts them between ``$``. Without a usable ``u``
+    (zero, NaN or infinite) the limits are given at full round-trip precision; a NaN
+    or infinite limit gives ``"nan"``/``"inf"``/``"-inf"``.
+
+    Examples
+    --------
+    >>> interval_limits(1001.4738, 1001.60021, 1001.537, 0.032)
+    ('1001.474', '1001.600')
+    >>> interval_limits(-393581.0, 640125.0, 123272.0, 260000.0)
+    ('-3.9e5', '6.4e5')
+    """
+    kind = _check_common(rich, rounding, digits)
+    low, high, value, u = _number(low), _number(high), _number(value), _number(u)
+    if u < 0:
+        raise ValueError(f"a standard uncertainty cannot be negative (got u = {u!r})")
+
+    if not (math.isfinite(u) and u > 0 and math.isfinite(value)):
+        return tuple(_full(x) if not math.isfinite(x)
+                     else _exact_text(x, exponent, kind, group_digits) for x in (low, high))
+    with localcontext(_CTX):
+        _vr, _ur, qexp, n = _plan(value, u, int(digits), rounding, exponent)
+        out = []
+        for x in (low, high):
+            if not math.isfinite(x):
+                out.append(_full(x))
+                continue
+            d = _decimal(x).quantize(_quantum(qexp), rounding=ROUND_HALF_UP)
+            if d == 0:
+                d = abs(d)  # "0.000", never "-0.000" (as format_value)
+            out.append(_fixed(d.scaleb(-n), group_digits) + (_times_ten(n, kind) if n else ""))
+    return out[0], out[1]
+
+
+def format_interval(low, high, value, u, **kw) -> str:
+    """``"[low, high]"`` with the limits of :func:`interval_limits` (same keywords).
+
+    >>> format_interval(1001.4738, 1001.60021, 1001.537, 0.032)
+    '[1001.474, 1001.600]'
+    """
+    lo, hi = interval_limits(low, high, value, u, **kw)
+    return f"[{lo}, {hi}]"
 
 
 def format_correlation(r) -> str:
@@ -315,25 +453,11 @@ def _full(x) -> str:
     return repr(x)
 
 
-def _round_like(x: float, u: float, digits: int = 2) -> str:
-    """``x`` rounded to the decimal place ``u`` would be quoted to (for CI bounds)."""
-    if not (math.isfinite(x) and math.isfinite(u) and u > 0):
-        return _full(x)
-    with localcontext(_CTX):
-        _, qexp = _round_uncertainty(_decimal(u), digits, "nearest")
-        d = _decimal(x).quantize(_quantum(qexp), rounding=ROUND_HALF_UP)
-        if d == 0:
-            d = abs(d)
-        n = _choose_exponent(d.adjusted() if d != 0 else qexp, None)
-        if n == 0:
-            return format(d, "f")
-        return format(d.scaleb(-n), "f") + f"e{n}"
-
-
-def _resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
+def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
     """Turn a unit written in data units (``"y/x"``, ``"1/x"``) into real unit text.
 
-    Returns ``""`` when a needed data unit is unknown (blank), so that no half-made
+    A bare ``"x"`` or ``"y"`` is the data unit as it is (``"mg/L"``, no parentheses);
+    a compound unit brackets a data unit only where it must (``"(mg/L)/s"``). Returns ``""`` when a needed data unit is unknown (blank), so that no half-made
     unit is printed. A unit that is neither ``x`` nor ``y`` based is kept as given.
     """
     expr = (expr or "").strip()
@@ -355,8 +479,9 @@ def _resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
     return re.sub(r"\b[xy]\b", rep, expr)
 
 
-def _loss_label(res) -> str:
-    """Loss name, title, tuning constant and shape, in words."""
+def loss_label(res) -> str:
+    """The loss in words: its title, tuning constant and shape (``"Huber; tuning
+    constant 1.345 × scale"``), never its internal name."""
     name = str(res.loss)
     title = name
     try:  # the loss catalogue gives the human title; the name alone also reads well
@@ -365,7 +490,7 @@ def _loss_label(res) -> str:
         title = get_loss(name).title or name
     except Exception:  # noqa: BLE001 - an unknown/absent loss must not stop a report
         pass
-    parts = [title if title == name else f"{title} ({name})"]
+    parts = [title]  # the title only: the internal name adds nothing for a reader
     if res.tuning is not None and math.isfinite(float(res.tuning)):
         parts.append(f"tuning constant {float(res.tuning):.6g} × scale")
     if res.alpha is not None:
@@ -392,18 +517,85 @@ def _needs_caution(res) -> bool:
     return _is_robust(res) or res.n_excluded > 0 or res.n_downweighted > 0
 
 
-def method_lines(res, level: float = 0.95, *, y_unit: str = "") -> list[tuple[str, str]]:
+class _Items(str):
+    """Text joined from ``items`` with ``"; "``, keeping the items (for layouts that
+    put one item a line)."""
+
+    items: tuple[str, ...]
+
+    def __new__(cls, items):
+        obj = super().__new__(cls, "; ".join(items))
+        obj.items = tuple(items)
+        return obj
+
+
+#: excluded points listed by name in a report's method block; the rest are counted
+MAX_LISTED_EXCLUSIONS = 20
+
+
+def _g10(x) -> str:
+    x = float(x)
+    return _full(x) if not math.isfinite(x) else f"{x:.10g}"
+
+
+def _one_line(text) -> str:
+    return " ".join(str(text).split())
+
+
+def excluded_points_text(res, reasons: Mapping[int, str] | None = None,
+                         limit: int = MAX_LISTED_EXCLUSIONS) -> str:
+    """The excluded points, compactly: ``"#7 (x = 3.0, y = 17.5): pipette bubble; ..."``.
+
+    ``#`` is the point number as in the points table (index + 1); x and y are given to
+    10 significant digits (as in the report's exclusion record). ``reasons`` maps a
+    point index (0-based) to the analyst's reason; with ``reasons`` given a point
+    without one says "no reason given", without it no reason part is written. At most
+    ``limit`` points are listed, then ``"and N more"``. Returns ``"none"`` when no point
+    is excluded. The result is a ``str`` whose ``items`` attribute holds the entries.
+    """
+    idx = [int(i) for i in np.flatnonzero(np.asarray(res.excluded, dtype=bool))]
+    if not idx:
+        return _Items(["none"])
+    items = []
+    for i in idx[: max(int(limit), 0)]:
+        item = f"#{i + 1} (x = {_g10(res.x[i])}, y = {_g10(res.y[i])})"
+        if reasons is not None:
+            reason = _one_line(reasons.get(i, "") or "")
+            item += f": {reason or 'no reason given'}"
+        items.append(item)
+    rest = len(idx) - len(items)
+    if rest > 0:
+        items.append(f"and {rest} more")
+    return _Items(items)
+
+
+def convergence_text(res) -> str:
+    """``"yes"``, or ``"yes (exact fit)"`` when the solver's message says more than
+    "converged"; ``"NO (did not converge in 200 iterations)"`` when it did not."""
+    msg = _one_line(res.message or "")
+    if res.converged:
+        if msg.lower() in ("", "converged"):
+            return "yes"
+        if msg.lower().startswith("converged (") and msg.endswith(")"):
+            return "yes " + msg[len("converged "):]
+        return f"yes ({msg})"
+    return f"NO ({msg})" if msg else "NO"
+
+
+def method_lines(res, level: float = 0.95, *, y_unit: str = "",
+                 reasons: Mapping[int, str] | None = None) -> list[tuple[str, str]]:
     """The method block as ``(label, text)`` pairs, in the order printed.
 
     States the model, loss (with tuning constant and shape), scale and how it was
     obtained, points used/excluded/down-weighted, degrees of freedom, covariance
-    recipe, confidence level with the t quantile, held parameters, convergence and
-    the Ballast version.
+    recipe, confidence level with the t quantile, held parameters, the excluded points
+    (:func:`excluded_points_text`, with the analyst's ``reasons`` when given),
+    convergence and the Ballast version.
     """
     m = res.model
     title = m.title or m.name
     model = f"{title}: {m.formula}" if m.formula and m.formula != title else title
-    out = [("model", model), ("loss", _loss_label(res))]
+    out = [("model", model), ("loss", loss_label(res))]
     scale_unit = ""
     if res.sigma is None or res.sigma_mode == "none":
         scale_unit = f" {y_unit}" if y_unit else ""
@@ -435,10 +627,9 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "") -> list[tuple[st
     if res.fixed:
         held = ", ".join(f"{k} = {_full(v)}" for k, v in res.fixed.items())
         out.append(("held parameters", held))
-    conv = "yes" if res.converged else "NO"
-    if res.message:
-        conv += f" ({res.message})"
-    out.append(("converged", conv))
+    if res.n_excluded:
+        out.append(("excluded points", excluded_points_text(res, reasons)))
+    out.append(("converged", convergence_text(res)))
     out.append(("software", f"Ballast {_version()} (fitcore)"))
     return out
 
@@ -460,7 +651,7 @@ def _rows(res, level, units, x_unit, y_unit) -> list[_Row]:
     for i, name in enumerate(res.param_names):
         unit = units.get(name)
         if unit is None:
-            unit = _resolve_unit(res.model.units.get(name, ""), x_unit, y_unit)
+            unit = resolve_unit(res.model.units.get(name, ""), x_unit, y_unit)
         held = name in res.fixed
         low, high = (float(ci[i, 0]), float(ci[i, 1])) if not held else (math.nan, math.nan)
         note = res.model.descriptions.get(name, "")
@@ -469,7 +660,7 @@ def _rows(res, level, units, x_unit, y_unit) -> list[_Row]:
     for name, v, u, d in res.derived_values():
         unit = units.get(name)
         if unit is None:
-            unit = _resolve_unit(d.unit, x_unit, y_unit)
+            unit = resolve_unit(d.unit, x_unit, y_unit)
         rows.append(_Row(name, v, u, v - t * u, v + t * u, unit, derived=True,
                          note=d.description))
     return rows
@@ -483,12 +674,13 @@ def _estimate(row: _Row, style="paren", rich=False, full=False) -> str:
     return format_value(row.value, row.u, style, rich=rich, held=row.held)
 
 
-def _ci_pair(row: _Row, full=False) -> tuple[str, str]:
+def _ci_pair(row: _Row, full=False, rich=False, exponent=None) -> tuple[str, str]:
+    """The interval limits of a row, by the one rule of :func:`interval_limits`."""
     if row.held or not (math.isfinite(row.low) and math.isfinite(row.high)):
         return "", ""
     if full:
         return _full(row.low), _full(row.high)
-    return _round_like(row.low, row.u), _round_like(row.high, row.u)
+    return interval_limits(row.low, row.high, row.value, row.u, rich=rich, exponent=exponent)
 
 
 # ============================================================================ escaping
@@ -525,6 +717,7 @@ def estimates_text(
     full_precision: bool = False,
     x_unit: str = "",
     y_unit: str = "",
+    reasons: Mapping[int, str] | None = None,
 ) -> str:
     """The estimates of a fit, with a method block, ready to paste into a report.
 
@@ -547,6 +740,9 @@ def estimates_text(
         rounding them per GUM (the rounded form is the default).
     x_unit, y_unit : str
         Units of the data, substituted into the model's parameter units (``"y/x"``).
+    reasons : dict, optional
+        The analyst's reason per excluded point (0-based index), listed with the
+        excluded points in the method block.
 
     Returns
     -------
@@ -554,8 +750,8 @@ def estimates_text(
 
     Notes
     -----
-    Values are rounded with :func:`format_value`; interval bounds are rounded to the
-    decimal place of their value. Held parameters are marked ``(held)`` and get no
+    Values are rounded with :func:`format_value`; interval limits by
+    :func:`interval_limits` (the last decimal and power of ten of their estimate). Held parameters are marked ``(held)`` and get no
     interval. Derived quantities carry uncertainties propagated by the delta method
     from the full covariance, and intervals ``value ± t·u`` with the same t.
     """
@@ -564,7 +760,7 @@ def estimates_text(
     if not (0.0 < float(level) < 1.0):
         raise ValueError(f"confidence level must lie between 0 and 1 (got {level!r})")
     rows = _rows(res, float(level), units, x_unit, y_unit)
-    meth = method_lines(res, float(level), y_unit=y_unit)
+    meth = method_lines(res, float(level), y_unit=y_unit, reasons=reasons)
     meth.append(("derived quantities",
                  "uncertainties propagated from the covariance (delta method)"
                  if any(r.derived for r in rows) else "none"))
@@ -594,7 +790,10 @@ def _plain(rows, meth, caution, pct, fp):
             lines.append(f"  {r.name.ljust(width)} = {est}{unit}{ci}")
     lines.append("Method")
     lw = max(len(k) for k, _ in meth)
-    lines += [f"  {k.ljust(lw)}  {v}" for k, v in meth]
+    for k, v in meth:
+        items = getattr(v, "items", None) or (v,)
+        lines.append(f"  {k.ljust(lw)}  {items[0]}")
+        lines += [f"  {'':{lw}}  {it}" for it in items[1:]]
     if caution:
         lines += ["", caution]
     return "\n".join(lines) + "\n"
@@ -617,7 +816,7 @@ def _tsv(rows, meth, caution, pct, fp):
             # the rounded pair: the same digits as the paren form, in two cells
             pm = format_value(r.value, r.u, "pm", exponent=0)
             v, _, u = pm.partition(" ± ")
-        lo, hi = _ci_pair(r, fp)
+        lo, hi = _ci_pair(r, fp, exponent=0)  # positional, as the value cell beside it
         note = "held" if r.held else ("derived" if r.derived else "")
         if r.note:
             note = f"{note}; {r.note}" if note else r.note
@@ -633,7 +832,7 @@ def _tsv(rows, meth, caution, pct, fp):
 def _markdown(rows, meth, caution, pct, fp):
     out = [f"| Quantity | Estimate | Unit | {pct} CI |", "|---|---|---|---|"]
     for r in rows:
-        lo, hi = _ci_pair(r, fp)
+        lo, hi = _ci_pair(r, fp, rich=True)
         ci = f"{lo} to {hi}" if lo else ("held" if r.held else "")
         name = _md(r.name) + (" (derived)" if r.derived else "")
         out.append(f"| {name} | {_md(_estimate(r, rich=True, full=fp))} | "
@@ -645,16 +844,17 @@ def _markdown(rows, meth, caution, pct, fp):
     return "\n".join(out) + "\n"
 
 
-def _latex_table(rows, meth, caution, pct, fp, cell):
+def _latex_table(rows, meth, caution, pct, fp, cell, limit, rich):
     p = pct.replace("%", r"\%")
     out = [r"\begin{tabular}{llll}", r"\hline",
            rf"Quantity & Estimate & Unit & {p} CI \\", r"\hline"]
     for r in rows:
-        lo, hi = _ci_pair(r, fp)
-        ci = f"{lo} to {hi}" if lo else ("held" if r.held else "")
+        lo, hi = _ci_pair(r, fp, rich=rich)
+        # limits in math mode (or siunitx's \num), so a minus is a minus, not a hyphen
+        ci = f"{limit(lo)} to {limit(hi)}" if lo else ("held" if r.held else "")
         name = _tex(r.name) + (" (derived)" if r.derived else "")
         est, unit = cell(r)
-        out.append(rf"{name} & {est} & {unit} & {_tex(ci)} \\")
+        out.append(rf"{name} & {est} & {unit} & {ci} \\")
     out += [r"\hline", r"\end{tabular}", "", r"\paragraph{Method}", r"\begin{itemize}"]
     out += [rf"\item {_tex(k)}: {_tex(v)}" for k, v in meth]
     out.append(r"\end{itemize}")
@@ -673,7 +873,7 @@ def _latex(rows, meth, caution, pct, fp):
             est = "$" + format_value(r.value, r.u, rich="latex") + "$"
         return est, _tex(r.unit)
 
-    return _latex_table(rows, meth, caution, pct, fp, cell)
+    return _latex_table(rows, meth, caution, pct, fp, cell, lambda t: f"${t}$", "latex")
 
 
 def _siunitx(rows, meth, caution, pct, fp):
@@ -690,20 +890,23 @@ def _siunitx(rows, meth, caution, pct, fp):
             body += " (held)"
         return body, ""
 
-    return _latex_table(rows, meth, caution, pct, fp, cell)
+    def limit(t):  # \num{} reads "e5" and sets the minus itself
+        return rf"\num{{{t}}}"
+
+    return _latex_table(rows, meth, caution, pct, fp, cell, limit, False)
 
 
 def _html(rows, meth, caution, pct, fp):
     out = ["<table>",
            f"<tr><th>Quantity</th><th>Estimate</th><th>Unit</th><th>{_h(pct)} CI</th></tr>"]
     for r in rows:
-        lo, hi = _ci_pair(r, fp)
+        lo, hi = _ci_pair(r, fp, rich="html")  # markup of our own: not escaped below
         ci = f"{lo} to {hi}" if lo else ("held" if r.held else "")
         est = _h(_estimate(r, full=True)) if fp else (
             _h(_estimate(r)) if r.held else format_value(r.value, r.u, rich="html"))
         name = _h(r.name) + (" (derived)" if r.derived else "")
         out.append(f"<tr><td>{name}</td><td>{est}</td><td>{_h(r.unit)}</td>"
-                   f"<td>{_h(ci)}</td></tr>")
+                   f"<td>{ci}</td></tr>")
     out += ["</table>", "<p><b>Method</b></p>", "<ul>"]
     out += [f"<li>{_h(k)}: {_h(v)}</li>" for k, v in meth]
     out.append("</ul>")

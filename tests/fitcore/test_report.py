@@ -488,3 +488,179 @@ def test_robust_fit_method_block():
     for fmt in report.FORMATS:
         assert "Robust weights are not a licence to discard data" in \
             report.estimates_text(res, fmt)
+
+
+# ============================================================================ one rule for
+# uncertainties and intervals beside a rounded estimate
+def test_uncertainty_column_keeps_two_digits_and_the_estimates_decimal():
+    # GUM 7.2.6: u is given to (at most) two significant digits and the value to the
+    # same decimal place, so a separate uncertainty column shows those digits, trailing
+    # zeros included (the paren form beside it carries the same two digits).
+    cases = [  # (value, u, concise form, u column)
+        (0.00538, 0.0009, "0.00538(90)", "0.00090"),
+        (6.0, 2.0, "6.0(20)", "2.0"),
+        (1.521, 0.03, "1.521(30)", "0.030"),
+        (0.004822, 2e-5, "0.004822(20)", "0.000020"),
+        (12480.0, 160.0, "12480(160)", "160"),
+        (100.02147, 0.00035, "100.02147(35)", "0.00035"),  # GUM 7.2.2's own example
+    ]
+    for v, u, concise, column in cases:
+        assert format_value(v, u) == concise
+        assert report.format_uncertainty(v, u) == column, (v, u)
+        # and it is exactly the "± u" part of GUM 7.2.2's third form
+        assert format_value(v, u, "pm").split(" ± ")[1] == column
+
+
+def test_uncertainty_column_shares_the_estimates_power_of_ten():
+    # where the estimate is written with a power of ten, u is written with the same
+    # one, as in the "pm" form (1.234567 ± 0.000012)e5 (Ballast's exponent rule)
+    assert format_value(1.2e5, 2.6e5) == "1.2(26)e5"
+    assert report.format_uncertainty(1.2e5, 2.6e5) == "2.6e5"
+    assert report.format_uncertainty(123456.7, 1.2) == "0.000012e5"
+    assert report.format_uncertainty(6.67430e-11, 1.5e-15, rich=True) == "0.00015 × 10⁻¹¹"
+    assert report.format_uncertainty(1.0, 0.0) == "0"
+    assert report.format_uncertainty(1.0, float("nan")) == "unknown"
+    with pytest.raises(ValueError, match="negative"):
+        report.format_uncertainty(1.0, -1.0)
+
+
+def test_interval_limits_follow_the_estimates_last_decimal():
+    # the reviewer's case: 1001.537(32) has limits to the thousandth, 1001.600 with its
+    # trailing zero (GUM 7.2.6: the value to the decimal of the uncertainty's last digit)
+    assert format_value(1001.5372, 0.0318) == "1001.537(32)"
+    assert report.interval_limits(1001.4738, 1001.60004, 1001.5372, 0.0318) == \
+        ("1001.474", "1001.600")
+    assert report.format_interval(1001.4738, 1001.60004, 1001.5372, 0.0318) == \
+        "[1001.474, 1001.600]"
+    # A = 1842(12): limits to units, never to six significant digits
+    assert format_value(1841.6, 11.8) == "1842(12)"
+    assert report.format_interval(1817.47, 1865.73, 1841.6, 11.8) == "[1817, 1866]"
+    # 1.2(26)e5: the same power of ten as the estimate, not [-393581, 640125]
+    assert report.format_interval(-393581.0, 640125.0, 1.2327e5, 2.6e5) == "[-3.9e5, 6.4e5]"
+    assert report.interval_limits(-393581.0, 640125.0, 1.2327e5, 2.6e5, rich="latex") == \
+        (r"-3.9 \times 10^{5}", r"6.4 \times 10^{5}")
+    # a forced positional form (the TSV cells) and a limit that rounds to zero
+    assert report.interval_limits(-393581.0, 640125.0, 1.2327e5, 2.6e5, exponent=0) == \
+        ("-390000", "640000")
+    assert format_value(0.015, 0.071) == "0.015(71)"
+    assert report.interval_limits(-0.0004, 0.031, 0.015, 0.071) == ("0.000", "0.031")
+    # no usable u: the limits at full precision
+    assert report.interval_limits(1.25, 2.5, 2.0, 0.0) == ("1.25", "2.5")
+
+
+def _decimals(text: str) -> int:
+    m = re.fullmatch(r"-?\d+(?:\.(\d*))?", text)
+    assert m, text
+    return len(m.group(1) or "")
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.floats(min_value=-1e4, max_value=1e4, allow_nan=False),
+       st.floats(min_value=1e-3, max_value=1e3), st.floats(min_value=0.5, max_value=5.0))
+def test_interval_limits_have_the_decimals_of_the_estimate(value, u, t):
+    # property (GUM 7.2.6 applied to the limits): each limit has exactly as many
+    # decimals as the rounded estimate, and lies within half a last digit of the limit
+    lo, hi = value - t * u, value + t * u
+    est = format_value(value, u, exponent=0)
+    mant = est.split("(")[0]
+    limits = report.interval_limits(lo, hi, value, u, exponent=0)
+    # the rounding step: the second significant digit of the two-digit u (coarser
+    # than the last printed digit for forms like "12350(250)")
+    step = Decimal(1).scaleb(Decimal(report.format_uncertainty(value, u, exponent=0))
+                             .adjusted() - 1)
+    for limit, exact in zip(limits, (lo, hi)):
+        assert _decimals(limit) == _decimals(mant)
+        assert abs(Decimal(limit) - Decimal(repr(exact))) <= step / 2
+
+
+def test_every_report_format_quotes_intervals_by_the_one_rule(demo):
+    rows = {r.name: r for r in report._rows(demo, 0.95, None, "", "")}
+    plain = report.estimates_text(demo)
+    for name, r in rows.items():
+        lo, hi = report.interval_limits(r.low, r.high, r.value, r.u)
+        mant = format_value(r.value, r.u).split("(")[0]
+        assert _decimals(lo) == _decimals(hi) == _decimals(mant)
+        assert f"CI {lo} to {hi}" in plain
+    tsv = list(csv.reader(io.StringIO(report.estimates_text(demo, "tsv")), delimiter="\t"))
+    for row in tsv[1:4]:
+        assert _decimals(row[4]) == _decimals(row[5]) == _decimals(row[1])
+
+
+def test_latex_intervals_are_in_math_mode():
+    # a text-mode "-" prints as a hyphen: the limits go in math mode (common practice),
+    # where "-" is the minus sign; siunitx's \num sets its own minus
+    res = line_fit(X_DEMO, -3.0 - Y_DEMO)  # negative intercept and slope
+    tex = report.estimates_text(res, "latex")
+    rows = [ln for ln in tex.splitlines() if ln.endswith(r"\\") and "&" in ln][1:]
+    assert len(rows) == 3
+    for ln in rows:
+        ci = ln.split("&")[3].rstrip("\\ ").strip()
+        assert re.fullmatch(r"\$-?[\d.]+(?: \\times 10\^\{-?\d+\})?\$ to "
+                            r"\$-?[\d.]+(?: \\times 10\^\{-?\d+\})?\$", ci), ci
+        assert "-" in ci
+        assert "-" not in re.sub(r"\$[^$]*\$", "", ci)  # no minus outside math
+    si = report.estimates_text(res, "siunitx")
+    rows = [ln for ln in si.splitlines() if ln.endswith(r"\\") and "&" in ln][1:]
+    for ln in rows:
+        assert re.fullmatch(r"\\num\{-?[\d.]+(?:e-?\d+)?\} to \\num\{-?[\d.]+(?:e-?\d+)?\}",
+                            ln.split("&")[3].rstrip("\\ ").strip())
+
+
+# ============================================================================ method words
+def test_method_block_reads_without_internal_names():
+    fit = _fit_or_skip()
+    x = np.arange(12.0)
+    y = 1.0 + 2.0 * x + 0.03 * np.cos(5 * x)  # invented demo data
+    res = fit("line", x, y, loss="pseudo_huber")
+    text = report.estimates_text(res)
+    assert "pseudo_huber" not in text and "(huber)" not in text
+    loss_line = next(ln for ln in text.splitlines() if ln.strip().startswith("loss"))
+    assert "pseudo-Huber" in loss_line and "tuning constant" in loss_line
+    conv = next(ln for ln in text.splitlines() if ln.strip().startswith("converged"))
+    assert "(converged)" not in conv and "yes" in conv
+
+
+def test_convergence_text():
+    class R:
+        converged, message = True, "converged"
+
+    assert report.convergence_text(R) == "yes"
+    R.message = "converged (exact fit)"
+    assert report.convergence_text(R) == "yes (exact fit)"
+    R.message = "exact linear least-squares solution"
+    assert report.convergence_text(R) == "yes (exact linear least-squares solution)"
+    R.converged, R.message = False, "did not converge in 200 iterations"
+    assert report.convergence_text(R) == "NO (did not converge in 200 iterations)"
+
+
+def test_excluded_points_are_listed_with_reasons(demo):
+    # point index 6 of the invented demo data is excluded: number 7 in the points table
+    text = report.estimates_text(demo, reasons={6: "bubble\nin the cell"})
+    assert "#7 (x = 6, y = 17.5): bubble in the cell" in text
+    assert "no reason given" not in text
+    # without reasons (library use) the point is still named, with x and y
+    assert "#7 (x = 6, y = 17.5)" in report.estimates_text(demo)
+    # many exclusions: 20 listed, then a count; one a line in the plain text
+    x = np.arange(40.0)
+    y = 2.0 + 0.5 * x + 0.1 * np.sin(x)
+    excl = np.zeros(40, bool)
+    excl[:25] = True
+    res = line_fit(x, y, excl)
+    lines = report.estimates_text(res, reasons={0: "first"}).splitlines()
+    start = next(i for i, ln in enumerate(lines) if ln.strip().startswith("excluded points"))
+    listed = lines[start:start + 21]
+    assert listed[0].split("excluded points")[1].strip() == "#1 (x = 0, y = 2): first"
+    # y = 2.5 + 0.1 sin(1) = 2.58414709848... to 10 significant digits
+    assert listed[1].strip() == "#2 (x = 1, y = 2.584147098): no reason given"
+    assert listed[19].strip().startswith("#20 ")
+    assert listed[20].strip() == "and 5 more"
+    for fmt in ("tsv", "markdown", "latex", "html"):
+        assert "and 5 more" in report.estimates_text(res, fmt)
+
+
+def test_bare_data_unit_is_written_without_parentheses():
+    # a parameter in y units is simply "mg/L"; a compound unit needs its brackets
+    assert report.resolve_unit("y", "s", "mg/L") == "mg/L"
+    assert report.resolve_unit("y/x", "s", "mg/L") == "(mg/L)/s"
+    assert report.resolve_unit("y/x", "min", "µM") == "µM/min"
+    assert report.resolve_unit("1/x", "", "mg/L") == ""
