@@ -62,6 +62,23 @@ def _beta_cached(key) -> float:
     return integrate.quad(f, 0.0, 40.0, points=pts, epsabs=1e-14, epsrel=1e-12, limit=200)[0]
 
 
+@lru_cache(maxsize=256)
+def _slope_cached(key) -> float:
+    loss = key[1]
+    phi = lambda t: math.exp(-0.5 * t * t) / math.sqrt(2 * math.pi)  # noqa: E731
+    # E[psi'(Z)] = E[Z psi(Z)] (integration by parts; psi continuous, as for every loss
+    # here), which needs no derivative at a Huber corner
+    f = lambda t: 2.0 * t * float(loss.psi(np.array([t]))[0]) * phi(t)  # noqa: E731
+    pts = [loss.tuning] if loss.tuning else None
+    return integrate.quad(f, 0.0, 40.0, points=pts, epsabs=1e-14, epsrel=1e-12, limit=200)[0]
+
+
+def psi_slope_at_normal(loss: Loss) -> float:
+    """``E[psi'(Z)]`` for a standard normal Z (0.8213 for Huber k = 1.345, its
+    ``P(|Z| <= k)``)."""
+    return _slope_cached((loss.name, loss))
+
+
 def psi_variance_at_normal(loss: Loss) -> float:
     """``beta = E[psi(Z)^2]`` for a standard normal Z (0.7101645 for Huber k = 1.345)."""
     return _beta_cached((loss.name, loss))

@@ -1432,7 +1432,8 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
         else:
             st = inner.stats or {}
             cov_free, recipe = unc.cov_m_estimate(Jf, None if "psi" in st else r / s, s, loss_obj, dof,
-                                                  psi=st.get("psi"), dpsi=st.get("dpsi"))
+                                                  psi=st.get("psi"), dpsi=st.get("dpsi"),
+                                                  absolute=absolute and loss != "adaptive")
     except unc.RankDeficient as e:
         converged = False
         message = f"{e}; the estimates are not unique (hold a parameter or add points)"

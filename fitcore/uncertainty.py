@@ -13,6 +13,13 @@ with respect to the free parameters, over the points used in the fit.
     ``m = mean psi'(u)`` and ``K = 1 + (p/n) var(psi'(u)) / m^2`` (Huber 1981, section
     7.6; statsmodels RLM's default "H1", with J in place of the design matrix for
     nonlinear models).
+``model-based, absolute sigma``
+    With sigma taken as absolute (known standard uncertainties) the scale is 1 and
+    the spread of psi is not estimated from the data either, just as least squares
+    then reports ``(J^T W J)^{-1}`` unscaled: ``C = s^2 E[psi(Z)^2] / E[psi'(Z)]^2
+    (J^T J)^{-1}`` with the expectations at a standard normal Z (Huber 1981, 7.6, the
+    asymptotic covariance at the model), i.e. ``(J^T W J)^{-1}`` divided by the loss's
+    Gaussian efficiency.
 ``sandwich``
     ``C = s^2 A^{-1} B A^{-1} n/(n-p)``, ``A = sum psi'(u_i) J_i J_i^T``,
     ``B = sum psi(u_i)^2 J_i J_i^T`` (Huber 1967). Used when H1 is not defined
@@ -36,6 +43,8 @@ from .losses import Loss
 RECIPE_LS = "least squares: s^2 (J^T J)^-1, s^2 = RSS/(n - p)"
 RECIPE_LS_ABS = "least squares with absolute sigma: (J^T W J)^-1, W = 1/sigma^2"
 RECIPE_H1 = "Huber H1: K^2 s^2 [sum psi^2/(n - p)] / (mean psi')^2 (J^T J)^-1"
+RECIPE_M_ABS = ("model-based, absolute sigma: s^2 E[psi^2]/E[psi']^2 (J^T W J)^-1, "
+                "expectations at N(0, 1)")
 RECIPE_SANDWICH = "sandwich: s^2 A^-1 B A^-1 n/(n - p), A = sum psi' J J^T, B = sum psi^2 J J^T"
 RECIPE_L1 = "L1: tau^2 (J^T J)^-1, tau = 1/(2 f(0)) by Siddiqui's estimate (Hall-Sheather bandwidth)"
 
@@ -87,14 +96,22 @@ def cov_least_squares(J, r, dof: int, absolute: bool = False, inv_jtj=None):
 
 
 def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto", *,
-                   psi=None, dpsi=None):
+                   psi=None, dpsi=None, absolute: bool = False):
     """H1 (default) or sandwich covariance for an M-estimate; see module docstring.
 
     ``psi`` and ``dpsi`` may pass ``loss.psi(u)`` and ``loss.dpsi(u)`` when the solver
-    already has them (``u`` is then not used).
+    already has them (``u`` is then not used). ``absolute=True`` (sigma known) gives
+    the model-based covariance instead.
     """
     J = np.asarray(J, dtype=float)
     n, p = J.shape
+    if absolute:
+        from .scale import psi_slope_at_normal, psi_variance_at_normal
+
+        e1 = psi_slope_at_normal(loss)
+        if not e1 > 0:
+            raise RankDeficient("the loss's mean psi' at the normal model is not positive")
+        return s * s * psi_variance_at_normal(loss) / (e1 * e1) * inv_jtj(J), RECIPE_M_ABS
     if psi is None:
         psi = loss.psi(u)
     if dpsi is None:
