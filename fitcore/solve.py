@@ -1537,7 +1537,7 @@ def _scale_rule(loss: Loss) -> str:
 
 SCALE_METHOD = {
     "proposal2": "normalised MAD start, refined by Huber's proposal 2 (n - p degrees of freedom)",
-    "mad": "normalised MAD of the residuals, re-estimated to convergence (from an L1 start)",
+    "mad": "normalised MAD of the residuals, re-estimated to convergence",
 }
 
 
