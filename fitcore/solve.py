@@ -319,17 +319,7 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     """
     lower, upper = prob.lower, prob.upper
     theta = _project(np.asarray(theta, dtype=float).copy(), lower, upper)
-    r = prob.resid(theta)
-    if not np.all(np.isfinite(r)):
-        badmask = ~np.isfinite(r)
-        bad = int(np.sum(badmask))
-        xs = ", ".join(f"{v:.6g}" for v in prob.x[badmask][:3])
-        raise FitError(
-            f"the model cannot be evaluated at the start values: it gives a non-finite "
-            f"value at {bad} of {r.size} points (x = {xs}{', ...' if bad > 3 else ''}); "
-            f"check that x lies where the model is defined (e.g. doses >= 0 for a "
-            f"log-logistic curve) or give other start values"
-        )
+    r = _start_residuals(prob, theta)
     phi = _objective(loss, r, s)
     if not math.isfinite(phi):
         with np.errstate(all="ignore"):
@@ -654,24 +644,43 @@ def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
 
 
 def _l1_nonlinear(prob: _Problem, theta: np.ndarray, max_iter: int = 200) -> _Inner:
-    """Sequential linear programming with a box trust region for min sum |r|."""
-    theta = _project(theta, prob.lower, prob.upper)
-    r = prob.resid(theta)
+    """Sequential linear programming with a box trust region for min sum |r|.
+
+    Each step is the exact L1 fit of the linearised residuals within the box. It stops
+    when that step predicts no decrease (the point is stationary for the L1 objective:
+    the linearised programme's optimum is the current point), when an accepted step is
+    below 1e-12 of the parameters, or when the box has shrunk to rounding size. A model
+    that is not finite at the start is a FitError (as for the other losses); non-finite
+    values met later end the iterations with ``converged=False``.
+    """
+    theta = _project(np.asarray(theta, dtype=float).copy(), prob.lower, prob.upper)
+    r = _start_residuals(prob, theta)
     obj = float(np.sum(np.abs(r)))
     delta = np.maximum(0.1 * np.abs(theta), 1e-3)
     converged, message = False, f"did not converge in {max_iter} iterations"
     it = 0
     for it in range(1, max_iter + 1):
         J = prob.jac(theta)
+        if not np.all(np.isfinite(J)):
+            return _Inner(theta, r, obj, it, False,
+                          "the model's derivatives are not finite at the current parameters")
         lo = np.maximum(-delta, prob.lower - theta)
         hi = np.minimum(delta, prob.upper - theta)
-        step = _l1_linear(J, r, lo, hi)
+        try:
+            step = _l1_linear(J, r, lo, hi)
+        except FitError as e:
+            return _Inner(theta, r, obj, it, False, f"L1 step failed: {e}")
+        if not np.all(np.isfinite(step)):
+            return _Inner(theta, r, obj, it, False, "the L1 step is not finite")
+        pred = obj - float(np.sum(np.abs(r - J @ step)))
+        if pred <= 1e-13 * obj or np.all(np.abs(step) <= 1e-14 * (np.abs(theta) + 1e-14)):
+            converged, message = True, "converged"
+            break
         cand = _project(theta + step, prob.lower, prob.upper)
         r_new = prob.resid(cand)
         obj_new = float(np.sum(np.abs(r_new))) if np.all(np.isfinite(r_new)) else math.inf
-        pred = obj - float(np.sum(np.abs(r - J @ step)))
         if obj_new < obj:
-            ratio = (obj - obj_new) / pred if pred > 0 else 1.0
+            ratio = (obj - obj_new) / pred
             small = np.all(np.abs(cand - theta) <= 1e-12 * (np.abs(theta) + 1e-12))
             theta, r, obj = cand, r_new, obj_new
             if ratio > 0.75:
@@ -685,6 +694,23 @@ def _l1_nonlinear(prob: _Problem, theta: np.ndarray, max_iter: int = 200) -> _In
                 converged, message = True, "converged"
                 break
     return _Inner(theta, r, obj, it, converged, message)
+
+
+def _start_residuals(prob: _Problem, theta: np.ndarray) -> np.ndarray:
+    """The residuals at the start values; a FitError in plain words where the model
+    cannot be evaluated there."""
+    r = prob.resid(theta)
+    if not np.all(np.isfinite(r)):
+        badmask = ~np.isfinite(r)
+        bad = int(np.sum(badmask))
+        xs = ", ".join(f"{v:.6g}" for v in prob.x[badmask][:3])
+        raise FitError(
+            f"the model cannot be evaluated at the start values: it gives a non-finite "
+            f"value at {bad} of {r.size} points (x = {xs}{', ...' if bad > 3 else ''}); "
+            f"check that x lies where the model is defined (e.g. doses >= 0 for a "
+            f"log-logistic curve) or give other start values"
+        )
+    return r
 
 
 # --------------------------------------------------------------------------- scale
