@@ -18,6 +18,8 @@ from PySide6.QtWidgets import (
     QProgressBar, QPushButton, QSpinBox, QTableWidget, QTableWidgetItem, QVBoxLayout,
 )
 
+from fitcore.report import format_interval
+
 from .document import Document
 from .estimates_view import CAUTION, fmt_value
 from .jobs import Job
@@ -223,10 +225,15 @@ class BootstrapDialog(QDialog):
                                               f"bootstrap {pct} percentile interval"])
         for r, name in enumerate(names):
             held = name in res.fixed
+            v, u = float(res.values[r]), float(res.stderr[r])
+            # both intervals by the one rule of the window and the report: limits to
+            # the last decimal (and power of ten) of the rounded estimate
             cells = [name + (" (held)" if held else ""),
-                     fmt_value(float(res.values[r]), float(res.stderr[r])),
-                     f"[{ci[r, 0]:.5g}, {ci[r, 1]:.5g}]",
-                     "-" if held or not np.all(np.isfinite(iv[r])) else f"[{iv[r, 0]:.5g}, {iv[r, 1]:.5g}]"]
+                     fmt_value(v, u, held=held),
+                     "-" if held or not np.all(np.isfinite(ci[r])) else format_interval(
+                         ci[r, 0], ci[r, 1], v, u),
+                     "-" if held or not np.all(np.isfinite(iv[r])) else format_interval(
+                         iv[r, 0], iv[r, 1], v, u)]
             for c, text in enumerate(cells):
                 it = QTableWidgetItem(text)
                 if c > 0:

@@ -126,6 +126,51 @@ def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: boo
                                   request["losses"], progress, cancel, with_adaptive)
 
 
+def progress_text(done: int, total: int, n_losses: int) -> str:
+    """The progress bar's text, counting what is run: ``"3/5 losses"`` while the losses
+    are fitted, then ``"5/5 losses; alpha profile"`` while the adaptive reading (its
+    profile over alpha) runs after them, ``"5/5 losses + alpha profile"`` at the end."""
+    n = int(n_losses)
+    if total <= n or n <= 0:
+        return f"{min(done, max(n, total))}/{max(n, total)} losses"
+    if done < n:
+        return f"{done}/{n} losses"
+    return f"{n}/{n} losses" + ("; alpha profile" if done < total else " + alpha profile")
+
+
+def shift_note(reading) -> str:
+    """The change from least squares to the adaptive fit in each fit's own standard
+    uncertainty, for the parameter that moves most by the adaptive fit's u.
+
+    ``fitcore.compare``'s reading divides the change by the combined uncertainty
+    ``sqrt(u_LS^2 + u_robust^2)``, which the larger (often the least-squares) u
+    dominates; this note states the other yardsticks beside it. "" when there is
+    nothing to compare (least squares failed, no free parameter)."""
+    fits = getattr(reading, "fits", None) or {}
+    l2, ad = fits.get("l2"), fits.get("adaptive")
+    if l2 is None or ad is None:
+        return ""
+    best = None
+    for j, name in enumerate(ad.param_names):
+        if name in ad.fixed or name not in l2.param_names:
+            continue
+        k = l2.param_names.index(name)
+        d = float(ad.values[j]) - float(l2.values[k])
+        u_ad, u_l2 = float(ad.stderr[j]), float(l2.stderr[k])
+        if not (np.isfinite(d) and np.isfinite(u_ad) and np.isfinite(u_l2)
+                and u_ad > 0 and u_l2 > 0):
+            continue
+        key = abs(d) / u_ad
+        if best is None or key > best[0]:
+            best = (key, name, abs(d) / u_l2, abs(d) / float(np.hypot(u_ad, u_l2)))
+    if best is None:
+        return ""
+    in_ad, name, in_l2, in_both = best
+    return (f"In the adaptive fit's own standard uncertainty {name} moves by {in_ad:.2g} u "
+            f"(by {in_l2:.2g} u of the least-squares fit; {in_both:.2g} of the two combined, "
+            f"the yardstick above).")
+
+
 class AdaptivePanel(QGroupBox):
     """Fitted alpha with uncertainty, the profile NLL over alpha and the reading."""
 
@@ -202,6 +247,9 @@ class AdaptivePanel(QGroupBox):
         self.mark.setPos(a)
         self.mark.setVisible(True)
         text = html.escape(str(reading.text))
+        note = shift_note(reading)
+        if note:
+            text += f"<br>{html.escape(note)}"
         if iv is not None and len(iv) == 2:
             text += (f"<br><span style='color:#555'>approx. 95% interval for alpha: "
                      f"[{float(iv[0]):.3g}, {float(iv[1]):.3g}] (profile likelihood)</span>")
@@ -327,6 +375,7 @@ class CompareView(QWidget):
             return False
         req = comparison_request(doc, losses)
         self._pending_generation = req["generation"]
+        self._n_losses = len(losses)
         self.progress.setRange(0, 0)  # busy until the first progress report
         self.run_button.setEnabled(False)
         self.cancel_button.setEnabled(True)
@@ -349,7 +398,7 @@ class CompareView(QWidget):
         if total > 0:
             self.progress.setRange(0, total)
             self.progress.setValue(min(done, total))
-            self.progress.setFormat(f"{done}/{total}")
+            self.progress.setFormat(progress_text(done, total, getattr(self, "_n_losses", total)))
 
     def _on_failed(self, message):
         self._idle()
@@ -557,6 +606,8 @@ class CompareView(QWidget):
         text = self.text()
         if text:
             reading = self.reading.text if self.reading is not None else ""
+            note = shift_note(self.reading) if self.reading is not None else ""
+            reading = f"{reading} {note}" if note else reading
             QGuiApplication.clipboard().setText(text + (f"\n\n{reading}" if reading else ""))
         return text
 

@@ -8,7 +8,6 @@ on the clipboard.
 from __future__ import annotations
 
 import html
-import re
 
 import numpy as np
 from PySide6.QtCore import Qt
@@ -27,82 +26,74 @@ except ImportError:  # pragma: no cover - fitcore without its report module
 LEVEL = 0.95
 
 
-def fmt_value(value: float, u: float) -> str:
+def fmt_value(value: float, u: float, *, held: bool = False, rich=False) -> str:
     """``value(u)`` rounded GUM style, by ``fitcore.format_value`` when available."""
     try:
         import fitcore
 
-        return fitcore.format_value(value, u, style="paren")
+        return fitcore.format_value(value, u, style="paren", held=held, rich=rich)
     except Exception:  # noqa: BLE001 - report module absent or a value it refuses
         if not np.isfinite(u) or u <= 0:
             return f"{value:.6g}"
         return f"{value:.6g} ± {u:.2g}"
 
 
-def interval_text(lo: float, hi: float, u: float) -> str:
-    """``[lo, hi]`` quoted to the last digit of the rounded uncertainty (two significant
-    digits, as the estimate beside it), so the column stays narrow; 5 significant
-    digits where that would not read well (very large or small numbers, no u)."""
-    big = max(abs(lo), abs(hi))
-    if np.isfinite(u) and u > 0 and np.isfinite(big) and 1e-4 <= big < 1e7:
-        d = max(0, 1 - int(np.floor(np.log10(u))))
-        if d <= 8:
-            return f"[{lo:.{d}f}, {hi:.{d}f}]"
-    return f"[{lo:.5g}, {hi:.5g}]"
+def interval_text(lo: float, hi: float, value: float, u: float) -> str:
+    """``[lo, hi]`` by the one interval rule (``fitcore.report.format_interval``): the
+    limits to the last decimal of the rounded estimate beside them, in its notation."""
+    from fitcore.report import format_interval
+
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return ""
+    return format_interval(lo, hi, value, u)
+
+
+def unc_text(value: float, u: float) -> str:
+    """The standard uncertainty column: two significant digits at the decimal and with
+    the power of ten of the rounded estimate (``fitcore.report.format_uncertainty``)."""
+    from fitcore.report import format_uncertainty
+
+    return format_uncertainty(value, u)
 
 
 def unit_of(expr: str, x_unit: str, y_unit: str) -> str:
-    """Turn a model's unit expression ("y/x", "1/x", "x") into real units."""
-    if not expr:
-        return ""
+    """Turn a model's unit expression ("y/x", "1/x", "x") into real units, exactly as
+    the copied text and the report do (``fitcore.report.resolve_unit``)."""
+    from fitcore.report import resolve_unit
 
-    def sub(m):
-        u = x_unit if m.group(0) == "x" else y_unit
-        return f"({u})" if u and ("/" in u or "*" in u or " " in u) else (u or m.group(0))
-
-    if (("x" in expr and not x_unit) or ("y" in expr and not y_unit)):
-        return ""
-    return re.sub(r"\b[xy]\b", sub, expr)
+    return resolve_unit(expr, x_unit, y_unit)
 
 
 def summary_lines(res) -> list[tuple[str, str]]:
-    """(label, text) pairs describing how the fit was made."""
+    """(label, text) pairs describing how the fit was made (the loss by its title, as
+    the copied text states it)."""
+    from fitcore.report import convergence_text, loss_label
+
     def g(name, default=None):
         return getattr(res, name, default)
 
     alpha = g("alpha")
     lines = [
-        ("loss", str(g("loss", ""))),
+        ("loss", loss_label(res)),
         ("n used", str(g("n_used", ""))),
         ("n excluded", str(g("n_excluded", ""))),
         ("n down-weighted (w < 0.5)", str(g("n_downweighted", ""))),
         ("scale", f"{g('scale', float('nan')):.6g} ({g('scale_method', '')})"),
         ("alpha", "-" if alpha is None else f"{alpha:.4g}"),
         ("degrees of freedom", str(g("dof", ""))),
-        ("converged", ("yes" if g("converged") else "NO") + (f": {g('message')}" if g("message") else "")),
+        ("converged", convergence_text(res)),
         ("covariance", str(g("covariance_recipe", ""))),
     ]
     return lines
 
 
-def estimates_plain_text(res, x_unit: str = "", y_unit: str = "") -> str:
-    """Plain-text estimates for the clipboard (``fitcore.report`` when present)."""
-    try:
-        from fitcore.report import estimates_text
+def estimates_plain_text(res, x_unit: str = "", y_unit: str = "", reasons=None) -> str:
+    """Plain-text estimates for the clipboard (``fitcore.report.estimates_text``);
+    ``reasons`` (point index -> the analyst's reason) lists why points were excluded."""
+    from fitcore.report import estimates_text
 
-        return estimates_text(res, "plain", level=LEVEL, x_unit=x_unit, y_unit=y_unit)
-    except ImportError:
-        pass
-    lines = []
-    ci = res.intervals(LEVEL)
-    for k, name in enumerate(res.param_names):
-        unit = unit_of(res.model.units.get(name, ""), x_unit, y_unit)
-        held = "  (held)" if name in res.fixed else ""
-        lines.append(f"{name} = {fmt_value(res.values[k], res.stderr[k])}{' ' + unit if unit else ''}"
-                     f"   {int(LEVEL * 100)}% CI [{ci[k, 0]:.6g}, {ci[k, 1]:.6g}]{held}")
-    lines += [f"{a}: {b}" for a, b in summary_lines(res)]
-    lines.append(CAUTION)
-    return "\n".join(lines)
+    return estimates_text(res, "plain", level=LEVEL, x_unit=x_unit, y_unit=y_unit,
+                          reasons=reasons)
 
 
 class EstimatesView(QWidget):
@@ -227,8 +218,8 @@ class EstimatesView(QWidget):
             rows.append((name, v, u, v - t * u, v + t * u, unit_of(d.unit, m.x_unit, m.y_unit), False))
         self.table.setRowCount(len(rows))
         for r, (n, v, u, lo, hi, unit, held) in enumerate(rows):
-            cells = [n + (" (held)" if held else ""), fmt_value(v, u), f"{u:.2g}",
-                     interval_text(lo, hi, u), unit]
+            cells = [n + (" (held)" if held else ""), fmt_value(v, u), unc_text(v, u),
+                     "" if held else interval_text(lo, hi, v, u), unit]
             for c, text in enumerate(cells):
                 it = QTableWidgetItem(text)
                 if c in (1, 2, 3):
@@ -255,4 +246,5 @@ class EstimatesView(QWidget):
         if res is None:
             return ""
         m = self.document.measurements
-        return estimates_plain_text(res, m.x_unit, m.y_unit)
+        reasons = {i: r for i, r, _t in self.document.exclusion_record()}
+        return estimates_plain_text(res, m.x_unit, m.y_unit, reasons)

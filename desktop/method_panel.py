@@ -256,7 +256,7 @@ class MethodPanel(QWidget):
 
     def _on_loss_picked(self, _i=None):
         name = self.loss_combo.currentData()
-        self._propose(self.document.settings.with_(loss=name), f"Loss: {name}")
+        self._propose(self.document.settings.with_(loss=name), f"Loss: {_loss_title(name)}")
 
     def _on_scale_changed(self):
         s = self.document.settings

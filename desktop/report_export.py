@@ -39,6 +39,7 @@ from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from .estimates_view import fmt_value
+from fitcore.report import format_interval
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -421,6 +422,10 @@ class ReportExporter:
             return None
         return res
 
+    def _reasons(self) -> dict:
+        """The analyst's reason per excluded point (index -> text), for the method block."""
+        return {i: r for i, r, _t in self.document.exclusion_record()}
+
     def _units(self):
         m = self.document.measurements
         return m.x_unit, m.y_unit
@@ -464,7 +469,7 @@ class ReportExporter:
         res = res if res is not None else self.document.result
         x_unit, y_unit = self._units()
         text = estimates_text(res, fmt, level=LEVEL, full_precision=full_precision,
-                              x_unit=x_unit, y_unit=y_unit)
+                              x_unit=x_unit, y_unit=y_unit, reasons=self._reasons())
         if fmt == "html":
             text = _bordered(text)
         return text
@@ -543,7 +548,7 @@ class ReportExporter:
         if not path:
             return ""
         x_unit, y_unit = self._units()
-        reasons = {i: r for i, r, _t in self.document.exclusion_record()}
+        reasons = self._reasons()
         text = points_csv(res, reasons, x_unit=x_unit, y_unit=y_unit)
         return path if self._write_text(path, text, "points CSV") else ""
 
@@ -665,7 +670,7 @@ class ReportExporter:
         out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, m.source, y_unit))}</p>",
                 '<table border="1" cellspacing="0" cellpadding="3">']
         out += [f"<tr><th>{_h(k)}</th><td>{_h(v)}</td></tr>" for k, v in method_lines(
-            res, LEVEL, y_unit=y_unit)]
+            res, LEVEL, y_unit=y_unit, reasons=self._reasons())]
         out.append("</table>")
 
         free = [n for n in res.param_names if n not in res.fixed]
@@ -745,12 +750,16 @@ class ReportExporter:
                     f"<th>bootstrap {pct} percentile interval</th></tr>"]
             for k, name in enumerate(res.param_names):
                 held = name in res.fixed
+                v, u = float(res.values[k]), float(res.stderr[k])
+                # both intervals by the one rule: the last decimal of the estimate
                 boot = ("-" if held or not np.all(np.isfinite(iv[k]))
-                        else f"[{_g(iv[k, 0])}, {_g(iv[k, 1])}]")
+                        else format_interval(iv[k, 0], iv[k, 1], v, u, rich="html"))
+                ana = ("-" if held or not np.all(np.isfinite(ci[k]))
+                       else format_interval(ci[k, 0], ci[k, 1], v, u, rich="html"))
                 out.append(f"<tr><td>{_h(name)}{' (held)' if held else ''}</td>"
-                           f'<td class="num">{_h(fmt_value(float(res.values[k]), float(res.stderr[k])))}</td>'
-                           f'<td class="num">[{_g(ci[k, 0])}, {_g(ci[k, 1])}]</td>'
-                           f'<td class="num">{_h(boot)}</td></tr>')
+                           f'<td class="num">{fmt_value(v, u, held=held, rich="html")}</td>'
+                           f'<td class="num">{ana}</td>'
+                           f'<td class="num">{boot}</td></tr>')
             out.append("</table>")
         diag = getattr(win, "diagnostics", None)
         if current and diag is not None and getattr(diag, "diagnostics", None) is not None \

@@ -54,8 +54,9 @@ def test_every_copy_format_equals_fitcore_report_side_by_side(win, key, fmt, ful
     clip = QGuiApplication.clipboard().text()
     assert clip == text
     res = side_by_side(win.document)
+    # the window adds the analyst's reason for the point it excluded (the fixture's)
     assert clip == fr.estimates_text(res, fmt, level=0.95, full_precision=full,
-                                     x_unit="s", y_unit="mV")
+                                     x_unit="s", y_unit="mV", reasons={5: "pipette bubble"})
 
 
 def test_default_copy_carries_html_and_plain_text(win):
@@ -63,7 +64,8 @@ def test_default_copy_carries_html_and_plain_text(win):
     md = QGuiApplication.clipboard().mimeData()
     assert md.hasText() and md.hasHtml()
     assert md.text() == text == fr.estimates_text(side_by_side(win.document), "plain",
-                                                  x_unit="s", y_unit="mV")
+                                                  x_unit="s", y_unit="mV",
+                                                  reasons={5: "pipette bubble"})
     h = md.html()
     assert h.startswith("<table border=\"1\"") and "<td>a</td>" in h and "<td>b</td>" in h
     # the shortcut is wired to it
@@ -294,10 +296,15 @@ def test_report_includes_bootstrap_diagnostics_and_comparison_only_for_the_fit_s
     boot = html.split("<h2>Bootstrap intervals</h2>")[1].split("<h2>")[0]
     assert ref.method_text in boot
     for k in range(len(res.param_names)):
+        # both intervals to the last decimal of the GUM-rounded estimate beside them
+        # (GUM 7.2.6: the value to the decimal of its two-digit uncertainty), trailing
+        # zeros kept; the decimals are read off the estimate's printed form
+        est = fr.format_value(res.values[k], res.stderr[k])
+        d = len(re.match(r"-?\d+(?:\.(\d+))?\(", est).group(1) or "")
         lo, hi = ref.intervals[k]
-        assert f"[{report_export._g(lo)}, {report_export._g(hi)}]" in boot
+        assert f"[{lo:.{d}f}, {hi:.{d}f}]" in boot, (est, boot)
         clo, chi = res.intervals(0.95)[k]
-        assert f"[{report_export._g(clo)}, {report_export._g(chi)}]" in boot
+        assert f"[{clo:.{d}f}, {chi:.{d}f}]" in boot
     note = win.diagnostics.note_text()
     assert note and report_export._h(note.splitlines()[0]) in html
     cmp_part = html.split("<h2>Loss comparison</h2>")[1].split("<h2>")[0]
