@@ -25,8 +25,10 @@ with respect to the free parameters, over the points used in the fit.
     ``B = sum psi(u_i)^2 J_i J_i^T`` (Huber 1967). Used when H1 is not defined
     (``m <= 0``, possible for redescending losses).
 ``L1 (sparsity)``
-    ``C = tau^2 (J^T J)^{-1}``, ``tau = 1/(2 f(0))`` estimated from residual order
-    statistics with the Hall-Sheather bandwidth (Siddiqui 1960; Koenker 2005, 3.4).
+    ``C = tau^2 (J^T J)^{-1}``, ``tau = 1/(2 f(0))``; the sparsity ``1/f(0)`` is the L1
+    slope of the sorted nonzero residuals nearest zero against their ranks, with the
+    Hall-Sheather bandwidth (Siddiqui 1960; Koenker 2005, 3.4.2; R quantreg's
+    ``summary.rq(se = "iid")``), the window kept off the extreme residuals.
 
 The products ``(J^T J)^{-1}`` are formed from the SVD of ``J``, never from the normal
 equations, so they keep their accuracy on ill-conditioned problems.
@@ -36,7 +38,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import stats
+from scipy import optimize, stats
 
 from .losses import Loss
 
@@ -46,7 +48,8 @@ RECIPE_H1 = "Huber H1: K^2 s^2 [sum psi^2/(n - p)] / (mean psi')^2 (J^T J)^-1"
 RECIPE_M_ABS = ("model-based, absolute sigma: s^2 E[psi^2]/E[psi']^2 (J^T W J)^-1, "
                 "expectations at N(0, 1)")
 RECIPE_SANDWICH = "sandwich: s^2 A^-1 B A^-1 n/(n - p), A = sum psi' J J^T, B = sum psi^2 J J^T"
-RECIPE_L1 = "L1: tau^2 (J^T J)^-1, tau = 1/(2 f(0)) by Siddiqui's estimate (Hall-Sheather bandwidth)"
+RECIPE_L1 = ("L1: tau^2 (J^T J)^-1, tau = 1/(2 f(0)); sparsity 1/f(0) from the nonzero "
+             "residuals nearest 0 (Koenker's iid recipe, Hall-Sheather bandwidth)")
 
 
 class RankDeficient(Exception):
@@ -136,15 +139,65 @@ def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto", *
     return s * s * factor * (Ainv @ B @ Ainv), RECIPE_SANDWICH
 
 
+def _hall_sheather(n: int) -> float:
+    """Hall and Sheather's (1988) bandwidth at the median, 95 % level (R quantreg's
+    ``bandwidth.rq(0.5, n, hs = TRUE)``, statsmodels' ``hall_sheather``)."""
+    z = stats.norm.ppf(0.975)
+    return n ** (-1.0 / 3.0) * z ** (2.0 / 3.0) * (1.5 * stats.norm.pdf(0.0) ** 2) ** (1.0 / 3.0)
+
+
+def _lad_slope(t: np.ndarray, v: np.ndarray) -> float:
+    """Slope of the L1 line fit of v on t (the dual LP by HiGHS, v scaled to order one)."""
+    if v.size == 2:
+        return float((v[1] - v[0]) / (t[1] - t[0]))
+    sv = float(np.max(np.abs(v - np.median(v)))) or 1.0
+    st = float(np.max(np.abs(t))) or 1.0
+    A = np.c_[np.ones_like(t), t / st]
+    res = optimize.linprog(-v / sv, A_eq=A.T, b_eq=np.zeros(2), bounds=(-1, 1), method="highs")
+    if res.status != 0 or res.eqlin is None:
+        # a least-squares slope of the sorted values (they are monotone, so close)
+        return float(np.polyfit(t, v, 1)[0])
+    return float(-res.eqlin.marginals[1] * sv / st)
+
+
+def l1_sparsity(r: np.ndarray, p: int) -> float:
+    """``1/f(0)`` of the errors from the residuals of an L1 fit with p parameters.
+
+    Koenker's recipe (*Quantile Regression*, 2005, section 3.4.2; R quantreg's
+    ``summary.rq(se = "iid")``): drop the residuals that are zero at the L1 solution
+    (the p interpolated points, ``pz`` of them), take the ``h + 1`` residuals nearest
+    zero, ``h = max(p + 1, ceil(n * hall_sheather(n)))``, sort them, and fit their values
+    against their ranks over the nonzero count by L1; the slope is the sparsity. Taking
+    the residuals nearest zero, not the order statistics at ``0.5 +- h``, keeps outliers
+    out: at n <= 12 the Hall-Sheather window spans nearly the whole sample. The window
+    is further capped to leave out the two residuals farthest from zero, so one or two
+    gross outliers can never enter it, even at n = 8.
+    """
+    r = np.asarray(r, dtype=float)
+    n = r.size
+    a = np.abs(r)
+    if n == 0 or not np.any(a > 0):
+        return 0.0
+    tol = max(1e-9 * float(np.median(a)), 1e-14 * float(np.max(a)))
+    nz_mask = a > tol
+    nz = int(nz_mask.sum())
+    if nz < 2:
+        return 0.0 if nz == 0 else float("nan")
+    pz = n - nz
+    h = max(p + 1, int(math.ceil(n * _hall_sheather(n))))
+    cnt = min(h + 1, nz)
+    cnt = min(cnt, max(nz - 2, min(nz, 3)))
+    rn = r[nz_mask]
+    near = np.argsort(np.abs(rn), kind="stable")[:cnt]
+    v = np.sort(rn[near])
+    t = np.arange(pz + 1, pz + cnt + 1, dtype=float) / nz
+    return max(_lad_slope(t, v), 0.0)
+
+
 def cov_l1(J, r):
+    """``C = (sparsity / 2)^2 (J^T J)^-1`` (the median's ``tau (1 - tau) = 1/4``)."""
     J = np.asarray(J, dtype=float)
     n, p = J.shape
-    z = stats.norm.ppf(0.975)
-    h = n ** (-1.0 / 3.0) * z ** (2.0 / 3.0) * (1.5 * stats.norm.pdf(0.0) ** 2) ** (1.0 / 3.0)
-    h = min(h, 0.49)
-    rs = np.sort(r)
-    lo = max(int(math.floor(n * (0.5 - h))), 0)
-    hi = min(int(math.ceil(n * (0.5 + h))), n - 1)
-    sparsity = (rs[hi] - rs[lo]) / ((hi - lo) / n)  # estimates 1 / f(median)
-    tau = 0.5 * sparsity * (n / max(n - p, 1)) ** 0.5
+    sparsity = l1_sparsity(r, p)
+    tau = 0.5 * sparsity
     return tau * tau * inv_jtj(J), RECIPE_L1
