@@ -227,8 +227,14 @@ class EstimatesView(QWidget):
                 if doc.stale:
                     it.setForeground(Qt.gray)
                 self.table.setItem(r, c, it)
-        self.summary.setText("<br>".join(f"<b>{html.escape(a)}</b>: {html.escape(b)}"
-                                         for a, b in summary_lines(res)))
+        text = "<br>".join(f"<b>{html.escape(a)}</b>: {html.escape(b)}"
+                           for a, b in summary_lines(res))
+        warnings = getattr(res, "warnings", ())
+        if warnings:
+            # signs that this converged fit should not be trusted as it stands
+            text += "".join(f'<br><span style="color:#b35900"><b>warning</b>: {html.escape(w)}</span>'
+                            for w in warnings)
+        self.summary.setText(text)
         if self.corr_table.isVisible():
             R = res.correlation
             k = len(res.param_names)

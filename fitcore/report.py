@@ -590,7 +590,7 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "",
     obtained, points used/excluded/down-weighted, degrees of freedom, covariance
     recipe, confidence level with the t quantile, held parameters, the excluded points
     (:func:`excluded_points_text`, with the analyst's ``reasons`` when given),
-    convergence and the Ballast version.
+    convergence, any warnings (:attr:`FitResult.warnings`) and the Ballast version.
     """
     m = res.model
     title = m.title or m.name
@@ -630,6 +630,8 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "",
     if res.n_excluded:
         out.append(("excluded points", excluded_points_text(res, reasons)))
     out.append(("converged", convergence_text(res)))
+    for w in getattr(res, "warnings", ()):
+        out.append(("warning", w))
     out.append(("software", f"Ballast {_version()} (fitcore)"))
     return out
 

@@ -195,3 +195,24 @@ def test_undo_entries_name_the_loss_by_its_title(win):
     assert win.runner.wait()
     stack = win.undo_stack
     assert stack.text(stack.index() - 1) == "Loss: pseudo-Huber"
+
+
+def test_fit_warnings_show_in_the_summary_and_the_copied_text(open_window, tmp_path):
+    # an exponential decay fitted to a straight line converges, but its parameters are
+    # not determined separately: the window and the copied text must say so
+    rng = np.random.default_rng(4)
+    x = np.linspace(0, 0.05, 50)
+    y = 43.0 - 800.0 * x + rng.normal(0, 0.3, 50)
+    path = tmp_path / "straight.csv"
+    path.write_text("t (s),U (V)\n" + "".join(f"{a:.6f},{b:.6f}\n" for a, b in zip(x, y)),
+                    encoding="utf-8")
+    w = open_window(1400, 900, recovery_dir=tmp_path / "recovery")
+    assert w.open_path(str(path))
+    w.document.apply_settings(Settings(model="exp_decay", loss="huber"))
+    assert w.runner.wait()
+    res = w.document.result
+    assert res.converged and res.warnings
+    summary = w.estimates.summary.text()
+    assert "warning" in summary and "almost interchangeable" in html.unescape(summary)
+    text = estimates_view.estimates_plain_text(res)
+    assert "almost interchangeable" in text
