@@ -182,7 +182,9 @@ def l1_sparsity(r: np.ndarray, p: int) -> float:
     nz_mask = a > tol
     nz = int(nz_mask.sum())
     if nz < 2:
-        return 0.0 if nz == 0 else float("nan")
+        # one nonzero residual (n = p + 1, or an exact fit up to rounding): the
+        # difference quotient between it and the zeros, in rank steps of 1/nz
+        return float(np.max(a[nz_mask])) if nz else 0.0
     pz = n - nz
     h = max(p + 1, int(math.ceil(n * _hall_sheather(n))))
     cnt = min(h + 1, nz)

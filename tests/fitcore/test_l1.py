@@ -303,3 +303,13 @@ def test_l1_stderr_matches_the_spread_of_the_estimates_in_a_seeded_simulation():
                 assert 0.7 < ratio < 1.5, (n, outlier, ratio)
             else:
                 assert 0.5 < ratio < 3.0, (n, outlier, ratio)
+
+
+def test_l1_stderr_of_an_exact_line_is_zero_not_nan():
+    # exact data (mathematical fact: every residual is zero, so is the spread of the
+    # estimates); one nonzero residual left (n = p + 1) still gives a finite value
+    x = np.arange(10.0)
+    res = fitcore.fit("line", x, 1 + 2 * x, loss="l1")
+    assert np.all(np.isfinite(res.stderr)) and np.all(res.stderr < 1e-12)
+    res3 = fitcore.fit("line", np.arange(3.0), np.array([1.0, 3.3, 5.0]), loss="l1")
+    assert np.all(np.isfinite(res3.stderr)) and np.all(res3.stderr > 0)
