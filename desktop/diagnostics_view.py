@@ -10,10 +10,10 @@ then
   standard uncertainties, when that point alone is excluded). The header tooltips and
   the note name the method (exact refits, or the one-step approximation for large n);
 * flags high-leverage points: highlighted cells in the table, a square marker in the
-  plot with a legend entry, and a note in the estimates area that robust losses do
+  plot with an entry in the key above the plot (never over the data), and a note in the estimates area that robust losses do
   not protect against them;
 * optionally colours the used points in the plot by leverage or by influence, with a
-  colour bar.
+  colour bar; the key above the plot then says what the colour shows.
 """
 from __future__ import annotations
 
@@ -39,6 +39,10 @@ HIGH_LEVERAGE_NOTE = ("High-leverage points (far out in x) can pull any fit, rob
                       "a robust loss down-weights large residuals, and a point with high "
                       "leverage drags the curve towards itself so that its residual stays "
                       "small. Check these points on their own merits.")
+
+
+#: the key entry of the high-leverage marks
+HIGH_LEVERAGE_KEY = "high leverage (robust losses do not protect)"
 
 
 def ramp_colormap() -> pg.ColorMap:
@@ -176,7 +180,6 @@ class DiagnosticsController(QObject):
         self._colour_item = None
         self._colour_bar = None
         self._lev_item = None
-        self._legend = None
         document.subscribe(self._on_document)
         if hasattr(plot, "axes_changed"):
             plot.axes_changed.connect(self._draw_plot)
@@ -336,11 +339,8 @@ class DiagnosticsController(QObject):
         if self._colour_bar is not None:
             plot.removeItem(self._colour_bar)
             self._colour_bar = None
-        if self._legend is not None:
-            sc = self._legend.scene()
-            if sc is not None:
-                sc.removeItem(self._legend)
-            self._legend = None
+        if hasattr(plot, "set_key"):
+            plot.set_key(colour="", extra=[])
 
     def _draw_plot(self):
         self._remove_plot_items()
@@ -367,9 +367,12 @@ class DiagnosticsController(QObject):
                                                    brush=[brushes[b] for b in bins], symbol="o")
             self._colour_item.setZValue(8)
             plot.data_plot.addItem(self._colour_item)
-            label = "leverage" if self.colour_mode == "leverage" else "max |influence| (std. unc.)"
+            label = ("leverage" if self.colour_mode == "leverage"
+                     else "largest influence (std. unc.)")
             self._colour_bar = pg.ColorBarItem(values=(0.0, top), colorMap=cmap, width=14,
-                                               label=label, interactive=False,
+                                               label=("leverage" if self.colour_mode == "leverage"
+                                                      else "max |influence| (std. unc.)"),
+                                               interactive=False,
                                                colorMapMenu=False, rounding=top / 100.0)
             plot.addItem(self._colour_bar, row=0, col=1)
         hi = self.high_leverage_points()
@@ -379,11 +382,10 @@ class DiagnosticsController(QObject):
                                                 brush=pg.mkBrush(None))
             self._lev_item.setZValue(9)
             plot.data_plot.addItem(self._lev_item)
-            self._legend = pg.LegendItem(offset=(10, -10), labelTextColor=(30, 30, 30),
-                                         brush=pg.mkBrush(255, 255, 255, 215),
-                                         pen=pg.mkPen(160, 160, 160))
-            self._legend.setParentItem(plot.data_plot.vb)
-            self._legend.addItem(self._lev_item, "high leverage (robust losses do not protect)")
+        if hasattr(plot, "set_key"):
+            extra = ([(f"<span style='color:{QColor(*HIGH_LEV_COLOUR).name()}'>&#9633;</span>",
+                       HIGH_LEVERAGE_KEY)] if hi.size else [])
+            plot.set_key(colour="" if vals is None else label, extra=extra)
 
     def shutdown(self):
         self.job.shutdown()

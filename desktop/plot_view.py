@@ -45,20 +45,25 @@ def _hex(c: QColor) -> str:
     return c.name()
 
 
-#: one line above the plot saying what the symbols mean
-SYMBOL_KEY = (
-    f"<span style='color:{_hex(COLOURS[USED][0])}'>&#9679;</span> used, size = weight"
-    f"&nbsp;&nbsp;<span style='color:{_hex(COLOURS[DOWN][0])}'>&#9679;</span> down-weighted (w &lt; 0.5)"
-    f"&nbsp;&nbsp;<span style='color:{_hex(COLOURS[EXCLUDED][1])}'>&#8855;</span> excluded"
+#: the key above the plot: (html symbol, words) per entry (see :meth:`PlotView.key_entries`)
+SIZE_WORDS = "size grows with weight"
+KEY_ENTRIES = (
+    (f"<span style='color:{_hex(COLOURS[USED][0])}'>&#9679;</span>", f"used ({SIZE_WORDS})"),
+    (f"<span style='color:{_hex(COLOURS[DOWN][0])}'>&#9679;</span>", "down-weighted (w &lt; 0.5)"),
+    (f"<span style='color:{_hex(COLOURS[EXCLUDED][1])}'>&#8855;</span>", "excluded"),
 )
+SYMBOL_KEY = "&nbsp;&nbsp;".join(f"{a} {b}" for a, b in KEY_ENTRIES)
 HIT_RADIUS = 8.0  # px
 
 
 def weight_levels(weights: np.ndarray, n_levels: int = N_LEVELS) -> np.ndarray:
     """Quantise weights in [0, 1] to integer size levels ``0 .. n_levels-1``.
 
-    Level ``n_levels-1`` is full size (weight 1). The size grows with the square root
-    of the weight, so the symbol *area* follows the weight. NaN counts as full weight.
+    Level ``n_levels-1`` is full size (weight 1). The level grows with the square root
+    of the weight and the diameter linearly with the level from :data:`MIN_SIZE` to
+    :data:`MAX_SIZE`: the size grows with the weight, but the area is not proportional
+    to it (a weight-0 point keeps a visible fifth of the full area). NaN counts as full
+    weight.
     """
     w = np.asarray(weights, float)
     w = np.where(np.isfinite(w), np.clip(w, 0.0, 1.0), 1.0)
@@ -525,6 +530,10 @@ class PlotView(pg.GraphicsLayoutWidget):
                 plot.getAxis(ax).enableAutoSIPrefix(False)
         # the residual plot underneath carries the shared x label
         self.data_plot.getAxis("bottom").showLabel(False)
+        # the key above the data (never over it); it wraps to more lines when narrow
+        self._key_colour = ""     # "" or what the used points' colour shows
+        self._key_extra = []      # further (symbol, words) entries (high leverage)
+        self._key_html = None
         self.data_plot.setTitle(SYMBOL_KEY, size="9pt", color="#333333")
 
         self.band = BandItem()
@@ -547,6 +556,81 @@ class PlotView(pg.GraphicsLayoutWidget):
 
         document.subscribe(self._on_document)
         self._on_document("data")
+
+    # ---------------------------------------------------------------- key
+    def set_key(self, colour: str | None = None, extra=None):
+        """What the key above the plot explains.
+
+        ``colour``: "" (points coloured used / down-weighted) or the words for what
+        the colour of the used points shows now (e.g. "leverage"); ``extra``: a list
+        of further ``(html symbol, words)`` entries. None leaves a part as it is.
+        """
+        if colour is not None:
+            self._key_colour = str(colour)
+        if extra is not None:
+            self._key_extra = list(extra)
+        self._update_key()
+
+    def key_entries(self) -> list[tuple[str, str]]:
+        """The key's entries as ``(html symbol, words)``."""
+        if self._key_colour:
+            lo, hi = (QColor(*c).name() for c in ((250, 240, 205), (100, 10, 70)))
+            entries = [(f"<span style='color:{lo}'>&#9679;</span><span style='color:{hi}'>&#9679;</span>",
+                        f"used, colour = {self._key_colour} (scale at the right)"),
+                       KEY_ENTRIES[2]]
+        else:
+            entries = list(KEY_ENTRIES)
+        return entries + list(self._key_extra)
+
+    def key_text(self) -> str:
+        """The key as plain text (tests, the report)."""
+        import html as _html
+        import re as _re
+
+        return "; ".join(_html.unescape(_re.sub("<[^>]+>", "", b)) for _a, b in self.key_entries())
+
+    def _update_key(self):
+        """Lay the key out in as few lines as fit the plot's width."""
+        from PySide6.QtGui import QFont, QFontMetricsF
+        import html as _html
+        import re as _re
+
+        label = self.data_plot.titleLabel
+        font = QFont(label.item.font())
+        font.setPointSizeF(9.0)
+        fm = QFontMetricsF(font)
+        # the key may take the plot's width less the left axis and the margins
+        room = max(120.0, self.width() - self.data_plot.getAxis("left").width() - 30.0)
+        entries = self.key_entries()
+        avail = room
+        for _attempt in range(6):
+            lines, cur, cur_w = [], [], 0.0
+            gap = fm.horizontalAdvance("    ")
+            for sym, words in entries:
+                plain = _html.unescape(_re.sub("<[^>]+>", "", f"{sym} {words}"))
+                w = fm.horizontalAdvance(plain) + 4
+                if cur and cur_w + gap + w > avail:
+                    lines.append(cur)
+                    cur, cur_w = [], 0.0
+                cur.append(f"{sym} {words}")
+                cur_w += (gap if cur_w else 0.0) + w
+            if cur:
+                lines.append(cur)
+            text = "<br>".join("&nbsp;&nbsp;".join(line) for line in lines)
+            if text != self._key_html:
+                self._key_html = text
+                self.data_plot.setTitle(text, size="9pt", color="#333333")
+            # measured as drawn: narrower again when the drawn text is wider than the room
+            if label.item.boundingRect().width() <= room or len(lines) >= len(entries):
+                break
+            avail *= 0.8
+
+    def resizeEvent(self, ev):
+        # the key first: the layout's minimum width follows it, and the resize below
+        # sizes the layout to the view (a wider minimum would hang out of the view)
+        if getattr(self, "_key_html", 0) != 0:  # (pyqtgraph resizes before __init__ ends)
+            self._update_key()
+        super().resizeEvent(ev)
 
     # ---------------------------------------------------------------- options
     def set_log(self, log_x: bool | None = None, log_y: bool | None = None):
@@ -758,7 +842,13 @@ class PlotView(pg.GraphicsLayoutWidget):
         return True
 
     def on_box(self, vb, rect, modifiers, finished: bool):
-        """Rectangle drag: exclude (Ctrl: restore; Alt: select) the points inside."""
+        """Rectangle drag: exclude (Ctrl: restore; Alt: select) the points inside.
+
+        The points follow the rectangle while it is dragged (one undo step for the
+        drag). When the drag ends with points newly excluded, ``ask_reason`` is asked
+        once for all of them: its answer becomes every one's reason, and cancelling
+        (None) takes the whole drag back, so nothing is excluded.
+        """
         doc = self.document
         inside = self._item_for(vb).inside(rect)
         if modifiers & Qt.AltModifier:
@@ -778,3 +868,27 @@ class PlotView(pg.GraphicsLayoutWidget):
         doc.set_selection(inside, origin="plot")
         if finished:
             self._drag = None
+            new = np.flatnonzero(doc.excluded & ~start)
+            if new.size and self.ask_reason is not None:
+                self._finish_box_reason(token, start, new)
+
+    def _finish_box_reason(self, token, start: np.ndarray, new: np.ndarray):
+        """Ask one reason for the points a box drag excluded (see :meth:`on_box`)."""
+        doc = self.document
+        reason = self.ask_reason(int(new.size))
+        if reason is None:  # cancelled: back to the mask before the drag (the step vanishes)
+            back = np.flatnonzero(doc.excluded != start)
+            if back.size:
+                self.push(MaskCommand(doc, doc.make_mask_change(back, start[back]), drag_token=token))
+            return
+        if not reason:
+            return
+        from .document import MaskChange
+
+        now = [doc.times[int(i)] for i in new]
+        change = MaskChange(indices=new.astype(np.intp), before=np.ones(new.size, bool),
+                            after=np.ones(new.size, bool),
+                            reasons_before=[doc.reasons[int(i)] for i in new],
+                            reasons_after=[str(reason)] * int(new.size),
+                            times_before=list(now), times_after=list(now))
+        self.push(MaskCommand(doc, change, drag_token=token))

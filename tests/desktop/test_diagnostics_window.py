@@ -123,11 +123,14 @@ def test_stars_giants_are_flagged_high_leverage(stars):
     assert pm.data(pm.index(0, 0), Qt.BackgroundRole) is None
     note = stars.diag_note.text()
     assert "High leverage" in note and "11" in note and "robust loss" in note
-    # the plot marks the four giants and says why in its legend
+    # the plot marks the four giants and says why in the key above the plot (a legend
+    # inside the data area covered points)
     xs, ys = ctl._lev_item.getData()
     m = stars.document.measurements
     assert set(zip(xs.tolist(), ys.tolist())) >= {(m.x[i - 1], m.y[i - 1]) for i in (11, 20, 30, 34)}
-    assert "robust" in ctl._legend.items[0][1].text
+    key = stars.plot.key_text()
+    assert "high leverage" in key and "robust" in key
+    assert stars.plot.data_plot.titleLabel.isVisible()
     stars.grab().save(str(stars.qsettings.fileName()) + "-stars.png")
 
 
@@ -139,10 +142,15 @@ def test_colour_by_leverage_and_influence_with_colour_bar(stars):
     assert ctl._colour_item is not None and len(ctl._colour_item.data) == int(used.sum())
     assert ctl._colour_bar is not None
     assert ctl._colour_bar.values == pytest.approx((0.0, float(np.nanmax(d.leverage[used]))))
+    # the key above the plot explains the current colouring, not used/down-weighted
+    assert "colour = leverage" in stars.plot.key_text()
+    assert "down-weighted" not in stars.plot.key_text()
     stars.set_colour_mode("influence")
     assert ctl._colour_bar.values[1] == pytest.approx(float(np.nanmax(d.max_influence[used])))
+    assert "influence" in stars.plot.key_text() and "down-weighted" not in stars.plot.key_text()
     stars.set_colour_mode("none")
     assert ctl._colour_item is None and ctl._colour_bar is None
+    assert "down-weighted" in stars.plot.key_text() and "colour =" not in stars.plot.key_text()
     assert stars.colour_actions["none"].isChecked()
 
 
