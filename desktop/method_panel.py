@@ -8,12 +8,13 @@ standardised residual for the chosen loss, straight from ``fitcore.get_loss``.
 """
 from __future__ import annotations
 
+import html
 from typing import Callable
 
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt
-from PySide6.QtGui import QDoubleValidator
+from PySide6.QtGui import QBrush, QColor
 from PySide6.QtWidgets import (
     QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QGroupBox, QHBoxLayout, QHeaderView,
     QLabel, QLineEdit, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
@@ -23,6 +24,24 @@ from .commands import SettingsCommand
 from .document import Document, Settings
 
 FORMULA_ITEM = "formula..."
+
+#: short texts for the model list (the closed combo box is narrow); the full title and
+#: the internal name (what sessions store) are in each item's tooltip
+MODEL_SHORT = {
+    "line": "Straight line", "line_origin": "Line through origin", "poly2": "Quadratic",
+    "poly3": "Cubic", "poly4": "Quartic", "poly5": "Quintic",
+    "exp_decay": "Exp. decay (time const.)", "exp_decay_rate": "Exp. decay (rate const.)",
+    "exp_rise": "Exp. rise to plateau", "power_law": "Power law",
+    "michaelis_menten": "Michaelis-Menten", "logistic4": "4-parameter logistic",
+    "logistic5": "5-parameter logistic", "arrhenius": "Arrhenius law",
+    "gauss_peak": "Gaussian peak", "lorentz_peak": "Lorentzian peak",
+}
+#: short texts for the loss list (full titles in the tooltips)
+LOSS_SHORT = {"l1": "least absolute (L1)", "general": "general (Barron)",
+              "adaptive": "adaptive (Barron)"}
+OK_COLOUR, WARN_COLOUR, BAD_COLOUR = "#1a7f37", "#b45309", "#b42318"
+#: names that usually mean the variable, when a formula uses them instead of x
+_VARIABLE_LIKE = ("t", "time", "T", "X", "s", "z", "conc", "dose", "temp", "q", "v", "u", "w")
 
 
 def model_param_names(settings: Settings) -> tuple[str, ...]:
@@ -38,6 +57,39 @@ def model_param_names(settings: Settings) -> tuple[str, ...]:
         return tuple(fitcore.get_model(settings.model).param_names)
     except Exception:  # noqa: BLE001 - engine module missing or model unknown
         return ()
+
+
+def model_title(name: str) -> str:
+    """The full title of a built-in model (its name when unknown)."""
+    try:
+        import fitcore
+
+        return fitcore.get_model(name).title or name
+    except Exception:  # noqa: BLE001
+        return name
+
+
+def formula_check(text: str) -> tuple[str, str]:
+    """``(level, message)`` for a formula: level "ok", "warn" (valid but almost surely
+    a mistake: it does not use x) or "bad" (refused)."""
+    try:
+        from fitcore.formula import validate_formula
+
+        ok, msg, names = validate_formula(text)
+    except Exception as err:  # noqa: BLE001 - formula module not there
+        return "bad", f"formulas are not available ({err})"
+    if not ok:
+        return "bad", msg
+    if "does not use x" in msg:
+        guess = next((n for n in _VARIABLE_LIKE if n in names), None)
+        params = ", ".join(names)
+        if guess is not None:
+            head = (f'Warning: "{guess}" is taken as a parameter, and the model does not '
+                    f"depend on x (it is a constant). Write x for the variable.")
+        else:
+            head = "Warning: the model does not depend on x (it is a constant)."
+        return "warn", f"{head} Parameters: {params}."
+    return "ok", msg
 
 
 def _loss_title(name: str) -> str:
@@ -56,13 +108,16 @@ class LossPreview(pg.PlotWidget):
 
     def __init__(self, parent=None):
         super().__init__(parent, background="w")
-        self.setMinimumHeight(150)
-        self.setMaximumHeight(190)
+        self.setMinimumHeight(165)
+        self.setMaximumHeight(205)
         self.setMenuEnabled(False)
         self.setMouseEnabled(False, False)
         self.hideButtons()
         self.getPlotItem().setLabel("bottom", "standardised residual u")
-        self.addLegend(offset=(5, 5), labelTextColor=(30, 30, 30))
+        # the key is the plot's title, above the curves (a legend inside covered them)
+        self.getPlotItem().setTitle("<span style='color:#1f5caa'>&#9472;&#9472;</span> rho (scaled)"
+                                    "&nbsp;&nbsp;<span style='color:#c81e2d'>&#9472;&#9472;</span> weight",
+                                    size="8pt", color="#1e1e1e")
         self.rho_curve = self.plot(pen=pg.mkPen(31, 92, 170, width=2), name="rho (scaled)")
         self.w_curve = self.plot(pen=pg.mkPen(200, 30, 45, width=2), name="weight")
         self.k_lines = [pg.InfiniteLine(angle=90, pen=pg.mkPen(120, 120, 120, style=Qt.DotLine))
@@ -106,6 +161,7 @@ class MethodPanel(QWidget):
         self.document = document
         self.push = push
         self._updating = False
+        self._formula_refused = ""  # message of the last refused formula ("" = none)
 
         lay = QVBoxLayout(self)
         lay.setContentsMargins(4, 4, 4, 4)
@@ -119,8 +175,12 @@ class MethodPanel(QWidget):
         except Exception:  # noqa: BLE001 - models module not there yet
             names = ["line"]
         for n in names:
-            self.model_combo.addItem(n, n)
+            title = model_title(n)
+            self.model_combo.addItem(MODEL_SHORT.get(n, title), n)
+            self.model_combo.setItemData(self.model_combo.count() - 1, f"{title} ({n})", Qt.ToolTipRole)
         self.model_combo.addItem(FORMULA_ITEM, FORMULA_ITEM)
+        self.model_combo.setItemData(self.model_combo.count() - 1,
+                                     "Your own formula in x, typed in the box below", Qt.ToolTipRole)
         form.addRow("Model", self.model_combo)
         self.formula_edit = QLineEdit()
         self.formula_edit.setPlaceholderText("e.g. A*exp(-x/tau) + C")
@@ -141,16 +201,20 @@ class MethodPanel(QWidget):
         except Exception:  # noqa: BLE001
             loss_names = ["l2", "huber"]
         for n in loss_names:
-            self.loss_combo.addItem(_loss_title(n), n)
+            title = _loss_title(n)
+            self.loss_combo.addItem(LOSS_SHORT.get(n, title), n)
+            self.loss_combo.setItemData(self.loss_combo.count() - 1, title, Qt.ToolTipRole)
         form.addRow("Loss", self.loss_combo)
 
         scale_row = QHBoxLayout()
         self.scale_combo = QComboBox()
-        self.scale_combo.addItem("auto (robust estimate)", "auto")
-        self.scale_combo.addItem("fixed value", "fixed")
+        self.scale_combo.addItem("auto", "auto")
+        self.scale_combo.setItemData(0, "Automatic: a robust estimate (normalised MAD of the "
+                                        "residuals, re-estimated with the fit)", Qt.ToolTipRole)
+        self.scale_combo.addItem("fixed", "fixed")
+        self.scale_combo.setItemData(1, "A fixed scale that you type in the box beside", Qt.ToolTipRole)
+        # no validator: a validator swallows "0" silently; the value is checked on Enter
         self.scale_edit = QLineEdit()
-        self.scale_edit.setValidator(QDoubleValidator(1e-300, 1e300, 12))
-        self.scale_edit.setPlaceholderText("scale in y units")
         scale_row.addWidget(self.scale_combo)
         scale_row.addWidget(self.scale_edit)
         form.addRow("Scale", scale_row)
@@ -160,15 +224,25 @@ class MethodPanel(QWidget):
         self.alpha_spin.setSingleStep(0.25)
         self.alpha_spin.setDecimals(3)
         form.addRow("Alpha", self.alpha_spin)
-        for combo in (self.model_combo, self.loss_combo, self.scale_combo):
+        for combo, n in ((self.model_combo, 10), (self.loss_combo, 10), (self.scale_combo, 4)):
             combo.setSizeAdjustPolicy(QComboBox.AdjustToMinimumContentsLengthWithIcon)
-            combo.setMinimumContentsLength(12)
+            combo.setMinimumContentsLength(n)
+        self.model_combo.view().setMinimumWidth(self.model_combo.fontMetrics().horizontalAdvance(
+            "Exp. decay (rate const.)") + 30)
+        #: rejected input (a scale of 0, a start value "abc"): said here, in red
+        self.input_msg = QLabel("")
+        self.input_msg.setWordWrap(True)
+        self.input_msg.setStyleSheet(f"color: {BAD_COLOUR};")
+        self.input_msg.setVisible(False)
+        form.addRow(self.input_msg)
         lay.addWidget(box)
 
-        pbox = QGroupBox("Start values and held parameters")
+        pbox = QGroupBox("Start and held values")  # short: the panel fits a narrow window
         pl = QVBoxLayout(pbox)
         self.param_table = QTableWidget(0, 3)
-        self.param_table.setHorizontalHeaderLabels(["parameter", "start / held value", "hold"])
+        self.param_table.setHorizontalHeaderLabels(["parameter", "start value", "hold"])
+        self.param_table.horizontalHeaderItem(1).setToolTip(
+            "Start value (blank = automatic); with hold ticked, the value the parameter is held at")
         header = self.param_table.horizontalHeader()
         # the value column takes the spare width, so its header is not cut short
         header.setSectionResizeMode(0, QHeaderView.ResizeToContents)
@@ -176,6 +250,7 @@ class MethodPanel(QWidget):
         header.setSectionResizeMode(2, QHeaderView.ResizeToContents)
         self.param_table.verticalHeader().setVisible(False)
         self.param_table.setMaximumHeight(150)
+        self.param_table.setMinimumWidth(120)  # the panel must fit a narrow window
         pl.addWidget(self.param_table)
         hint = QLabel("Blank start = automatic. A held parameter keeps its value in the fit.")
         hint.setWordWrap(True)
@@ -217,59 +292,100 @@ class MethodPanel(QWidget):
     def _on_model_picked(self, _i=None):
         name = self.model_combo.currentData()
         s = self.document.settings
+        self._formula_refused = ""
         if name == FORMULA_ITEM:
+            self._update_formula_box()
             self.formula_edit.setFocus()
             text = self.formula_edit.text().strip()
             if text:
                 self._on_formula_done()
             return
-        self._propose(self._prune(s.with_(model=name, model_kind="builtin")), f"Model: {name}")
+        self._update_formula_box()
+        self._propose(self._prune(s.with_(model=name, model_kind="builtin")),
+                      f"Model: {MODEL_SHORT.get(name, name)}")
 
     def _on_formula_typed(self, text: str):
-        text = text.strip()
-        if not text:
-            self.formula_msg.setText("")
+        if self._updating:
             return
-        try:
-            from fitcore.formula import validate_formula
-
-            ok, msg, _names = validate_formula(text)
-        except Exception as err:  # noqa: BLE001 - formula module not there
-            ok, msg = False, f"formulas are not available ({err})"
-        colour = "#1a7f37" if ok else "#b42318"
-        self.formula_msg.setText(f"<span style='color:{colour}'>{msg}</span>")
+        self._formula_refused = ""
+        self._update_formula_box()
 
     def _on_formula_done(self):
+        if self.model_combo.currentData() != FORMULA_ITEM:
+            return
         text = self.formula_edit.text().strip()
         if not text:
             return
-        try:
-            from fitcore.formula import validate_formula
-
-            ok, _msg, _names = validate_formula(text)
-        except Exception:  # noqa: BLE001
-            ok = False
-        if not ok:
+        level, msg = formula_check(text)
+        if level == "bad":
+            self._formula_refused = msg
+            self._update_formula_box()
             return
+        self._formula_refused = ""
         s = self.document.settings
-        self._propose(self._prune(s.with_(model=text, model_kind="formula")), "Model: formula")
+        self._propose(self._prune(s.with_(model=text, model_kind="formula")),
+                      f"Model: formula {text[:40]}")
+        self._update_formula_box()
+
+    def fitted_model_text(self) -> str:
+        """What the settings' model is, in words (for "the estimates shown are for ...")."""
+        s = self.document.settings
+        if s.model_kind == "formula":
+            return f"the formula {s.model}"
+        return f"{model_title(s.model)} ({s.model})"
+
+    def _update_formula_box(self):
+        """Keep the formula box, its note and the model line in step with the combo and
+        the settings: greyed with no note under a built-in model; a refused formula is
+        marked "not applied" in red with the model the shown estimates belong to."""
+        s = self.document.settings
+        picked_formula = self.model_combo.currentData() == FORMULA_ITEM
+        self.formula_edit.setEnabled(picked_formula)
+        self.formula_msg.setVisible(picked_formula)
+        if not picked_formula:
+            self.formula_msg.setText("")
+            self.model_info.setText(self._model_text(s))
+            return
+        text = self.formula_edit.text().strip()
+        applied = s.model_kind == "formula" and text == s.model
+        shown = self.fitted_model_text()
+        if self._formula_refused:
+            colour = BAD_COLOUR
+            msg = (f"<b>Not applied</b>: {html.escape(self._formula_refused)}. The estimates shown "
+                   f"are for {html.escape(shown)}.")
+        elif not text:
+            colour = WARN_COLOUR
+            msg = f"Type a formula in x. Until then the estimates are for {html.escape(shown)}."
+        else:
+            level, check = formula_check(text)
+            colour = {"ok": OK_COLOUR, "warn": WARN_COLOUR, "bad": BAD_COLOUR}[level]
+            msg = html.escape(check)
+            if not applied:
+                msg += (f" (not applied yet: press Enter; the estimates shown are for "
+                        f"{html.escape(shown)})")
+        self.formula_msg.setText(f"<span style='color:{colour}'>{msg}</span>")
+        self.model_info.setText("" if applied else f"Estimates shown: {shown}")
 
     def _on_loss_picked(self, _i=None):
         name = self.loss_combo.currentData()
         self._propose(self.document.settings.with_(loss=name), f"Loss: {_loss_title(name)}")
 
+    def _say(self, text: str = ""):
+        """Show (or with "" clear) the message about rejected input."""
+        self.input_msg.setText(text)
+        self.input_msg.setVisible(bool(text))
+
     def _on_scale_changed(self):
         s = self.document.settings
         if self.scale_combo.currentData() == "auto":
             self.scale_edit.setEnabled(False)
+            self.scale_edit.setStyleSheet("")
+            self._say()
             self._propose(s.with_(scale="auto"), "Scale: auto")
             return
         self.scale_edit.setEnabled(True)
-        try:
-            v = float(self.scale_edit.text().replace(",", "."))
-        except ValueError:
-            v = 0.0
-        if not (v > 0 and np.isfinite(v)):
+        text = self.scale_edit.text().strip()
+        if not text:  # "fixed" with a blank box: start from the scale of the result shown
             res = self.document.result
             if res is not None and np.isfinite(res.scale) and res.scale > 0:
                 v = float(res.scale)
@@ -277,8 +393,26 @@ class MethodPanel(QWidget):
                 self.scale_edit.setText(f"{v:.6g}")
                 self._updating = False
             else:
+                self._say("Type a fixed scale (a positive number).")
                 return
+        else:
+            try:
+                v = float(text.replace(",", "."))
+            except ValueError:
+                v = float("nan")
+            if not (v > 0 and np.isfinite(v)):
+                self.scale_edit.setStyleSheet(f"border: 2px solid {BAD_COLOUR};")
+                self._say(f'Scale "{text}" not applied: it must be a positive number. '
+                          + self._scale_now())
+                return
+        self.scale_edit.setStyleSheet("")
+        self._say()
         self._propose(s.with_(scale=v), f"Scale: {v:.6g}")
+
+    def _scale_now(self) -> str:
+        s = self.document.settings
+        return ("The scale is still automatic." if s.scale == "auto"
+                else f"The scale is still {float(s.scale):.6g}.")
 
     def _on_alpha_changed(self):
         v = float(self.alpha_spin.value())
@@ -287,26 +421,53 @@ class MethodPanel(QWidget):
     def _on_param_edited(self, _item):
         if self._updating:
             return
-        fixed, p0 = {}, {}
+        fixed, p0, bad = {}, {}, []
         res = self.document.result
-        for r in range(self.param_table.rowCount()):
-            name = self.param_table.item(r, 0).text()
-            txt = (self.param_table.item(r, 1).text() if self.param_table.item(r, 1) else "").strip()
-            held = self.param_table.item(r, 2).checkState() == Qt.Checked
-            val = None
-            if txt:
-                try:
-                    val = float(txt.replace(",", "."))
-                except ValueError:
-                    val = None
-            if held:
-                if val is None and res is not None and name in res.param_names:
-                    val = res[name]
-                if val is not None:
-                    fixed[name] = val
-            elif val is not None:
-                p0[name] = val
-        self._propose(self.document.settings.with_(fixed=fixed, p0=p0), "Held/start values")
+        s = self.document.settings
+        now = dict(s.p0)
+        now.update(dict(s.fixed))
+        self._updating = True
+        try:
+            for r in range(self.param_table.rowCount()):
+                name = self.param_table.item(r, 0).text()
+                cell = self.param_table.item(r, 1)
+                txt = (cell.text() if cell else "").strip()
+                held = self.param_table.item(r, 2).checkState() == Qt.Checked
+                val = None
+                if txt:
+                    try:
+                        val = float(txt.replace(",", "."))
+                    except ValueError:
+                        val = None
+                    if val is None or not np.isfinite(val):
+                        val = None
+                        bad.append((name, txt))
+                        if cell is not None:
+                            cell.setBackground(QBrush(QColor(255, 214, 214)))
+                            cell.setToolTip(f'"{txt}" is not a number: not used')
+                        if name in now:  # an earlier good value stays in force
+                            val = now[name]
+                    elif cell is not None:
+                        cell.setBackground(QBrush())
+                        cell.setToolTip("")
+                if held:
+                    if val is None and res is not None and name in res.param_names:
+                        val = res[name]
+                    if val is not None:
+                        fixed[name] = val
+                elif val is not None:
+                    p0[name] = val
+        finally:
+            self._updating = False
+        self._propose(s.with_(fixed=fixed, p0=p0), "Held/start values")
+        if bad:
+            parts = []
+            for name, txt in bad:
+                kept = f"{now[name]:.10g} is still used" if name in now else "it stays automatic"
+                parts.append(f'start value of {name} "{txt}" is not a number, not used ({kept})')
+            self._say("Not applied: " + "; ".join(parts) + ".")
+        else:
+            self._say()
 
     # ------------------------------------------------------------ follow the document
     def _on_document(self, event, **info):
@@ -315,6 +476,41 @@ class MethodPanel(QWidget):
         elif event == "result" and self.document.settings.loss == "adaptive":
             res = self.document.result
             self.preview.show_loss("adaptive", res.alpha if res is not None else None)
+            self._show_alpha()
+
+    def _show_alpha(self):
+        """The Alpha box: editable for the general loss; for the adaptive loss the fitted
+        alpha (greyed); blank ("not used") for the other losses."""
+        s = self.document.settings
+        res = self.document.result
+        spin = self.alpha_spin
+        was = self._updating
+        self._updating = True
+        try:
+            if s.loss == "general":
+                spin.setSpecialValueText("")
+                spin.setValue(float(s.alpha))
+                spin.setToolTip("Shape of the general loss: 2 = least squares, 1 = pseudo-Huber, "
+                                "0 = Cauchy, -2 = Geman-McClure, lower = closer to Welsch")
+            elif s.loss == "adaptive":
+                fitted = (res.alpha if res is not None and not self.document.stale
+                          and getattr(res, "loss", "") == "adaptive" else None)
+                if fitted is not None and np.isfinite(fitted):
+                    spin.setSpecialValueText("")
+                    spin.setValue(float(fitted))
+                    spin.setToolTip("The adaptive loss fits alpha: this is the fitted value "
+                                    "(see alpha in the estimates)")
+                else:
+                    spin.setSpecialValueText("fitted")
+                    spin.setValue(spin.minimum())
+                    spin.setToolTip("The adaptive loss fits alpha; the value is in the estimates")
+            else:
+                spin.setSpecialValueText("not used")
+                spin.setValue(spin.minimum())
+                spin.setToolTip("Alpha is only used by the general and the adaptive loss")
+            spin.setEnabled(s.loss == "general")
+        finally:
+            self._updating = was
 
     def _sync_from_document(self):
         s = self.document.settings
@@ -328,7 +524,8 @@ class MethodPanel(QWidget):
                 i = self.model_combo.findData(s.model)
                 if i >= 0:
                     self.model_combo.setCurrentIndex(i)
-            self.model_info.setText(self._model_text(s))
+            self._formula_refused = ""
+            self._update_formula_box()
             i = self.loss_combo.findData(s.loss)
             if i >= 0:
                 self.loss_combo.setCurrentIndex(i)
@@ -339,8 +536,10 @@ class MethodPanel(QWidget):
                 self.scale_combo.setCurrentIndex(1)
                 self.scale_edit.setEnabled(True)
                 self.scale_edit.setText(f"{float(s.scale):.6g}")
-            self.alpha_spin.setValue(float(s.alpha))
-            self.alpha_spin.setEnabled(s.loss == "general")
+            self.scale_edit.setStyleSheet("")
+            self._say()
+            self._scale_wording()
+            self._show_alpha()
             names = model_param_names(s)
             fixed, p0 = dict(s.fixed), dict(s.p0)
             self.param_table.setRowCount(len(names))
@@ -359,6 +558,21 @@ class MethodPanel(QWidget):
             self.preview.show_loss(s.loss, alpha)
         finally:
             self._updating = False
+
+    def _scale_wording(self):
+        """Say what unit a fixed scale is in: y units, or multiples of sigma when the
+        data carry a sigma per point (residuals are divided by sigma first)."""
+        m = self.document.measurements
+        if getattr(m, "sigma", None) is not None:
+            self.scale_edit.setPlaceholderText("multiples of sigma")
+            tip = ("Fixed scale in multiples of sigma: the residuals are divided by each "
+                   "point's sigma before the loss sees them")
+        else:
+            unit = getattr(m, "y_unit", "") or "units of y"
+            self.scale_edit.setPlaceholderText(f"in {unit}")
+            tip = f"Fixed scale of the residuals, in {unit}"
+        self.scale_edit.setToolTip(tip)
+        self.scale_combo.setToolTip(tip)
 
     @staticmethod
     def _model_text(s: Settings) -> str:

@@ -295,6 +295,12 @@ def test_paste_table_from_clipboard(win):
 
 def test_formula_field_validates_live_and_sets_the_model(loaded):
     panel = loaded.method_panel
+    # the box is greyed while a built-in model is chosen; picking "formula..." opens it
+    assert not panel.formula_edit.isEnabled()
+    i = panel.model_combo.findData("formula...")
+    panel.model_combo.setCurrentIndex(i)
+    panel.model_combo.activated.emit(i)
+    assert panel.formula_edit.isEnabled()
     panel.formula_edit.setText("a*exp(-x/")
     assert "#b42318" in panel.formula_msg.text()  # refused, shown in red
     panel.formula_edit.setText("a + b*x + c*x**2")
