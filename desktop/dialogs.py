@@ -5,6 +5,7 @@ Error and question boxes go through module functions (:func:`error_box`,
 """
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 from PySide6.QtWidgets import (
@@ -119,20 +120,71 @@ def sample_sets() -> list[Path]:
     return sorted(p for p in SAMPLE_DIR.iterdir() if p.suffix.lower() in DATA_SUFFIXES)
 
 
-def sample_description(path: Path) -> str:
-    """First comment/title line of a sample text file (its one-line story), if any."""
+def counted(n: int, word: str, plural: str | None = None) -> str:
+    """``"1 point"``, ``"2 points"``: a count with its noun in the right number."""
+    n = int(n)
+    return f"{n} {word if n == 1 else (plural or word + 's')}"
+
+
+def _first_sentence(text: str, wide: int = 90) -> str:
+    """The first sentence of a README cell; a long one up to its colon (one list line)."""
+    text = re.sub(r"\*\*|`", "", text).strip()
+    m = re.match(r"(.+?[.!?])(\s|$)", text)
+    s = (m.group(1) if m else text).strip()
+    if len(s) > wide and ": " in s:
+        s = s.split(": ", 1)[0] + "."
+    return s
+
+
+def readme_descriptions(readme: Path | None = None) -> dict[str, str]:
+    """File name -> one-line story, from the table in ``sample_sets/README.md``.
+
+    The README describes every set whatever its format (a spreadsheet or a UTF-16 text
+    file has no first line that could be read as text); the first sentence of the
+    "story" column is the description.
+    """
+    readme = readme or SAMPLE_DIR / "README.md"
     try:
-        with open(path, encoding="utf-8", errors="replace") as fh:
-            for _ in range(5):
-                line = fh.readline()
-                if not line:
-                    break
-                s = line.strip().lstrip("#").strip()
-                if s and not any(ch.isdigit() for ch in s[:1]) and ("," not in s or line.lstrip().startswith("#")):
-                    return s
+        text = readme.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return {}
+    out = {}
+    for line in text.splitlines():
+        cells = [c.strip() for c in line.strip().strip("|").split("|")]
+        if len(cells) < 3:
+            continue
+        name = cells[0].strip("`").strip()
+        if Path(name).suffix.lower() in DATA_SUFFIXES and cells[2]:
+            out[name] = _first_sentence(cells[2])
+    return out
+
+
+def _text_title(path: Path) -> str:
+    """First title or comment line of a UTF-8 text file ("" for anything else)."""
+    if path.suffix.lower() not in (".csv", ".tsv", ".txt"):
+        return ""
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read(4096)
     except OSError:
-        pass
+        return ""
+    if b"\x00" in raw:  # UTF-16 or binary: not plain UTF-8 text
+        return ""
+    text = raw.decode("utf-8-sig", errors="replace")
+    for line in text.splitlines()[:5]:
+        s = line.strip().lstrip("#").strip()
+        if "\ufffd" in s:
+            return ""
+        if s and not s[:1].isdigit() and ("," not in s or line.lstrip().startswith("#")):
+            return s
     return ""
+
+
+def sample_description(path: Path) -> str:
+    """The one-line story of a sample set: from the sets' README, else the file's own
+    title line (plain UTF-8 text files only), else ""."""
+    path = Path(path)
+    return readme_descriptions(path.parent / "README.md").get(path.name) or _text_title(path)
 
 
 class SamplePicker(QDialog):
