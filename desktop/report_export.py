@@ -176,7 +176,8 @@ def method_statement(res, source: str = "", y_unit: str = "", level: float = LEV
         model = f"{model}, {m.formula}"
     n_total = len(res.x)
     where = f" in {os.path.basename(source)}" if source else ""
-    parts = [f"The model ({model}) was fitted to {res.n_used} of the {n_total} points{where} "
+    parts = [f"The model ({model}) was fitted to {res.n_used} of the "
+             f"{_plural(n_total, 'point')}{where} "
              f"by minimising {_loss_words(res)}."]
     if res.sigma is not None and res.sigma_mode != "none":
         parts.append("Each residual was divided by the standard uncertainty given for its y "
@@ -480,9 +481,21 @@ class ReportExporter:
         ``"default"``: plain text plus the same estimates as HTML, in one clipboard
         item. Returns the plain text placed on the clipboard ("" when nothing).
         """
-        res = self.document.result
+        runner = getattr(self.window, "runner", None)
+        if runner is not None:
+            runner.wait(30000)
+        doc = self.document
+        res = doc.result
         if res is None:
             self._status("No estimates to copy yet.")
+            return ""
+        if doc.stale or doc.result_generation != doc.generation:
+            # a copied text travels without the window's stale mark: refuse it
+            why = (f"the last fit failed ({doc.fit_message})" if doc.fit_failed and doc.fit_message
+                   else "they do not belong to the current inputs")
+            self._status("Not copied: the estimates on screen are stale. Fix the inputs "
+                         "(method, start values, exclusions) or undo (Ctrl+Z), then copy "
+                         f"again. Why stale: {why}.", 20000)
             return ""
         mime = QMimeData()
         if key in ("default", "html"):
@@ -498,8 +511,7 @@ class ReportExporter:
             mime.setText(text)
         _guard_clipboard_at_exit()
         QGuiApplication.clipboard().setMimeData(mime)
-        note = " (stale: from earlier settings)" if self.document.stale else ""
-        self._status(f"Estimates copied to the clipboard{note}.")
+        self._status("Estimates copied to the clipboard.")
         return text
 
     def add_copy_menu(self, menu):
@@ -643,7 +655,8 @@ class ReportExporter:
             "</style></head><body>",
             f"<h1>Fit report: {_h(os.path.basename(src))}</h1>",
             '<table class="meta" cellpadding="1">',
-            f"<tr><td><b>Data</b></td><td>{_h(src)} ({m.n} points; x = {_h(m.label('x'))}, "
+            f"<tr><td><b>Data</b></td><td>{_h(src)} ({_plural(m.n, 'point')}; "
+            f"x = {_h(m.label('x'))}, "
             f"y = {_h(m.label('y'))}"
             + (f", standard uncertainty of y = {_h(m.sigma_name)}" if m.sigma is not None else "")
             + ")</td></tr>",
@@ -653,7 +666,14 @@ class ReportExporter:
         if session_path:
             out.append(f"<tr><td><b>Session</b></td><td>{_h(session_path)}</td></tr>")
         out += [f"<tr><td><b>Written</b></td><td>{_h(now)} by Ballast "
-                f"{_h(fitcore.__version__)}</td></tr>", "</table>",
+                f"{_h(fitcore.__version__)}</td></tr>", "</table>"]
+        if res is not doc.result or doc.stale or doc.result_generation != doc.generation:
+            # the export actions refuse such a result; a report built directly says so
+            out.append('<p class="caution"><b>NOT CURRENT (STALE).</b> These estimates do not '
+                       "belong to the data, exclusions and method now in the window"
+                       + (f" (the last fit failed: {_h(doc.fit_message)})" if doc.fit_failed else "")
+                       + ".</p>")
+        out += [
                 f'<p class="caution"><b>Caution.</b> {_h(CAUTION)}</p>']
 
         out += ["<h2>Plot</h2>", "<p>" + img("plot", "data, fitted curve and band") + "</p>",
@@ -743,7 +763,8 @@ class ReportExporter:
             nf = int(getattr(b, "n_failed", 0) or 0)
             out += ["<h2>Bootstrap intervals</h2>",
                     f"<p>{_h(text)}{_h(seed)}."
-                    + (f" {nf} resamples failed to fit and were left out." if nf else "")
+                    + (f" {_plural(nf, 'resample')} failed to fit and "
+                       f"{'was' if nf == 1 else 'were'} left out." if nf else "")
                     + f" Analytic intervals: {_h(str(res.covariance_recipe))}, Student t.</p>",
                     '<table border="1" cellspacing="0" cellpadding="3">',
                     f"<tr><th>parameter</th><th>estimate</th><th>analytic {pct} interval</th>"
