@@ -210,7 +210,8 @@ class BootstrapDialog(QDialog):
         self._fill()
         nf = int(getattr(b, "n_failed", 0) or 0)
         self.status.setText(f"Done in {self.job.seconds:.1f} s." +
-                            (f" {nf} resamples failed to fit and were left out." if nf else ""))
+                            (f" {nf} resample{'' if nf == 1 else 's'} failed to fit and "
+                             f"{'was' if nf == 1 else 'were'} left out." if nf else ""))
         self.done.emit(self.record)
 
     def _fill(self):

@@ -51,7 +51,7 @@ class MaskCommand(QUndoCommand):
         elif n_re and not n_ex:
             self.setText(_points_text("Restore", n_re))
         else:
-            self.setText(f"Exclude {n_ex}, restore {n_re} points")
+            self.setText(f"Exclude {n_ex}, restore {n_re} point" + ("" if n_re == 1 else "s"))
 
     def id(self) -> int:  # noqa: A003 - Qt's name
         return DRAG_ID if self.drag_token is not None else -1

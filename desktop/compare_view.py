@@ -379,7 +379,7 @@ class CompareView(QWidget):
         self.progress.setRange(0, 0)  # busy until the first progress report
         self.run_button.setEnabled(False)
         self.cancel_button.setEnabled(True)
-        self.status.setText(f"Fitting {len(losses)} losses...")
+        self.status.setText(f"Fitting {len(losses)} loss{'' if len(losses) == 1 else 'es'}...")
         self.job.start(lambda progress, cancel: run_comparison(req, progress, cancel))
         return True
 
@@ -428,7 +428,8 @@ class CompareView(QWidget):
             self.adaptive.clear(f"No adaptive reading: {reading_err}" if reading_err else
                                 "No adaptive reading.")
         errs = getattr(cmp, "errors", {}) or {}
-        msg = f"Compared {len(cmp.results)} losses in {self.job.seconds:.2f} s."
+        nl = len(cmp.results)
+        msg = f"Compared {nl} loss{'' if nl == 1 else 'es'} in {self.job.seconds:.2f} s."
         if errs:
             msg += " Failed: " + "; ".join(f"{k}: {v}" for k, v in errs.items())
         self.status.setText(msg)
