@@ -29,6 +29,20 @@ from .worker import FitRunner
 FILE_FILTER = ("Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;Ballast sessions (*.ballast);;"
                "All files (*)")
 MAX_RECENT = 8
+#: points a new data set's method is tried on before the data replace the work
+TRIAL_POINTS = 2000
+
+
+def model_title(settings: Settings) -> str:
+    """A model's name for messages: the built-in title, or the formula."""
+    if settings.model_kind == "formula":
+        return f"formula {settings.model}"
+    try:
+        import fitcore
+
+        return fitcore.get_model(settings.model).title or settings.model
+    except (ValueError, KeyError, TypeError):
+        return settings.model
 
 
 class MainWindow(QMainWindow):
@@ -48,6 +62,7 @@ class MainWindow(QMainWindow):
         self.document = Document()
         self.undo_stack = QUndoStack(self)
         self.ask_reasons = False
+        self._load_note = None  # (generation, note on the method) of the last data opened
 
         self.plot = PlotView(self.document, self.push, ask_reason=self._ask_reason)
         self.points_model = PointsModel(self.document, self.push, self)
@@ -100,6 +115,9 @@ class MainWindow(QMainWindow):
         self._syncing_selection = False
         self._restore_state()
         self._build_analysis()
+        from . import pane_layout
+
+        pane_layout.install(self)  # pane minimum widths that fit 1000 px, panes sized to fit
 
     # ------------------------------------------------------------------ menus
     def _action(self, menu, text, slot, shortcut=None, checkable=False, checked=False, tip=""):
@@ -257,9 +275,15 @@ class MainWindow(QMainWindow):
         return dlg.choice() if dlg.exec() else None  # safe: Qt dialog event loop
 
     def open_path(self, path, columns=None) -> bool:
-        """Read a file and show it. On any problem an error box; the data stay as they were."""
+        """Read a file and show it. On any problem an error box; the data stay as they were.
+
+        Unsaved changes on screen are offered for saving first (Save / Discard / Cancel;
+        see :meth:`SessionManager.confirm_replace`); Cancel changes nothing.
+        """
         import fitcore
 
+        if not self.sessions.confirm_replace(os.path.basename(str(path))):
+            return False
         if str(path).lower().endswith(".ballast"):
             return self.sessions.open_session(path)
         try:
@@ -269,7 +293,7 @@ class MainWindow(QMainWindow):
             return False
         suggested = dialogs.sample_method(path)
         settings = Settings(**suggested) if suggested else None
-        if self._load_table(table, columns, settings):
+        if self._load_table(table, columns, settings, name=os.path.basename(str(path))):
             view = dialogs.sample_view(path)
             if view is not None:  # a sample set opens with the axes it is meant to be seen on
                 self.logx_action.setChecked(view["log_x"])
@@ -305,6 +329,8 @@ class MainWindow(QMainWindow):
                 if parts else "")
 
     def paste_table(self):
+        if not self.sessions.confirm_replace("the pasted table"):
+            return False
         text = QGuiApplication.clipboard().text()
         if not text.strip():
             dialogs.error_box(self, "Nothing to paste", "The clipboard holds no text. Copy a block "
@@ -319,7 +345,13 @@ class MainWindow(QMainWindow):
             return False
         return self._load_table(table, None)
 
-    def _load_table(self, table, columns, settings: Settings | None = None) -> bool:
+    def _load_table(self, table, columns, settings: Settings | None = None, name: str = "") -> bool:
+        """Show a table's columns as the new data, with a method that can fit them.
+
+        ``settings``: a method suggested for these data (sample sets); otherwise the
+        method on screen is kept (see :meth:`method_for`). Data no method can fit are
+        refused and the work on screen stays as it was.
+        """
         try:
             numeric = table.numeric_columns()
             if columns is None and len(numeric) > 2:
@@ -333,16 +365,67 @@ class MainWindow(QMainWindow):
             m = Measurements(sel.x, sel.y, sel.sigma, x_name=sel.x_name, y_name=sel.y_name,
                              sigma_name=sel.sigma_name or "", x_unit=sel.x_unit, y_unit=sel.y_unit,
                              source=sel.source, notes=sel.notes)
+            settings, method_note = self.method_for(m, settings)
         except (ValueError, KeyError) as err:
-            dialogs.error_box(self, "Cannot use this table", str(err))
+            what = f"{name}: " if name else ""
+            keep = " The data on screen stay as they were." if self.document.has_data else ""
+            dialogs.error_box(self, "Cannot use this table", f"{what}{err}{keep}")
             return False
         self.undo_stack.clear()  # a new data set starts a new history
+        self._load_note = None
         self.document.apply_measurements(m, settings=settings)
         name = os.path.basename(m.source) if m.source != "clipboard" else "pasted table"
         self.setWindowTitle(f"Ballast - {name}")
         note = "; ".join(m.notes)
-        self.statusBar().showMessage(f"{m.n} points from {name}" + (f". {note}" if note else ""), 15000)
+        self._load_note = (self.document.generation, method_note)
+        self.statusBar().showMessage(
+            f"{dialogs.counted(m.n, 'point')} from {name}" + (f". {note}" if note else "")
+            + (f". {method_note}" if method_note else ""), 20000 if method_note else 15000)
         return True
+
+    def method_for(self, m: Measurements, suggested: Settings | None = None):
+        """``(settings, note)``: the method new data ``m`` open with, and what to tell.
+
+        The rule: a method suggested for the data (a sample set) is used; otherwise the
+        method on screen is kept (the same kind of data every week needs the same
+        model), and when there were data before, the note says so. A method that cannot
+        fit the new data sensibly (the fit refuses the data, does not converge, or gives
+        non-finite estimates; tried on at most 2000 evenly spaced points) gives way to
+        a straight line with the same loss, automatic scale and no held or start values,
+        and the note says why. When not even the line fits, ``ValueError``: the data
+        are refused.
+        """
+        from .worker import run_fit
+
+        doc = self.document
+        current = doc.settings
+        if suggested is not None:
+            first, what = suggested, "the suggested model"
+            note = ""
+        else:
+            first, what = current, "the previous model"
+            note = (f"Model kept from the previous data: {model_title(current)}; choose "
+                    "another in Method." if doc.has_data else "")
+        line = Settings(model="line", loss=first.loss, alpha=first.alpha)
+        idx = (np.unique(np.linspace(0, m.n - 1, TRIAL_POINTS).round().astype(np.intp))
+               if m.n > TRIAL_POINTS else slice(None))
+        problems = []
+        for s in ([first] if first == line else [first, line]):
+            req = {"model": s.model, "x": m.x[idx], "y": m.y[idx],
+                   "sigma": None if m.sigma is None else m.sigma[idx],
+                   "excluded": np.zeros(m.x[idx].size, bool), "kwargs": s.fit_kwargs()}
+            res, msg = run_fit(req)
+            if res is not None and not (res.converged and np.all(np.isfinite(res.values))):
+                msg = res.message if not res.converged else "the estimates are not finite"
+            if msg is None:
+                if s is line and first is not line:
+                    note = (f"Switched to a straight line: {what}, {model_title(first)}, "
+                            f"cannot fit these data ({problems[0].rstrip('.')}). Choose another "
+                            "model in Method.")
+                return s, note
+            problems.append(msg)
+        raise ValueError(f"{dialogs.counted(m.n, 'point')} that cannot be fitted, not even by a "
+                         f"straight line ({problems[-1].rstrip('.')}).")
 
     def load_measurements(self, m: Measurements, settings: Settings | None = None):
         """Show measurements built in code (scripts, benchmarks, tests)."""
@@ -380,8 +463,12 @@ class MainWindow(QMainWindow):
                                              "(the previous result is kept, marked stale)", 15000)
             elif res is not None:
                 note = self.log_axis_note()
-                self.statusBar().showMessage(f"Fitted {res.n_used} points ({res.loss})." +
-                                             (f" {note}" if note else ""), 15000 if note else 4000)
+                gen, method_note = self._load_note or (None, "")
+                if method_note and gen == self.document.result_generation:
+                    note = f"{method_note} {note}".strip()  # still news: say it again
+                self.statusBar().showMessage(f"Fitted {dialogs.counted(res.n_used, 'point')} "
+                                             f"({res.loss})." + (f" {note}" if note else ""),
+                                             15000 if note else 4000)
 
     def _select_rows(self, rows):
         sm = self.table.selectionModel()

@@ -14,7 +14,18 @@ method, the exclusion record (reason and time per point) and the last result.
 * at start (:meth:`SessionManager.offer_recovery`, called by the entry point) offers
   to restore work that a crash left behind;
 * after opening a session, refits and checks that the estimates equal the stored
-  ones bit for bit, and says so if they do not (e.g. a session from another version).
+  ones bit for bit, and says so if they do not (e.g. a session from another version);
+* before the work on screen is replaced (another file, a pasted table, a session),
+  asks whether to save it when it holds unsaved changes (:meth:`confirm_replace`,
+  the same question as at close).
+
+The window adds one optional top-level object to the session JSON, ``"view"``: how
+the work was looked at (``{"log_x": false, "log_y": true, "colour_by": "leverage",
+"diagnostics": true}``). :mod:`fitcore.session` ignores fields it does not know, so
+the format version stays 1: older Ballast versions read such a file (without the
+view) and a file without ``"view"`` opens here with the sample set's own view, or the
+axes as they are. ``"saved_as"`` holds the absolute path the session was saved to
+(for a recovery file: the session the work belongs to; "" for work never saved).
 
 Questions to the user go through module functions (:func:`ask_restore`,
 :func:`ask_unsaved`) so tests can replace them and no modal dialog blocks a test.
@@ -22,6 +33,7 @@ A session that cannot be read leaves the current work exactly as it was.
 """
 from __future__ import annotations
 
+import json
 import os
 from pathlib import Path
 
@@ -56,6 +68,11 @@ def ask_unsaved(parent, text: str) -> str:
                              QMessageBox.Save | QMessageBox.Discard | QMessageBox.Cancel,
                              QMessageBox.Save)
     return {QMessageBox.Save: "save", QMessageBox.Discard: "discard"}.get(r, "cancel")
+
+
+#: the view fields a session keeps, with their types
+VIEW_FIELDS = {"log_x": bool, "log_y": bool, "colour_by": str, "diagnostics": bool}
+COLOUR_MODES = ("none", "leverage", "influence")
 
 
 def ask_save_path(parent, start: str) -> str:
@@ -172,6 +189,94 @@ def apply_session(doc, session) -> None:
         doc.apply_mask_change(change)
 
 
+# ============================================================================ view
+def window_view(window) -> dict:
+    """The window's view of the work (what a reopened session shows again)."""
+    view = {}
+    plot = getattr(window, "plot", None)
+    if plot is not None:
+        view["log_x"] = bool(plot.log_x)
+        view["log_y"] = bool(plot.log_y)
+    diag = getattr(window, "diagnostics", None)
+    if diag is not None:
+        view["colour_by"] = str(diag.colour_mode)
+        view["diagnostics"] = bool(diag.enabled)
+    return view
+
+
+def clean_view(raw) -> dict:
+    """The known, well-typed fields of a stored view (anything else is ignored)."""
+    if not isinstance(raw, dict):
+        return {}
+    out = {k: v for k, v in raw.items() if k in VIEW_FIELDS and isinstance(v, VIEW_FIELDS[k])}
+    if out.get("colour_by") not in (None, *COLOUR_MODES):
+        out.pop("colour_by")
+    return out
+
+
+def apply_view(window, view: dict) -> None:
+    """Show the work as ``view`` says (missing fields leave that part as it is)."""
+    for key, name in (("log_x", "logx_action"), ("log_y", "logy_action")):
+        act = getattr(window, name, None)
+        if key in view and act is not None:
+            act.setChecked(bool(view[key]))
+    if "diagnostics" in view and getattr(window, "diag_action", None) is not None:
+        window.diag_action.setChecked(bool(view["diagnostics"]))
+    if "colour_by" in view and hasattr(window, "set_colour_mode"):
+        window.set_colour_mode(view["colour_by"])
+
+
+def session_json(session, view: dict | None = None) -> str:
+    """The session's JSON text (:func:`fitcore.session.session_to_json`) with the
+    window's ``"view"`` object added at the top level."""
+    from fitcore.session import session_to_json
+
+    text = session_to_json(session)
+    if not view:
+        return text
+    text = text.rstrip()
+    return text[:-1] + ',"view":' + json.dumps(view, separators=(",", ":")) + "}"
+
+
+def write_session(path, session, view: dict | None = None) -> Path:
+    """Write a session with its view atomically (temporary file, fsync, rename)."""
+    from fitcore.session import SessionError, _atomic_write
+
+    path = Path(path)
+    data = session_json(session, view).encode("utf-8")
+    try:
+        _atomic_write(path, data)
+    except OSError as exc:
+        raise SessionError(f"could not save the session to {path}: {exc.strerror or exc}") \
+            from None
+    return path
+
+
+def write_recovery_with_view(session, folder, for_path=None, view: dict | None = None) -> Path:
+    """:func:`fitcore.session.write_recovery`, keeping the view too."""
+    from fitcore.session import SessionError, recovery_path
+
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise SessionError(f"could not create the recovery folder {folder}: "
+                           f"{exc.strerror or exc}") from None
+    session.saved_as = "" if for_path is None else str(Path(for_path).expanduser().absolute())
+    return write_session(recovery_path(for_path, folder), session, view)
+
+
+def read_view(path) -> dict | None:
+    """The ``"view"`` stored in a session file, or None when it has none (older files)."""
+    try:
+        doc = json.loads(Path(path).read_bytes().decode("utf-8-sig"))
+    except (OSError, ValueError, RecursionError):
+        return None
+    if not isinstance(doc, dict) or "view" not in doc:
+        return None
+    return clean_view(doc["view"])
+
+
 # ============================================================================ manager
 class SessionManager(QObject):
     """Session files and autosave for one main window.
@@ -192,9 +297,14 @@ class SessionManager(QObject):
         self.document = window.document
         self.recovery_dir = Path(recovery_dir) if recovery_dir else default_recovery_dir(qsettings)
         self.path: str | None = None  # the session file the work belongs to
-        self.dirty = False
-        #: True in the program (entry point): ask before closing with unsaved work
+        self.dirty = False  # not saved as a session (autosave writes a recovery file)
+        #: changes made since the data were loaded, opened or saved (what a replace or a
+        #: close would lose); a freshly opened file holds none
+        self.modified = False
+        #: True in the program (entry point): ask before closing with unsaved work or
+        #: replacing it with other data
         self.interactive = False
+        self._forget_recovery = False  # the user chose to discard the work on screen
         self.source_sha256 = ""
         self.last_recovery: Path | None = None
         self.last_check: bool | None = None  # did the reopened session reproduce?
@@ -214,8 +324,14 @@ class SessionManager(QObject):
         if event == "selection":
             return
         if event == "data" and not self._applying:
+            if self._forget_recovery:  # the replaced work was discarded on purpose
+                self.discard_recovery()
+                self._forget_recovery = False
             self.path = None  # new data: new, unsaved work
+            self.modified = False
             self.source_sha256 = self._hash_source(self.document.measurements.source)
+        elif event in ("mask", "reasons", "settings") and not self._applying:
+            self.modified = True
         if event == "result":
             self._check_reproduced()
         elif not self._applying:
@@ -237,6 +353,37 @@ class SessionManager(QObject):
     def _title(self):
         if self.path:
             self.window.setWindowTitle(f"Ballast - {os.path.basename(self.path)}")
+
+    def has_unsaved_work(self) -> bool:
+        """True when replacing or closing would lose changes (exclusions, reasons,
+        method) that are not saved in a session."""
+        return bool(self.modified and self.dirty and self.document.has_data)
+
+    def _ask_save(self, question: str) -> bool:
+        """Save / Discard / Cancel for unsaved work; True when it is safe to go on."""
+        if not (self.interactive and self.has_unsaved_work()):
+            return True
+        answer = ask_unsaved(self.window, question)
+        if answer == "cancel":
+            return False
+        if answer == "save":
+            return self.save()
+        return True
+
+    def confirm_replace(self, new: str = "") -> bool:
+        """Before other data replace the work: ask to save unsaved changes.
+
+        True when the caller may go on (saved, discarded, or nothing to lose); False
+        when the user cancelled (or the save did not happen): nothing is changed.
+        """
+        name = os.path.basename(self.path) if self.path else "this work"
+        what = f"opening {new}" if new else "replacing the data"
+        n_ex = int(self.document.excluded.sum()) if self.document.has_data else 0
+        lost = (f" (the exclusion record holds {dialogs.counted(n_ex, 'point')})" if n_ex else "")
+        ok = self._ask_save(f"Save the changes to {name} as a session before {what}? "
+                            f"Otherwise the changes{lost} are lost.")
+        self._forget_recovery = ok and self.interactive and self.has_unsaved_work()
+        return ok
 
     def current_session(self):
         """The work as a :class:`fitcore.session.Session` (waits for a pending fit)."""
@@ -269,7 +416,7 @@ class SessionManager(QObject):
 
     def save_to(self, path) -> bool:
         """Write the session to ``path`` atomically; a failure says why, loses nothing."""
-        from fitcore.session import SessionError, discard_recovery, recovery_path, save_session
+        from fitcore.session import SessionError, discard_recovery, recovery_path
 
         if not self.document.has_data:
             dialogs.error_box(self.window, "Nothing to save", "Open measurements first.")
@@ -282,13 +429,16 @@ class SessionManager(QObject):
                               "the data it was made from. Choose another name.")
             return False
         try:
-            save_session(path, self.current_session())
+            session = self.current_session()
+            session.saved_as = path
+            write_session(path, session, window_view(self.window))
         except (SessionError, OSError) as err:
             dialogs.error_box(self.window, "Cannot save the session", str(err))
             return False
         old = self.path
         self.path = path
         self.dirty = False
+        self.modified = False
         self._timer.stop()
         for p in {recovery_path(old, self.recovery_dir), recovery_path(None, self.recovery_dir),
                   recovery_path(path, self.recovery_dir)}:
@@ -304,7 +454,9 @@ class SessionManager(QObject):
     def open_dialog(self) -> bool:
         start = os.path.dirname(self.path) if self.path else str(Path.home())
         path = ask_open_path(self.window, start)
-        return self.open_session(path) if path else False
+        if not path or not self.confirm_replace(os.path.basename(path)):
+            return False
+        return self.open_session(path)
 
     def open_session(self, path) -> bool:
         """Open a session file. A bad file: a clear message, the current work stays."""
@@ -315,10 +467,11 @@ class SessionManager(QObject):
         except SessionError as err:
             dialogs.error_box(self.window, "Cannot open the session", str(err))
             return False
-        if not self._show(session, f"{os.path.basename(str(path))}"):
+        if not self._show(session, f"{os.path.basename(str(path))}", read_view(path)):
             return False
         self.path = str(Path(path).expanduser().absolute())
         self.dirty = False
+        self.modified = False
         self._timer.stop()
         self._title()
         add = getattr(self.window, "_add_recent", None)
@@ -326,7 +479,7 @@ class SessionManager(QObject):
             add(self.path)
         return True
 
-    def _show(self, session, name: str) -> bool:
+    def _show(self, session, name: str, view: dict | None = None) -> bool:
         try:
             session_settings(session)
             session_measurements(session)
@@ -347,12 +500,20 @@ class SessionManager(QObject):
             if runner is not None:
                 runner.enabled = was
         self.source_sha256 = session.source_sha256
+        if self._forget_recovery:  # the replaced work was discarded on purpose
+            self.discard_recovery()
+            self._forget_recovery = False
         panel = getattr(win, "method_panel", None)
         if panel is not None:
             panel._sync_from_document()
+        if view is None:  # a session without a stored view: a sample set's own view
+            view = dialogs.sample_view(session.source_file) if session.source_file else None
+        if view:
+            apply_view(win, view)
         self._verify = (session, self.document.generation) if session.result else None
         self.last_check = None
-        msg = f"Opened {name}: {session.n_points} points, {len(session.exclusions)} excluded"
+        msg = (f"Opened {name}: {dialogs.counted(session.n_points, 'point')}, "
+               f"{len(session.exclusions)} excluded")
         if session.source_file:
             msg += f" (data from {os.path.basename(session.source_file)})"
         self._status(msg + ".")
@@ -390,13 +551,15 @@ class SessionManager(QObject):
     # ------------------------------------------------------------------ recovery
     def autosave(self):
         """Write the recovery file now (normally called by the debounce timer)."""
-        from fitcore.session import SessionError, write_recovery
+        from fitcore.session import SessionError
 
         if not self.document.has_data or not self.dirty:
             return None
         try:
             session = document_to_session(self.document, source_sha256=self.source_sha256)
-            self.last_recovery = write_recovery(session, self.recovery_dir, for_path=self.path)
+            self.last_recovery = write_recovery_with_view(session, self.recovery_dir,
+                                                          for_path=self.path,
+                                                          view=window_view(self.window))
         except (SessionError, OSError) as err:
             self._status(f"Autosave failed: {err}", 15000)
             return None
@@ -432,16 +595,18 @@ class SessionManager(QObject):
                 else "that was never saved")
         src = os.path.basename(session.source_file) if session.source_file else "pasted data"
         text = (f"Ballast found work {what}, autosaved at {session.created or 'an unknown time'} "
-                f"({session.n_points} points from {src}, {len(session.exclusions)} excluded). "
+                f"({dialogs.counted(session.n_points, 'point')} from {src}, "
+                f"{len(session.exclusions)} excluded). "
                 "It was probably left by a crash. Restore it?")
         if not ask_restore(self.window, text):
             for f in files:
                 discard_recovery(f)
             return False
-        if not self._show(session, "recovered work"):
+        if not self._show(session, "recovered work", read_view(newest)):
             return False
         self.path = session.saved_as or None
         self.dirty = True  # recovered work is not saved yet
+        self.modified = True
         self._title()
         self.autosave()  # keep it safe under its own name until saved
         for f in files:
@@ -452,13 +617,8 @@ class SessionManager(QObject):
     # ------------------------------------------------------------------ closing
     def confirm_close(self) -> bool:
         """True when the window may close. Interactive: asks about unsaved work."""
-        if self.interactive and self.dirty and self.document.has_data:
-            name = os.path.basename(self.path) if self.path else "this work"
-            answer = ask_unsaved(self.window, f"Save the changes to {name} as a session "
-                                 "before closing?")
-            if answer == "cancel":
-                return False
-            if answer == "save" and not self.save():
-                return False
+        name = os.path.basename(self.path) if self.path else "this work"
+        if not self._ask_save(f"Save the changes to {name} as a session before closing?"):
+            return False
         self.discard_recovery()
         return True
