@@ -63,7 +63,7 @@ COPY_FORMATS = (
     ("html", "&HTML and plain text (rich-text editors)", "html", False),
 )
 
-LEGEND = ("Filled circles: points used, their area proportional to the robust weight; "
+LEGEND = ("Filled circles: points used, their size growing with the robust weight; "
           "orange: down-weighted (weight below 0.5); hollow crossed red rings: excluded by "
           "the analyst. Line: fitted curve; shaded: {pct} pointwise confidence band.")
 
