@@ -1308,7 +1308,8 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     if k == 0:
         raise FitError("every parameter is held: free at least one to fit")
     if n_used < k:
-        raise FitError(f"the model has {k} free parameters but only {n_used} points are used; "
+        pts = "1 point is" if n_used == 1 else f"{n_used} points are"
+        raise FitError(f"the model has {k} free parameters but only {pts} used; "
                        f"restore points or hold parameters")
 
     all_used = n_used == n_all
