@@ -53,6 +53,8 @@ def main(out: str) -> None:
     # the band is narrower than the curve's line at full scale: show the tail, where the
     # excluded and the down-weighted points are, as an analyst checking them would zoom
     win.plot.data_plot.vb.setRange(xRange=(63, 186), yRange=(0, 2600), padding=0)
+    for _ in range(5):  # let the table lay out its rows before scrolling
+        QGuiApplication.processEvents()
     row = win.proxy.mapFromSource(win.points_model.index(worst, 0))
     win.table.scrollTo(row, QAbstractItemView.PositionAtCenter)
     for _ in range(5):
