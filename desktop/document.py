@@ -42,6 +42,9 @@ class Measurements:
         File path, or a short description such as "clipboard".
     notes
         Human-readable lines about what was skipped or guessed while reading.
+    source_rows
+        The row of the file (or sheet) each point came from, as the file shows it
+        (so a point can be matched to the lab notebook), or None when not known.
     """
 
     x: np.ndarray
@@ -54,6 +57,7 @@ class Measurements:
     y_unit: str = ""
     source: str = ""
     notes: tuple[str, ...] = ()
+    source_rows: np.ndarray | None = None
 
     def __post_init__(self):
         x = np.asarray(self.x, dtype=float).ravel()
@@ -68,6 +72,14 @@ class Measurements:
                 raise ValueError(f"sigma_y has {s.size} values but x has {x.size}; they must match")
             object.__setattr__(self, "sigma", s)
         object.__setattr__(self, "notes", tuple(self.notes))
+        if self.source_rows is not None:
+            rows = np.asarray(self.source_rows, dtype=np.int64).ravel()
+            object.__setattr__(self, "source_rows", rows if rows.size == x.size else None)
+
+    def file_row(self, i: int) -> int | None:
+        """The file row point ``i`` (0-based) came from, or None."""
+        rows = self.source_rows
+        return int(rows[i]) if rows is not None and 0 <= i < rows.size else None
 
     @property
     def n(self) -> int:

@@ -364,7 +364,7 @@ class MainWindow(QMainWindow):
                 raise ValueError("no row holds usable numbers in both x and y")
             m = Measurements(sel.x, sel.y, sel.sigma, x_name=sel.x_name, y_name=sel.y_name,
                              sigma_name=sel.sigma_name or "", x_unit=sel.x_unit, y_unit=sel.y_unit,
-                             source=sel.source, notes=sel.notes)
+                             source=sel.source, notes=sel.notes, source_rows=sel.source_rows)
             settings, method_note = self.method_for(m, settings)
         except (ValueError, KeyError) as err:
             what = f"{name}: " if name else ""

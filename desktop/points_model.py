@@ -311,6 +311,9 @@ class PointsModel(QAbstractTableModel):
             if name == "#" and self.row_flags is not None and row < len(self.row_flags) \
                     and self.row_flags[row]:
                 return self.row_flag_tip or None
+            if name == "#":
+                fr = doc.measurements.file_row(row)
+                return f"point {row + 1}; row {fr} of the file" if fr is not None else None
             if name == "status":
                 return "Uncheck to exclude this point; check to restore it"
             if name == "reason" and doc.excluded[row]:

@@ -706,10 +706,13 @@ class ReportExporter:
         record = doc.exclusion_record()
         if record:
             out += ['<table border="1" cellspacing="0" cellpadding="3">',
-                    f"<tr><th>point</th><th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>"
-                    "<th>reason</th><th>when</th></tr>"]
+                    f"<tr><th>point</th><th>file row</th><th>{_h(m.label('x'))}</th>"
+                    f"<th>{_h(m.label('y'))}</th><th>reason</th><th>when</th></tr>"]
             for i, reason, when in record:
-                out.append(f'<tr><td class="num">{i + 1}</td><td class="num">{_g(m.x[i], 10)}</td>'
+                fr = m.file_row(i)
+                out.append(f'<tr><td class="num">{i + 1}</td>'
+                           f'<td class="num">{"" if fr is None else fr}</td>'
+                           f'<td class="num">{_g(m.x[i], 10)}</td>'
                            f'<td class="num">{_g(m.y[i], 10)}</td>'
                            f"<td>{_h(reason) if reason else '<i>no reason given</i>'}</td>"
                            f"<td>{_h(when)}</td></tr>")

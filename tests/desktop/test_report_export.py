@@ -13,6 +13,7 @@ import io
 import re
 import shutil
 import subprocess
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -323,3 +324,29 @@ def test_report_includes_bootstrap_diagnostics_and_comparison_only_for_the_fit_s
     assert "<h2>Loss comparison</h2>" not in html2
     if win.diagnostics.for_result is not doc.result:
         assert "<h2>Point diagnostics</h2>" not in html2
+
+
+def test_points_can_be_traced_to_their_file_rows(open_window, tmp_path):
+    # sample 06 has three title lines and a header, so its point #58 (the cosmic ray
+    # of sample_sets/README.md) is row 62 of the file: the points table's tooltip and
+    # the report's exclusion record give that row, so the point can be found in the
+    # file and the lab notebook
+    from PySide6.QtCore import Qt
+
+    from desktop.commands import MaskCommand
+    from desktop.points_model import COL
+
+    root = Path(__file__).resolve().parents[2]
+    w = open_window(1400, 900, recovery_dir=tmp_path / "recovery")
+    assert w.open_path(str(root / "sample_sets" / "06_raman_peak.txt"))
+    assert w.runner.wait()
+    doc = w.document
+    assert doc.measurements.file_row(57) == 62 and doc.measurements.file_row(0) == 5
+    tip = w.points_model.data(w.points_model.index(57, COL["#"]), Qt.ToolTipRole)
+    assert tip == "point 58; row 62 of the file"
+    w.push(MaskCommand(doc, doc.make_mask_change([57], True, reason="cosmic ray")))
+    assert w.runner.wait()
+    html = w.reports.report_html()
+    record = html[html.index("Exclusion record"):html.index("<h2>Points</h2>")]
+    assert "<th>file row</th>" in record
+    assert '<td class="num">58</td><td class="num">62</td>' in record
