@@ -131,9 +131,12 @@ def test_html_report_is_self_contained_and_complete(win, tmp_path):
     assert "was fitted to 29 of the 30 points in line.csv" in text
     assert "Huber loss with tuning constant 1.345" in text
     assert html_escape(fr.CAUTION) in text
-    # exclusion record: point, value, reason, when
+    # exclusion record: point, file row, value, reason, when
     when = win.document.times[5]
-    assert re.search(rf"<td class=\"num\">6</td><td class=\"num\">{res.x[5]:.10g}</td>"
+    row = win.document.measurements.file_row(5)
+    assert row is not None and row > 6  # (a header and title lines come first)
+    assert re.search(rf"<td class=\"num\">6</td><td class=\"num\">{row}</td>"
+                     rf"<td class=\"num\">{res.x[5]:.10g}</td>"
                      rf"<td class=\"num\">{res.y[5]:.10g}</td><td>pipette bubble</td>"
                      rf"<td>{re.escape(when)}</td>", text)
     # the points table: one row per point with its weight
