@@ -1065,15 +1065,21 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         got = _newton_accepted(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss)
         if got is not None:
             return got[0], got[1], total + got[2]
-    newton_tries = 3 if prob.n >= 200 else 0
-    for _ in range(60):
+    def next_scale(inner, total):
+        """The MAD of the fit's residuals, or the exact fit when it is zero."""
         g = mad(inner.r)
         if g <= floor:
             got = _exact_fit(prob, inner.theta, loss, floor, linear=linear,
                              max_iter=max_iter, total=total)
             if got is not None:
-                return got
-        g = _safe_scale(g, inner.r, prob)
+                return g, got
+        return _safe_scale(g, inner.r, prob), None
+
+    newton_tries = 3 if prob.n >= 200 else 0
+    for _ in range(60):
+        g, exact = next_scale(inner, total)
+        if exact is not None:
+            return exact
         if abs(g - s) <= 1e-10 * s:
             s = g
             break
@@ -1092,13 +1098,9 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
     for _ in range(10):
         inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
         total += inner.n_iter
-        g = mad(inner.r)
-        if g <= floor:
-            got = _exact_fit(prob, inner.theta, loss, floor, linear=linear,
-                             max_iter=max_iter, total=total)
-            if got is not None:
-                return got
-        g = _safe_scale(g, inner.r, prob)
+        g, exact = next_scale(inner, total)
+        if exact is not None:
+            return exact
         if abs(g - s) <= 1e-14 * s:
             break
         if abs(g - s) > 1e-6 * s and _ == 9:
