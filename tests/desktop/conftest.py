@@ -60,3 +60,29 @@ def open_window(qtbot, tmp_path, errors):
         return w
 
     return make
+
+
+@pytest.fixture
+def make_win(qtbot, tmp_path, monkeypatch):
+    """A shown main window at a chosen size, ``make_win(width, height)``; its error
+    boxes are collected instead of shown, and the test fails if any appeared."""
+    from PySide6.QtCore import QSettings
+
+    from desktop import dialogs
+    from desktop.main_window import MainWindow
+
+    seen = []
+    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
+
+    def make(width=1480, height=900):
+        w = MainWindow(QSettings(str(tmp_path / "w.ini"), QSettings.IniFormat),
+                       recovery_dir=str(tmp_path / "rec"))
+        qtbot.addWidget(w)
+        w.choose_columns = lambda table: tuple(table.numeric_columns()[:3])
+        w.resize(width, height)
+        w.show()
+        qtbot.waitExposed(w)
+        return w
+
+    yield make
+    assert not seen, seen

@@ -10,33 +10,14 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from PySide6.QtCore import QSettings, Qt
+from PySide6.QtCore import Qt
 from PySide6.QtGui import QGuiApplication
 
 from desktop import dialogs
 from desktop.commands import MaskCommand
 from desktop.document import Measurements, Settings
-from desktop.main_window import MainWindow
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
-
-
-@pytest.fixture
-def make_win(qtbot, settings_file, monkeypatch, tmp_path):
-    seen = []
-    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
-
-    def make(width=1480, height=900):
-        w = MainWindow(QSettings(settings_file, QSettings.IniFormat), recovery_dir=str(tmp_path / "rec"))
-        qtbot.addWidget(w)
-        w.choose_columns = lambda table: tuple(table.numeric_columns()[:3])
-        w.resize(width, height)
-        w.show()
-        qtbot.waitExposed(w)
-        return w
-
-    yield make
-    assert not seen, seen
 
 
 def settle(win):

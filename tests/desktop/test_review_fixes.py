@@ -13,34 +13,14 @@ import re
 
 import numpy as np
 import pytest
-from PySide6.QtCore import QRectF, QSettings, QSortFilterProxyModel, Qt
+from PySide6.QtCore import QRectF, QSortFilterProxyModel, Qt
 from PySide6.QtGui import QGuiApplication
 
 from desktop import dialogs
 from desktop.document import Measurements, Settings
-from desktop.main_window import MainWindow
 from desktop.points_model import COL, SORT_ROLE
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
-
-
-@pytest.fixture
-def make_win(qtbot, tmp_path, monkeypatch):
-    seen = []
-    monkeypatch.setattr(dialogs, "error_box", lambda parent, title, text: seen.append((title, text)))
-
-    def make(width=1480, height=900):
-        w = MainWindow(QSettings(str(tmp_path / "w.ini"), QSettings.IniFormat),
-                       recovery_dir=str(tmp_path / "rec"))
-        qtbot.addWidget(w)
-        w.choose_columns = lambda table: tuple(table.numeric_columns()[:3])
-        w.resize(width, height)
-        w.show()
-        qtbot.waitExposed(w)
-        return w
-
-    yield make
-    assert not seen, seen
 
 
 def settle(win):
