@@ -18,24 +18,16 @@ Run: OPENBLAS_NUM_THREADS=1 python bench/bench_l1.py [--quick]
 """
 from __future__ import annotations
 
-import statistics
 import sys
-import time
 import warnings
 
 import numpy as np
 from scipy import optimize
 
 import fitcore
+from bench_engine import median_time  # (the same timing rule as the engine bench)
 
 
-def median_time(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times)
 
 
 def dual_lp(A, b):

@@ -452,10 +452,10 @@ class ReportExporter:
         return path
 
     def _write_text(self, path: str, text: str, what: str) -> bool:
-        from fitcore.session import _atomic_write
+        from fitcore.session import write_atomically
 
         try:
-            _atomic_write(Path(path), text.encode("utf-8"))
+            write_atomically(path, text.encode("utf-8"))
         except OSError as err:
             dialogs.error_box(self.window, f"Cannot write the {what}",
                               f"{path}: {err.strerror or err}")

@@ -240,16 +240,9 @@ def session_json(session, view: dict | None = None) -> str:
 
 def write_session(path, session, view: dict | None = None) -> Path:
     """Write a session with its view atomically (temporary file, fsync, rename)."""
-    from fitcore.session import SessionError, _atomic_write
+    from fitcore.session import save_session_text
 
-    path = Path(path)
-    data = session_json(session, view).encode("utf-8")
-    try:
-        _atomic_write(path, data)
-    except OSError as exc:
-        raise SessionError(f"could not save the session to {path}: {exc.strerror or exc}") \
-            from None
-    return path
+    return save_session_text(path, session_json(session, view))
 
 
 def write_recovery_with_view(session, folder, for_path=None, view: dict | None = None) -> Path:

@@ -655,7 +655,11 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
+def write_atomically(path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that a crash leaves the old file or the new one,
+    complete: a temporary file in the same folder, flushed and fsync-ed, moved over
+    ``path`` with :func:`os.replace`, then the folder fsync-ed. Raises OSError."""
+    path = Path(path)
     folder = path.parent
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
     try:
@@ -692,10 +696,15 @@ def save_session(path, session: Session) -> Path:
         If the session holds something that cannot be stored (e.g. a model built in
         Python code) or the folder cannot be written.
     """
+    return save_session_text(path, session_to_json(session))
+
+
+def save_session_text(path, text: str) -> Path:
+    """Write session JSON ``text`` atomically (:func:`write_atomically`); a failure
+    is a :class:`SessionError` with a plain message."""
     path = Path(path)
-    data = session_to_json(session).encode("utf-8")
     try:
-        _atomic_write(path, data)
+        write_atomically(path, text.encode("utf-8"))
     except OSError as exc:
         raise SessionError(f"could not save the session to {path}: {exc.strerror or exc}") \
             from None
