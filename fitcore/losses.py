@@ -13,7 +13,7 @@ Tuning constants
 The tuning constant ``k`` sits inside the loss (statsmodels' convention): Huber's
 ``rho`` is quadratic for ``|u| <= k``. The defaults give 95 % asymptotic efficiency
 at the normal distribution for the location model (Holland & Welsch 1977; values in
-``../shared/reference/check-values.md`` section 2): Huber 1.345, Cauchy 2.3849
+``tests/reference/data/check-values.md`` section 2): Huber 1.345, Cauchy 2.3849
 (``w = 1/(1 + (u/k)^2)``), Welsch 2.9846 (``w = exp(-(u/k)^2)``), Tukey biweight
 4.685. Pseudo-Huber and Geman-McClure are the general loss at alpha = 1 and -2, whose
 95 % constants in Barron's parametrisation are 1.28710 and 1.89371. For the general

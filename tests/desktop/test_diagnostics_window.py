@@ -3,7 +3,7 @@
 The numbers the window shows are checked against ``fitcore.diagnostics`` and
 ``fitcore.bootstrap`` run side by side on the same fit (same seed). The stars data
 are the Hertzsprung-Russell diagram of the star cluster CYG OB1,
-../shared/reference/robust/starsCYG.csv (source in NOTES.md there): its four giant
+tests/reference/data/robust/starsCYG.csv (source in NOTES.md there): its four giant
 stars (observations 11, 20, 30, 34) are the textbook high-leverage points. The demo
 data are invented.
 """

@@ -1,6 +1,6 @@
 """Loss functions, tuning constants and the partition function.
 
-Check values: ../shared/reference/check-values.md (sections 1.5, 1.6, 1.7, 2, 6), which
+Check values: tests/reference/data/check-values.md (sections 1.5, 1.6, 1.7, 2, 6), which
 gives its own sources: Barron, CVPR 2019 (general loss, closed forms of Z), Holland &
 Welsch 1977 (95 % tuning constants), Huber 1981 (MAD constant, proposal-2 beta).
 """

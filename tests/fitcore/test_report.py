@@ -2,7 +2,7 @@
 
 Sources are named beside each check. GUM = JCGM 100:2008 "Evaluation of measurement
 data - Guide to the expression of uncertainty in measurement"; the section numbers and
-examples are as quoted in ../shared/reference/check-values.md, section 3.3 and row 23 of
+examples are as quoted in tests/reference/data/check-values.md, section 3.3 and row 23 of
 section 6.
 """
 from __future__ import annotations

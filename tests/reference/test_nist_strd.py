@@ -1,6 +1,6 @@
 """NIST StRD (Statistical Reference Datasets, NIST/ITL) checks of the least-squares path.
 
-Certified values are read from the original NIST files in ../shared/reference/nist-strd/.
+Certified values are read from the original NIST files in tests/reference/data/nist-strd/.
 Accuracy is measured as the log relative error (LRE, correct significant digits), the
 measure NIST and McCullough (1998, Am. Statistician 52:358) use for these data.
 """

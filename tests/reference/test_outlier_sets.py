@@ -1,6 +1,6 @@
 """Point diagnostics and robust weights on the classic outlier data sets.
 
-Data and published statements: ../shared/reference/robust/NOTES.md (R&L = Rousseeuw &
+Data and published statements: tests/reference/data/robust/NOTES.md (R&L = Rousseeuw &
 Leroy 1987, Robust Regression and Outlier Detection). Stack loss comes from
 statsmodels.datasets.stackloss (Brownlee 1965).
 """
