@@ -5,7 +5,37 @@ With no file the first sample set is opened; File > Open sample set... lists the
 from __future__ import annotations
 
 import argparse
+import os
+import shutil
+import signal
+import subprocess
 import sys
+from pathlib import Path
+
+# The shared libraries Qt's xcb platform plugin needs that a minimal Linux install
+# often lacks, with the Debian/Ubuntu package that provides each (README, "Linux").
+XCB_PACKAGES = {
+    "libxcb-cursor.so.0": "libxcb-cursor0",
+    "libxkbcommon-x11.so.0": "libxkbcommon-x11-0",
+    "libxkbcommon.so.0": "libxkbcommon0",
+    "libxcb-icccm.so.4": "libxcb-icccm4",
+    "libxcb-keysyms.so.1": "libxcb-keysyms1",
+    "libxcb-image.so.0": "libxcb-image0",
+    "libxcb-render-util.so.0": "libxcb-render-util0",
+    "libxcb-shape.so.0": "libxcb-shape0",
+    "libxcb-xinerama.so.0": "libxcb-xinerama0",
+    "libxcb-xkb.so.1": "libxcb-xkb1",
+    "libxcb-randr.so.0": "libxcb-randr0",
+    "libxcb-xfixes.so.0": "libxcb-xfixes0",
+    "libxcb-sync.so.1": "libxcb-sync1",
+    "libxcb-shm.so.0": "libxcb-shm0",
+    "libxcb-util.so.1": "libxcb-util1",
+    "libX11-xcb.so.1": "libx11-xcb1",
+    "libEGL.so.1": "libegl1",
+    "libGL.so.1": "libgl1",
+    "libfontconfig.so.1": "libfontconfig1",
+    "libdbus-1.so.3": "libdbus-1-3",
+}
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -13,17 +43,104 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file", nargs="?",
                    help="measurement file (CSV, TSV, XLSX, ODS) or session (.ballast) to open")
     p.add_argument("--samples", action="store_true", help="start with the sample-set picker")
+    p.add_argument("--version", action="version", version=f"ballast {_version()}")
     return p
+
+
+def _version() -> str:
+    from fitcore import __version__
+
+    return __version__
+
+
+def _platform_name(environ) -> str:
+    """The Qt platform plugin this start will use ("" when Qt decides by itself)."""
+    name = environ.get("QT_QPA_PLATFORM", "").split(":", 1)[0].strip()
+    if name:
+        return name
+    if not sys.platform.startswith("linux"):
+        return ""
+    if environ.get("WAYLAND_DISPLAY") and environ.get("XDG_SESSION_TYPE") == "wayland":
+        return "wayland"
+    return "xcb"
+
+
+def _missing_libraries(plugin: Path) -> list[str]:
+    """Shared libraries the plugin needs that the dynamic loader cannot find."""
+    ldd = shutil.which("ldd")
+    if not ldd or not plugin.is_file():
+        return []
+    try:
+        out = subprocess.run([ldd, str(plugin)], capture_output=True, text=True, timeout=10).stdout
+    except (OSError, subprocess.SubprocessError):
+        return []
+    names = [line.split("=>")[0].strip() for line in out.splitlines() if "not found" in line]
+    return list(dict.fromkeys(names))
+
+
+def display_problem(environ=None, plugin_dir: Path | None = None) -> str:
+    """Why Qt would abort at start on this machine, in words, or "" when it should start.
+
+    Qt ends the process with SIGABRT (exit code 134) and a message that names the wrong
+    package when its xcb plugin cannot load; checking first lets us say what is missing.
+    """
+    environ = os.environ if environ is None else environ
+    if _platform_name(environ) != "xcb":
+        return ""
+    if not environ.get("DISPLAY"):
+        return ("There is no display to open a window on (DISPLAY is not set). Start Ballast "
+                "from a desktop session, under Xvfb (xvfb-run ballast ...), or set "
+                "QT_QPA_PLATFORM=offscreen to run without a screen.")
+    if plugin_dir is None:
+        import PySide6
+
+        plugin_dir = Path(PySide6.__file__).parent / "Qt" / "plugins" / "platforms"
+    missing = _missing_libraries(plugin_dir / "libqxcb.so")
+    if not missing:
+        return ""
+    packages = sorted({XCB_PACKAGES.get(lib, "") for lib in missing} - {""})
+    text = ("Qt's window system plugin (xcb) cannot load: the system libraries "
+            + ", ".join(missing) + " are missing.")
+    if packages:
+        text += " On Debian or Ubuntu install them with: sudo apt install " + " ".join(packages)
+    return text
+
+
+def _quit_on_interrupt(app) -> None:
+    """Ctrl+C in the terminal closes the windows as the window's close button would.
+
+    Qt's event loop runs in C++, so Python only sees the signal when it next runs
+    Python code; a short timer gives it that chance.
+    """
+    from PySide6.QtCore import QTimer
+
+    def close_all(*_):
+        for w in app.topLevelWidgets():
+            if w.isVisible():
+                w.close()
+        if not any(w.isVisible() for w in app.topLevelWidgets()):
+            app.quit()
+
+    signal.signal(signal.SIGINT, close_all)
+    timer = QTimer(app)
+    timer.timeout.connect(lambda: None)
+    timer.start(200)
+    app._interrupt_timer = timer  # kept alive with the application
 
 
 def main(argv=None) -> int:
     """Start the Ballast window. Returns the application's exit code."""
     args = build_parser().parse_args(sys.argv[1:] if argv is None else argv)
+    problem = display_problem()
+    if problem:
+        print(f"ballast: {problem}", file=sys.stderr)
+        return 3
     from PySide6.QtWidgets import QApplication
 
     app = QApplication.instance() or QApplication(sys.argv[:1])
     app.setOrganizationName("Ballast")
     app.setApplicationName("Ballast")
+    _quit_on_interrupt(app)
 
     create_window(args)
     return app.exec()  # safe: Qt event loop
