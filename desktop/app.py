@@ -71,7 +71,7 @@ def _missing_libraries(plugin: Path) -> list[str]:
     if not ldd or not plugin.is_file():
         return []
     try:
-        out = subprocess.run([ldd, str(plugin)], capture_output=True, text=True, timeout=10).stdout
+        out = subprocess.run([ldd, str(plugin)], check=False, capture_output=True, text=True, timeout=10).stdout
     except (OSError, subprocess.SubprocessError):
         return []
     names = [line.split("=>")[0].strip() for line in out.splitlines() if "not found" in line]
