@@ -49,6 +49,10 @@ _LAZY = {
     "compare_losses": ("compare", "compare_losses"),
     "adaptive_reading": ("compare", "adaptive_reading"),
     "point_diagnostics": ("diagnostics", "point_diagnostics"),
+    "inverse_predict": ("calibration", "inverse_predict"),
+    "detection_limits": ("calibration", "detection_limits"),
+    "lack_of_fit": ("calibration", "lack_of_fit"),
+    "CalibrationError": ("calibration", "CalibrationError"),
 }
 
 __all__ = sorted(_LAZY) + ["__version__"]
