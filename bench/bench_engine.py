@@ -55,8 +55,10 @@ def robust_line(n, repeat):
     rlm = sm.RLM(y, A, M=sm.robust.norms.HuberT()).fit()
     print(f"robust line, Huber, n = {n:.0e}")
     print(f"  Ballast fit (estimates + covariance)  {t_ours * 1e3:8.1f} ms")
-    print(f"  one OLS solve (np.linalg.lstsq)       {t_ols * 1e3:8.1f} ms   -> Ballast = {t_ours / t_ols:.1f} OLS solves (target <= 10)")
-    print(f"  statsmodels RLM(HuberT)               {t_rlm * 1e3:8.1f} ms   -> speed-up {t_rlm / t_ours:.1f}x (target >= 15)")
+    print(f"  one OLS solve (np.linalg.lstsq)       {t_ols * 1e3:8.1f} ms   "
+          f"-> Ballast = {t_ours / t_ols:.1f} OLS solves (target <= 10)")
+    print(f"  statsmodels RLM(HuberT)               {t_rlm * 1e3:8.1f} ms   "
+          f"-> speed-up {t_rlm / t_ours:.1f}x (target >= 15)")
     print(f"  slope: Ballast {ours['b']:.8f}, RLM {rlm.params[1]:.8f} (both use the MAD scale rule)")
 
 
@@ -106,7 +108,7 @@ def robust_decay(n, repeat):
     print(f"  Ballast fit, automatic start, MAD scale, covariance  {t_ours * 1e3:8.1f} ms")
     print(f"  Ballast fit given the start values below              {t_ours_p0 * 1e3:8.1f} ms")
     print(f"  Ballast's start values alone (300-point subsample)    {t_guess * 1e3:8.1f} ms")
-    print(f"  scipy least_squares(trf, cauchy), fixed f_scale, no covariance:")
+    print("  scipy least_squares(trf, cauchy), fixed f_scale, no covariance:")
     print(f"    from Ballast's start values (free)   {t_sp * 1e3:8.1f} ms, nfev {sp.nfev:3d}"
           f"  -> ratio {t_ours / t_sp:.2f} (same start: {t_ours_p0 / t_sp:.2f})")
     print(f"    the same + computing those starts    {(t_sp + t_guess) * 1e3:8.1f} ms"

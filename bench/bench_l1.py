@@ -54,9 +54,9 @@ def main(quick: bool) -> None:
             y[rng.choice(n, n // 50, replace=False)] += 20
             A = np.c_[np.ones(n), x] if model == "line" else np.c_[np.ones(n), x, x * x]
             rep = 3 if n <= 10000 else 1
-            t_ours = median_time(lambda: fitcore.fit(model, x, y, loss="l1"), rep)
-            t_lp = median_time(lambda: dual_lp(A, y), rep) if n <= 100000 or not quick else float("nan")
-            t_qr = (median_time(lambda: sm.QuantReg(y, A).fit(q=0.5, max_iter=2000), rep)
+            t_ours = median_time(lambda model=model, x=x, y=y: fitcore.fit(model, x, y, loss="l1"), rep)
+            t_lp = median_time(lambda A=A, y=y: dual_lp(A, y), rep) if n <= 100000 or not quick else float("nan")
+            t_qr = (median_time(lambda A=A, y=y: sm.QuantReg(y, A).fit(q=0.5, max_iter=2000), rep)
                     if sm is not None else float("nan"))
             print(f"{model:10s} {n:7d} {t_ours:9.3f} {t_lp:9.3f} {t_lp / t_ours:6.1f} "
                   f"{t_qr:9.3f} {t_qr / t_ours:6.1f}")
@@ -70,10 +70,10 @@ def main(quick: bool) -> None:
         y[rng.choice(n, n // 50, replace=False)] += 3
         rep = 3 if n <= 10000 else 1
         res = fitcore.fit("exp_decay", x, y, loss="l1")
-        t_ours = median_time(lambda: fitcore.fit("exp_decay", x, y, loss="l1"), rep)
+        t_ours = median_time(lambda x=x, y=y: fitcore.fit("exp_decay", x, y, loss="l1"), rep)
         J = m.jac(x, res.values)
-        t_lp = median_time(lambda: dual_lp(J, res.residuals), rep)
-        t_h = median_time(lambda: fitcore.fit("exp_decay", x, y, loss="huber"), rep)
+        t_lp = median_time(lambda J=J, res=res: dual_lp(J, res.residuals), rep)
+        t_h = median_time(lambda x=x, y=y: fitcore.fit("exp_decay", x, y, loss="huber"), rep)
         print(f"{'exp_decay':10s} {n:7d} {t_ours:9.3f} {t_lp:9.3f} {t_lp / t_ours:6.2f} "
               f"{t_h:9.3f} {t_h / t_ours:6.2f} {res.n_iter:6d}")
 

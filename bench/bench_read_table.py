@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from fitcore.io import read_table  # noqa: E402
+from fitcore.io import read_table
 
 
 def best_of(fn, repeat: int) -> float:

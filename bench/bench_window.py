@@ -32,10 +32,10 @@ from pathlib import Path
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-import numpy as np  # noqa: E402
-from PySide6.QtCore import QEventLoop, QPoint, QSettings, Qt, QTimer  # noqa: E402
-from PySide6.QtTest import QTest  # noqa: E402
-from PySide6.QtWidgets import QApplication  # noqa: E402
+import numpy as np
+from PySide6.QtCore import QEventLoop, QPoint, QSettings, Qt, QTimer
+from PySide6.QtTest import QTest
+from PySide6.QtWidgets import QApplication
 
 
 def demo_line(n: int, seed: int = 7):
@@ -162,7 +162,7 @@ def run(sizes, reps: int, with_drag: bool = True):
         times, fits = [], []
         meter = GapMeter()
         meter.start()
-        for rep in range(reps):
+        for _ in range(reps):
             i = int(rng.integers(n))
             vp = plot.mapFromScene(plot.point_scene_pos(i))
             loop = QEventLoop()

@@ -140,7 +140,7 @@ def _classes():
                                     PointDiagnostics, BootstrapResult)}
 
 
-def decode(o, model=None, _classes_cache={}):
+def decode(o, model=None, _classes_cache={}):  # noqa: B006 - a cache kept across calls on purpose
     """Inverse of :func:`encode`; FitResults get ``model`` (only whitelisted classes)."""
     if isinstance(o, list):
         return [decode(v, model) for v in o]
@@ -215,10 +215,11 @@ def serve(stdin=None, stdout=None) -> int:
     """Child main: one request from stdin, answers on stdout."""
     stdin = stdin or sys.stdin
     stdout = stdout or sys.stdout
-    import fitcore.bootstrap  # noqa: F401 - warm up before the request arrives
-    import fitcore.compare  # noqa: F401
-    import fitcore.diagnostics  # noqa: F401
-    import fitcore.formula  # noqa: F401
+    # warm up before the request arrives
+    import fitcore.bootstrap
+    import fitcore.compare
+    import fitcore.diagnostics
+    import fitcore.formula
     import fitcore.models  # noqa: F401
 
     line = stdin.readline()

@@ -53,7 +53,7 @@ class MaskCommand(QUndoCommand):
         else:
             self.setText(f"Exclude {n_ex}, restore {n_re} point" + ("" if n_re == 1 else "s"))
 
-    def id(self) -> int:  # noqa: A003 - Qt's name
+    def id(self) -> int:  # Qt's name
         return DRAG_ID if self.drag_token is not None else -1
 
     def mergeWith(self, other: QUndoCommand) -> bool:

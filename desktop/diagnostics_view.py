@@ -10,8 +10,8 @@ then
   standard uncertainties, when that point alone is excluded). The header tooltips and
   the note name the method (exact refits, or the one-step approximation for large n);
 * flags high-leverage points: highlighted cells in the table, a square marker in the
-  plot with an entry in the key above the plot (never over the data), and a note in the estimates area that robust losses do
-  not protect against them;
+  plot with an entry in the key above the plot (never over the data), and a note in the
+  estimates area that robust losses do not protect against them;
 * optionally colours the used points in the plot by leverage or by influence, with a
   colour bar; the key above the plot then says what the colour shows.
 """

@@ -16,7 +16,7 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt
 from PySide6.QtGui import QBrush, QColor
 from PySide6.QtWidgets import (
-    QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QGroupBox, QHBoxLayout, QHeaderView,
+    QComboBox, QDoubleSpinBox, QFormLayout, QGroupBox, QHBoxLayout, QHeaderView,
     QLabel, QLineEdit, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
@@ -554,7 +554,8 @@ class MethodPanel(QWidget):
                 hold.setCheckState(Qt.Checked if n in fixed else Qt.Unchecked)
                 self.param_table.setItem(r, 2, hold)
             res = self.document.result
-            alpha = s.alpha if s.loss == "general" else (res.alpha if res is not None and res.alpha is not None else None)
+            alpha = (s.alpha if s.loss == "general"
+                     else (res.alpha if res is not None and res.alpha is not None else None))
             self.preview.show_loss(s.loss, alpha)
         finally:
             self._updating = False

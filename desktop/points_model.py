@@ -408,7 +408,7 @@ class SortProxy(QAbstractProxyModel):
             return QModelIndex()
         return self.createIndex(row, column)
 
-    def parent(self, index=None):  # noqa: D401 - Qt's overloads: QObject.parent() and the model's
+    def parent(self, index=None):  # Qt's overloads: QObject.parent() and the model's
         if index is None:
             return super().parent()
         return QModelIndex()

@@ -727,7 +727,7 @@ class ReportExporter:
         if shown < n:
             out.append(f"<p class=\"small\">The first {shown} of {n} points; the points CSV "
                        "export holds all of them.</p>")
-        sig_head = f"<th>u(y)</th>" if m.sigma is not None else ""
+        sig_head = "<th>u(y)</th>" if m.sigma is not None else ""
         out += ['<table border="1" cellspacing="0" cellpadding="2" class="points">',
                 f"<tr><th>#</th><th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
                 "<th>fitted</th><th>residual</th><th>std. residual</th><th>weight</th>"

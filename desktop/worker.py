@@ -3,7 +3,8 @@
 :class:`FitRunner` watches the document. After a change to the fit inputs it fits
 at once when it is the first change for a while (``QUIET_S``) or when the last
 inline fit ended at least a short gap ago (``debounce_ms``, or as long as that fit
-took, whichever is longer), so a single click is answered without delay; changes that come faster than that (a box drag) are collected and
+took, whichever is longer), so a single click is answered without delay; changes that
+come faster than that (a box drag) are collected and
 the newest inputs are fitted when the gap has passed, so a drag gives a live fit a
 few times a second, never one fit per mouse move, and the window keeps time to
 process events between fits. Small fits run inline; fits over ``thread_threshold``

@@ -31,7 +31,7 @@ import re
 import warnings
 import zipfile
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable, Sequence
 
@@ -841,7 +841,7 @@ def _read_body(pd, body: str, sep: str, decimal: str, ncols: int, label: str):
                 df = pd.read_csv(_io.BytesIO(body), encoding="utf-8", **kwargs)
             else:
                 df = pd.read_csv(_io.StringIO(body), **kwargs)
-        except Exception as exc:  # pandas' messages are deep; give one sentence
+        except Exception as exc:  # noqa: BLE001 - pandas' messages are deep; give one sentence
             raise ReadError(f"{label} could not be split into columns ({type(exc).__name__}: "
                             f"{str(exc).strip().splitlines()[0] if str(exc).strip() else 'no detail'}).") from None
     bad = []
@@ -1073,7 +1073,7 @@ def _read_workbook(data: bytes, kind: str, sheet, *, label, source, sha256, deci
                         for row in df.itertuples(index=False, name=None)]
     except ReadError:
         raise
-    except Exception:
+    except Exception:  # noqa: BLE001 - any reader failure: one sentence for a damaged workbook
         raise ReadError(f"{label} looks like an {kind.upper()} spreadsheet but is damaged or incomplete "
                         "and could not be opened.") from None
     if not names:
@@ -1105,7 +1105,7 @@ def _container(data: bytes, path: Path, label: str) -> str:
                     return "ods"
                 if "content.xml" in members and ext == ".ods":
                     return "ods"
-        except Exception:  # BadZipFile, unsupported ZIP features, truncated members ...
+        except Exception:  # noqa: BLE001 - BadZipFile, unsupported ZIP features, truncated members ...
             kind = "ODS" if ext == ".ods" else "XLSX"
             raise ReadError(f"{label} looks like an {kind} spreadsheet but is damaged or incomplete "
                             "and could not be opened.") from None

@@ -457,7 +457,8 @@ def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
     """Turn a unit written in data units (``"y/x"``, ``"1/x"``) into real unit text.
 
     A bare ``"x"`` or ``"y"`` is the data unit as it is (``"mg/L"``, no parentheses);
-    a compound unit brackets a data unit only where it must (``"(mg/L)/s"``). Returns ``""`` when a needed data unit is unknown (blank), so that no half-made
+    a compound unit brackets a data unit only where it must (``"(mg/L)/s"``). Returns ``""``
+    when a needed data unit is unknown (blank), so that no half-made
     unit is printed. A unit that is neither ``x`` nor ``y`` based is kept as given.
     """
     expr = (expr or "").strip()
@@ -753,7 +754,8 @@ def estimates_text(
     Notes
     -----
     Values are rounded with :func:`format_value`; interval limits by
-    :func:`interval_limits` (the last decimal and power of ten of their estimate). Held parameters are marked ``(held)`` and get no
+    :func:`interval_limits` (the last decimal and power of ten of their estimate). Held
+    parameters are marked ``(held)`` and get no
     interval. Derived quantities carry uncertainties propagated by the delta method
     from the full covariance, and intervals ``value ± t·u`` with the same t.
     """

@@ -38,7 +38,6 @@ import warnings
 from collections import OrderedDict
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Callable
 
 import numpy as np
 from scipy import optimize, sparse
@@ -755,7 +754,7 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
             if prev is not None:
                 # secant on h(s) = g(s) - s: converges much faster than the plain
                 # fixed point when the (s, theta) coupling is strong
-                (s1, g1), h0, h1 = prev, g - s, prev[1] - prev[0]
+                (s1, _g1), h0, h1 = prev, g - s, prev[1] - prev[0]
                 if h1 != h0:
                     cand = s - h0 * (s - s1) / (h0 - h1)
                     if 0.5 * min(s, g) < cand < 2.0 * max(s, g):
@@ -1401,7 +1400,8 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
             if auto:
                 scale_method = SCALE_METHOD[_scale_rule(loss_obj)]
             else:
-                scale_method = "fixed by the analyst" if not absolute or scale != "auto" else "fixed at 1: sigma taken as absolute"
+                scale_method = ("fixed by the analyst" if not absolute or scale != "auto"
+                                else "fixed at 1: sigma taken as absolute")
             s_start = fixed_scale
             warm_started = False
             if n_used > _LARGE:
@@ -1670,7 +1670,7 @@ def alpha_profile(model, x, y, alphas=None, *, sigma=None, excluded=None, p0=Non
             r = res.residuals[used] / (res.sigma[used] if res.sigma is not None else 1.0)
             lo = math.log(max(1e-6 * start.scale, 1e-300))
             hi = math.log(max(10 * float(np.max(np.abs(r))), 10 * c))
-            opt = optimize.minimize_scalar(lambda lc: _nll(r, float(a), lc), bounds=(lo, hi),
+            opt = optimize.minimize_scalar(lambda lc, r=r, a=a: _nll(r, float(a), lc), bounds=(lo, hi),
                                            method="bounded", options={"xatol": 1e-10})
             values, c, nll = res.values, math.exp(float(opt.x)), float(opt.fun)
             if abs(nll_old - nll) <= 1e-10 * max(abs(nll), 1.0):

@@ -28,7 +28,7 @@ from PySide6.QtWidgets import QAbstractItemView, QApplication  # noqa: E402
 
 
 def main(out: str) -> None:
-    app = QApplication.instance() or QApplication([])
+    _app = QApplication.instance() or QApplication([])  # kept alive for the whole run
     from desktop import session_io
     from desktop.commands import MaskCommand
     from desktop.main_window import MainWindow

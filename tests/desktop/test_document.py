@@ -6,7 +6,7 @@ import pytest
 from PySide6.QtGui import QUndoStack
 
 from desktop.commands import MaskCommand, ReasonCommand, SettingsCommand
-from desktop.document import Document, Measurements, Settings
+from desktop.document import Document, Measurements
 
 
 def make_doc(n=10):

@@ -76,7 +76,7 @@ def test_table_columns_follow_the_rounded_estimate(win):
     rows = _cells(win)
     assert [r[0] for r in rows[:2]] == list(res.param_names)
     for k, row in enumerate(rows[:2]):
-        v, u = float(res.values[k]), float(res.stderr[k])
+        u = float(res.stderr[k])
         mant = _mantissa(row[COL["estimate"]])
         d = _decimals(mant)
         # u to two significant digits, written to the estimate's last decimal

@@ -20,7 +20,7 @@ import fitcore
 from fitcore import session as fs
 from desktop import dialogs, session_io
 from desktop.commands import MaskCommand, ReasonCommand, SettingsCommand
-from desktop.document import MaskChange, Settings
+from desktop.document import MaskChange
 from desktop.main_window import MainWindow
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")

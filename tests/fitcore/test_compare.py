@@ -67,7 +67,7 @@ def test_differences_flag_l2_against_robust(comparison):
                 delta = rb.values[j] - ra.values[j]
                 cu = math.hypot(ra.stderr[j], rb.stderr[j])
                 assert ((name, la, lb) in flagged) == (abs(delta) > cu)
-    for p, a, b, delta, cu in diffs:
+    for _p, _a, _b, delta, cu in diffs:
         assert abs(delta) > cu > 0
     marks = comparison.highlighted()
     assert "A" in marks["l2"] and "A" in marks["tukey"]
@@ -87,7 +87,7 @@ def test_settings_are_passed_to_every_fit(decay_with_outliers):
     excl[[6, 7, 8]] = True
     cmp = compare_losses("exp_decay", x, y, losses=("l2", "huber"), excluded=excl,
                          fixed={"C": 0.5}, scale=0.05)
-    for loss, res in cmp.fitted():
+    for _loss, res in cmp.fitted():
         assert res.n_excluded == 3 and res.fixed == {"C": 0.5}
     assert cmp.results["huber"].scale == 0.05
     direct = fitcore.fit("exp_decay", x, y, loss="huber", excluded=excl, fixed={"C": 0.5},

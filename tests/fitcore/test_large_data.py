@@ -286,7 +286,7 @@ def test_batched_criteria_equal_one_by_one():
     stack = np.stack([models._logistic_design(x, h, e) for h, e in pairs])
     stack[3, 0, 0] = np.nan  # a candidate that cannot be evaluated scores inf
     crit, coefs = models._criteria(stack, y, 0.05, finite_only=True)
-    for g, (h, e) in enumerate(pairs):
+    for g, _pair in enumerate(pairs):
         if g == 3:
             assert crit[g] == np.inf
             continue

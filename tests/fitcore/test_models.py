@@ -216,7 +216,7 @@ def test_jacobian_at_tiny_parameters(name):
     F = _mp_formulas()[name]
     ref = np.empty_like(J)
     with mp.workdps(50):
-        for i, xi in enumerate(x):
+        for i in range(len(x)):
             for j in range(p.size):
                 def g(t, i=i, j=j):
                     q = [mp.mpf(float(v)) for v in p]

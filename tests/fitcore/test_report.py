@@ -576,7 +576,7 @@ def test_interval_limits_have_the_decimals_of_the_estimate(value, u, t):
 def test_every_report_format_quotes_intervals_by_the_one_rule(demo):
     rows = {r.name: r for r in report._rows(demo, 0.95, None, "", "")}
     plain = report.estimates_text(demo)
-    for name, r in rows.items():
+    for r in rows.values():
         lo, hi = report.interval_limits(r.low, r.high, r.value, r.u)
         mant = format_value(r.value, r.u).split("(")[0]
         assert _decimals(lo) == _decimals(hi) == _decimals(mant)
