@@ -64,7 +64,8 @@ def test_ctrl_c_in_the_terminal_closes_the_window(tmp_path):
     env = _env(QT_QPA_PLATFORM="offscreen", HOME=str(tmp_path), XDG_CONFIG_HOME=str(tmp_path / "cfg"),
                XDG_DATA_HOME=str(tmp_path / "data"), XDG_RUNTIME_DIR=str(tmp_path / "run"))
     (tmp_path / "run").mkdir(mode=0o700)
-    proc = subprocess.Popen([sys.executable, "-m", "desktop", str(ROOT / "sample_sets" / "01_photometric_calibration.csv")],
+    sample = ROOT / "sample_sets" / "01_photometric_calibration.csv"
+    proc = subprocess.Popen([sys.executable, "-m", "desktop", str(sample)],
                             cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         # wait until the QApplication exists (its platform plugin is loaded): the handler is
