@@ -178,6 +178,9 @@ class MainWindow(QMainWindow):
                                         "Ctrl+L", checkable=True)
         self.logy_action = self._action(v, "Log &y axis", lambda on: self._set_log(log_y=on),
                                         "Ctrl+Shift+L", checkable=True)
+        self.std_resid_action = self._action(
+            v, "&Standardised residuals", self.plot.set_residuals_standardised, checkable=True, checked=True,
+            tip="Residual plot in scales (residual / scale, beyond \u00b16 drawn at the edge), or in units of y")
         self.box_action = self._action(v, "Box &mode (drag excludes)", self.plot.set_box_mode, "Ctrl+M",
                                        checkable=True,
                                        tip="Drag a rectangle to exclude points; Ctrl+drag restores")
@@ -212,6 +215,7 @@ class MainWindow(QMainWindow):
         self.band_action.setChecked(s.value("view/band", True, type=bool))
         self.logx_action.setChecked(s.value("view/log_x", False, type=bool))
         self.logy_action.setChecked(s.value("view/log_y", False, type=bool))
+        self.std_resid_action.setChecked(s.value("view/std_residuals", True, type=bool))
         self.reason_action.setChecked(s.value("edit/ask_reasons", False, type=bool))
 
     def save_state(self):
@@ -223,6 +227,7 @@ class MainWindow(QMainWindow):
         s.setValue("view/band", self.band_action.isChecked())
         s.setValue("view/log_x", self.logx_action.isChecked())
         s.setValue("view/log_y", self.logy_action.isChecked())
+        s.setValue("view/std_residuals", self.std_resid_action.isChecked())
         s.setValue("edit/ask_reasons", self.reason_action.isChecked())
         s.sync()
 

@@ -475,6 +475,10 @@ class PickViewBox(pg.ViewBox):
         super().mouseDragEvent(ev, axis)
 
 
+#: standardised residuals beyond this many scales are drawn at the plot's edge
+RESID_CLIP = 6.0
+
+
 class PlotView(pg.GraphicsLayoutWidget):
     """Data plot over residual plot, observing a :class:`Document`.
 
@@ -550,6 +554,12 @@ class PlotView(pg.GraphicsLayoutWidget):
         self._resid_manual = False  # the analyst zoomed or panned the residual plot
         self.vb_resid.sigRangeChangedManually.connect(self._resid_range_changed_by_hand)
         self.resid_plot.addItem(self.resid_points)
+        # Residuals beyond +-RESID_CLIP scales are drawn at the edge with an arrow, so one
+        # gross outlier does not squash all the others onto a line.
+        self.resid_standardised = True
+        self._resid_shown_standardised = True
+        self.resid_arrows = pg.ScatterPlotItem(size=9, pen=pg.mkPen(60, 60, 60), brush=pg.mkBrush(60, 60, 60))
+        self.resid_plot.addItem(self.resid_arrows)
         self.resid_plot.setLabel("left", "residual")
         self.stale_text = pg.TextItem("", color=(200, 30, 45), anchor=(0, 0))
         self.data_plot.addItem(self.stale_text, ignoreBounds=True)
@@ -688,7 +698,7 @@ class PlotView(pg.GraphicsLayoutWidget):
             self.data_plot.getAxis("bottom").showLabel(False)  # shown under the residuals
             self.data_plot.setLabel("left", m.label("y"))
             self.resid_plot.setLabel("bottom", m.label("x"))
-            self.resid_plot.setLabel("left", f"residual ({m.y_unit})" if m.y_unit else "residual")
+            self._label_residual_axis()
             self._set_positions()
             self._restyle()
             self._draw_result()
@@ -711,9 +721,59 @@ class PlotView(pg.GraphicsLayoutWidget):
     def _set_positions(self):
         m = self.document.measurements
         self.points.set_points(self._tx(m.x), self._ty(m.y))
+        self._set_residual_points()
+
+    def residual_values(self):
+        """The residual plot's y values and whether they are standardised.
+
+        Standardised: residual / scale (sigma-weighted residuals when sigma was given),
+        clipped to +-RESID_CLIP; raw: residuals in units of y. With no usable scale (an
+        exact fit) the raw residuals are shown.
+        """
+        m = self.document.measurements
         res = self.document.result
-        r = res.residuals if res is not None and len(res.residuals) == m.n else np.full(m.n, np.nan)
-        self.resid_points.set_points(self._tx(m.x), np.asarray(r, float))
+        if res is None or len(res.residuals) != m.n:
+            return np.full(m.n, np.nan), self.resid_standardised
+        if self.resid_standardised:
+            z = np.asarray(res.std_residuals, float)
+            if np.isfinite(res.scale) and res.scale > 0 and np.any(np.isfinite(z)):
+                return z, True
+        return np.asarray(res.residuals, float), False
+
+    def _set_residual_points(self):
+        m = self.document.measurements
+        r, standardised = self.residual_values()
+        shown = r
+        arrows_x, arrows_y, arrows_sym = [], [], []
+        if standardised:
+            shown = np.clip(r, -RESID_CLIP, RESID_CLIP)
+            beyond = np.flatnonzero(np.isfinite(r) & (np.abs(r) > RESID_CLIP))
+            tx = self._tx(m.x)
+            for i in beyond:
+                up = r[i] > 0
+                arrows_x.append(tx[i])
+                arrows_y.append((RESID_CLIP + 0.7) * (1 if up else -1))
+                arrows_sym.append("t1" if up else "t")
+        self.resid_points.set_points(self._tx(m.x), shown)
+        self.resid_arrows.setData(arrows_x, arrows_y, symbol=arrows_sym or "t")
+        self.resid_arrows.setToolTip(
+            f"{len(arrows_x)} residual(s) beyond {RESID_CLIP:g} scales, drawn at the edge" if arrows_x else "")
+        if self._resid_shown_standardised != standardised:
+            self._resid_shown_standardised = standardised
+            self._label_residual_axis()
+
+    def _label_residual_axis(self):
+        m = self.document.measurements
+        if self._resid_shown_standardised:
+            self.resid_plot.setLabel("left", "residual / scale")
+        else:
+            self.resid_plot.setLabel("left", f"residual ({m.y_unit})" if m.y_unit else "residual")
+
+    def set_residuals_standardised(self, on: bool):
+        """Residual plot in scales (True, the default) or in units of y (False)."""
+        self.resid_standardised = bool(on)
+        self._set_residual_points()
+        self._auto_resid_range(reset=True)
 
     def _restyle(self):
         doc = self.document
@@ -757,7 +817,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         if res is None or m.n == 0 or len(res.weights) != m.n:
             self.curve.setData([], [])
             self.band.set_band([], [], [])
-            self.resid_points.set_points(self._tx(m.x), np.full(m.n, np.nan))
+            self._set_residual_points()
             self._mark_stale()
             return
         xs = m.x[np.isfinite(m.x)]
@@ -784,7 +844,7 @@ class PlotView(pg.GraphicsLayoutWidget):
                     self.band.set_band(self._tx(grid[ok]), self._ty(b_lo[ok]), self._ty(b_hi[ok]))
                 except Exception:  # noqa: BLE001 - no band (e.g. dof = 0)
                     self.band.set_band([], [], [])
-        self.resid_points.set_points(self._tx(m.x), np.asarray(res.residuals, float))
+        self._set_residual_points()
         self._auto_resid_range()
         self._mark_stale()
 
@@ -808,6 +868,9 @@ class PlotView(pg.GraphicsLayoutWidget):
         if r.size == 0:
             return
         lo, hi = float(r.min()), float(r.max())
+        if len(self.resid_arrows.data):  # leave room for the edge arrows
+            lo = min(lo, -RESID_CLIP - 1.0) if np.any(self.resid_arrows.data["y"] < 0) else lo
+            hi = max(hi, RESID_CLIP + 1.0) if np.any(self.resid_arrows.data["y"] > 0) else hi
         span = hi - lo if hi > lo else max(abs(hi), 1e-300)
         y0, y1 = vb.viewRange()[1]
         if not reset and y0 <= lo and hi <= y1 and span >= 0.6 * (y1 - y0):
