@@ -7,6 +7,8 @@ Public API (kept stable; outside checks call it)::
     fitcore.builtin_models()                               -> list of names
     fitcore.read_table(path, sheet=None)                   -> Table
     fitcore.format_value(value, u, style="paren" | "pm")   -> str
+    fitcore.fit_many(datasets, model, loss=..., jobs=None, **fit_options)
+                                                           -> [FitResult | FailedFit]
 
 Submodules are imported lazily, so ``import fitcore`` stays cheap.
 """
@@ -53,6 +55,13 @@ _LAZY = {
     "detection_limits": ("calibration", "detection_limits"),
     "lack_of_fit": ("calibration", "lack_of_fit"),
     "CalibrationError": ("calibration", "CalibrationError"),
+    "fit_many": ("batch", "fit_many"),
+    "iter_fit_many": ("batch", "iter_fit_many"),
+    "fit_sources": ("batch", "fit_sources"),
+    "FailedFit": ("batch", "FailedFit"),
+    "Dataset": ("batch", "Dataset"),
+    "BatchSpec": ("batch", "BatchSpec"),
+    "BatchError": ("batch", "BatchError"),
 }
 
 __all__ = sorted(_LAZY) + ["__version__"]

@@ -386,7 +386,7 @@ class Table:
     """
 
     def __init__(self, columns, units, headers, data, notes, source, sha256, source_rows, dialect,
-                 title_lines=(), sheet_names=()):
+                 title_lines=(), sheet_names=(), texts=None):
         self.columns = list(columns)
         self.units = dict(units)
         self.headers = dict(headers)
@@ -401,6 +401,8 @@ class Table:
         self.dialect = dialect
         self.title_lines = list(title_lines)
         self.sheet_names = list(sheet_names)
+        # column name -> (int32 code per row, -1 where the cell held no text; the texts)
+        self._texts = dict(texts or {})
 
     @property
     def n_rows(self) -> int:
@@ -422,6 +424,45 @@ class Table:
         NaN marks a cell that held no number. The array is read-only.
         """
         return self._data[_resolve(self.columns, self.headers, name, "this request", self._label())]
+
+    def groups(self, name) -> tuple[np.ndarray, list[str]]:
+        """Split the rows by the cells of column ``name``, numbers or text (a well, a batch).
+
+        Returns ``(codes, labels)``: ``codes[i]`` is the group of data row ``i`` (an
+        index into ``labels``, -1 where the cell is empty), ``labels`` the cell texts
+        in order of first appearance (numbers written as ``%.15g``). A number and a
+        text that read the same (``7`` and ``"7"``) are one group.
+        """
+        col = _resolve(self.columns, self.headers, name, "group", self._label())
+        values = self._data[col]
+        keys = np.full(values.size, -1, np.int64)
+        index: dict[str, int] = {}
+
+        def add(codes, texts):  # codes: index into texts per row, -1 for none
+            lut = np.array([index.setdefault(t, len(index)) for t in texts], np.int64)
+            has = codes >= 0
+            keys[has] = lut[codes[has]]
+
+        finite = np.isfinite(values)
+        if finite.any():
+            uniq, inverse = np.unique(values[finite], return_inverse=True)
+            codes = np.full(values.size, -1, np.int64)
+            codes[finite] = inverse
+            add(codes, [format(float(v), ".15g") for v in uniq])
+        if col in self._texts:
+            codes, texts = self._texts[col]
+            add(codes, [t.strip() for t in texts])
+        labels = list(index)
+        used = np.flatnonzero(keys >= 0)
+        if used.size == 0:
+            return keys, []
+        # renumber by first appearance in the file
+        present, first = np.unique(keys[used], return_index=True)
+        order = present[np.argsort(first, kind="stable")]
+        rank = np.full(len(labels), -1, np.int64)
+        rank[order] = np.arange(order.size)
+        keys[used] = rank[keys[used]]
+        return keys, [labels[j] for j in order]
 
     def numeric_columns(self) -> list[str]:
         """Names of the columns with at least one number, in file order."""
@@ -954,12 +995,17 @@ def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen
         raise ReadError(f"{label} has only one column; at least two (x and y) are needed.")
     names, units, headers = _make_names(raw_names, notes)
     data = {}
+    texts = {}
     for name, i in zip(names, keep_cols):
         data[name] = columns[i][keep_rows]
         for kind, text, mask in dict(cell_notes).get(i, []):
             rows = source_rows[mask & keep_rows]
             if rows.size == 0:
                 continue
+            if kind == "text":  # kept as codes so a text column can split a long table
+                codes, labels = texts.setdefault(name, (np.full(int(keep_rows.sum()), -1, np.int32), []))
+                codes[mask[keep_rows]] = len(labels)
+                labels.append(text)
             if kind == "empty":
                 notes.append(f"{_rows_text(rows)}: no value in column {name}")
             elif text == "inf" or text.lower() in ("-inf", "+inf", "infinity", "-infinity"):
@@ -969,7 +1015,7 @@ def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen
     if thousands_seen:
         notes.append("thousands separators found and removed")
     return Table(names, units, headers, data, notes, source, sha256, source_rows[keep_rows], dialect,
-                 title_lines=title_lines, sheet_names=sheet_names)
+                 title_lines=title_lines, sheet_names=sheet_names, texts=texts)
 
 
 # --------------------------------------------------------------------------- spreadsheets
