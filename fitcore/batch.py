@@ -152,7 +152,7 @@ def _worker_init() -> None:
         from threadpoolctl import threadpool_limits
 
         threadpool_limits(1)
-    except Exception:  # threadpoolctl absent or no BLAS found: nothing to limit
+    except Exception:  # noqa: BLE001 - threadpoolctl absent or no BLAS found: nothing to limit
         pass
 
 
@@ -188,7 +188,7 @@ def _fit_chunk(job: tuple, items: list, strip_model: bool = True) -> list:
             continue
         try:
             res = _fit_one(model_spec, loss, options, *item[1:])
-        except Exception as exc:  # one data set's problem never stops the batch
+        except Exception as exc:  # noqa: BLE001 - one data set's problem never stops the batch
             text, kind = _problem_text(exc)
             out.append(FailedFit(index, text, kind))
             continue
@@ -209,7 +209,7 @@ class _Serial:
         fut: Future = Future()
         try:
             fut.set_result(func(*args))
-        except BaseException as exc:  # handed to the caller through the future
+        except BaseException as exc:  # noqa: BLE001 - handed to the caller through the future
             fut.set_exception(exc)
         return fut
 
@@ -287,7 +287,7 @@ class _DaskPool:
         try:
             versions = set(self._client.run(_fitcore_version).values())
             self._client.run(_worker_init)
-        except Exception as exc:
+        except Exception as exc:  # noqa: BLE001 - any failure there: Ballast is not usable on them
             self.close()
             raise BatchError(f"the Dask workers could not run Ballast's code ({type(exc).__name__}: "
                              f"{exc}); install the same Ballast on every worker") from None
@@ -725,7 +725,7 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
     _, x, y, sigma, excluded, note = curve
     try:
         res = _fit_one(spec.model, spec.loss, dict(spec.options), x, y, sigma, excluded)
-    except Exception as exc:  # one curve's problem never stops the batch
+    except Exception as exc:  # noqa: BLE001 - one curve's problem never stops the batch
         text, _ = _problem_text(exc)
         return BatchRow(source, sheet, group, ycol, n_used=int(np.sum(np.isfinite(x) & np.isfinite(y))),
                         error=text)
