@@ -55,15 +55,21 @@ r"""Calibration: read unknown samples off a fitted curve, detection limits, lack
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Sequence
 
 import numpy as np
 from scipy import optimize, stats
 
 __all__ = [
-    "CalibrationError", "InversePrediction", "DetectionLimits", "LackOfFit",
-    "inverse_predict", "detection_limits", "lack_of_fit", "calibrated_range",
+    "CalibrationError",
+    "DetectionLimits",
+    "InversePrediction",
+    "LackOfFit",
+    "calibrated_range",
+    "detection_limits",
+    "inverse_predict",
+    "lack_of_fit",
 ]
 
 
@@ -360,7 +366,7 @@ def _solve_x0(result, target: float) -> tuple[float, bool]:
                                    "not determine x")
         x0 = (target - float(result.values[1 - j])) / b
         return x0, not (lo <= x0 <= hi)
-    roots, grid, d = _root_in(result, lo, hi, target)
+    roots, _grid, d = _root_in(result, lo, hi, target)
     fv = d + target
     if len(roots) == 1:
         return roots[0], False
@@ -496,7 +502,7 @@ def inverse_predict(result, readings: Sequence[float] | float, level: float = 0.
         se_b = s / math.sqrt(sxx)
         slope_ok = abs(b) > t * se_b
         method = f"{RULE_CLASSICAL}; Student t on n - 2 = {result.dof} dof"
-        var_fn = lambda xv: s * s  # noqa: E731
+        var_fn = lambda xv: s * s
     else:
         slope = _dfdx(result, x0)
         if not (math.isfinite(slope) and slope != 0.0):

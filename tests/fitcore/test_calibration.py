@@ -57,7 +57,7 @@ def test_several_readings_use_one_over_m():
     res = fitcore.fit("line", TX, TY)
     readings = [13.3, 13.5, 13.8]
     ip = fitcore.inverse_predict(res, readings)
-    x0, sx0, *_ = _classical(TX, TY, readings)
+    _x0, sx0, *_ = _classical(TX, TY, readings)
     assert ip.m == 3 and ip.mean_reading == pytest.approx(np.mean(readings))
     assert ip.u == pytest.approx(sx0, rel=1e-10)
     # and it is smaller than for one reading of the same mean
@@ -90,7 +90,7 @@ def test_delta_method_equals_classical_for_a_line_and_fieller_matches():
         assert b.fieller[0] == pytest.approx(a.fieller[0], rel=1e-8, abs=1e-10)
         assert b.fieller[1] == pytest.approx(a.fieller[1], rel=1e-8, abs=1e-10)
         # independent Fieller: the prediction band (scipy t) meets y0 at the limits
-        x0, sx0, a0, b0, s, sxx = _classical(TX, TY, [y0, y0 + 0.1])
+        _x0, _sx0, a0, b0, s, sxx = _classical(TX, TY, [y0, y0 + 0.1])
         t = stats.t.ppf(0.975, 5)
         for xl in a.fieller:
             half = t * s * math.sqrt(1 / 2 + 1 / 7 + (xl - TX.mean()) ** 2 / sxx)
@@ -111,7 +111,7 @@ def test_extrapolation_warns_and_is_flagged():
     res = fitcore.fit("line", TX, TY)
     ip = fitcore.inverse_predict(res, [28.0])
     assert ip.extrapolated and any("extrapolated" in w for w in ip.warnings)
-    x0, sx0, *_ = _classical(TX, TY, [28.0])
+    x0, _sx0, *_ = _classical(TX, TY, [28.0])
     assert ip.x == pytest.approx(x0, rel=1e-10)
 
 
@@ -119,7 +119,7 @@ def test_detection_limits_ich_and_iso_11843():
     res = fitcore.fit("line", TX, TY)
     for K in (1, 3):
         dl = fitcore.detection_limits(res, readings=K)
-        _, _, a, b, s, sxx = _classical(TX, TY, [0.0])
+        _, _, _a, b, s, sxx = _classical(TX, TY, [0.0])
         n = TX.size
         # ICH Q2(R1): 3.3 sigma/S and 10 sigma/S, sigma residual SD, S slope
         assert dl.lod_ich == pytest.approx(3.3 * s / b, rel=1e-10)
@@ -244,8 +244,8 @@ def test_lack_of_fit_against_statsmodels_anova():
     # statsmodels anova_lm of the line against the one-mean-per-level model is the
     # classical lack-of-fit F test (Draper & Smith 2.1)
     sm = pytest.importorskip("statsmodels.formula.api")
-    from statsmodels.stats.anova import anova_lm
     import pandas as pd
+    from statsmodels.stats.anova import anova_lm
 
     x = np.repeat([0.1, 0.3, 0.5, 0.7, 0.9], 3)  # QUAM A5 design and data
     y = np.array([0.028, 0.029, 0.029, 0.084, 0.083, 0.081, 0.135, 0.131, 0.133,
