@@ -115,6 +115,7 @@ class MainWindow(QMainWindow):
         self._syncing_selection = False
         self._restore_state()
         self._build_analysis()
+        self._build_unknowns()
         from . import pane_layout
 
         pane_layout.install(self)  # pane minimum widths that fit 1000 px, panes sized to fit
@@ -608,6 +609,14 @@ class MainWindow(QMainWindow):
         menu.addSeparator()
         self._action(menu, "&Bootstrap intervals...", self.show_bootstrap, "F8",
                      tip="Case or residual bootstrap percentile intervals")
+
+    def _build_unknowns(self):
+        """The Unknowns table (read-back of unknown samples, issue 14) under the estimates."""
+        from .unknowns_view import UnknownsView
+
+        self.unknowns = UnknownsView(self.document, self.push, self.plot)
+        lay = self.estimates.layout()
+        lay.insertWidget(lay.count() - 1, self.unknowns, 2)  # above the caution text
 
     def show_comparison(self):
         """Open the loss comparison and run it for the ticked losses."""

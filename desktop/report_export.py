@@ -473,7 +473,15 @@ class ReportExporter:
                               x_unit=x_unit, y_unit=y_unit, reasons=self._reasons())
         if fmt == "html":
             text = _bordered(text)
-        return text
+        return text + self._unknowns_text(res, fmt, full_precision)
+
+    def _unknowns_text(self, res, fmt: str, full_precision: bool = False) -> str:
+        """The unknown samples read back off ``res`` (issue 14), "" when there are none."""
+        view = getattr(self.window, "unknowns", None)
+        if view is None or view.for_result is not res or not view.samples:
+            return ""
+        text = view.text(fmt, full_precision)
+        return ("\n" + (_bordered(text) if fmt == "html" else text)) if text else ""
 
     def copy(self, key: str = "default") -> str:
         """Copy the estimates in format ``key`` (see :data:`COPY_FORMATS`).
@@ -686,6 +694,10 @@ class ReportExporter:
                 f"<p class=\"small\">Value with its standard uncertainty in parentheses, in units "
                 f"of the last digit (GUM 7.2.2); {pct} confidence intervals.</p>",
                 _bordered(_table_part(est))]
+
+        unknowns = self._unknowns_text(res, "html")
+        if unknowns:  # their own section, the read-back method named in it
+            out += ["<h2>Unknown samples</h2>", unknowns]
 
         out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, m.source, y_unit))}</p>",
                 '<table border="1" cellspacing="0" cellpadding="3">']

@@ -642,3 +642,161 @@ def lack_of_fit(result) -> LackOfFit | None:
     return LackOfFit(F=float(F), p_value=float(stats.f.sf(F, df_lof, df_pe)),
                      df_lof=int(df_lof), df_pe=int(df_pe), ss_lof=ss_lof, ss_pe=ss_pe,
                      levels=int(g))
+
+
+# --------------------------------------------------------------------------- text
+UNKNOWN_FORMATS = ("plain", "tsv", "markdown", "latex", "siunitx", "html")
+
+
+def _esc_html(s: str) -> str:
+    import html as _html
+
+    return _html.escape(str(s))
+
+
+def _esc_tex(s: str) -> str:
+    out = str(s)
+    for a, b in (("\\", r"\textbackslash{}"), ("&", r"\&"), ("%", r"\%"), ("$", r"\$"),
+                 ("#", r"\#"), ("_", r"\_"), ("{", r"\{"), ("}", r"\}")):
+        out = out.replace(a, b)
+    return out
+
+
+def unknown_rows(items, limits=None, *, full_precision: bool = False):
+    """Table rows for read-back unknowns.
+
+    ``items``: ``(name, InversePrediction or error text)`` pairs. Returns a list of
+    dicts with ``name``, ``readings`` (count), ``mean``, ``x``, ``u``, ``interval``
+    (texts, GUM-rounded by :func:`fitcore.report.format_value`) and ``flag``.
+    """
+    from .report import format_interval, format_uncertainty, format_value
+
+    rows = []
+    for name, ip in items:
+        if isinstance(ip, str) or ip is None:
+            rows.append({"name": str(name), "readings": "", "mean": "", "x": "", "u": "",
+                         "interval": "", "flag": f"not read back: {ip or 'no fit'}"})
+            continue
+        if full_precision:
+            xt, ut = repr(float(ip.x)), repr(float(ip.u))
+            it = f"[{ip.interval[0]!r}, {ip.interval[1]!r}]"
+        else:
+            xt = format_value(ip.x, ip.u, style="paren")
+            ut = format_uncertainty(ip.x, ip.u)
+            it = format_interval(ip.interval[0], ip.interval[1], ip.x, ip.u)
+        rows.append({"name": str(name), "readings": str(ip.m), "mean": f"{ip.mean_reading:.6g}",
+                     "x": xt, "u": ut, "interval": it, "flag": "; ".join(flags(ip, limits))})
+    return rows
+
+
+def flags(ip, limits=None) -> list[str]:
+    """Short flags of one read-back: extrapolated, below the detection/quantification
+    limits (ICH Q2(R1) figures), slope not significant."""
+    out = []
+    if ip.extrapolated:
+        out.append("extrapolated")
+    if limits is not None and isinstance(limits, DetectionLimits):
+        if ip.x < limits.lod_ich:
+            out.append("below LOD")
+        elif ip.x < limits.loq_ich:
+            out.append("below LOQ")
+    if any("not significantly" in w for w in ip.warnings):
+        out.append("slope not significant")
+    return out
+
+
+def limits_lines(limits, lof=None, x_unit: str = "") -> list[tuple[str, str]]:
+    """(label, text) lines for detection limits and the lack-of-fit test."""
+    unit = f" {x_unit}" if x_unit else ""
+    out: list[tuple[str, str]] = []
+    if isinstance(limits, DetectionLimits):
+        for key, label in (("lod_ich", "LOD"), ("loq_ich", "LOQ"),
+                           ("critical_x", "critical value x_c"),
+                           ("detection_x", "detection limit x_d")):
+            out.append((label, f"{getattr(limits, key):.4g}{unit} ({limits.rules[key]})"))
+    elif limits:
+        out.append(("limits", f"not available: {limits}"))
+    if lof is not None:
+        out.append(("lack of fit", f"{lof.text()}; {lof.method}"))
+    return out
+
+
+def unknowns_text(items, fmt: str = "plain", *, level: float = 0.95, limits=None, lof=None,
+                  x_unit: str = "", full_precision: bool = False) -> str:
+    """The unknown samples read back off the calibration, in a copy/report format.
+
+    ``items``: ``(name, InversePrediction or error text)`` pairs; ``limits``: a
+    :class:`DetectionLimits` (or an error text); ``lof``: a :class:`LackOfFit`. The
+    method of the read-back is named (from the first result).
+    """
+    if fmt not in UNKNOWN_FORMATS:
+        raise ValueError(f"unknown format {fmt!r}; choose one of {', '.join(UNKNOWN_FORMATS)}")
+    items = list(items)
+    if not items and limits is None and lof is None:
+        return ""
+    rows = unknown_rows(items, limits, full_precision=full_precision)
+    pct = f"{100 * float(level):.6g} %"
+    first = next((ip for _n, ip in items if isinstance(ip, InversePrediction)), None)
+    method = first.method if first is not None else ""
+    unit = f" ({x_unit})" if x_unit else ""
+    head = ["sample", "readings", "mean reading", f"x{unit}", f"u(x){unit}",
+            f"{pct} interval", "flags"]
+    keys = ["name", "readings", "mean", "x", "u", "interval", "flag"]
+    extra = limits_lines(limits, lof, x_unit)
+    if method:
+        extra = [("read-back method", method)] + extra
+    title = "Unknown samples read back off the calibration"
+    if fmt == "plain":
+        lines = [title]
+        for r in rows:
+            if not r["x"]:
+                lines.append(f"  {r['name']}: {r['flag']}")
+                continue
+            flag = f"  [{r['flag']}]" if r["flag"] else ""
+            sp = f" {x_unit}" if x_unit else ""
+            lines.append(f"  {r['name']}: x = {r['x']}{sp}, {pct} interval {r['interval']}{sp} "
+                         f"(mean of {r['readings']} reading{'s' if r['readings'] != '1' else ''}"
+                         f" {r['mean']}){flag}")
+        lines += [f"  {a}: {b}" for a, b in extra]
+        return "\n".join(lines) + "\n"
+    if fmt == "tsv":
+        def cell(s):
+            return str(s).replace("\t", " ").replace("\n", " ")
+        lines = [title, "\t".join(head)]
+        lines += ["\t".join(cell(r[k]) for k in keys) for r in rows]
+        lines += [f"{cell(a)}\t{cell(b)}" for a, b in extra]
+        return "\n".join(lines) + "\n"
+    if fmt == "markdown":
+        def md(s):
+            return str(s).replace("|", "\\|")
+        lines = [f"**{title}**", "", "| " + " | ".join(head) + " |",
+                 "|" + "---|" * len(head)]
+        lines += ["| " + " | ".join(md(r[k]) for k in keys) + " |" for r in rows]
+        lines += [""] + [f"- {md(a)}: {md(b)}" for a, b in extra]
+        return "\n".join(lines) + "\n"
+    if fmt in ("latex", "siunitx"):
+        def num(s):
+            if fmt == "siunitx" and s and s[0] in "-0123456789" and "(" in s:
+                return r"\num{" + s + "}"
+            return _esc_tex(s)
+        lines = [f"% {title}", r"\begin{tabular}{lrrrrll}", r"\hline",
+                 " & ".join(_esc_tex(h) for h in head) + r" \\", r"\hline"]
+        lines += [" & ".join(num(r[k]) if k in ("x",) else _esc_tex(r[k]) for k in keys)
+                  + r" \\" for r in rows]
+        lines += [r"\hline", r"\end{tabular}"]
+        lines += [f"% {a}: {b}" for a, b in extra]
+        return "\n".join(lines) + "\n"
+    # html
+    out = [f"<p><b>{_esc_html(title)}</b></p>", '<table border="1" cellspacing="0" cellpadding="3">',
+           "<tr>" + "".join(f"<th>{_esc_html(h)}</th>" for h in head) + "</tr>"]
+    for r in rows:
+        cells = []
+        for k in keys:
+            cls = "" if k in ("name", "flag") else ' class="num"'
+            cells.append(f"<td{cls}>{_esc_html(r[k])}</td>")
+        out.append("<tr>" + "".join(cells) + "</tr>")
+    out.append("</table>")
+    if extra:
+        out.append("<ul>" + "".join(f"<li><b>{_esc_html(a)}</b>: {_esc_html(b)}</li>"
+                                    for a, b in extra) + "</ul>")
+    return "\n".join(out) + "\n"
