@@ -145,6 +145,8 @@ class MainWindow(QMainWindow):
         self.recent_menu = f.addMenu("Open &recent")
         self._action(f, "&Paste table", self.paste_table, "Ctrl+Shift+V",
                      tip="Read a table copied from a spreadsheet")
+        self._action(f, "Fit &many files...", self.fit_many_files,
+                     tip="Fit every curve of many files with the method on screen")
         f.addSeparator()
         self._action(f, "Open s&ession...", self.sessions.open_dialog, "Ctrl+Alt+O")
         self._action(f, "&Save session", self.sessions.save, QKeySequence.Save)
@@ -432,6 +434,12 @@ class MainWindow(QMainWindow):
             problems.append(msg)
         raise ValueError(f"{dialogs.counted(m.n, 'point')} that cannot be fitted, not even by a "
                          f"straight line ({problems[-1].rstrip('.')}).")
+
+    def fit_many_files(self):
+        """File > Fit many files...: the batch window (desktop/batch_window.py)."""
+        from .batch_window import open_batch_window
+
+        return open_batch_window(self)
 
     def load_measurements(self, m: Measurements, settings: Settings | None = None):
         """Show measurements built in code (scripts, benchmarks, tests)."""
