@@ -13,7 +13,11 @@ from PySide6.QtWidgets import (
     QListWidgetItem, QMessageBox, QVBoxLayout,
 )
 
-SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_sets"
+#: the sample data: desktop/sample_sets in an installed copy (package data), the
+#: top-level sample_sets/ in a checkout or an editable install
+SAMPLE_DIR = next((d for d in (Path(__file__).resolve().parent / "sample_sets",
+                               Path(__file__).resolve().parents[1] / "sample_sets") if d.is_dir()),
+                  Path(__file__).resolve().parents[1] / "sample_sets")
 DATA_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".ods")
 
 

@@ -1,15 +1,32 @@
-"""Shared fixtures. The reference data live under tests/reference/data/ (sources in
-tests/README.md and tests/reference/data/README.md); BALLAST_REFERENCE may point at
-another copy of the same layout."""
+"""Shared test configuration: the environment every run gets, and the reference data.
+
+The environment is set here, before any test module imports numpy or Qt, so that
+``python -m pytest`` runs the same way from a shell, from the README and from ``.ci/run``:
+one BLAS/OpenMP thread (small robust fits are slower with two threads on 2-core machines,
+and child processes inherit the setting) and Qt's offscreen platform (no window appears).
+
+The reference data live under tests/reference/data/ (sources in tests/README.md and
+tests/reference/data/README.md); BALLAST_REFERENCE may point at another copy of the same
+layout.
+"""
 from __future__ import annotations
 
 import os
-from pathlib import Path
 
-import pytest
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[_var] = "1"
+os.environ["QT_QPA_PLATFORM"] = "offscreen"
+
+from pathlib import Path  # noqa: E402 - after the environment above
+
+import pytest  # noqa: E402
+from threadpoolctl import threadpool_limits  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 REFERENCE = Path(os.environ.get("BALLAST_REFERENCE") or Path(__file__).resolve().parent / "reference" / "data")
+
+# Also limit a BLAS that a plugin loaded before this file was read.
+_THREAD_LIMIT = threadpool_limits(limits=1)
 
 
 @pytest.fixture(scope="session")

@@ -596,8 +596,8 @@ def _decay_data():
 
 def test_fit_formula_matches_scipy_least_squares():
     # source: scipy.optimize.least_squares run side by side on the same data
-    solve = pytest.importorskip("fitcore.solve")
-    least_squares = pytest.importorskip("scipy.optimize").least_squares
+    from fitcore import solve
+    from scipy.optimize import least_squares
     x, y = _decay_data()
     res = solve.fit("A*exp(-x/tau) + C", x, y, p0={"A": 2.0, "tau": 1.0, "C": 0.0})
     assert res.converged, res.message
@@ -610,9 +610,9 @@ def test_fit_formula_matches_scipy_least_squares():
 def test_robust_fit_of_formula_matches_scipy_huber():
     # source: scipy.optimize.least_squares(loss="huber", f_scale=c*s) side by side; with
     # the scale s held fixed, Huber's threshold c*s is SciPy's f_scale (design.md 3)
-    solve = pytest.importorskip("fitcore.solve")
-    losses = pytest.importorskip("fitcore.losses")
-    least_squares = pytest.importorskip("scipy.optimize").least_squares
+    from fitcore import solve
+    from fitcore import losses
+    from scipy.optimize import least_squares
     x, y = _decay_data()
     y = y.copy()
     y[[5, 17, 30]] += [1.0, -0.8, 1.5]
@@ -628,7 +628,7 @@ def test_robust_fit_of_formula_matches_scipy_huber():
 
 def test_linear_formula_fit_matches_numpy_lstsq():
     # source: numpy.linalg.lstsq on the same design matrix, side by side
-    solve = pytest.importorskip("fitcore.solve")
+    from fitcore import solve
     x, y = _decay_data()
     res = solve.fit("a + b*x + c*x**2", x, y)
     assert res.converged, res.message

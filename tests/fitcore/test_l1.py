@@ -88,7 +88,7 @@ def test_large_line_l1_matches_quantreg_and_the_dual_lp():
     # the optimum only to about 1e-7 (agreement to 1e-4 standard errors, and our sum |r|
     # is not larger); the optimum itself from the dual LP over all points by
     # scipy.optimize.linprog
-    sm = pytest.importorskip("statsmodels.api")
+    import statsmodels.api as sm
     rng = np.random.default_rng(4)
     n = 40000
     x = rng.uniform(0, 10, n)
@@ -242,7 +242,7 @@ def test_l1_stderr_on_stack_loss_matches_koenkers_recipe_and_is_near_quantreg():
     # rounding; statsmodels QuantReg estimates the same density at 0 by an Epanechnikov
     # kernel (its 'hsheather' bandwidth) over all residuals, zeros included, and comes
     # within 10 % (5.4 % here)
-    sm = pytest.importorskip("statsmodels.api")
+    import statsmodels.api as sm
     data = sm.datasets.stackloss.load_pandas().data
     y = data["STACKLOSS"].to_numpy(float)
     X = sm.add_constant(data[["AIRFLOW", "WATERTEMP", "ACIDCONC"]].to_numpy(float))
@@ -255,7 +255,7 @@ def test_l1_stderr_on_stack_loss_matches_koenkers_recipe_and_is_near_quantreg():
 def test_l1_stderr_near_quantreg_on_a_large_simulated_line():
     # both density estimates are consistent: at n = 4000 with 2 % gross outliers they
     # agree within 10 % (statsmodels QuantReg side by side; invented data)
-    sm = pytest.importorskip("statsmodels.api")
+    import statsmodels.api as sm
     rng = np.random.default_rng(8)
     n = 4000
     x = rng.uniform(0, 10, n)
@@ -270,7 +270,7 @@ def test_l1_stderr_at_small_n_is_not_blown_up_by_one_outlier():
     # the review's case: n = 10, one +30 outlier. The old window spanned the whole sorted
     # residual vector (outlier included): se [11.3, 2.12]. statsmodels QuantReg on the
     # same data, side by side, is the yardstick: within a factor 1.5
-    sm = pytest.importorskip("statsmodels.api")
+    import statsmodels.api as sm
     x = np.arange(10.0)
     y = 1 + 2 * x + np.random.default_rng(0).normal(0, 1, 10)
     y[4] += 30

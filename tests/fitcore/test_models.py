@@ -207,7 +207,7 @@ def _mp_formulas():
 def test_jacobian_at_tiny_parameters(name):
     # at tiny parameter values a finite difference in double precision is itself
     # inaccurate, so the reference is a 50-digit derivative of the formula (mpmath)
-    mp = pytest.importorskip("mpmath")
+    import mpmath as mp
     p, x = TINY[name]
     m = get_model(name)
     p = np.array(p, float)

@@ -298,7 +298,7 @@ def test_no_caution_for_plain_least_squares():
 
 def test_intervals_match_statsmodels(demo):
     # outside reference: statsmodels OLS on the kept points, run side by side
-    sm = pytest.importorskip("statsmodels.api")
+    import statsmodels.api as sm
     keep = ~demo.excluded
     ols = sm.OLS(Y_DEMO[keep], sm.add_constant(X_DEMO[keep])).fit()
     ci = ols.conf_int(0.05)
@@ -423,7 +423,7 @@ def test_points_csv(demo):
 
 def test_curve_csv_band_matches_statsmodels(demo):
     # outside reference: statsmodels mean confidence interval on the same points
-    sm = pytest.importorskip("statsmodels.api")
+    import statsmodels.api as sm
     keep = ~demo.excluded
     ols = sm.OLS(Y_DEMO[keep], sm.add_constant(X_DEMO[keep])).fit()
     grid = np.linspace(-1, 11, 7)
@@ -438,18 +438,15 @@ def test_curve_csv_band_matches_statsmodels(demo):
 
 
 # ============================================================================ with fitcore.fit
-def _fit_or_skip():
-    try:
-        return fitcore.fit
-    except (ImportError, AttributeError) as exc:  # the engine is not on main yet
-        pytest.skip(f"fitcore.fit is not available yet: {exc}")
+def _fit():
+    return fitcore.fit
 
 
 def test_norris_through_fit(reference_dir):
     # NIST StRD Norris through the engine: the report quotes the certified values
     # rounded per GUM 7.2.6 (B0 = -0.262323073774029 (0.232818234301152),
     # B1 = 1.00211681802045 (0.429796848199937E-03)).
-    fit = _fit_or_skip()
+    fit = _fit()
     cert, x, y = read_nist_linear(reference_dir / "nist-strd" / "Norris.dat")
     res = fit("line", x, y)
     text = report.estimates_text(res)
@@ -464,7 +461,7 @@ def test_norris_through_fit(reference_dir):
 
 
 def test_robust_fit_method_block():
-    fit = _fit_or_skip()
+    fit = _fit()
     # invented demo data: a line with two gross outliers and one point excluded
     x = np.arange(15.0)
     y = 0.5 + 1.5 * x + 0.05 * np.sin(3 * x)
@@ -608,7 +605,7 @@ def test_latex_intervals_are_in_math_mode():
 
 # ============================================================================ method words
 def test_method_block_reads_without_internal_names():
-    fit = _fit_or_skip()
+    fit = _fit()
     x = np.arange(12.0)
     y = 1.0 + 2.0 * x + 0.03 * np.cos(5 * x)  # invented demo data
     res = fit("line", x, y, loss="pseudo_huber")

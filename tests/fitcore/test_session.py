@@ -34,11 +34,8 @@ from fitcore.session import (
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def _fit_or_skip():
-    try:
-        return fitcore.fit
-    except (ImportError, AttributeError) as exc:  # the engine is not on main yet
-        pytest.skip(f"fitcore.fit is not available yet: {exc}")
+def _fit():
+    return fitcore.fit
 
 
 def demo_session(n=12, seed=1):
@@ -237,7 +234,7 @@ def test_malicious_content_is_only_data(tmp_path):
     assert t.columns["x"] == {"__reduce__": ["os.system", [f"touch {marker}"]]}
     assert not marker.exists()
     # a refit sends the text to the safe formula parser, which refuses it
-    fit = _fit_or_skip()
+    fit = _fit()
     assert fit
     with pytest.raises(ValueError):
         t.refit()
@@ -298,6 +295,7 @@ WRITER = textwrap.dedent("""
     i = 0
     while True:
         save_session(path, versions[i % 2])
+        print("saved", flush=True)
         i += 1
 """)
 
@@ -305,7 +303,9 @@ WRITER = textwrap.dedent("""
 @pytest.mark.skipif(not hasattr(signal, "SIGKILL"), reason="needs POSIX SIGKILL")
 def test_kill_during_write_leaves_a_complete_file(tmp_path):
     # A writer saving a large session in a loop is killed at a random moment; the file
-    # on disk must load and be one complete version (old or new), never a mixture.
+    # on disk must load and be one complete version (old or new), never a mixture. The
+    # kill comes after the writer reported its first complete save, so the check does
+    # not depend on how fast this machine writes.
     n = 150_000
     path = tmp_path / "big.ballast"
     x = np.arange(n) / 7.0
@@ -320,7 +320,8 @@ def test_kill_during_write_leaves_a_complete_file(tmp_path):
                                 stdout=subprocess.PIPE, env=env, cwd=str(tmp_path))
         try:
             assert proc.stdout.readline().strip() == b"ready"
-            time.sleep(rng.uniform(0.05, 0.8))
+            assert proc.stdout.readline().strip() == b"saved"
+            time.sleep(rng.uniform(0.0, 0.3))
         finally:
             os.kill(proc.pid, signal.SIGKILL)
             proc.wait(timeout=30)
@@ -366,7 +367,7 @@ def test_recovery_files(tmp_path):
 
 # ============================================================================ refit
 def test_refit_reproduces_bit_for_bit(tmp_path):
-    fit = _fit_or_skip()
+    fit = _fit()
     s = demo_session()
     res = s.refit()
     assert res.converged, res.message
@@ -389,7 +390,7 @@ def test_refit_reproduces_bit_for_bit(tmp_path):
 
 
 def test_refit_with_builtin_and_held_parameter(tmp_path):
-    _fit_or_skip()
+    _fit()
     x = np.array([0.0, 1, 2, 3, 4, 5, 6, 7, 8, 9])
     y = np.array([1.02, 2.98, 5.05, 6.96, 9.1, 10.97, 13.02, 25.0, 17.01, 18.95])
     s = Session(x=x, y=y, method=Method(model="line", loss="tukey"))

@@ -7,7 +7,7 @@ import pytest
 
 import fitcore
 
-sm = pytest.importorskip("statsmodels.api")
+import statsmodels.api as sm
 
 
 def _data():

@@ -14,7 +14,7 @@ import pytest
 import fitcore
 from fitcore.model import design_model
 
-sm = pytest.importorskip("statsmodels.api")
+import statsmodels.api as sm
 
 
 @pytest.fixture(scope="module")
