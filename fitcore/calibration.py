@@ -502,7 +502,9 @@ def inverse_predict(result, readings: Sequence[float] | float, level: float = 0.
         se_b = s / math.sqrt(sxx)
         slope_ok = abs(b) > t * se_b
         method = f"{RULE_CLASSICAL}; Student t on n - 2 = {result.dof} dof"
-        var_fn = lambda xv: s * s
+
+        def var_fn(xv):
+            return s * s
     else:
         slope = _dfdx(result, x0)
         if not (math.isfinite(slope) and slope != 0.0):
