@@ -478,7 +478,7 @@ class ReportExporter:
     def _unknowns_text(self, res, fmt: str, full_precision: bool = False) -> str:
         """The unknown samples read back off ``res`` (issue 14), "" when there are none."""
         view = getattr(self.window, "unknowns", None)
-        if view is None or view.for_result is not res or not view.samples:
+        if view is None or view.for_result is not res:
             return ""
         text = view.text(fmt, full_precision)
         return ("\n" + (_bordered(text) if fmt == "html" else text)) if text else ""
@@ -697,7 +697,9 @@ class ReportExporter:
 
         unknowns = self._unknowns_text(res, "html")
         if unknowns:  # their own section, the read-back method named in it
-            out += ["<h2>Unknown samples</h2>", unknowns]
+            view = self.window.unknowns
+            out += [f"<h2>{'Unknown samples' if view.samples else 'Calibration checks'}</h2>",
+                    unknowns]
 
         out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, m.source, y_unit))}</p>",
                 '<table border="1" cellspacing="0" cellpadding="3">']

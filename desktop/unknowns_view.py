@@ -308,10 +308,8 @@ class UnknownsView(QWidget):
         """The unknowns and limits in a copy format ("" when there is nothing to say)."""
         from fitcore.calibration import unknowns_text
 
-        if self.for_result is None or (not self.samples and not self.document.has_data):
-            return ""
-        if not self.samples:
-            return ""
+        if self.for_result is None or not (self.samples or self.lof is not None):
+            return ""  # the lack-of-fit test alone is worth a copy (replicate standards)
         return unknowns_text(self.items(), fmt, level=LEVEL, limits=self.limits, lof=self.lof,
                              x_unit=self.document.measurements.x_unit,
                              full_precision=full_precision)

@@ -319,7 +319,7 @@ class LackOfFit:
     method: str = RULE_LOF
 
     def text(self) -> str:
-        return (f"lack of fit: F = {self.F:.4g} on {self.df_lof} and {self.df_pe} dof, "
+        return (f"F = {self.F:.4g} on {self.df_lof} and {self.df_pe} dof, "
                 f"p = {self.p_value:.3g} ({self.levels} x levels with replicates)")
 
 
@@ -588,6 +588,11 @@ def detection_limits(result, level: float = 0.95, readings: int = 1, *,
             raise CalibrationError(f"the curve has no usable slope at the blank (x = "
                                    f"{blank_x:g}), so detection limits cannot be given")
         v0 = reading_variance(result, blank_x)
+        if not (v0 > 0 and math.isfinite(v0)):
+            raise CalibrationError(
+                "the weighting gives a reading at the blank zero variance (a 1/x or 1/y "
+                "rule at x or y = 0), so detection limits cannot be estimated from this "
+                "calibration; measure blanks and use their standard deviation")
         sigma = math.sqrt(v0)
         g = _grad(result, blank_x)
         C = np.asarray(result.covariance, float)
@@ -747,7 +752,8 @@ def unknowns_text(items, fmt: str = "plain", *, level: float = 0.95, limits=None
     extra = limits_lines(limits, lof, x_unit)
     if method:
         extra = [("read-back method", method)] + extra
-    title = "Unknown samples read back off the calibration"
+    title = ("Unknown samples read back off the calibration" if items
+             else "Calibration checks")
     if fmt == "plain":
         lines = [title]
         for r in rows:
@@ -764,40 +770,46 @@ def unknowns_text(items, fmt: str = "plain", *, level: float = 0.95, limits=None
     if fmt == "tsv":
         def cell(s):
             return str(s).replace("\t", " ").replace("\n", " ")
-        lines = [title, "\t".join(head)]
+        lines = [title] + (["\t".join(head)] if rows else [])
         lines += ["\t".join(cell(r[k]) for k in keys) for r in rows]
         lines += [f"{cell(a)}\t{cell(b)}" for a, b in extra]
         return "\n".join(lines) + "\n"
     if fmt == "markdown":
         def md(s):
             return str(s).replace("|", "\\|")
-        lines = [f"**{title}**", "", "| " + " | ".join(head) + " |",
-                 "|" + "---|" * len(head)]
+        lines = [f"**{title}**", ""]
+        if rows:
+            lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
         lines += ["| " + " | ".join(md(r[k]) for k in keys) + " |" for r in rows]
-        lines += [""] + [f"- {md(a)}: {md(b)}" for a, b in extra]
+        lines += ([""] if rows else []) + [f"- {md(a)}: {md(b)}" for a, b in extra]
         return "\n".join(lines) + "\n"
     if fmt in ("latex", "siunitx"):
         def num(s):
             if fmt == "siunitx" and s and s[0] in "-0123456789" and "(" in s:
                 return r"\num{" + s + "}"
             return _esc_tex(s)
-        lines = [f"% {title}", r"\begin{tabular}{lrrrrll}", r"\hline",
-                 " & ".join(_esc_tex(h) for h in head) + r" \\", r"\hline"]
-        lines += [" & ".join(num(r[k]) if k in ("x",) else _esc_tex(r[k]) for k in keys)
-                  + r" \\" for r in rows]
-        lines += [r"\hline", r"\end{tabular}"]
+        lines = [f"% {title}"]
+        if rows:
+            lines += [r"\begin{tabular}{lrrrrll}", r"\hline",
+                      " & ".join(_esc_tex(h) for h in head) + r" \\", r"\hline"]
+            lines += [" & ".join(num(r[k]) if k in ("x",) else _esc_tex(r[k]) for k in keys)
+                      + r" \\" for r in rows]
+            lines += [r"\hline", r"\end{tabular}"]
         lines += [f"% {a}: {b}" for a, b in extra]
         return "\n".join(lines) + "\n"
     # html
-    out = [f"<p><b>{_esc_html(title)}</b></p>", '<table border="1" cellspacing="0" cellpadding="3">',
-           "<tr>" + "".join(f"<th>{_esc_html(h)}</th>" for h in head) + "</tr>"]
+    out = [f"<p><b>{_esc_html(title)}</b></p>"]
+    if rows:
+        out += ['<table border="1" cellspacing="0" cellpadding="3">',
+                "<tr>" + "".join(f"<th>{_esc_html(h)}</th>" for h in head) + "</tr>"]
     for r in rows:
         cells = []
         for k in keys:
             cls = "" if k in ("name", "flag") else ' class="num"'
             cells.append(f"<td{cls}>{_esc_html(r[k])}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
-    out.append("</table>")
+    if rows:
+        out.append("</table>")
     if extra:
         out.append("<ul>" + "".join(f"<li><b>{_esc_html(a)}</b>: {_esc_html(b)}</li>"
                                     for a, b in extra) + "</ul>")

@@ -103,3 +103,16 @@ def test_reading_beyond_the_curve_is_flagged_not_a_number(open_window):
     assert win.unknowns.table.item(0, 2).text() == ""
     assert win.unknowns.table.item(0, 5).text() == "not read back"
     assert win.unknowns.table.item(1, 2).text() != ""
+
+
+def test_lack_of_fit_is_copied_with_replicate_standards(open_window):
+    # EURACHEM QUAM A5 data (replicate standards), fitted by least squares
+    win = open_window()
+    x = np.repeat([0.1, 0.3, 0.5, 0.7, 0.9], 3)
+    y = np.array([0.028, 0.029, 0.029, 0.084, 0.083, 0.081, 0.135, 0.131, 0.133,
+                  0.180, 0.181, 0.183, 0.215, 0.230, 0.216])
+    win.load_measurements(Measurements(x, y, source="invented"), Settings(model="line", loss="l2"))
+    assert win.runner.wait()
+    text = win.reports.copy("plain")
+    assert "lack of fit: F = " in text and "Calibration checks" in text
+    assert "lack of fit" in win.unknowns.limits_label.text()
