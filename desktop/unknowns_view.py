@@ -360,10 +360,32 @@ class UnknownsView(QWidget):
                         it.setForeground(self.table.palette().text())
             x_unit = self.document.measurements.x_unit
             lines = limits_lines(self.limits, self.lof, x_unit) if self.for_result is not None else []
-            self.limits_label.setText("<br>".join(
-                f"<b>{_h(a)}</b>: {_h(b)}" for a, b in lines))
+            self.limits_label.setText(self._short_limits(x_unit))
+            self.limits_label.setToolTip("\n".join(f"{a}: {b}" for a, b in lines))
         finally:
             self._filling = False
+
+    def _short_limits(self, x_unit: str) -> str:
+        """One compact line per figure; the full rules are in the tooltip and the copies."""
+        from fitcore.calibration import DetectionLimits
+
+        if self.for_result is None:
+            return ""
+        u = f" {_h(x_unit)}" if x_unit else ""
+        lim = self.limits
+        parts = []
+        if isinstance(lim, DetectionLimits):
+            parts.append(f"<b>LOD</b> {lim.lod_ich:.3g}{u}, <b>LOQ</b> {lim.loq_ich:.3g}{u} "
+                         "(ICH Q2(R1): 3.3&sigma;/S, 10&sigma;/S)")
+            parts.append(f"<b>x<sub>c</sub></b> {lim.critical_x:.3g}{u}, <b>x<sub>d</sub></b> "
+                         f"{lim.detection_x:.3g}{u} (ISO 11843-2, K = {lim.readings})")
+        elif lim:
+            parts.append(f"limits not available: {_h(lim)}")
+        if self.lof is not None:
+            lof = self.lof
+            parts.append(f"<b>lack of fit</b>: F = {lof.F:.3g} on {lof.df_lof} and {lof.df_pe} "
+                         f"dof, p = {lof.p_value:.3g}")
+        return "<br>".join(parts)
 
     def mark_segments(self):
         """Read-back marks as x/y arrays of segment pairs (data coordinates)."""

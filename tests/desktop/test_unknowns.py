@@ -50,7 +50,7 @@ def test_paste_three_unknowns_exclude_a_standard_and_undo(calib, qtbot):
     assert [round(x, 2) for x, _u in first] == [0.72, 6.21, 11.13]
     assert [round(u, 2) for _x, u in first] == [0.26, 0.24, 0.26]
     assert view.table.item(0, 2).text() == fitcore.format_value(first[0][0], first[0][1])
-    assert "LOD" in view.limits_label.text()
+    assert "LOD" in view.limits_label.text() and "ICH Q2(R1)" in view.limits_label.toolTip()
     # plot marks: horizontal then vertical, one pair of segments per unknown
     xs, ys = view.mark_segments()
     assert xs.size == 12 and xs[1] == pytest.approx(first[0][0]) and ys[3] < ys[2]
