@@ -92,7 +92,8 @@ def comparison_request(document: Document, losses) -> dict:
     if "general" not in losses:
         kw.pop("alpha", None)
     else:
-        kw["alpha"] = float(document.settings.alpha)
+        alpha = document.settings.alpha
+        kw["alpha"] = 1.0 if alpha is None else float(alpha)
     kw["sigma"] = req["sigma"]
     kw["excluded"] = req["excluded"]
     return {"model": req["model"], "x": req["x"], "y": req["y"], "kwargs": kw,
@@ -110,7 +111,8 @@ def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: boo
 
     n = int(np.size(request["x"]))
     if use_child is None:
-        use_child = n <= aw.CHILD_MAX_POINTS
+        # a model with options travels as a built object, which stays in this process
+        use_child = n <= aw.CHILD_MAX_POINTS and isinstance(request["model"], str)
     if use_child:
         from fitcore.models import resolve_model
 

@@ -2,9 +2,11 @@
 
 The document holds what the analyst works on:
 
-* the measurements (x, y, optional sigma_y, names and units, where they came from);
-* the exclusion record: a boolean mask, plus a reason and a time per excluded point;
-* the method settings (model, loss, scale, alpha, held parameters, start values);
+* the measurements: a :class:`fitcore.work.DataSet` (x, y, optional sigma_y, names
+  and units, where they came from, file rows, read notes);
+* the exclusion record: a boolean mask, plus a reason and a time per excluded point
+  (:meth:`Document.exclusions` gives it as :class:`fitcore.work.Exclusion` entries);
+* the method: a :class:`fitcore.work.Method` (model and every option of ``fit()``);
 * the last fit result, whether it is stale, and the last fit message.
 
 Widgets observe it through plain callbacks (:meth:`Document.subscribe`) and change it
@@ -15,130 +17,29 @@ fit result computed from older inputs can be recognised and dropped.
 from __future__ import annotations
 
 import datetime as _dt
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
+
+from fitcore.work import DataSet, Exclusion, Method
 
 #: events sent to subscribers
 EVENTS = ("data", "mask", "reasons", "settings", "result", "selection")
 
 
-@dataclass(frozen=True)
-class Measurements:
-    """One data set: x, y and optional standard uncertainties of y.
+#: the window's name for one data set (:class:`fitcore.work.DataSet`)
+Measurements = DataSet
 
-    Parameters
-    ----------
-    x, y
-        Float arrays of equal length (finite values only).
-    sigma
-        Standard uncertainties of y (positive), or None.
-    x_name, y_name, sigma_name
-        Column names as read from the file.
-    x_unit, y_unit
-        Units split off the headers ("" when none).
-    source
-        File path, or a short description such as "clipboard".
-    notes
-        Human-readable lines about what was skipped or guessed while reading.
-    source_rows
-        The row of the file (or sheet) each point came from, as the file shows it
-        (so a point can be matched to the lab notebook), or None when not known.
-    """
-
-    x: np.ndarray
-    y: np.ndarray
-    sigma: np.ndarray | None = None
-    x_name: str = "x"
-    y_name: str = "y"
-    sigma_name: str = ""
-    x_unit: str = ""
-    y_unit: str = ""
-    source: str = ""
-    notes: tuple[str, ...] = ()
-    source_rows: np.ndarray | None = None
-
-    def __post_init__(self):
-        x = np.asarray(self.x, dtype=float).ravel()
-        y = np.asarray(self.y, dtype=float).ravel()
-        if x.size != y.size:
-            raise ValueError(f"x has {x.size} values but y has {y.size}; they must match")
-        object.__setattr__(self, "x", x)
-        object.__setattr__(self, "y", y)
-        if self.sigma is not None:
-            s = np.asarray(self.sigma, dtype=float).ravel()
-            if s.size != x.size:
-                raise ValueError(f"sigma_y has {s.size} values but x has {x.size}; they must match")
-            object.__setattr__(self, "sigma", s)
-        object.__setattr__(self, "notes", tuple(self.notes))
-        if self.source_rows is not None:
-            rows = np.asarray(self.source_rows, dtype=np.int64).ravel()
-            object.__setattr__(self, "source_rows", rows if rows.size == x.size else None)
-
-    def file_row(self, i: int) -> int | None:
-        """The file row point ``i`` (0-based) came from, or None."""
-        rows = self.source_rows
-        return int(rows[i]) if rows is not None and 0 <= i < rows.size else None
-
-    @property
-    def n(self) -> int:
-        return int(self.x.size)
-
-    def label(self, which: str) -> str:
-        """Axis label such as ``"Time (s)"`` for ``which`` in {"x", "y"}."""
-        name, unit = (self.x_name, self.x_unit) if which == "x" else (self.y_name, self.y_unit)
-        return f"{name} ({unit})" if unit else name
+#: what the window's method starts as (and what :func:`Settings` fills in)
+WINDOW_DEFAULTS = {"loss": "huber", "alpha": 1.0}
 
 
-@dataclass(frozen=True)
-class Settings:
-    """The method: what to fit and how. Immutable; a change makes a new one.
-
-    Parameters
-    ----------
-    model
-        A built-in model name or a formula text (see ``model_kind``).
-    model_kind
-        "builtin" or "formula".
-    loss
-        One of ``fitcore.LOSS_NAMES``.
-    scale
-        "auto" or a positive number in units of y.
-    alpha
-        Shape of the general loss (used only when ``loss == "general"``).
-    fixed
-        Held parameters, ``(name, value)`` pairs.
-    p0
-        Start values, ``(name, value)`` pairs (parameters not listed start from the
-        model's own guess).
-    """
-
-    model: str = "line"
-    model_kind: str = "builtin"
-    loss: str = "huber"
-    scale: str | float = "auto"
-    alpha: float = 1.0
-    fixed: tuple[tuple[str, float], ...] = ()
-    p0: tuple[tuple[str, float], ...] = ()
-
-    def with_(self, **kw) -> "Settings":
-        """A copy with some fields changed (dicts are accepted for fixed/p0)."""
-        for key in ("fixed", "p0"):
-            if key in kw and isinstance(kw[key], dict):
-                kw[key] = tuple(sorted((str(k), float(v)) for k, v in kw[key].items()))
-        return replace(self, **kw)
-
-    def fit_kwargs(self) -> dict:
-        """Keyword arguments for ``fitcore.fit`` (besides model, x, y)."""
-        kw = {"loss": self.loss, "scale": self.scale}
-        if self.loss == "general":
-            kw["alpha"] = float(self.alpha)
-        if self.fixed:
-            kw["fixed"] = dict(self.fixed)
-        if self.p0:
-            kw["p0"] = dict(self.p0)
-        return kw
+def Settings(**fields) -> Method:  # noqa: N802 - the window's name for a method
+    """The window's method: a :class:`fitcore.work.Method` (every option of
+    :func:`fitcore.fit`), with the window's defaults for fields not given (the Huber
+    loss; shape 1 ready for the general loss)."""
+    return Method(**{**WINDOW_DEFAULTS, **fields})
 
 
 @dataclass
@@ -203,7 +104,7 @@ class Document:
     :meth:`subscribe`; ``event`` is one of :data:`EVENTS`.
     """
 
-    def __init__(self, measurements: Measurements | None = None, settings: Settings | None = None):
+    def __init__(self, measurements: DataSet | None = None, settings: Method | None = None):
         self._listeners: list[Callable] = []
         self.settings = settings or Settings()
         self.measurements = Measurements(np.zeros(0), np.zeros(0))
@@ -246,16 +147,20 @@ class Document:
         """``(point index, reason, time)`` for every excluded point."""
         return [(int(i), self.reasons[i], self.times[i]) for i in np.flatnonzero(self.excluded)]
 
+    def exclusions(self) -> list[Exclusion]:
+        """The exclusion record as :class:`fitcore.work.Exclusion` entries."""
+        return [Exclusion(i, r, t) for i, r, t in self.exclusion_record()]
+
     def fit_request(self) -> dict:
         """Everything one fit needs, as copies (safe to hand to a worker thread)."""
         m = self.measurements
         return {
-            "model": self.settings.model,
+            "model": self.settings.model_spec(),
             "x": m.x.copy(),
             "y": m.y.copy(),
             "sigma": None if m.sigma is None else m.sigma.copy(),
             "excluded": self.excluded.copy(),
-            "kwargs": self.settings.fit_kwargs(),
+            "kwargs": self.settings.to_fit_kwargs(),
             "generation": self.generation,
         }
 
@@ -275,7 +180,7 @@ class Document:
         if self.result is not None:
             self.stale = True
 
-    def apply_measurements(self, m: Measurements, *, settings: Settings | None = None) -> None:
+    def apply_measurements(self, m: DataSet, *, settings: Method | None = None) -> None:
         """Replace the data set (clears the exclusion record and the result)."""
         self.measurements = m
         self.excluded = np.zeros(m.n, bool)
@@ -333,7 +238,7 @@ class Document:
         self.reasons[int(index)] = str(reason)
         self._emit("reasons", indices=np.array([index], np.intp))
 
-    def apply_settings(self, settings: Settings) -> None:
+    def apply_settings(self, settings: Method) -> None:
         """Replace the method settings."""
         if settings == self.settings:
             return

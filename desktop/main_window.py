@@ -62,7 +62,10 @@ class MainWindow(QMainWindow):
         self.document = Document()
         self.undo_stack = QUndoStack(self)
         self.ask_reasons = False
-        self._load_note = None  # (generation, note on the method) of the last data opened
+        #: (generation, message, ms) said when the last data were opened: the first result
+        #: of those data says it again, so the status bar ends on it whether the fit ran
+        #: before the message (inline) or after it (deferred or in the worker)
+        self._load_note = None
 
         self.plot = PlotView(self.document, self.push, ask_reason=self._ask_reason)
         self.points_model = PointsModel(self.document, self.push, self)
@@ -385,10 +388,13 @@ class MainWindow(QMainWindow):
         name = os.path.basename(m.source) if m.source != "clipboard" else "pasted table"
         self.setWindowTitle(f"Ballast - {name}")
         note = "; ".join(m.notes)
-        self._load_note = (self.document.generation, method_note)
-        self.statusBar().showMessage(
-            f"{dialogs.counted(m.n, 'point')} from {name}" + (f". {note}" if note else "")
-            + (f". {method_note}" if method_note else ""), 20000 if method_note else 15000)
+        text = (f"{dialogs.counted(m.n, 'point')} from {name}" + (f". {note}" if note else "")
+                + (f". {method_note}" if method_note else ""))
+        ms = 20000 if method_note else 15000
+        doc = self.document
+        fitted = doc.result is not None and doc.result_generation == doc.generation
+        self._load_note = None if fitted else (doc.generation, text, ms)
+        self.statusBar().showMessage(text, ms)
         return True
 
     def method_for(self, m: Measurements, suggested: Settings | None = None):
@@ -419,9 +425,9 @@ class MainWindow(QMainWindow):
                if m.n > TRIAL_POINTS else slice(None))
         problems = []
         for s in ([first] if first == line else [first, line]):
-            req = {"model": s.model, "x": m.x[idx], "y": m.y[idx],
+            req = {"model": s.model_spec(), "x": m.x[idx], "y": m.y[idx],
                    "sigma": None if m.sigma is None else m.sigma[idx],
-                   "excluded": np.zeros(m.x[idx].size, bool), "kwargs": s.fit_kwargs()}
+                   "excluded": np.zeros(m.x[idx].size, bool), "kwargs": s.to_fit_kwargs()}
             res, msg = run_fit(req)
             if res is not None and not (res.converged and np.all(np.isfinite(res.values))):
                 msg = res.message if not res.converged else "the estimates are not finite"
@@ -477,9 +483,11 @@ class MainWindow(QMainWindow):
                                              "(the previous result is kept, marked stale)", 15000)
             elif res is not None:
                 note = self.log_axis_note()
-                gen, method_note = self._load_note or (None, "")
-                if method_note and gen == self.document.result_generation:
-                    note = f"{method_note} {note}".strip()  # still news: say it again
+                gen, text, ms = self._load_note or (None, "", 0)
+                if gen == self.document.result_generation:  # the first fit of new data
+                    self._load_note = None
+                    self.statusBar().showMessage(text + (f" {note}" if note else ""), ms)
+                    return
                 self.statusBar().showMessage(f"Fitted {dialogs.counted(res.n_used, 'point')} "
                                              f"({res.loss})." + (f" {note}" if note else ""),
                                              15000 if note else 4000)

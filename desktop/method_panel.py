@@ -52,10 +52,8 @@ def model_param_names(settings: Settings) -> tuple[str, ...]:
 
             ok, _msg, names = validate_formula(settings.model)
             return tuple(names) if ok else ()
-        import fitcore
-
-        return tuple(fitcore.get_model(settings.model).param_names)
-    except Exception:  # noqa: BLE001 - engine module missing or model unknown
+        return tuple(settings.build_model().param_names)
+    except ValueError:  # an unknown model or options it does not take
         return ()
 
 
@@ -285,8 +283,9 @@ class MethodPanel(QWidget):
     @staticmethod
     def _prune(new: Settings) -> Settings:
         names = set(model_param_names(new))
-        return new.with_(fixed={k: v for k, v in new.fixed if k in names},
-                         p0={k: v for k, v in new.p0 if k in names})
+        return new.with_(fixed={k: v for k, v in new.fixed.items() if k in names},
+                         p0={k: v for k, v in new.named_p0(model_param_names(new)).items()
+                             if k in names})
 
     # ------------------------------------------------------------ edits
     def _on_model_picked(self, _i=None):
@@ -368,7 +367,11 @@ class MethodPanel(QWidget):
 
     def _on_loss_picked(self, _i=None):
         name = self.loss_combo.currentData()
-        self._propose(self.document.settings.with_(loss=name), f"Loss: {_loss_title(name)}")
+        s = self.document.settings
+        new = s.with_(loss=name)
+        if name == "general" and s.alpha is None:  # a method saved without a shape
+            new = new.with_(alpha=1.0)
+        self._propose(new, f"Loss: {_loss_title(name)}")
 
     def _say(self, text: str = ""):
         """Show (or with "" clear) the message about rejected input."""
@@ -424,7 +427,7 @@ class MethodPanel(QWidget):
         fixed, p0, bad = {}, {}, []
         res = self.document.result
         s = self.document.settings
-        now = dict(s.p0)
+        now = s.named_p0(model_param_names(s))
         now.update(dict(s.fixed))
         self._updating = True
         try:
@@ -489,7 +492,7 @@ class MethodPanel(QWidget):
         try:
             if s.loss == "general":
                 spin.setSpecialValueText("")
-                spin.setValue(float(s.alpha))
+                spin.setValue(1.0 if s.alpha is None else float(s.alpha))
                 spin.setToolTip("Shape of the general loss: 2 = least squares, 1 = pseudo-Huber, "
                                 "0 = Cauchy, -2 = Geman-McClure, lower = closer to Welsch")
             elif s.loss == "adaptive":
@@ -541,7 +544,7 @@ class MethodPanel(QWidget):
             self._scale_wording()
             self._show_alpha()
             names = model_param_names(s)
-            fixed, p0 = dict(s.fixed), dict(s.p0)
+            fixed, p0 = dict(s.fixed), s.named_p0(names)
             self.param_table.setRowCount(len(names))
             for r, n in enumerate(names):
                 it = QTableWidgetItem(n)

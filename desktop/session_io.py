@@ -38,11 +38,12 @@ import os
 from pathlib import Path
 
 import numpy as np
+from fitcore.session import Session
 from PySide6.QtCore import QObject, QStandardPaths, QTimer
 from PySide6.QtWidgets import QFileDialog, QMessageBox
 
 from . import dialogs
-from .document import MaskChange, Measurements, Settings
+from .document import MaskChange
 
 SESSION_FILTER = "Ballast sessions (*.ballast);;All files (*)"
 #: quiet time after the last change before the recovery file is written
@@ -105,31 +106,15 @@ def default_recovery_dir(qsettings=None) -> Path:
 
 # ============================================================================ conversion
 def document_to_session(doc, *, source_sha256: str = "", include_result: bool = True):
-    """A :class:`fitcore.session.Session` holding what the document holds.
+    """A :class:`fitcore.session.Session` holding what the document holds: its data set,
+    its method and its exclusion record (the same :mod:`fitcore.work` types).
 
     The last result is stored only when it belongs to the current inputs (not stale),
     so a reopened session never shows estimates from other inputs.
     """
-    from fitcore.session import Exclusion, Method, Session
-
     m = doc.measurements
-    s = doc.settings
-    method = Method(
-        model=s.model, model_kind=s.model_kind, loss=s.loss,
-        scale=s.scale if s.scale == "auto" else float(s.scale),
-        alpha=float(s.alpha) if s.loss == "general" else None,
-        fixed=dict(s.fixed), p0=dict(s.p0) or None, sigma_mode="absolute",
-    )
-    session = Session(
-        x=m.x.copy(), y=m.y.copy(), sigma=None if m.sigma is None else m.sigma.copy(),
-        names={"x": m.x_name, "y": m.y_name, "sigma": m.sigma_name or ""},
-        units={"x": m.x_unit, "y": m.y_unit},
-        source_file=str(m.source or ""), source_sha256=source_sha256,
-        columns={"x": m.x_name, "y": m.y_name, "sigma": m.sigma_name or None,
-                 "notes": list(m.notes)},
-        method=method,
-        exclusions=[Exclusion(i, r, t) for i, r, t in doc.exclusion_record()],
-    )
+    data = m.with_(source_sha256=source_sha256) if source_sha256 != m.source_sha256 else m
+    session = Session(data=data, method=doc.settings, exclusions=doc.exclusions())
     res = doc.result
     if (include_result and res is not None and not doc.stale
             and doc.result_generation == doc.generation and len(res.weights) == m.n):
@@ -137,49 +122,9 @@ def document_to_session(doc, *, source_sha256: str = "", include_result: bool = 
     return session
 
 
-def session_settings(session) -> Settings:
-    """The window's method settings for a session's method."""
-    md = session.method
-    if md.model_options:
-        raise ValueError("this session's model has options the window cannot set "
-                         f"({', '.join(md.model_options)}); open it with fitcore.load_session")
-    if md.tuning is not None:
-        raise ValueError("this session uses its own tuning constant, which the window "
-                         "cannot set; open it with fitcore.load_session")
-    if session.sigma is not None and md.sigma_mode != "absolute":
-        raise ValueError(f"this session treats sigma as {md.sigma_mode!r}, which the window "
-                         "cannot set; open it with fitcore.load_session")
-    p0 = md.p0
-    if isinstance(p0, list):
-        raise ValueError("this session gives start values by position; the window needs them "
-                         "by name")
-    return Settings(model=md.model, model_kind=md.model_kind, loss=md.loss, scale=md.scale,
-                    alpha=1.0 if md.alpha is None else float(md.alpha)).with_(
-        fixed=dict(md.fixed), p0=dict(p0 or {}))
-
-
-def session_measurements(session) -> Measurements:
-    names = session.names or {}
-    units = session.units or {}
-    notes = session.columns.get("notes", []) if isinstance(session.columns, dict) else []
-    return Measurements(
-        session.x, session.y, session.sigma,
-        x_name=names.get("x", "x") or "x", y_name=names.get("y", "y") or "y",
-        sigma_name=names.get("sigma", "") or "", x_unit=units.get("x", ""),
-        y_unit=units.get("y", ""), source=session.source_file,
-        notes=tuple(str(n) for n in notes) if isinstance(notes, list) else (),
-    )
-
-
 def apply_session(doc, session) -> None:
-    """Put a session's data, method and exclusion record into the document.
-
-    Everything is checked first (a session the window cannot show raises
-    ``ValueError`` and the document is untouched).
-    """
-    settings = session_settings(session)
-    m = session_measurements(session)
-    doc.apply_measurements(m, settings=settings)
+    """Put a session's data set, method and exclusion record into the document."""
+    doc.apply_measurements(session.data, settings=session.method)
     if session.exclusions:
         ex = sorted(session.exclusions, key=lambda e: e.index)
         idx = np.array([e.index for e in ex], np.intp)
@@ -473,12 +418,6 @@ class SessionManager(QObject):
         return True
 
     def _show(self, session, name: str, view: dict | None = None) -> bool:
-        try:
-            session_settings(session)
-            session_measurements(session)
-        except ValueError as err:
-            dialogs.error_box(self.window, "Cannot open the session", f"{name}: {err}")
-            return False
         win = self.window
         runner = getattr(win, "runner", None)
         was = runner.enabled if runner is not None else None

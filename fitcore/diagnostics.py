@@ -46,6 +46,7 @@ import numpy as np
 from .losses import DEFAULT_TUNING, get_loss
 from .result import FitResult
 from .solve import FitError, fit
+from .work import scale_was_fixed
 
 HIGH_LEVERAGE_ABS = 0.5
 LEVERAGE_NOTE = ("a robust loss does not protect against a point far out in x: "
@@ -68,7 +69,7 @@ def refit_settings(res: FitResult, *, hold_shape: bool = False) -> dict:
         kw["alpha"] = res.alpha
     if res.loss in DEFAULT_TUNING or res.loss == "general":
         kw["tuning"] = res.tuning
-    if str(res.scale_method).startswith("fixed"):
+    if scale_was_fixed(res):
         kw["scale"] = res.scale
     if res.loss == "adaptive" and hold_shape:
         kw.update(loss="general", alpha=res.alpha, tuning=res.tuning, scale=res.scale)

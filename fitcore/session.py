@@ -31,12 +31,13 @@ import json
 import math
 import os
 import tempfile
-from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Mapping
 
 import numpy as np
+
+from .work import FIT_OPTIONS, DataSet, Exclusion, Method
 
 __all__ = [
     "FORMAT_TAG",
@@ -44,6 +45,7 @@ __all__ = [
     "SUFFIX",
     "RECOVERY_SUFFIX",
     "SessionError",
+    "DataSet",
     "Exclusion",
     "Method",
     "Session",
@@ -78,80 +80,92 @@ def now_iso() -> str:
 
 
 # ============================================================================ data types
-@dataclass
-class Exclusion:
-    """One entry of the exclusion record: a point left out by the analyst."""
-
-    index: int
-    reason: str = ""
-    time: str = ""  # ISO-8601
-
-
-@dataclass
-class Method:
-    """How the fit is made: everything :func:`fitcore.fit` needs besides the data.
-
-    ``model`` is a built-in model name (``model_kind="builtin"``, with
-    ``model_options`` such as a polynomial degree) or formula text
-    (``model_kind="formula"``). A model built from Python callables cannot be stored.
-    """
-
-    model: str = "line"
-    model_kind: str = "builtin"  # "builtin" or "formula"
-    model_options: dict = field(default_factory=dict)
-    loss: str = "l2"
-    scale: Any = "auto"  # "auto" or a positive float (y units)
-    alpha: float | None = None
-    tuning: float | None = None
-    fixed: dict = field(default_factory=dict)  # name -> held value
-    p0: Any = None  # None, {name: value} or a list of values
-    sigma_mode: str = "absolute"
-
-    def model_spec(self):
-        """What to pass as ``model`` to :func:`fitcore.fit`."""
-        if self.model_kind == "formula" or not self.model_options:
-            return self.model
-        from . import get_model
-
-        return get_model(self.model, **self.model_options)
-
-
-@dataclass
 class Session:
-    """Saved work: measurements, method, exclusion record and the last result.
+    """Saved work: a data set, a method and an exclusion record (the three types of
+    :mod:`fitcore.work`), with a snapshot of the last result.
 
-    Pure data (no Qt). ``x``, ``y`` and ``sigma`` are float arrays of one length;
-    ``result`` is the snapshot dict written by :meth:`store_result` (or None).
+    Pure data (no Qt). Build it from a :class:`~fitcore.work.DataSet` (``data=``) or,
+    as before, from the arrays and their descriptions (``x, y, sigma, names, units,
+    source_file, source_sha256, columns``); ``x``, ``y``, ``sigma`` and the other data
+    fields read through to :attr:`data`. ``result`` is the snapshot dict written by
+    :meth:`store_result` (or None).
     """
 
-    x: Any
-    y: Any
-    sigma: Any = None
-    names: dict = field(default_factory=lambda: {"x": "x", "y": "y", "sigma": ""})
-    units: dict = field(default_factory=dict)
-    source_file: str = ""
-    source_sha256: str = ""
-    columns: dict = field(default_factory=dict)
-    method: Method = field(default_factory=Method)
-    exclusions: list = field(default_factory=list)
-    result: dict | None = None
-    created: str = ""
-    ballast_version: str = ""
-    saved_as: str = ""  # for recovery files: the session path the work belongs to
+    def __init__(self, x=None, y=None, sigma=None, names=None, units=None,
+                 source_file: str = "", source_sha256: str = "", columns=None,
+                 method: Method | None = None, exclusions=None, result: dict | None = None,
+                 created: str = "", ballast_version: str = "", saved_as: str = "", *,
+                 data: DataSet | None = None, notes=(), source_rows=None):
+        if data is None:
+            names = dict(names or {})
+            units = dict(units or {})
+            try:
+                data = DataSet(
+                    np.array(x, dtype=float), np.array(y, dtype=float),
+                    None if sigma is None else np.array(sigma, dtype=float),
+                    x_name=str(names.get("x", "x")), y_name=str(names.get("y", "y")),
+                    sigma_name=str(names.get("sigma", "") or ""),
+                    x_unit=str(units.get("x", "")), y_unit=str(units.get("y", "")),
+                    source=str(source_file or ""), notes=tuple(notes),
+                    source_rows=source_rows, source_sha256=str(source_sha256 or ""),
+                    columns=dict(columns or {}))
+            except ValueError as exc:
+                raise SessionError(str(exc)) from None
+        self.data = data
+        self.method = method if method is not None else Method()
+        self.exclusions = list(exclusions or [])
+        self.result = result
+        self.created = created
+        self.ballast_version = ballast_version
+        self.saved_as = saved_as  # for recovery files: the session path the work belongs to
 
-    def __post_init__(self):
-        self.x = np.array(self.x, dtype=float).ravel()
-        self.y = np.array(self.y, dtype=float).ravel()
-        if self.x.size != self.y.size:
-            raise SessionError(
-                f"x has {self.x.size} values but y has {self.y.size}; they must match"
-            )
-        if self.sigma is not None:
-            self.sigma = np.array(self.sigma, dtype=float).ravel()
-            if self.sigma.size != self.x.size:
-                raise SessionError(
-                    f"sigma has {self.sigma.size} values but x and y have {self.x.size}"
-                )
+    def __repr__(self):
+        return (f"Session({self.n_points} points from {self.source_file or 'no file'!r}, "
+                f"{self.method!r}, {len(self.exclusions)} excluded)")
+
+    # ------------------------------------------------------------------ the data set
+    x = property(lambda self: self.data.x)
+    y = property(lambda self: self.data.y)
+    sigma = property(lambda self: self.data.sigma)
+    names = property(lambda self: self.data.names)
+    units = property(lambda self: self.data.units)
+    columns = property(lambda self: self.data.columns)
+    source_rows = property(lambda self: self.data.source_rows)
+    notes = property(lambda self: self.data.notes)
+
+    @x.setter
+    def x(self, value):
+        self._change_data(x=value)
+
+    @y.setter
+    def y(self, value):
+        self._change_data(y=value)
+
+    @sigma.setter
+    def sigma(self, value):
+        self._change_data(sigma=value)
+
+    @property
+    def source_file(self) -> str:
+        return self.data.source
+
+    @source_file.setter
+    def source_file(self, value):
+        self._change_data(source=str(value))
+
+    @property
+    def source_sha256(self) -> str:
+        return self.data.source_sha256
+
+    @source_sha256.setter
+    def source_sha256(self, value):
+        self._change_data(source_sha256=str(value))
+
+    def _change_data(self, **kw):
+        try:
+            self.data = self.data.with_(**kw)
+        except ValueError as exc:
+            raise SessionError(str(exc)) from None
 
     # ------------------------------------------------------------------ exclusions
     @property
@@ -194,11 +208,8 @@ class Session:
         from . import fit
 
         m = self.method
-        return fit(
-            m.model_spec(), self.x, self.y, loss=m.loss, scale=m.scale, alpha=m.alpha,
-            sigma=self.sigma, excluded=self.excluded, p0=m.p0,
-            fixed=dict(m.fixed) or None, tuning=m.tuning, sigma_mode=m.sigma_mode,
-        )
+        return fit(m.model_spec(), self.x, self.y, sigma=self.sigma, excluded=self.excluded,
+                   **m.to_fit_kwargs())
 
     def store_result(self, res) -> None:
         """Keep a snapshot of a FitResult in the session (what the file records)."""
@@ -310,44 +321,49 @@ def _session_dict(session: Session, floats) -> dict:
             f"model kind {m.model_kind!r} cannot be stored; a session keeps a built-in "
             "model name or a formula (models built in Python code cannot be saved)"
         )
-    if isinstance(m.scale, str):
-        if m.scale != "auto":
-            raise SessionError(f"scale must be 'auto' or a positive number, not {m.scale!r}")
-        scale = "auto"
-    else:
-        scale = _enc(m.scale)
+    data = {
+        "x": floats(session.x),
+        "y": floats(session.y),
+        "sigma": None if session.sigma is None else floats(session.sigma),
+        "names": {str(k): str(v) for k, v in session.names.items()},
+        "units": {str(k): str(v) for k, v in session.units.items()},
+        "source_file": str(session.source_file),
+        "source_sha256": str(session.source_sha256),
+        "columns": _enc_tree(dict(session.columns)),
+    }
+    if session.notes:
+        data["notes"] = [str(n) for n in session.notes]
+    if session.source_rows is not None:
+        data["source_rows"] = [int(r) for r in session.source_rows]
     return {
         "format": FORMAT_TAG,
         "version": FORMAT_VERSION,
         "created": session.created or now_iso(),
         "ballast_version": str(__version__),
         "saved_as": str(session.saved_as or ""),
-        "data": {
-            "x": floats(session.x),
-            "y": floats(session.y),
-            "sigma": None if session.sigma is None else floats(session.sigma),
-            "names": {str(k): str(v) for k, v in session.names.items()},
-            "units": {str(k): str(v) for k, v in session.units.items()},
-            "source_file": str(session.source_file),
-            "source_sha256": str(session.source_sha256),
-            "columns": _enc_tree(dict(session.columns)),
-        },
-        "method": {
-            "model": model,
-            "loss": str(m.loss),
-            "scale": scale,
-            "alpha": None if m.alpha is None else _enc(m.alpha),
-            "tuning": None if m.tuning is None else _enc(m.tuning),
-            "fixed": {str(k): _enc(v) for k, v in dict(m.fixed).items()},
-            "p0": _enc_tree(m.p0),
-            "sigma_mode": str(m.sigma_mode),
-        },
+        "data": data,
+        "method": {"model": model, **method_options_dict(m)},
         "exclusions": [
             {"index": int(e.index), "reason": str(e.reason), "time": str(e.time)}
             for e in sorted(session.exclusions, key=lambda e: e.index)
         ],
         "result": None if session.result is None else _result_tree(session.result, floats),
     }
+
+
+def method_options_dict(m: Method) -> dict:
+    """The JSON-ready options of a method: one entry per field of
+    :data:`fitcore.work.FIT_OPTIONS`, under the field's name (generic, so a new option
+    of ``fit()`` is stored as soon as :class:`~fitcore.work.Method` has its field)."""
+    if isinstance(m.scale, str) and m.scale != "auto":
+        raise SessionError(f"scale must be 'auto' or a positive number, not {m.scale!r}")
+    out = {}
+    for name in FIT_OPTIONS:
+        value = getattr(m, name)
+        if name == "fixed":
+            value = {str(k): _enc(v) for k, v in dict(value).items()}
+        out[name] = _enc_tree(value)
+    return out
 
 
 def _result_tree(result: Mapping, floats) -> dict:
@@ -483,6 +499,51 @@ def _kind(v) -> str:
             type(None): "null", int: "a number", float: "a number"}.get(type(v), type(v).__name__)
 
 
+def _method_options(c: "_Check", md: dict) -> dict:
+    """The fit() options of a stored method, each checked; options the file does not
+    hold keep their defaults. Options without a check of their own (any added after
+    these) are read as plain JSON data."""
+    out = {}
+    for name in FIT_OPTIONS:
+        if name not in md:
+            continue
+        v, path = md[name], f"method.{name}"
+        if name == "loss" or name == "sigma_mode":
+            out[name] = c.str_(v, path)
+        elif name == "scale":
+            if v == "auto":
+                out[name] = "auto"
+            else:
+                s = c.float_(v, path)
+                if not (math.isfinite(s) and s > 0):
+                    c.fail(f"'{path}' should be 'auto' or a positive number, found {v!r}")
+                out[name] = s
+        elif name in ("alpha", "tuning"):
+            out[name] = c.opt_float(v, path)
+        elif name == "fixed":
+            out[name] = {k: c.float_(e, f"{path}.{k}") for k, e in c.dict_(v, path).items()}
+        elif name == "p0":
+            if v is None:
+                out[name] = None
+            elif isinstance(v, dict):
+                out[name] = {k: c.float_(e, f"{path}.{k}") for k, e in v.items()}
+            elif isinstance(v, list):
+                out[name] = [float(e) for e in c.floats(v, path)]
+            else:
+                c.fail(f"'{path}' should be null, an object or a list, found {_kind(v)}")
+        elif name == "max_iter":
+            out[name] = c.int_(v, path)
+        else:
+            out[name] = c.tree(v, path)
+    if "loss" not in md:
+        c.fail("the session lacks the field 'method.loss'")
+    mode = out.get("sigma_mode", "absolute")
+    if mode not in _SIGMA_MODES:
+        c.fail(f"'method.sigma_mode' should be one of {', '.join(_SIGMA_MODES)}, "
+               f"found {mode[:40]!r}")
+    return out
+
+
 def session_from_dict(doc, where: str = "session") -> Session:
     """Build a :class:`Session` from a decoded JSON document, checking every field."""
     c = _Check(where)
@@ -519,6 +580,19 @@ def session_from_dict(doc, where: str = "session") -> Session:
                  "data.source_sha256")
     columns = c.tree(c.dict_(c.get(data, "columns", "data.", optional=True, default={}),
                              "data.columns"), "data.columns")
+    notes_raw = c.get(data, "notes", "data.", optional=True)
+    if notes_raw is None:  # sessions saved by the window before the notes had a field
+        notes_raw = columns.pop("notes", []) if isinstance(columns.get("notes"), list) else []
+    if not isinstance(notes_raw, list):
+        c.fail(f"'data.notes' should be a list of texts, found {_kind(notes_raw)}")
+    notes = tuple(c.str_(n, f"data.notes[{i}]") for i, n in enumerate(notes_raw))
+    rows_raw = c.get(data, "source_rows", "data.", optional=True)
+    rows = None
+    if rows_raw is not None:
+        if not isinstance(rows_raw, list) or len(rows_raw) != x.size:
+            c.fail(f"'data.source_rows' should be a list of {x.size} row numbers")
+        rows = np.array([c.int_(r, f"data.source_rows[{i}]") for i, r in enumerate(rows_raw)],
+                        dtype=np.int64)
 
     md = c.dict_(c.get(doc, "method", ""), "method")
     spec = c.dict_(c.get(md, "model", "method."), "method.model")
@@ -526,41 +600,13 @@ def session_from_dict(doc, where: str = "session") -> Session:
         c.fail("'method.model' should name either a 'builtin' model or a 'formula'")
     if "builtin" in spec:
         kind, text = "builtin", c.str_(spec["builtin"], "method.model.builtin")
-        options = c.tree(c.dict_(spec.get("options", {}), "method.model.options"),
-                         "method.model.options")
+        options_m = c.tree(c.dict_(spec.get("options", {}), "method.model.options"),
+                           "method.model.options")
     else:
         kind, text = "formula", c.str_(spec["formula"], "method.model.formula")
-        options = {}
-    loss = c.str_(c.get(md, "loss", "method."), "method.loss")
-    scale_v = c.get(md, "scale", "method.", optional=True, default="auto")
-    if scale_v == "auto":
-        scale = "auto"
-    else:
-        scale = c.float_(scale_v, "method.scale")
-        if not (math.isfinite(scale) and scale > 0):
-            c.fail(f"'method.scale' should be 'auto' or a positive number, found {scale_v!r}")
-    alpha = c.opt_float(c.get(md, "alpha", "method.", optional=True), "method.alpha")
-    tuning = c.opt_float(c.get(md, "tuning", "method.", optional=True), "method.tuning")
-    fixed_raw = c.dict_(c.get(md, "fixed", "method.", optional=True, default={}),
-                        "method.fixed")
-    fixed = {k: c.float_(v, f"method.fixed.{k}") for k, v in fixed_raw.items()}
-    p0_raw = c.get(md, "p0", "method.", optional=True)
-    if p0_raw is None:
-        p0 = None
-    elif isinstance(p0_raw, dict):
-        p0 = {k: c.float_(v, f"method.p0.{k}") for k, v in p0_raw.items()}
-    elif isinstance(p0_raw, list):
-        p0 = [float(v) for v in c.floats(p0_raw, "method.p0")]
-    else:
-        c.fail(f"'method.p0' should be null, an object or a list, found {_kind(p0_raw)}")
-    sigma_mode = c.str_(c.get(md, "sigma_mode", "method.", optional=True,
-                              default="absolute"), "method.sigma_mode")
-    if sigma_mode not in _SIGMA_MODES:
-        c.fail(f"'method.sigma_mode' should be one of {', '.join(_SIGMA_MODES)}, "
-               f"found {sigma_mode[:40]!r}")
-    method = Method(model=text, model_kind=kind, model_options=options, loss=loss,
-                    scale=scale, alpha=alpha, tuning=tuning, fixed=fixed, p0=p0,
-                    sigma_mode=sigma_mode)
+        options_m = {}
+    options = _method_options(c, md)
+    method = Method(model=text, model_kind=kind, model_options=options_m, **options)
 
     ex_raw = c.get(doc, "exclusions", "", optional=True, default=[])
     if not isinstance(ex_raw, list):
@@ -617,7 +663,8 @@ def session_from_dict(doc, where: str = "session") -> Session:
 
     return Session(
         x=x, y=y, sigma=sigma, names=names, units=units, source_file=source,
-        source_sha256=sha, columns=columns, method=method, exclusions=exclusions,
+        source_sha256=sha, columns=columns, notes=notes, source_rows=rows,
+        method=method, exclusions=exclusions,
         result=result,
         created=c.str_(doc.get("created", ""), "created"),
         ballast_version=c.str_(doc.get("ballast_version", ""), "ballast_version"),

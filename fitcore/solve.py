@@ -1336,7 +1336,7 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     theta0 = start[free]
     linear = mdl.is_linear
     dof = n_used - k
-    info: dict = {"n_missing": n_missing}
+    info: dict = {"n_missing": n_missing, "scale_fixed": not (isinstance(scale, str) and scale == "auto")}
     alpha_out = loss_obj.alpha if loss in ("general",) else None
     alpha_se = None
     absolute = sigma is not None and sigma_mode == "absolute"

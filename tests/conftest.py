@@ -36,3 +36,16 @@ def reference_dir() -> Path:
         pytest.fail(f"reference data folder {REFERENCE} is incomplete (expected nist-strd/ and robust/ "
                     "inside it; the copy in the project is tests/reference/data/)", pytrace=False)
     return REFERENCE
+
+
+@pytest.fixture(scope="session")
+def work_strategies():
+    """The hypothesis strategies of tests/work_strategies.py (methods, option values),
+    shared by the library's and the window's round-trip tests."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location(
+        "ballast_work_strategies", Path(__file__).with_name("work_strategies.py"))
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module

@@ -37,7 +37,7 @@ def loaded(win, tmp_path, write_demo_csv):
 
 def side_by_side(doc, losses=DEFAULT_LOSSES):
     m = doc.measurements
-    kw = doc.settings.fit_kwargs()
+    kw = doc.settings.to_fit_kwargs()
     kw.pop("loss")
     return compare_losses(doc.settings.model, m.x, m.y, losses=losses, sigma=m.sigma,
                           excluded=doc.excluded.copy(), **kw)

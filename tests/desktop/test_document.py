@@ -88,7 +88,7 @@ def test_settings_command(qapp):
     stack = QUndoStack()
     old = doc.settings
     stack.push(SettingsCommand(doc, old.with_(loss="cauchy", fixed={"b": 1.0})))
-    assert doc.settings.loss == "cauchy" and doc.settings.fit_kwargs()["fixed"] == {"b": 1.0}
+    assert doc.settings.loss == "cauchy" and doc.settings.to_fit_kwargs()["fixed"] == {"b": 1.0}
     stack.undo()
     assert doc.settings == old
 
@@ -125,3 +125,45 @@ def test_measurements_validate_lengths():
         Measurements([1, 2], [1])
     m = Measurements([1], [2], x_name="Time", x_unit="s")
     assert m.label("x") == "Time (s)" and m.label("y") == "y"
+
+
+# ---------------------------------------------------------------------- one model of the work
+from hypothesis import HealthCheck, given  # noqa: E402
+from hypothesis import settings as hsettings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from fitcore.session import session_from_json  # noqa: E402
+from desktop.session_io import apply_session, document_to_session, session_json  # noqa: E402
+
+
+def _window_round_trip(doc):
+    text = session_json(document_to_session(doc), {"log_x": True})
+    other = Document()
+    apply_session(other, session_from_json(text))
+    return other
+
+
+def test_document_holds_the_fitcore_types():
+    from fitcore.work import DataSet, Method
+
+    doc = make_doc()
+    assert isinstance(doc.measurements, DataSet) and isinstance(doc.settings, Method)
+    assert doc.settings.loss == "huber"  # the window's default method
+
+
+@hsettings(max_examples=60, deadline=None,
+           suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_every_fit_option_survives_the_window(work_strategies, data):
+    method = data.draw(work_strategies.methods)
+    # what the window saves and reopens: the document's method, data set (with file
+    # rows and read notes) and exclusion record, unchanged
+    x = np.arange(6, dtype=float)
+    doc = Document(Measurements(x, 3 * x, x_name="t", source_rows=np.arange(2, 8),
+                                notes=("1 row skipped: empty",)))
+    doc.apply_settings(method)
+    doc.apply_mask_change(doc.make_mask_change([1, 4], True, reason="bubble"))
+    other = _window_round_trip(doc)
+    assert other.settings == method
+    assert other.measurements == doc.measurements
+    assert other.exclusion_record() == doc.exclusion_record()

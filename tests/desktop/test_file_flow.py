@@ -211,9 +211,17 @@ def test_kept_model_is_announced(worked, asked, tmp_path):
     np.testing.assert_allclose(doc.result.values, ref.values, rtol=1e-10)
 
 
-def test_model_that_cannot_fit_the_new_data_falls_back_to_a_line(worked, asked, tmp_path):
+@pytest.mark.parametrize("where", ["inline", "worker"])
+def test_model_that_cannot_fit_the_new_data_falls_back_to_a_line(worked, asked, tmp_path, where):
+    # the status bar ends on the same message whether the first fit of the new data
+    # ran inline (before the message) or in the worker (after it)
     w = worked
     asked.answer = "discard"
+    if where == "worker":
+        w.runner.thread_threshold = 0
+    else:
+        w.runner.slow_fit_s = float("inf")
+        w.runner.thread_threshold = 10**9
     two = write_rows(tmp_path / "two.csv", [(1.0, 2.0), (3.0, 7.0)])  # 3 parameters, 2 points
     assert w.open_path(str(two))
     assert w.runner.wait()

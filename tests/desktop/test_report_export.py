@@ -44,7 +44,7 @@ def win(open_window, tmp_path, write_demo_csv):
 def side_by_side(doc):
     m = doc.measurements
     return fitcore.fit(doc.settings.model, m.x, m.y, sigma=m.sigma, excluded=doc.excluded.copy(),
-                       **doc.settings.fit_kwargs())
+                       **doc.settings.to_fit_kwargs())
 
 
 # ---------------------------------------------------------------------------- copy

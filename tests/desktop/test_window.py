@@ -40,7 +40,7 @@ def side_by_side(doc):
     """fitcore.fit on exactly what the document holds."""
     m = doc.measurements
     return fitcore.fit(doc.settings.model, m.x, m.y, sigma=m.sigma, excluded=doc.excluded.copy(),
-                       **doc.settings.fit_kwargs())
+                       **doc.settings.to_fit_kwargs())
 
 
 def click_point(qtbot, win, i, modifier=Qt.NoModifier):

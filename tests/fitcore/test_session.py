@@ -104,7 +104,7 @@ def test_builtin_model_with_options_round_trips(tmp_path):
 
 def test_python_model_cannot_be_saved(tmp_path):
     s = demo_session()
-    s.method.model_kind = "python"
+    s.method = s.method.with_(model_kind="python")
     with pytest.raises(SessionError, match="cannot be saved"):
         save_session(tmp_path / "c.ballast", s)
     assert not (tmp_path / "c.ballast").exists()
