@@ -35,7 +35,7 @@ Measurements = DataSet
 WINDOW_DEFAULTS = {"loss": "huber", "alpha": 1.0}
 
 
-def Settings(**fields) -> Method:  # noqa: N802 - the window's name for a method
+def Settings(**fields) -> Method:
     """The window's method: a :class:`fitcore.work.Method` (every option of
     :func:`fitcore.fit`), with the window's defaults for fields not given (the Huber
     loss; shape 1 ready for the general loss)."""
