@@ -286,15 +286,15 @@ class BatchWindow(QDialog):
 
         s = self.main.document.settings
         self.settings = s
-        kw = s.fit_kwargs()
         parts = [model_title(s), f"loss {s.loss}"]
-        parts.append("scale automatic" if kw["scale"] == "auto" else f"scale {kw['scale']:g}")
-        if "alpha" in kw:
-            parts.append(f"alpha {kw['alpha']:g}")
+        parts.append("scale automatic" if s.scale == "auto" else f"scale {s.scale:g}")
+        if s.loss == "general" and s.alpha is not None:
+            parts.append(f"alpha {s.alpha:g}")
         if s.fixed:
-            parts.append("held " + ", ".join(f"{k} = {v:g}" for k, v in s.fixed))
+            parts.append("held " + ", ".join(f"{k} = {v:g}" for k, v in s.fixed.items()))
         if s.p0:
-            parts.append("start " + ", ".join(f"{k} = {v:g}" for k, v in s.p0))
+            start = s.p0.items() if isinstance(s.p0, dict) else enumerate(s.p0, 1)
+            parts.append("start " + ", ".join(f"{k} = {v:g}" for k, v in start))
         self.method_label.setText("; ".join(parts) + "  (the method on screen; change it in the "
                                   "main window's method panel)")
 
@@ -361,7 +361,7 @@ class BatchWindow(QDialog):
 
         self.refresh_method()
         s = self.settings
-        kw = s.fit_kwargs()
+        kw = s.to_fit_kwargs()
         loss = kw.pop("loss")
         x, y = self._column(self.x), self._column(self.y)
         if not x or not y:
