@@ -38,7 +38,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special
 
 from .losses import Loss
 
@@ -142,8 +142,9 @@ def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto", *
 def _hall_sheather(n: int) -> float:
     """Hall and Sheather's (1988) bandwidth at the median, 95 % level (R quantreg's
     ``bandwidth.rq(0.5, n, hs = TRUE)``, statsmodels' ``hall_sheather``)."""
-    z = stats.norm.ppf(0.975)
-    return n ** (-1.0 / 3.0) * z ** (2.0 / 3.0) * (1.5 * stats.norm.pdf(0.0) ** 2) ** (1.0 / 3.0)
+    z = float(special.ndtri(0.975))  # normal quantile (what scipy.stats.norm.ppf evaluates)
+    phi0 = 1.0 / math.sqrt(2.0 * math.pi)  # standard normal density at 0
+    return n ** (-1.0 / 3.0) * z ** (2.0 / 3.0) * (1.5 * phi0 ** 2) ** (1.0 / 3.0)
 
 
 def _lad_slope(t: np.ndarray, v: np.ndarray) -> float:
