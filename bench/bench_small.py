@@ -105,7 +105,7 @@ def bench_fit(repeat):
     print(f"25-point 4PL (scipy: nfev {sp.nfev}, top {sp.x[1]:.3f}; Ballast Huber top "
           f"{res['top']:.3f}, converged {res.converged})")
     for loss, goal in (("huber", 2), ("tukey", 3), ("adaptive", 5)):
-        t = median_time(lambda: fitcore.fit(model, x, y, loss=loss), repeat)
+        t = median_time(lambda loss=loss: fitcore.fit(model, x, y, loss=loss), repeat)
         line(f"Ballast 4PL {loss}", t, t_sp, goal, "scipy trf huber")
 
 
