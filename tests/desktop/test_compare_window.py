@@ -146,7 +146,8 @@ def test_cancel_stops_and_keeps_the_single_fit(loaded, qtbot):
 
 def test_cancel_flag_reaches_fitcore(loaded):
     """The worker side: a cancel asked before the first loss returns no fits (in a
-    thread), and ends the child process at once (in a child)."""
+    thread), and ends the child process with Cancelled (in a child). How fast the child
+    ends is a speed question: bench/bench_analysis.py."""
     from desktop.compare_view import comparison_request
     from desktop.jobs import Cancelled
 
@@ -156,10 +157,8 @@ def test_cancel_flag_reaches_fitcore(loaded):
                                        cancel=lambda: True, use_child=False)
     assert cmp.cancelled and all(r is None for r in cmp.results.values())
     assert reading is None and seen == []
-    t0 = time.perf_counter()
     with pytest.raises(Cancelled):
         run_comparison(req, cancel=lambda: True, use_child=True)
-    assert time.perf_counter() - t0 < 2.0
 
 
 def test_child_process_answers_equal_fitcore_in_process(loaded):
@@ -218,9 +217,10 @@ def test_window_keeps_processing_events_during_comparison(loaded):
     """A 10 ms timer keeps ticking while the comparison runs in the worker.
 
     The comparison plus the adaptive profile takes about a second here; run in the
-    GUI thread (or in a worker thread: the GIL) it would stall the timer for most of it.
-    The bound (150 ms) is a little looser than the 100 ms aim because the test machine
-    is shared; measured here: about 50 ms.
+    GUI thread it would return only when done, and the timer could not tick before the
+    answer. Behaviour only: ``run()`` returns at once with the job still running, and
+    the event loop serves the timer until the answer comes. The longest event gap (a
+    speed figure, machine-dependent) is measured by ``bench/bench_analysis.py``.
     """
     view = loaded.compare_view
     loaded.compare_dock.show()
@@ -235,17 +235,15 @@ def test_window_keeps_processing_events_during_comparison(loaded):
     timer = QTimer()
     timer.timeout.connect(tick)
     timer.start(10)
-    t0 = time.perf_counter()
     assert view.run()
+    assert view.job.running and view.comparison is None  # not fitted in the GUI thread
     last[0] = time.perf_counter()
     while view.job.running:
         QGuiApplication.processEvents()
         time.sleep(0.002)
-    took = time.perf_counter() - t0
     timer.stop()
     assert view.comparison is not None
-    assert len(gaps) > 5
-    assert max(gaps) < 0.15, (max(gaps), took)
+    assert len(gaps) >= 3  # ticks were served while the comparison ran
 
 
 

@@ -227,8 +227,12 @@ def test_model_that_cannot_fit_the_new_data_falls_back_to_a_line(worked, asked, 
     assert w.runner.wait()
     doc = w.document
     assert doc.settings.model == "line" and doc.settings.loss == "huber"
+    # The switch is announced whichever way the fit ran: inline, the load message
+    # ("2 points from two.csv. Switched ...") comes last; in the worker, the fit's
+    # message ("Fitted 2 points (huber). Switched ...") repeats the note. Which way it
+    # runs depends on how long the previous fit took, so only the content is checked.
     msg = w.statusBar().currentMessage()
-    assert msg.startswith("2 points from two.csv. Switched to a straight line") and "Exponential decay" in msg, msg
+    assert "2 points" in msg and "Switched to a straight line" in msg and "Exponential decay" in msg, msg
     ref = fitcore.fit("line", doc.measurements.x, doc.measurements.y, loss="huber")
     np.testing.assert_allclose(doc.result.values, ref.values, rtol=1e-12)
 

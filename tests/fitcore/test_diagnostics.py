@@ -6,7 +6,6 @@ force refits with the point physically removed. The data are invented (seeded).
 """
 from __future__ import annotations
 
-import time
 
 import numpy as np
 import pytest
@@ -272,14 +271,16 @@ def test_bad_input():
         point_diagnostics("not a fit")
 
 
-def test_exact_refits_n500_take_seconds():
-    """Performance (measured here: l2 0.45 s, huber 1.6 s, tukey 3.6 s for n = 500 on
-    one core): warm-started refits; the bound is loose for a shared machine."""
+def test_exact_refits_up_to_500_points_then_the_one_step():
+    """n = 500 (the default ``exact_limit``) gets an exact refit per point, n = 501 the
+    one-step approximation. How long the 500 refits take is measured by
+    ``bench/bench_analysis.py`` (warm-started refits against cold ones), not here."""
     rng = np.random.default_rng(4)
-    x = np.linspace(0, 10, 500)
-    y = 1 + 2 * x + rng.standard_t(3, 500)
-    res = fitcore.fit("line", x, y, loss="huber")
-    t = time.perf_counter()
+    x = np.linspace(0, 10, 501)
+    y = 1 + 2 * x + rng.standard_t(3, 501)
+    res = fitcore.fit("line", x[:500], y[:500], loss="huber")
     d = point_diagnostics(res)
-    assert d.exact.all()
-    assert time.perf_counter() - t < 30.0
+    assert d.exact.all() and d.n_failed == 0 and "exact" in d.method.lower()
+    assert np.all(np.isfinite(d.influence))
+    d501 = point_diagnostics(fitcore.fit("line", x, y, loss="huber"))
+    assert not d501.exact.any()
