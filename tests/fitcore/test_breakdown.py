@@ -79,7 +79,7 @@ def test_newton_root_with_a_jumped_scale_is_refused(monkeypatch):
 
     err, s = stage()
     assert err < 0.02 and s == pytest.approx(0.1, rel=0.15)
-    monkeypatch.setattr(solve, "_SCALE_JUMP", np.inf)
+    monkeypatch.setattr(fitcore.solvers.mscale, "_SCALE_JUMP", np.inf)
     err_unchecked, s_unchecked = stage()
     if err_unchecked < 0.02:
         pytest.skip("Newton's method no longer jumps to the other root from this start")

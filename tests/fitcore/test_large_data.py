@@ -246,7 +246,7 @@ def test_staged_large_data_path_equals_the_plain_path(monkeypatch, loss, model, 
     out = rng.random(n) < 0.08
     y[out] += rng.uniform(0.5, 3.0, out.sum())
     fast = fitcore.fit(model, x, y, loss=loss)
-    monkeypatch.setattr(solve, "_LARGE", 10**9)
+    monkeypatch.setattr(fitcore.solvers.large, "_LARGE", 10**9)
     plain = fitcore.fit(model, x, y, loss=loss)
     assert fast.converged and plain.converged
     # both stop once Newton's step to the root is below 1e-5 standard errors, so they

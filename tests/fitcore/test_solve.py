@@ -216,7 +216,7 @@ def test_robust_standard_errors_match_sampling_spread():
 def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model, scale):
     """Above 20 000 points a subsample warm start and Newton steps replace the plain
     loop (for speed); both must reach the same M-estimate and scale."""
-    import fitcore.solve as solve
+    from fitcore.solvers import large
 
     rng = np.random.default_rng(9)
     n = 30_000
@@ -226,7 +226,7 @@ def test_large_data_path_equals_the_plain_path(monkeypatch, loss, model, scale):
     out = rng.random(n) < 0.08
     y[out] += rng.uniform(0.5, 3.0, out.sum())
     fast = fitcore.fit(model, x, y, loss=loss, scale=scale)
-    monkeypatch.setattr(solve, "_LARGE", 10**9)
+    monkeypatch.setattr(large, "_LARGE", 10**9)
     plain = fitcore.fit(model, x, y, loss=loss, scale=scale)
     assert fast.converged and plain.converged
     # both stop once Newton's step to the root is below 1e-5 standard errors, so they

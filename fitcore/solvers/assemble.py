@@ -1,0 +1,102 @@
+"""Assembly of the :class:`~fitcore.result.FitResult`: covariance, per-point values."""
+from __future__ import annotations
+
+import numpy as np
+
+from .. import uncertainty as unc
+from ..result import FitResult
+from .dispatch import _Outcome
+from .setup import _Setup
+
+
+def _covariance(st: _Setup, out: _Outcome, theta, r):
+    """The free parameters' covariance, its recipe, and the verdict it may overturn."""
+    k, dof, s, loss = st.k, st.dof, out.s, st.loss
+    inner = out.inner
+    converged, message = inner.converged, inner.message
+    cov_free = np.full((k, k), np.nan)
+    recipe = ""
+    try:
+        Jf = st.prob.jac(theta)
+        if loss == "l2":
+            cov_free, recipe = unc.cov_least_squares(Jf, r, dof, absolute=st.absolute,
+                                                     inv_jtj=st.info.pop("inv_jtj", None))
+        elif loss == "l1":
+            cov_free, recipe = unc.cov_l1(Jf, r)
+        else:
+            stats = inner.stats or {}
+            cov_free, recipe = unc.cov_m_estimate(
+                Jf, None if "psi" in stats else r / s, s, out.loss_obj, dof,
+                psi=stats.get("psi"), dpsi=stats.get("dpsi"),
+                absolute=st.absolute and loss != "adaptive")
+    except unc.RankDeficient as e:
+        converged = False
+        message = f"{e}; the estimates are not unique (hold a parameter or add points)"
+        recipe = recipe or "not available"
+    if (inner.stats or {}).get("exact"):
+        cov_free = np.full((k, k), np.nan)
+        message += ("; the robust scale is zero, so the uncertainties cannot be estimated "
+                    "from the scatter (give sigma or a fixed scale); points off the curve "
+                    "get weight 0")
+    if dof <= 0:
+        message += "; no degrees of freedom left, so uncertainties cannot be estimated"
+        cov_free = np.full((k, k), np.nan)
+    return cov_free, recipe, converged, message
+
+
+def _assemble(st: _Setup, out: _Outcome) -> FitResult:
+    mdl, prob, free, s = st.mdl, st.prob, st.free, out.s
+    inner = out.inner
+    theta, r = inner.theta, inner.r
+    p_full = prob.full(theta)
+    cov_free, recipe, converged, message = _covariance(st, out, theta, r)
+    cov = np.zeros((mdl.n_params, mdl.n_params))
+    idx = np.flatnonzero(free)
+    cov[np.ix_(idx, idx)] = cov_free
+    stderr = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    stderr[np.isnan(np.diag(cov))] = np.nan
+
+    # per point
+    x, y, sig_all, all_used, linear = st.x, st.y, st.sig_all, st.all_used, st.linear
+    with np.errstate(all="ignore"):
+        kept_f = None if linear or not all_used else prob.kept_f(theta)
+        if linear and all_used and prob.unit and free.all():
+            fitted = prob.jac(theta) @ theta  # the design the fit used: no rebuild
+        elif kept_f is not None:
+            fitted = kept_f.copy()  # the solver's last pass computed exactly these
+        else:
+            fitted = np.asarray(mdl.f(x, p_full), dtype=float)
+    residuals = y - fitted
+    with np.errstate(all="ignore"):
+        if not s > 0:
+            std_res = residuals * np.nan
+        elif sig_all is None:
+            std_res = residuals / s
+        else:
+            std_res = residuals / sig_all / s
+    if st.loss == "l2":
+        w_used = np.ones(st.n_used)
+    else:
+        stats = inner.stats or {}
+        u_kept = stats.get("u") if stats.get("s") == s else None  # r / s, when kept
+        w_used = np.asarray(out.loss_obj.weight(r / s if u_kept is None else u_kept),
+                            dtype=float)
+        np.clip(w_used, 0.0, 1.0, out=w_used)
+    if all_used:
+        weights = w_used
+    else:
+        weights = np.zeros(st.n_all)
+        weights[st.used] = w_used
+    return FitResult(
+        model=mdl, loss=st.loss, param_names=mdl.param_names, values=p_full, stderr=stderr,
+        covariance=cov, weights=weights, residuals=residuals, std_residuals=std_res,
+        fitted=fitted, x=x.copy(), y=y.copy(),
+        sigma=None if sig_all is None else sig_all.copy(), excluded=st.excl.copy(),
+        scale=float(s), scale_method=out.scale_method, alpha=out.alpha,
+        tuning=out.loss_obj.tuning, covariance_recipe=recipe, converged=bool(converged),
+        message=message, n_used=st.n_used, n_excluded=int(st.excl.sum()),
+        n_downweighted=int(np.count_nonzero(w_used < 0.5)),
+        dof=st.dof, fixed={kk: float(v) for kk, v in st.fixed.items()},
+        n_iter=int(out.n_iter), objective=float(inner.objective), sigma_mode=st.sigma_kind,
+        rss=float(r @ r), alpha_stderr=out.alpha_se, info=st.info,
+    )

@@ -1,0 +1,114 @@
+"""Dispatch: one solver per kind of loss, each returning an :class:`_Outcome`."""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..losses import Loss
+from ..scale import mad
+from . import large
+from .adaptive import _fit_adaptive
+from .l1 import _l1_linear, _l1_nonlinear
+from .lm import _irls_lm, _refine_linear_ls
+from .mscale import SCALE_METHOD, _m_estimate, _robust_with_scale, _newton_with_mad
+from .problem import _Inner, _safe_scale, _start_scale
+from .setup import _Setup
+
+
+@dataclass
+class _Outcome:
+    inner: _Inner
+    s: float  # the residual scale the result reports
+    scale_method: str
+    n_iter: int
+    loss_obj: Loss
+    alpha: float | None = None
+    alpha_se: float | None = None
+
+
+def _run(st: _Setup) -> _Outcome:
+    if st.loss == "l2":
+        return _run_l2(st)
+    if st.loss == "l1":
+        return _run_l1(st)
+    if st.loss == "adaptive":
+        return _run_adaptive(st)
+    return _run_m(st)
+
+
+def _run_l2(st: _Setup) -> _Outcome:
+    prob, linear = st.prob, st.linear
+    inner = _irls_lm(prob, st.theta0, st.loss_obj, 1.0, linear=linear, max_iter=st.max_iter)
+    refined = _refine_linear_ls(prob, inner.theta) if linear else None
+    if refined is not None:
+        th, r_th, inv_ata = refined
+        st.info["inv_jtj"] = inv_ata
+        inner = _Inner(th, r_th, 0.5 * float(r_th @ r_th), inner.n_iter, inner.converged,
+                       "converged (least-squares solution with iterative refinement)")
+    dof = st.dof
+    s = math.sqrt(float(np.sum(inner.r ** 2)) / dof) if dof > 0 else float("nan")
+    return _Outcome(inner, s, "residual standard deviation sqrt(RSS/(n - p))", inner.n_iter,
+                    st.loss_obj)
+
+
+def _run_l1(st: _Setup) -> _Outcome:
+    prob = st.prob
+    if st.linear:
+        A = prob.jac(st.theta0)
+        b = (prob.y - st.mdl.f(prob.x, prob.full(np.zeros(st.k)))) / prob.sig
+        theta = _l1_linear(A, b, prob.lower, prob.upper)
+        r = prob.resid(theta)
+        inner = _Inner(theta, r, float(np.sum(np.abs(r))), 1, True,
+                       "converged (exact linear programme)")
+    else:
+        inner = _l1_nonlinear(prob, st.theta0, max_iter=st.max_iter)
+    s = _safe_scale(mad(inner.r), inner.r, prob)
+    return _Outcome(inner, s, "normalised MAD of the residuals (does not affect the L1 estimate)",
+                    inner.n_iter, st.loss_obj)
+
+
+def _run_adaptive(st: _Setup) -> _Outcome:
+    prob, linear, theta0 = st.prob, st.linear, st.theta0
+    warm = None
+    if st.n_used > large._LARGE:
+        sub = large._subproblem(prob)
+        w_inner, _, w_c, w_alpha, _, _, _ = _fit_adaptive(
+            sub, theta0, _start_scale(sub, theta0), linear=linear, max_iter=st.max_iter)
+        theta0, warm = w_inner.theta, (w_alpha, w_c)
+    s0 = _start_scale(prob, theta0)
+    inner, loss_obj, s, alpha, alpha_se, n_iter, ainfo = _fit_adaptive(
+        prob, theta0, s0, linear=linear, max_iter=st.max_iter, warm=warm)
+    st.info.update(ainfo)
+    method = "Barron scale c by maximum likelihood (jointly with alpha)"
+    if ainfo.get("scale_at_floor"):
+        method += "; held at its floor (residuals nearly exact)"
+    return _Outcome(inner, s, method, n_iter, loss_obj, alpha, alpha_se)
+
+
+def _run_m(st: _Setup) -> _Outcome:
+    prob, linear, loss_obj = st.prob, st.linear, st.loss_obj
+    fixed_scale, max_iter = st.fixed_scale, st.max_iter
+    auto = fixed_scale is None
+    if auto:
+        method = SCALE_METHOD
+    elif not st.absolute or st.scale_given:
+        method = "fixed by the analyst"
+    else:
+        method = "fixed at 1: sigma taken as absolute"
+    staged = large._staged_start(prob, st.theta0, loss_obj, fixed_scale, linear=linear,
+                                 max_iter=max_iter)
+    if staged is None:
+        inner, s, n_iter = _m_estimate(prob, st.theta0, loss_obj, fixed_scale, linear=linear,
+                                       max_iter=max_iter)
+    else:
+        start_theta, s_start, n_iter = staged
+        got = _newton_with_mad(prob, start_theta, s_start, loss_obj, with_mad=auto)
+        if got is None:
+            got = _robust_with_scale(prob, start_theta, loss_obj, s_start, linear=linear,
+                                     auto=auto, max_iter=max_iter, rule="mad")
+        inner, s, it = got
+        n_iter += it
+    general = st.loss == "general"
+    return _Outcome(inner, s, method, n_iter, loss_obj, loss_obj.alpha if general else None)

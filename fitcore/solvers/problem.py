@@ -1,0 +1,279 @@
+"""The whitened problem, solver results, scratch arrays and shared small helpers.
+
+:class:`_Problem` holds the used points and the free parameters; :class:`_Inner` is
+what every solver returns. Names keep their leading underscore: they are internal to
+the engine (``fitcore.solve`` is the public front door).
+"""
+from __future__ import annotations
+
+import math
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+
+from ..losses import Loss
+from ..model import Model
+from ..scale import mad
+
+
+class FitError(ValueError):
+    """The input cannot be fitted (explained in plain words)."""
+
+
+# --------------------------------------------------------------------------- problem
+@dataclass
+class _Problem:
+    """Whitened problem over the used points and the free parameters."""
+
+    model: Model
+    x: np.ndarray
+    y: np.ndarray
+    sig: np.ndarray
+    free: np.ndarray  # bool mask over the model's parameters
+    p_fixed: np.ndarray  # full-length vector holding the fixed values
+    n_eval: int = 0
+    unit: bool = False  # every sigma is 1 (no uncertainties given): skip the divisions
+
+    @property
+    def n(self) -> int:
+        return self.x.size
+
+    @property
+    def k(self) -> int:
+        return int(self.free.sum())
+
+    def full(self, theta: np.ndarray) -> np.ndarray:
+        p = self.p_fixed.copy()
+        p[self.free] = theta
+        return p
+
+    def resid(self, theta: np.ndarray, with_jac: bool = False,
+              scratch: "_Scratch | None" = None) -> np.ndarray:
+        """Whitened residuals at theta. ``with_jac`` also evaluates the Jacobian in the
+        same call where the model can share the work (kept for the next ``jac``).
+        ``scratch``: work arrays to write the residuals (and f, J) into; the result is
+        then overwritten by the next call with the same scratch."""
+        self.n_eval += 1
+        if self.model.is_linear:
+            A = self.jac(theta)
+            out = None if scratch is None else scratch.get("r", (self.n,))
+            out = np.matmul(A, theta, out=out)
+            return np.subtract(self.rhs(), out, out=out)  # one fresh array, not two
+        with np.errstate(all="ignore"):
+            if with_jac and self.model.f_jac is not None:
+                p = self.full(theta)
+                bufs = None if scratch is None else (
+                    scratch.get("f", (self.n,)), scratch.get("J", (self.n, p.size), "F"))
+                f, J = self.model.f_jac(self.x, p, out=bufs)
+                key = np.asarray(theta, dtype=float).tobytes()
+                held = None if scratch is None else (scratch, scratch.stamp("J"))
+                self._jac_at = (key, J, held)
+                if scratch is not None:
+                    self._f_at = (key, f, scratch, scratch.stamp("f"))
+            else:
+                f = self.model.f(self.x, self.full(theta))
+            f = np.asarray(f, dtype=float)
+            out = None if scratch is None else scratch.get("r", (self.n,))
+            r = np.subtract(self.y, f, out=out)
+            return r if self.unit else np.divide(r, self.sig, out=r)
+
+    def kept_f(self, theta: np.ndarray) -> np.ndarray | None:
+        """The model values at theta from the last pass that wrote them into a
+        scratch array, while it still holds them; else None."""
+        kept = getattr(self, "_f_at", None)
+        if (kept is None or kept[0] != np.asarray(theta, dtype=float).tobytes()
+                or not kept[2].holds("f", kept[3])):
+            return None
+        return kept[1]
+
+    def rhs(self) -> np.ndarray:
+        """Linear model: the whitened data less the held parameters' part (cached)."""
+        b = getattr(self, "_b", None)
+        if b is None:
+            self.jac(None)
+            b = self.y if self._offset is None else self.y - self._offset
+            b = self._b = b if self.unit else b / self.sig
+        return b
+
+    def jac(self, theta: np.ndarray) -> np.ndarray:
+        """Jacobian of the model values f/sigma w.r.t. the free parameters."""
+        if self.model.is_linear:
+            # constant for a linear model: build the (whitened) design matrix once, in
+            # column-major order (the products over the points run faster on columns)
+            cached = getattr(self, "_design", None)
+            if cached is None:
+                with np.errstate(all="ignore"):
+                    A = np.asarray(self.model.basis(self.x), dtype=float).reshape(self.n, -1)
+                all_free = bool(self.free.all())
+                cached = A if all_free else A[:, self.free]
+                if not self.unit:
+                    cached = cached / self.sig[:, None]
+                self._design = np.asfortranarray(cached)
+                self._offset = None if all_free else A[:, ~self.free] @ self.p_fixed[~self.free]
+                cached = self._design
+            return cached
+        kept = getattr(self, "_jac_at", None)
+        if (kept is not None and kept[0] == np.asarray(theta, dtype=float).tobytes()
+                and (kept[2] is None or kept[2][0].holds("J", kept[2][1]))):
+            J = np.asarray(kept[1], dtype=float)
+        else:
+            with np.errstate(all="ignore"):
+                J = np.asarray(self.model.jac(self.x, self.full(theta)), dtype=float)
+        J = J.reshape(self.n, -1)
+        if not self.free.all():
+            J = J[:, self.free]
+        return J if self.unit else J / self.sig[:, None]
+
+    @property
+    def lower(self):
+        return np.asarray(self.model.lower, dtype=float)[self.free]
+
+    @property
+    def upper(self):
+        return np.asarray(self.model.upper, dtype=float)[self.free]
+
+
+@dataclass
+class _Inner:
+    theta: np.ndarray
+    r: np.ndarray
+    objective: float
+    n_iter: int
+    converged: bool
+    message: str
+    stats: dict | None = None  # psi and psi' at the solution, when the solver has them
+
+
+class _Scratch:
+    """Named work arrays reused by the Newton passes, within a solve and across solves.
+
+    A fresh array of the data's size costs a page fault per 4 KiB on first touch
+    (large blocks come straight from the operating system), which on 1e5 points costs
+    as much as the arithmetic on it. The Newton passes write into these arrays
+    instead, so whatever is read from one is overwritten by the next pass or solve on
+    the same thread: a solve's final arrays (residuals, psi, psi') are valid only
+    until the next solve of the same size. ``fit`` uses them before it returns and
+    hands out fresh arrays; a Jacobian kept in a scratch array is checked by its
+    stamp before reuse (:meth:`_Problem.jac`).
+    """
+
+    def __init__(self):
+        self._arrays: dict[str, np.ndarray] = {}
+        self._stamps: dict[str, object] = {}
+
+    def get(self, name: str, shape: tuple, order: str = "C") -> np.ndarray:
+        a = self._arrays.get(name)
+        if a is None or a.shape != shape or (order == "F" and not a.flags.f_contiguous):
+            a = self._arrays[name] = np.empty(shape, order=order)
+        return a
+
+    def stamp(self, name: str) -> object:
+        """A new token for the contents just written to ``name``."""
+        token = self._stamps[name] = object()
+        return token
+
+    def holds(self, name: str, token: object) -> bool:
+        """True while ``name`` still holds what was written when ``token`` was made."""
+        return self._stamps.get(name) is token
+
+
+_POOL = threading.local()
+_POOL_SIZES = 3  # problem sizes whose scratch a thread keeps (most recently used)
+_POOL_MAX_POINTS = 200000  # larger problems get a scratch of their own per solve
+
+
+def _scratch_for(n: int) -> _Scratch:
+    """The calling thread's scratch for problems of ``n`` points.
+
+    At most ``_POOL_SIZES`` sizes up to ``_POOL_MAX_POINTS`` points are kept (some
+    13 MB for a three-parameter model on 1e5 points); :func:`_release_scratch` drops
+    them.
+    """
+    if n > _POOL_MAX_POINTS:
+        return _Scratch()
+    pools = getattr(_POOL, "by_n", None)
+    if pools is None:
+        pools = _POOL.by_n = OrderedDict()
+    sc = pools.pop(n, None) or _Scratch()
+    pools[n] = sc
+    while len(pools) > _POOL_SIZES:
+        pools.popitem(last=False)
+    return sc
+
+
+def _release_scratch() -> None:
+    """Drop the calling thread's kept scratch arrays."""
+    _POOL.by_n = OrderedDict()
+
+
+def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
+    with np.errstate(all="ignore"):
+        v = float(np.sum(loss.rho(r / s)))
+    return v if math.isfinite(v) else math.inf
+
+
+def _project(theta, lower, upper):
+    """Keep a parameter vector strictly inside its bounds."""
+    if not (np.any(np.isfinite(lower)) or np.any(np.isfinite(upper))):
+        return theta
+    t = np.clip(theta, lower, upper)
+    tiny = 1e-12 * np.maximum(np.abs(t), 1e-300)
+    t = np.where(t <= lower, lower + np.maximum(tiny, 1e-300), t)
+    t = np.where(t >= upper, upper - np.maximum(tiny, 1e-300), t)
+    return t
+
+
+def _start_residuals(prob: _Problem, theta: np.ndarray) -> np.ndarray:
+    """The residuals at the start values; a FitError in plain words where the model
+    cannot be evaluated there."""
+    r = prob.resid(theta)
+    if not np.all(np.isfinite(r)):
+        badmask = ~np.isfinite(r)
+        bad = int(np.sum(badmask))
+        xs = ", ".join(f"{v:.6g}" for v in prob.x[badmask][:3])
+        raise FitError(
+            f"the model cannot be evaluated at the start values: it gives a non-finite "
+            f"value at {bad} of {r.size} points (x = {xs}{', ...' if bad > 3 else ''}); "
+            f"check that x lies where the model is defined (e.g. doses >= 0 for a "
+            f"log-logistic curve) or give other start values"
+        )
+    return r
+
+
+def _safe_scale(s: float, r: np.ndarray, prob: _Problem) -> float:
+    if s > 0 and math.isfinite(s):
+        return s
+    alt = float(np.std(r))
+    if alt > 0 and math.isfinite(alt):
+        return alt
+    ref = float(np.max(np.abs(prob.y / prob.sig))) if prob.n else 1.0
+    return max(ref, 1.0) * 1e-12
+
+
+_EXACT = 1e-13  # a MAD below this fraction of max |y| (whitened) counts as zero
+
+
+def _exact_floor(prob: _Problem) -> float:
+    ref = float(np.max(np.abs(prob.y / prob.sig))) if prob.n else 0.0
+    return _EXACT * ref if ref > 0 and math.isfinite(ref) else 1e-300
+
+
+def _start_scale(prob: _Problem, theta) -> float:
+    r = prob.resid(theta)
+    return _safe_scale(mad(r), r, prob)
+
+
+@lru_cache(maxsize=16)
+def _sampled_rows(n: int, m: int, seed: int) -> np.ndarray:
+    idx = np.sort(np.random.default_rng(seed).choice(n, size=m, replace=False))
+    idx.flags.writeable = False  # shared by every caller
+    return idx
+
+
+def _sample_rows(n: int, m: int, seed: int) -> np.ndarray:
+    """``m`` of ``range(n)`` drawn without replacement by a seeded generator, sorted
+    (the same draw for the same arguments; cached, as drawing costs a permutation)."""
+    return _sampled_rows(int(n), int(m), int(seed))

@@ -1,0 +1,185 @@
+"""Problem set-up: the checks on the analyst's input, in plain words, and the whitened
+problem over the used points and the free parameters that the solvers work on."""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..losses import LOSS_NAMES, Loss, get_loss
+from ..model import Model
+from .problem import FitError, _Problem
+
+
+@dataclass
+class _Setup:
+    """Everything :func:`fitcore.fit` checked and prepared, for the solver and the
+    assembly of the result."""
+
+    mdl: Model
+    loss: str
+    loss_obj: Loss
+    x: np.ndarray  # every point as given (the result reports all of them)
+    y: np.ndarray
+    excl: np.ndarray
+    sig_all: np.ndarray | None
+    used: np.ndarray
+    fixed: dict
+    free: np.ndarray
+    prob: _Problem
+    theta0: np.ndarray
+    fixed_scale: float | None  # None: the scale is estimated
+    absolute: bool  # sigma given as absolute standard uncertainties
+    scale_given: bool  # the analyst gave a number for the scale
+    sigma_kind: str
+    max_iter: int
+    info: dict = field(default_factory=dict)
+
+    @property
+    def n_all(self) -> int:
+        return self.x.size
+
+    @property
+    def n_used(self) -> int:
+        return self.prob.n
+
+    @property
+    def all_used(self) -> bool:
+        return self.prob.n == self.x.size
+
+    @property
+    def k(self) -> int:
+        return int(self.free.sum())
+
+    @property
+    def dof(self) -> int:
+        return self.n_used - self.k
+
+    @property
+    def linear(self) -> bool:
+        return self.mdl.is_linear
+
+
+def _resolve(model) -> Model:
+    if isinstance(model, Model):
+        return model
+    if isinstance(model, str):
+        try:
+            from ..models import resolve_model
+        except ImportError:  # catalogue not available: formulas only
+            from ..formula import parse_formula as resolve_model
+        return resolve_model(model)
+    raise FitError(f"a model must be a built-in name, a formula or a fitcore.Model, not {type(model).__name__}")
+
+
+def _as_1d(name, v, n=None):
+    try:
+        a = np.asarray(v, dtype=float).ravel()
+    except (TypeError, ValueError):
+        raise FitError(f"{name} must be numbers") from None
+    if n is not None and a.size != n:
+        raise FitError(f"{name} has {a.size} values but x has {n}")
+    return a
+
+
+def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tuning,
+             sigma_mode, max_iter) -> _Setup:
+    """Check the input and build the problem; every refusal is a FitError."""
+    if loss not in LOSS_NAMES:
+        raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
+    if sigma_mode not in ("relative", "absolute"):
+        raise FitError("sigma_mode must be 'relative' or 'absolute'")
+    try:
+        mdl = _resolve(model)
+    except FitError:
+        raise
+    except ValueError as e:  # formula and catalogue errors are ValueErrors with messages
+        raise FitError(str(e)) from e
+    try:
+        loss_obj = get_loss(loss, tuning=tuning, alpha=alpha if loss != "adaptive" else None)
+    except ValueError as e:
+        raise FitError(str(e)) from e
+
+    x = _as_1d("x", x)
+    y = _as_1d("y", y, x.size)
+    if x.size == 0:
+        raise FitError("there are no points to fit")
+    n_all = x.size
+    excl = np.zeros(n_all, bool) if excluded is None else np.asarray(excluded, dtype=bool).ravel()
+    if excl.size != n_all:
+        raise FitError(f"the exclusion mask has {excl.size} entries but there are {n_all} points")
+    sig_all = None
+    if sigma is not None:
+        sig_all = _as_1d("sigma", sigma, n_all)
+    finite = np.isfinite(x) & np.isfinite(y)
+    if sig_all is not None:
+        bad_sig = ~(np.isfinite(sig_all) & (sig_all > 0)) & finite & ~excl
+        if np.any(bad_sig):
+            idx = np.flatnonzero(bad_sig)[:5] + 1
+            raise FitError(
+                f"sigma must be a positive number for every used point; points "
+                f"{', '.join(map(str, idx))}{' ...' if bad_sig.sum() > 5 else ''} have "
+                f"{'zero, negative or missing' } sigma"
+            )
+    used = finite & ~excl
+    n_used = int(used.sum())
+    if n_used == 0:
+        raise FitError("all points are excluded or missing: restore some points to fit")
+
+    # held parameters
+    fixed = dict(fixed or {})
+    unknown = set(fixed) - set(mdl.param_names)
+    if unknown:
+        raise FitError(f"cannot hold unknown parameter(s) {sorted(unknown)}; the model has "
+                       f"{', '.join(mdl.param_names)}")
+    free = np.array([n not in fixed for n in mdl.param_names])
+    k = int(free.sum())
+    if k == 0:
+        raise FitError("every parameter is held: free at least one to fit")
+    if n_used < k:
+        pts = "1 point is" if n_used == 1 else f"{n_used} points are"
+        raise FitError(f"the model has {k} free parameters but only {pts} used; "
+                       f"restore points or hold parameters")
+
+    all_used = n_used == n_all
+    xu, yu = (x, y) if all_used else (x[used], y[used])
+    if sig_all is None:
+        sig_u = np.broadcast_to(1.0, (n_used,))  # read-only; never divided by (unit)
+    else:
+        sig_u = sig_all if all_used else sig_all[used]
+    try:
+        if n_used > 2000 and (p0 is None or isinstance(p0, dict)):
+            # start values need no more than a few thousand points (a seeded subsample)
+            pick = np.sort(np.random.default_rng(7).choice(n_used, 300, replace=False))
+            start = mdl.start_values(xu[pick], yu[pick], p0)
+        else:
+            start = mdl.start_values(xu, yu, p0)
+    except ValueError as e:
+        raise FitError(str(e)) from e
+    if not np.all(np.isfinite(start)):
+        raise FitError("the start values are not all finite numbers")
+    for name, v in fixed.items():
+        start[mdl.param_names.index(name)] = float(v)
+    prob = _Problem(mdl, xu, yu, sig_u, free, start.copy(), unit=sig_all is None)
+    absolute = sigma is not None and sigma_mode == "absolute"
+
+    fixed_scale = None
+    scale_given = not (isinstance(scale, str) and scale == "auto")
+    if scale_given:
+        try:
+            fixed_scale = float(scale)
+        except (TypeError, ValueError):
+            raise FitError(f"scale must be 'auto' or a positive number, not {scale!r}") from None
+        if not (fixed_scale > 0 and math.isfinite(fixed_scale)):
+            raise FitError(f"scale must be a positive number, not {scale!r}")
+    elif absolute and loss not in ("l2", "l1", "adaptive"):
+        fixed_scale = 1.0
+
+    return _Setup(
+        mdl=mdl, loss=loss, loss_obj=loss_obj, x=x, y=y, excl=excl, sig_all=sig_all,
+        used=used, fixed=fixed, free=free, prob=prob, theta0=start[free],
+        fixed_scale=fixed_scale, absolute=absolute, scale_given=scale_given,
+        sigma_kind="none" if sigma is None else sigma_mode, max_iter=max_iter,
+        info={"n_missing": int(np.sum(~finite)), "scale_fixed": scale_given},
+    )
