@@ -65,11 +65,13 @@ __all__ = [
 #: File name endings searched for in folders (what :func:`fitcore.read_table` reads).
 TABLE_SUFFIXES = (".csv", ".tsv", ".txt", ".dat", ".xlsx", ".xlsm", ".ods")
 
-#: A file larger than this is read here and its curves handed out in chunks (a long
-#: table of many groups); smaller files are read by the workers themselves.
+#: A file larger than this (with a group column: than ``LARGE_GROUPED_BYTES``) is read
+#: here and its curves handed out in chunks, so a long table of many groups is spread
+#: over the workers; smaller files are read by the workers themselves.
 LARGE_FILE_BYTES = 2_000_000
+LARGE_GROUPED_BYTES = 200_000
 
-_CHUNK_CURVES = 16          # data sets per task, at most
+_CHUNK_CURVES = 8           # data sets per task, at most
 _CHUNK_POINTS = 50_000      # points per task, at most (a few large curves go alone)
 _CHUNK_FILES = 4            # small files per task
 _AHEAD = 4                  # chunks on their way per worker
@@ -273,7 +275,7 @@ class _DaskPool:
             else:
                 self._cluster = distributed.LocalCluster(
                     n_workers=jobs, threads_per_worker=1, processes=True,
-                    dashboard_address=None, silence_logs=40)
+                    dashboard_address=":0", silence_logs=40)
                 self._client = distributed.Client(self._cluster)
         except (OSError, TimeoutError) as exc:
             where = f"the Dask scheduler at {scheduler}" if scheduler else "a local Dask cluster"
@@ -672,12 +674,12 @@ def _read_sheets(path: Path, spec: BatchSpec):
         yield first.dialect.sheet or "", first
 
 
-def _curves(table, sheet: str, spec: BatchSpec):
+def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
     """Yield ``(meta, x, y, sigma, excluded, note)`` per curve of a table, or
     ``(meta, ReadError)`` for a curve that cannot be taken from it."""
     from .io import ReadError, _rows_text
 
-    source = table.source
+    source = table.source if source is None else source
     for ycol in spec.ys:
         meta = (source, sheet, "", ycol)
         try:
@@ -776,19 +778,28 @@ def _plain_report_html(res, title: str) -> str:
     return "\n".join(parts)
 
 
+@dataclass(frozen=True)
+class _FileItem:
+    """A file for a worker to read: its absolute path (the worker's working folder may
+    differ) and the path as given (what the results table shows)."""
+
+    path: str
+    shown: str
+
+
 def _source_chunk(spec: BatchSpec, items: list) -> list[list[BatchRow]]:
     """Worker task: each item a file path (read and fitted here) or one curve; the
     rows of each item, in order."""
     out = []
     for item in items:
-        if isinstance(item, str):
+        if isinstance(item, _FileItem):
             rows = []
-            for sheet, table in _read_sheets(Path(item), spec):
+            for sheet, table in _read_sheets(Path(item.path), spec):
                 if isinstance(table, Exception):
                     text, _ = _problem_text(table)
-                    rows.append(BatchRow(item, sheet, "", ", ".join(spec.ys), error=text))
+                    rows.append(BatchRow(item.shown, sheet, "", ", ".join(spec.ys), error=text))
                     continue
-                rows.extend(_row(spec, c) for c in _curves(table, sheet, spec))
+                rows.extend(_row(spec, c) for c in _curves(table, sheet, spec, item.shown))
             out.append(rows)
         else:
             out.append([_row(spec, item)])
@@ -800,22 +811,22 @@ def _source_items(files: list[Path], spec: BatchSpec):
     curve by curve (so one long table of many groups is spread over the workers)."""
     for path in files:
         try:
-            large = path.stat().st_size > LARGE_FILE_BYTES
+            size = path.stat().st_size
+            large = size > (LARGE_GROUPED_BYTES if spec.group is not None else LARGE_FILE_BYTES)
         except OSError:
             large = False
         if not large:
-            yield str(path)
+            yield _FileItem(os.path.abspath(path), str(path))
             continue
         for sheet, table in _read_sheets(path, spec):
             if isinstance(table, Exception):
                 yield ((str(path), sheet, "", ", ".join(spec.ys)), table)
                 continue
-            yield from _curves(table, sheet, spec)
-            del table
+            yield from _curves(table, sheet, spec, str(path))
 
 
 def _item_size(item) -> int:
-    if isinstance(item, str):
+    if isinstance(item, _FileItem):
         return _CHUNK_POINTS // _CHUNK_FILES
     return 1 if len(item) == 2 else int(np.size(item[1]))
 
@@ -844,7 +855,7 @@ def fit_sources(paths: Iterable, spec: BatchSpec, *, jobs: int | None = None, en
             progress(sum(len(rows) for rows in results))
     def on_error(chunk, exc):
         text = f"the worker process failed ({type(exc).__name__}: {exc})"
-        return [[BatchRow(item, "", "", ", ".join(spec.ys), error=text)] if isinstance(item, str)
+        return [[BatchRow(item.shown, "", "", ", ".join(spec.ys), error=text)] if isinstance(item, _FileItem)
                 else [BatchRow(*item[0], error=text)] for item in chunk]
 
     for results in _run(_source_chunk, spec, chunks, jobs=jobs, engine=engine, scheduler=scheduler,
