@@ -675,7 +675,8 @@ def _read_sheets(path: Path, spec: BatchSpec):
 
 
 def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
-    """Yield ``(meta, x, y, sigma, excluded, note)`` per curve of a table, or
+    """Yield ``(meta, x, y, sigma, excluded, info)`` per curve of a table (``info``:
+    a note on rows left out, the column names and units, for the row and the report), or
     ``(meta, ReadError)`` for a curve that cannot be taken from it."""
     from .io import ReadError, _rows_text
 
@@ -701,7 +702,7 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
             note = (f"{_rows_text(np.asarray(sel.dropped_rows))}: left out, no usable number in "
                     f"{sel.x_name}, {sel.y_name}" + (f" or {sel.sigma_name}" if sel.sigma_name else ""))
         if codes is None:
-            yield (meta, sel.x, sel.y, sel.sigma, excl, note)
+            yield (meta, sel.x, sel.y, sel.sigma, excl, _info(sel, note))
             continue
         if (codes < 0).any():
             empty = f"{int((codes < 0).sum())} row(s) with an empty {spec.group} cell belong to no curve"
@@ -716,7 +717,7 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
                 continue
             yield ((source, sheet, label, ycol), sel.x[idx], sel.y[idx],
                    None if sel.sigma is None else sel.sigma[idx],
-                   None if excl is None else excl[idx], note)
+                   None if excl is None else excl[idx], _info(sel, note))
 
 
 def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
@@ -724,7 +725,8 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
     if len(curve) == 2:
         text, _ = _problem_text(curve[1])
         return BatchRow(source, sheet, group, ycol, error=text)
-    _, x, y, sigma, excluded, note = curve
+    _, x, y, sigma, excluded, info = curve
+    note = info.get("note", "")
     try:
         res = _fit_one(spec.model, spec.loss, dict(spec.options), x, y, sigma, excluded)
     except Exception as exc:  # noqa: BLE001 - one curve's problem never stops the batch
@@ -738,7 +740,7 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
         warn.append(note)
     report = ""
     if spec.report:
-        report = _report_html(res, curve[0])
+        report = _report_html(res, curve[0], info)
     return BatchRow(
         source, sheet, group, ycol, n_used=res.n_used, n_excluded=res.n_excluded,
         converged=bool(res.converged), values=tuple(float(v) for v in res.values),
@@ -747,35 +749,124 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
         warnings="; ".join(w.replace("\n", " ") for w in warn), report=report)
 
 
-def _report_html(res, meta) -> str:
-    from . import report as _report
+def _info(sel, note: str) -> dict:
+    return {"note": note, "x_name": sel.x_name, "y_name": sel.y_name, "x_unit": sel.x_unit,
+            "y_unit": sel.y_unit}
 
+
+def _report_html(res, meta, info) -> str:
     source, sheet, group, ycol = meta
     title = " / ".join(t for t in (os.path.basename(source), sheet, group, ycol) if t)
-    return _report.batch_report_html(res, title=title) if hasattr(_report, "batch_report_html") \
-        else _plain_report_html(res, title)
+    return _plain_report_html(res, title, meta, info)
 
 
-def _plain_report_html(res, title: str) -> str:
-    """A report page from what fitcore writes as text (no plot)."""
+def _plain_report_html(res, title: str, meta, info) -> str:
+    """One curve's report page: what was fitted, the estimates with the method block
+    (:func:`fitcore.report.estimates_text`), a plot drawn from the data (SVG: point
+    area grows with the weight, excluded points hollow) and the points table."""
     import html
 
-    from .report import convergence_text, estimates_text, excluded_points_text
+    from .report import estimates_text
 
+    esc = html.escape
+    source, sheet, group, ycol = meta
+    x_unit, y_unit = info.get("x_unit", ""), info.get("y_unit", "")
+    what = [("file", source), ("sheet", sheet), ("group", group),
+            ("x", f"{info.get('x_name', 'x')}" + (f" ({x_unit})" if x_unit else "")),
+            ("y", f"{info.get('y_name', ycol)}" + (f" ({y_unit})" if y_unit else "")),
+            ("rows left out", info.get("note", ""))]
     parts = [
         "<!DOCTYPE html><html><head><meta charset='utf-8'>",
-        f"<title>{html.escape(title)}</title></head><body>",
-        f"<h1>{html.escape(title)}</h1>",
-        estimates_text(res, "html"),
-        f"<p>{html.escape(convergence_text(res))}</p>",
+        f"<title>{esc(title)}</title>",
+        "<style>body{font-family:sans-serif;max-width:60em;margin:1em auto}"
+        "table{border-collapse:collapse}td,th{border:1px solid #bbb;padding:2px 6px;text-align:right}"
+        "th{background:#eee}</style></head><body>",
+        f"<h1>Ballast report: {esc(title)}</h1>",
+        "<table>" + "".join(f"<tr><th>{esc(k)}</th><td style='text-align:left'>{esc(str(v))}</td></tr>"
+                            for k, v in what if v) + "</table>",
+        "<h2>Estimates</h2>",
+        estimates_text(res, "html", x_unit=x_unit, y_unit=y_unit),
+        "<h2>Plot</h2>",
+        _svg_plot(res, info),
+        "<h2>Points</h2>",
+        _points_table(res),
+        "</body></html>",
     ]
-    excl = excluded_points_text(res)
-    if excl:
-        parts.append(f"<pre>{html.escape(excl)}</pre>")
-    if res.warnings:
-        parts.append("<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in res.warnings) + "</ul>")
-    parts.append("</body></html>")
     return "\n".join(parts)
+
+
+def _svg_plot(res, info, width: int = 640, height: int = 380) -> str:
+    x, y = np.asarray(res.x, float), np.asarray(res.y, float)
+    ok = np.isfinite(x) & np.isfinite(y)
+    if not ok.any():
+        return "<p>(no points to draw)</p>"
+    grid = np.linspace(x[ok].min(), x[ok].max(), 200)
+    try:
+        curve = np.asarray(res.predict(grid), float)
+    except Exception:  # noqa: BLE001 - a model that cannot be evaluated there: draw the points only
+        curve = np.full(grid.size, np.nan)
+    ys = np.concatenate([y[ok], curve[np.isfinite(curve)]])
+    x0, x1 = float(x[ok].min()), float(x[ok].max())
+    y0, y1 = float(ys.min()), float(ys.max())
+    x1 = x1 if x1 > x0 else x0 + 1.0
+    y1 = y1 if y1 > y0 else y0 + 1.0
+    pad = 0.05 * (y1 - y0)
+    y0, y1 = y0 - pad, y1 + pad
+    left, right, top, bottom = 70, 15, 15, 45
+
+    def px(v):
+        return left + (v - x0) / (x1 - x0) * (width - left - right)
+
+    def py(v):
+        return height - bottom - (v - y0) / (y1 - y0) * (height - top - bottom)
+
+    out = [f"<svg xmlns='http://www.w3.org/2000/svg' width='{width}' height='{height}' "
+           f"font-family='sans-serif' font-size='11'>",
+           f"<rect x='{left}' y='{top}' width='{width - left - right}' height='{height - top - bottom}' "
+           "fill='none' stroke='#888'/>"]
+    for t in np.linspace(x0, x1, 5):
+        out.append(f"<text x='{px(t):.1f}' y='{height - bottom + 15}' text-anchor='middle'>{t:.4g}</text>")
+    for t in np.linspace(y0, y1, 5):
+        out.append(f"<text x='{left - 5}' y='{py(t) + 4:.1f}' text-anchor='end'>{t:.4g}</text>")
+
+    def label(name, unit):
+        return f"{name} ({unit})" if unit else name
+
+    import html
+
+    out.append(f"<text x='{(left + width - right) / 2}' y='{height - 8}' text-anchor='middle'>"
+               f"{html.escape(label(info.get('x_name', 'x'), info.get('x_unit', '')))}</text>")
+    out.append(f"<text x='14' y='{(top + height - bottom) / 2}' text-anchor='middle' "
+               f"transform='rotate(-90 14 {(top + height - bottom) / 2})'>"
+               f"{html.escape(label(info.get('y_name', 'y'), info.get('y_unit', '')))}</text>")
+    fin = np.isfinite(curve)
+    if fin.any():
+        pts = " ".join(f"{px(a):.1f},{py(b):.1f}" for a, b in zip(grid[fin], curve[fin]))
+        out.append(f"<polyline points='{pts}' fill='none' stroke='#1f5fa8' stroke-width='1.5'/>")
+    w = np.asarray(res.weights, float)
+    excl = np.asarray(res.excluded, bool)
+    for i in np.flatnonzero(ok):
+        if excl[i]:
+            out.append(f"<circle cx='{px(x[i]):.1f}' cy='{py(y[i]):.1f}' r='4' fill='none' stroke='#c0392b'/>")
+        else:
+            r = 2.0 + 3.0 * np.sqrt(max(0.0, min(1.0, w[i])))  # area grows with the weight
+            fill = "#333" if w[i] >= 0.5 else "#e08a00"
+            out.append(f"<circle cx='{px(x[i]):.1f}' cy='{py(y[i]):.1f}' r='{r:.2f}' fill='{fill}'/>")
+    out.append("</svg>")
+    out.append("<p>Line: the fitted curve. Dots: points, area growing with the robust weight; orange: "
+               "weight below 0.5; hollow red: excluded.</p>")
+    return "\n".join(out)
+
+
+def _points_table(res) -> str:
+    head = "<tr><th>#</th><th>x</th><th>y</th><th>fitted</th><th>residual</th><th>weight</th></tr>"
+    rows = []
+    for i, (a, b, f, r, w, e) in enumerate(zip(res.x, res.y, res.fitted, res.residuals, res.weights,
+                                               res.excluded)):
+        state = "excluded" if e else f"{w:.3f}"
+        rows.append(f"<tr><td>{i + 1}</td><td>{a:.6g}</td><td>{b:.6g}</td><td>{f:.6g}</td>"
+                    f"<td>{r:.4g}</td><td>{state}</td></tr>")
+    return "<table>" + head + "".join(rows) + "</table>"
 
 
 @dataclass(frozen=True)

@@ -327,7 +327,13 @@ def test_cli_report_dir_one_page_per_curve(folder, tmp_path):
     assert pages == ["long_7_Signal.html", "long_A1_Signal.html", "long_A2_Signal.html",
                      "long_B1_Signal.html"]
     text = (reports / "long_A1_Signal.html").read_text(encoding="utf-8")
-    assert "<html" in text.lower() and "tau" in text
+    assert "<html" in text.lower() and "<svg" in text and "Robust weights are not a licence" in text
+    # the estimates in the page are those of the single fit of well A1, rounded per GUM
+    table = fitcore.read_table(folder / "long.tsv")
+    codes, labels = table.groups("Well")
+    keep = codes == labels.index("A1")
+    ref = fitcore.fit(MODEL, table.column("Time")[keep], table.column("Signal")[keep], LOSS)
+    assert f"<td>tau</td><td>{fitcore.format_value(ref['tau'], ref.stderr[1])}</td>" in text
 
 
 # --------------------------------------------------------------------------- Dask
