@@ -28,6 +28,7 @@ import io as _io
 import math
 import os
 import re
+import stat
 import warnings
 import zipfile
 from collections import Counter
@@ -51,8 +52,26 @@ __all__ = [
 
 #: Lines looked at to find the separator, decimal mark and header row.
 SNIFF_LINES = 400
+#: ... but no more than this many characters of them (wide files), unless fewer than
+#: SNIFF_MIN_LINES lines would be left.
+SNIFF_CHARS = 1_000_000
+SNIFF_MIN_LINES = 12
 #: At most this many row numbers are spelled out in one note.
 MAX_ROWS_IN_NOTE = 12
+#: Largest file read (bytes on disk); larger files are refused with a message.
+MAX_FILE_BYTES = 256 * 1024 * 1024
+#: Largest amount of spreadsheet XML unpacked from one XLSX/ODS file (bytes).
+MAX_UNCOMPRESSED_BYTES = 256 * 1024 * 1024
+#: Largest grid of one sheet or text table: rows x columns, empty cells included.
+MAX_SHEET_CELLS = 4_000_000
+#: A ZIP part larger than MAX_RATIO_FREE_BYTES that unpacks more than this many times its
+#: stored size is refused (spreadsheet XML compresses about 5-20 times).
+MAX_COMPRESSION_RATIO = 200
+MAX_RATIO_FREE_BYTES = 8 * 1024 * 1024
+#: Cells an ODS file may create by repeating a filled cell or row (table:number-*-repeated).
+MAX_REPEATED_CELLS = 200_000
+#: Largest text table read: data rows x columns.
+MAX_TEXT_CELLS = 10_000_000
 
 _COMMENT_MARKS = ("#", "%", "//")
 _TEXT_SEPARATORS = ("\t", ";", ",", "|", " ")  # " " = runs of white space
@@ -218,12 +237,13 @@ def _make_names(raw: Sequence[str | None], notes: list[str]) -> tuple[list[str],
     units: dict[str, str] = {}
     headers: dict[str, str] = {}
     seen: set[str] = set()
+    any_header = any(r not in (None, "") for r in raw)
     for i, text in enumerate(raw, start=1):
         text = "" if text is None else str(text).strip()
         name, unit = split_unit(text) if text else ("", "")
         if not name:
             name = f"column_{i}"
-            if text == "" and any(r not in (None, "") for r in raw):
+            if text == "" and any_header:
                 notes.append(f"column {i} has no header; named it {name}")
         if name in seen:
             base, n = name, 2
@@ -546,13 +566,19 @@ class _Layout:
     header_cells: list | None
 
 
+_PLAIN_NUMBER_RE = re.compile(r"^\s*[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?\s*$")
+
+
 def _cell_kind(cell) -> int:
     """0 = empty, 1 = number, 2 = text."""
     if cell is None:
         return 0
     if isinstance(cell, float):
         return 0 if math.isnan(cell) else 1
-    s = str(cell).strip()
+    s = str(cell)
+    if _PLAIN_NUMBER_RE.match(s):  # fast path: most cells of a wide file
+        return 1
+    s = s.strip()
     if not s:
         return 0
     return 1 if _numlike(s) else 2
@@ -592,10 +618,10 @@ def _looks_like_units(cells) -> bool:
                for t in texts)
 
 
-def _find_layout(rows: list[list], comment: list[bool] | None = None) -> _Layout | None:
+def _find_layout(rows: list[list], comment: list[bool] | None = None, stats=None) -> _Layout | None:
     """Find header and first data row in a list of rows of cells (None = no table)."""
     comment = comment or [False] * len(rows)
-    stats = [_row_stats(r) for r in rows]
+    stats = stats if stats is not None else [_row_stats(r) for r in rows]
     data_idx = [i for i, s in enumerate(stats) if not comment[i] and _is_data_row(s)]
     if not data_idx:
         return None
@@ -649,14 +675,27 @@ def _find_layout(rows: list[list], comment: list[bool] | None = None) -> _Layout
 
 
 def _split_fields(line: str, sep: str) -> list[str]:
+    """Cells of one line. Lines without quotes are split directly (any length: the csv
+    module refuses fields over 131,072 characters); quoted lines go through csv."""
     if sep == " ":
         line = line.replace("\t", " ").strip()
         if not line:
             return []
-        return next(csv.reader([line], delimiter=" ", skipinitialspace=True))
+        if '"' not in line:
+            return line.split()
+        return _csv_fields(line, " ", skipinitialspace=True)
     if not line.strip():
         return []
-    return next(csv.reader([line], delimiter=sep, quotechar='"'))
+    if '"' not in line:
+        return line.split(sep)
+    return _csv_fields(line, sep)
+
+
+def _csv_fields(line: str, sep: str, **kw) -> list[str]:
+    try:
+        return next(csv.reader([line], delimiter=sep, quotechar='"', **kw))
+    except csv.Error:  # a quoted field longer than the csv module's field limit
+        return [f.strip('"') for f in (line.split() if sep == " " else line.split(sep))]
 
 
 def _merge_whitespace_header(line: str, width: int) -> list[str]:
@@ -721,12 +760,15 @@ def _check_text(text: str, label: str) -> None:
         raise ReadError(f"{label} does not look like a text table or a spreadsheet (it contains binary data).")
 
 
-def _head_lines(text: str, n: int) -> tuple[list[str], list[int]]:
-    """The first ``n`` lines and the character offset where each starts."""
+def _head_lines(text: str, n: int, max_chars: int | None = None) -> tuple[list[str], list[int]]:
+    """The first ``n`` lines (fewer once ``max_chars`` are taken, but at least
+    ``SNIFF_MIN_LINES``) and the character offset where each starts."""
     lines, offsets = [], []
     pos = 0
     for _ in range(n):
         if pos > len(text) or (pos == len(text) and lines):
+            break
+        if max_chars is not None and pos > max_chars and len(lines) >= SNIFF_MIN_LINES:
             break
         end = text.find("\n", pos)
         if end < 0:
@@ -752,7 +794,7 @@ def _sniff(lines: list[str], decimal: str | None):
         width = max(counts, key=lambda w: (counts[w], w))
         score = sum(s[1] for i, s in enumerate(stats) if not comment[i] and s[0] == width and _is_data_row(s))
         if best is None or score > best[0]:
-            best = (score, -prio, sep, rows, comment)
+            best = (score, -prio, sep, rows, comment, stats)
     return best
 
 
@@ -767,12 +809,12 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
     if "\r" in text and _LONE_CR_RE.search(text):  # old Mac or mixed line ends
         text = text.replace("\r\n", "\n").replace("\r", "\n")
         utf8_bytes = None
-    lines, offsets = _head_lines(text, SNIFF_LINES)
+    lines, offsets = _head_lines(text, SNIFF_LINES, SNIFF_CHARS)
     sniffed = _sniff(lines, decimal)
     if sniffed is None:
         _no_table(lines, label)
-    _, _, sep, rows, comment = sniffed
-    layout = _find_layout(rows, comment)
+    _, _, sep, rows, comment, stats = sniffed
+    layout = _find_layout(rows, comment, stats)
     if layout is None:
         _no_table(lines, label)
     if layout.width < 2:
@@ -819,7 +861,12 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
         body = text[start:]
         n_body_lines = body.count("\n")
         ends_open = bool(body) and not body.endswith("\n")
+    if ends_open:
+        body, ends_open = _unterminated_last_line(text, body, sep, width, first_line + n_body_lines, label, notes)
     n_body_lines += 1 if ends_open else 0
+    if n_body_lines * ncols > MAX_TEXT_CELLS:
+        raise ReadError(f"{label} holds about {n_body_lines:,} rows of {ncols:,} columns, more than the "
+                        f"{MAX_TEXT_CELLS:,} cells Ballast reads; save only the columns needed.")
     df, bad_lines = _read_body(pd, body, sep, decimal, ncols, label)
     line_no = np.arange(n_body_lines, dtype=np.int64)
     if bad_lines:
@@ -839,9 +886,20 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
     columns: list[np.ndarray] = []
     cell_notes: list[tuple[int, list[tuple[str, np.ndarray]]]] = []
     thousands_seen = False
+    all_numeric = df.shape[1] > 64 and all(
+        pd.api.types.is_numeric_dtype(t) and not pd.api.types.is_bool_dtype(t) for t in df.dtypes)
+    if all_numeric:  # a wide numeric table (a spectrum export): one conversion for all columns
+        matrix = df.to_numpy(dtype=float, na_value=np.nan)
+        df_columns = [matrix[:, i] for i in range(matrix.shape[1])]
+    else:
+        df_columns = [col for _, col in df.items()]
     for i in range(ncols):
-        col = df.iloc[:, i] if i < df.shape[1] else None
-        values, problems, grouped = _convert_column(col, len(df), decimal)
+        col = df_columns[i] if i < len(df_columns) else None
+        if all_numeric and col is not None:
+            values, problems = _numeric_values(col)
+            grouped = False
+        else:
+            values, problems, grouped = _convert_column(col, len(df), decimal)
         thousands_seen |= grouped
         columns.append(values)
         cell_notes.append((i, problems))
@@ -849,6 +907,37 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
                      label=label, source=source, sha256=sha256, title_lines=title_lines,
                      dialect=Dialect(kind=kind, encoding=encoding_name, separator=sep, decimal=decimal,
                                      header_row=None if layout.header is None else layout.header + 1))
+
+
+def _unterminated_last_line(text: str, body, sep: str, width: int, line_no: int, label: str, notes: list[str]):
+    """A last line without a line end may be cut short (a file still being written).
+
+    Kept, with a note, when it has all its cells and ends in a number; else left out
+    with a note. Returns the body to read and whether it still ends without a line end.
+    """
+    cut = text.rfind("\n") + 1
+    last = text[cut:].rstrip("\r")
+    if not last.strip():
+        return body, True
+    fields = [f for f in _split_fields(last, sep)]
+    if len(fields) >= width and fields and _cell_kind(fields[-1]) == 1:
+        notes.append(f"row {line_no}: the last line has no line end; if the file was still being written, "
+                     "its last value may be cut short")
+        return body, True
+    notes.append(f"row {line_no}: the last line has no line end and is incomplete (the file may still be "
+                 "being written); row left out")
+    if isinstance(body, memoryview):
+        end = body.obj.rfind(b"\n")
+        start = len(body.obj) - len(body)
+        if end < start:
+            raise ReadError(f"{label} has only an incomplete data line without a line end (the file may still "
+                            "be being written).")
+        return memoryview(body.obj)[start:end + 1], False
+    end = body.rfind("\n")
+    if end < 0:
+        raise ReadError(f"{label} has only an incomplete data line without a line end (the file may still "
+                        "be being written).")
+    return body[:end + 1], False
 
 
 def _no_table(lines: list[str], label: str):
@@ -892,6 +981,20 @@ def _read_body(pd, body: str, sep: str, decimal: str, ncols: int, label: str):
     return df, sorted(set(bad))
 
 
+def _numeric_values(values: np.ndarray):
+    """A float column with its empty cells and infinities listed as problems."""
+    values = np.array(values, dtype=float)
+    problems: list[tuple[str, str, np.ndarray]] = []
+    empty = np.isnan(values)
+    inf = np.isinf(values)
+    if inf.any():
+        values[inf] = np.nan
+        problems.append(("text", "inf", inf))
+    if empty.any():
+        problems.append(("empty", "", empty))
+    return values, problems
+
+
 def _convert_column(col, n: int, decimal: str):
     """Float values, list of (problem text, mask) and whether thousands separators were used."""
     import pandas as pd
@@ -901,14 +1004,7 @@ def _convert_column(col, n: int, decimal: str):
     problems: list[tuple[str, np.ndarray]] = []
     grouped_any = False
     if pd.api.types.is_numeric_dtype(col.dtype) and not pd.api.types.is_bool_dtype(col.dtype):
-        values = col.to_numpy(dtype=float, na_value=np.nan).copy()
-        empty = np.isnan(values)
-        inf = np.isinf(values)
-        if inf.any():
-            values[inf] = np.nan
-            problems.append(("text", "inf", inf))
-        if empty.any():
-            problems.append(("empty", "", empty))
+        values, problems = _numeric_values(col.to_numpy(dtype=float, na_value=np.nan))
         return values, problems, False
     # fast vectorised pass for plain numbers; the rest cell by cell
     if decimal == ",":
@@ -994,11 +1090,12 @@ def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen
     if len(keep_cols) < 2:
         raise ReadError(f"{label} has only one column; at least two (x and y) are needed.")
     names, units, headers = _make_names(raw_names, notes)
+    notes_of = dict(cell_notes)
     data = {}
     texts = {}
     for name, i in zip(names, keep_cols):
         data[name] = columns[i][keep_rows]
-        for kind, text, mask in dict(cell_notes).get(i, []):
+        for kind, text, mask in notes_of.get(i, []):
             rows = source_rows[mask & keep_rows]
             if rows.size == 0:
                 continue
@@ -1091,47 +1188,33 @@ def _pick_sheet(names: list[str], sheet, label: str) -> int:
 def _read_workbook(data: bytes, kind: str, sheet, *, label, source, sha256, decimal) -> Table:
     notes: list[str] = []
     try:
+        zf = zipfile.ZipFile(_io.BytesIO(data))
         if kind == "xlsx":
-            import openpyxl
-
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                wb = openpyxl.load_workbook(_io.BytesIO(data), data_only=True, read_only=False)
-            names = list(wb.sheetnames)
-
-            def grid_of(idx):
-                ws = wb[names[idx]]
-                if ws.max_row is None or ws.max_column is None:
-                    return []
-                return [[_cell_value(v) for v in r] for r in ws.iter_rows(
-                    min_row=1, min_col=1, max_row=ws.max_row, max_col=ws.max_column, values_only=True)]
+            book = _XlsxBook(zf, label)
+            names = list(book.names)
+            grid_of = book.grid
         else:
-            import pandas as pd
-
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                frames = pd.read_excel(_io.BytesIO(data), engine="odf", header=None, sheet_name=None, dtype=object)
-            names = list(frames)
+            names, grids = _ods_sheets(zf, label)
 
             def grid_of(idx):
-                df = frames[names[idx]]
-                return [[_cell_value(None if (isinstance(v, float) and math.isnan(v)) else v) for v in row]
-                        for row in df.itertuples(index=False, name=None)]
-    except ReadError:
-        raise
+                return grids[idx]
+        if names:
+            idx = _pick_sheet(names, sheet, label)
+            grid = grid_of(idx)
+            if sheet is None and _find_layout([list(r) for r in grid]) is None:
+                for j in range(len(names)):
+                    if j != idx and _find_layout(grid_of(j)) is not None:
+                        notes.append(f"sheet '{names[idx]}' holds no table of numbers; read sheet '{names[j]}' "
+                                     "instead")
+                        idx, grid = j, grid_of(j)
+                        break
+    except ReadError as err:
+        raise ReadError(str(err).rstrip(".") + ".") from None
     except Exception:  # noqa: BLE001 - any reader failure: one sentence for a damaged workbook
         raise ReadError(f"{label} looks like an {kind.upper()} spreadsheet but is damaged or incomplete "
                         "and could not be opened.") from None
     if not names:
         raise ReadError(f"{label} is a workbook without any sheets.")
-    idx = _pick_sheet(names, sheet, label)
-    grid = grid_of(idx)
-    if sheet is None and _find_layout([[c for c in r] for r in grid]) is None:
-        for j in range(len(names)):
-            if j != idx and _find_layout(grid_of(j)) is not None:
-                notes.append(f"sheet '{names[idx]}' holds no table of numbers; read sheet '{names[j]}' instead")
-                idx, grid = j, grid_of(j)
-                break
     if len(names) > 1:
         notes.insert(0, f"read sheet '{names[idx]}' of {len(names)} (" + ", ".join(names) + ")")
     return _grid_table(grid, label=label, source=source, sha256=sha256, decimal=decimal, kind=kind,
@@ -1163,7 +1246,506 @@ def _container(data: bytes, path: Path, label: str) -> str:
     return "text"
 
 
+# --------------------------------------------------------------------------- streaming spreadsheet readers
+#
+# Both readers walk the sheet XML with expat, a chunk at a time, and keep only the
+# cells that hold something: empty cells and empty rows are counted, not stored, and
+# trailing ones (ODS "repeated" runs up to the sheet's edge) are never materialised.
+# The grid of one sheet is capped at MAX_SHEET_CELLS cells (rows x widest row), the
+# XML read from the archive at MAX_UNCOMPRESSED_BYTES; a document type declaration
+# (never present in XLSX/ODS) is refused, so entity expansion cannot happen.
+
+
+class _SheetTooLarge(ReadError):
+    pass
+
+
+def _cap_text(n: int) -> str:
+    return f"{n:,}"
+
+
+def _zip_open_checked(zf: zipfile.ZipFile, name: str, label: str, budget: list[int]):
+    info = zf.getinfo(name)
+    if info.file_size > MAX_RATIO_FREE_BYTES and info.file_size > MAX_COMPRESSION_RATIO * max(info.compress_size, 1):
+        raise _SheetTooLarge(
+            f"{label} holds a part ('{name}') that unpacks {info.file_size // max(info.compress_size, 1):,} times "
+            f"larger than it is stored (more than {MAX_COMPRESSION_RATIO} times is refused as a compression bomb); "
+            "save the table again from the spreadsheet program or as CSV")
+    if info.file_size > budget[0]:
+        raise _SheetTooLarge(
+            f"{label} unpacks to more than {_cap_text(MAX_UNCOMPRESSED_BYTES)} bytes of spreadsheet XML "
+            f"(part '{name}' alone declares {_cap_text(info.file_size)}), the most Ballast reads; "
+            "save the table in a smaller file or as CSV")
+    return zf.open(info)
+
+
+def _feed(parser, fh, label: str, budget: list[int]) -> None:
+    while True:
+        chunk = fh.read(1 << 16)
+        if not chunk:
+            break
+        budget[0] -= len(chunk)
+        if budget[0] < 0:
+            raise _SheetTooLarge(
+                f"{label} unpacks to more than {_cap_text(MAX_UNCOMPRESSED_BYTES)} bytes of spreadsheet XML, "
+                "the most Ballast reads; save the table in a smaller file or as CSV")
+        parser.Parse(chunk, False)
+    parser.Parse(b"", True)
+
+
+def _new_parser():
+    from xml.parsers import expat
+
+    parser = expat.ParserCreate(namespace_separator=" ")
+
+    def no_dtd(*_a):
+        raise ValueError("a document type declaration is not allowed in a spreadsheet")
+
+    parser.StartDoctypeDeclHandler = no_dtd
+    parser.EntityDeclHandler = no_dtd
+    parser.buffer_text = True
+    return parser
+
+
+class _GridBuilder:
+    """Rows of cells where only what holds a value is stored; empty runs are pending."""
+
+    def __init__(self, label: str, sheet: str):
+        self.repeated = 0  # cells made by repeating a non-empty cell or row (ODS)
+        self.rows: list[list] = []
+        self.pending_rows = 0  # empty rows not yet materialised
+        self.row: list = []
+        self.pending_cells = 0
+        self.width = 0
+        self.label = label
+        self.sheet = sheet
+
+    def _check(self, n_rows: int, width: int) -> None:
+        if n_rows * max(width, 1) > MAX_SHEET_CELLS:
+            raise _SheetTooLarge(
+                f"sheet '{self.sheet}' of {self.label} spans {_cap_text(n_rows)} rows and {_cap_text(width)} "
+                f"columns, more than the {_cap_text(MAX_SHEET_CELLS)} cells Ballast reads; delete far-away "
+                "cells or copy the table to a new file")
+
+    def skip_cells(self, n: int) -> None:
+        self.pending_cells += n
+
+    def cell(self, value, repeat: int = 1) -> None:
+        if value is None:
+            self.pending_cells += repeat
+            return
+        new_len = len(self.row) + self.pending_cells + repeat
+        self._check(len(self.rows) + self.pending_rows + 1, max(self.width, new_len))
+        if self.pending_cells:
+            self.row.extend([None] * self.pending_cells)
+            self.pending_cells = 0
+        if repeat > 1:
+            self._repeat((repeat - 1))
+        self.row.extend([value] * repeat)
+
+    def _repeat(self, n_cells: int) -> None:
+        self.repeated += n_cells
+        if self.repeated > MAX_REPEATED_CELLS:
+            raise _SheetTooLarge(
+                f"sheet '{self.sheet}' of {self.label} repeats filled cells or rows to more than "
+                f"{_cap_text(MAX_REPEATED_CELLS)} cells, the most Ballast expands; write the values out or save "
+                "the table as CSV")
+
+    def end_row(self, repeat: int = 1) -> None:
+        row, self.row, self.pending_cells = self.row, [], 0
+        if not row:
+            self.pending_rows += repeat
+            return
+        n_rows = len(self.rows) + self.pending_rows + repeat
+        if repeat > 1:
+            self._repeat((repeat - 1) * len(row))
+        self.width = max(self.width, len(row))
+        self._check(n_rows, self.width)
+        if self.pending_rows:
+            self.rows.extend([] for _ in range(self.pending_rows))
+            self.pending_rows = 0
+        self.rows.append(row)
+        for _ in range(repeat - 1):
+            self.rows.append(list(row))
+
+    def skip_rows(self, n: int) -> None:
+        self.pending_rows += n
+
+
+_XLSX_MAIN = "http://schemas.openxmlformats.org/spreadsheetml/2006/main"
+_XLSX_REL = "http://schemas.openxmlformats.org/officeDocument/2006/relationships"
+_PKG_REL = "http://schemas.openxmlformats.org/package/2006/relationships"
+_COL_RE = re.compile(r"^([A-Za-z]{1,3})(\d+)$")
+_DATE_FORMAT_IDS = set(range(14, 23)) | {45, 46, 47}
+
+
+def _col_index(letters: str) -> int:
+    n = 0
+    for ch in letters.upper():
+        n = n * 26 + (ord(ch) - 64)
+    return n - 1
+
+
+def _xlsx_small_part(zf, name: str, label: str, budget: list[int], start, end=None, text=None) -> None:
+    if name not in zf.namelist():
+        return
+    parser = _new_parser()
+    parser.StartElementHandler = start
+    if end is not None:
+        parser.EndElementHandler = end
+    if text is not None:
+        parser.CharacterDataHandler = text
+    with _zip_open_checked(zf, name, label, budget) as fh:
+        _feed(parser, fh, label, budget)
+
+
+def _xlsx_is_date_format(code: str) -> bool:
+    code = re.sub(r'"[^"]*"|\[[^\]]*\]|\\.', "", code).lower()
+    return any(ch in code for ch in "dyhs") or ("m" in code and ("d" in code or "y" in code))
+
+
+class _XlsxBook:
+    """Sheet names and a streaming sheet reader for an XLSX workbook (no openpyxl)."""
+
+    def __init__(self, zf: zipfile.ZipFile, label: str):
+        self.zf, self.label = zf, label
+        self.budget = [MAX_UNCOMPRESSED_BYTES]
+        sheets: list[tuple[str, str]] = []
+
+        def wb_start(name, attrs):
+            if name == f"{_XLSX_MAIN} sheet":
+                sheets.append((attrs.get("name", f"Sheet{len(sheets) + 1}"), attrs.get(f"{_XLSX_REL} id", "")))
+
+        _xlsx_small_part(zf, "xl/workbook.xml", label, self.budget, wb_start)
+        targets: dict[str, str] = {}
+
+        def rel_start(name, attrs):
+            if name == f"{_PKG_REL} Relationship":
+                targets[attrs.get("Id", "")] = attrs.get("Target", "")
+
+        _xlsx_small_part(zf, "xl/_rels/workbook.xml.rels", label, self.budget, rel_start)
+        self.names = [n for n, _ in sheets]
+        self.parts = []
+        for _, rid in sheets:
+            t = targets.get(rid, "")
+            t = t.lstrip("/") if t.startswith("/") else "xl/" + t
+            self.parts.append(os.path.normpath(t).replace(os.sep, "/") if t else "")
+        self._strings: list[str] | None = None
+        self._date_styles: set[int] | None = None
+
+    def strings(self) -> list[str]:
+        if self._strings is None:
+            out: list[str] = []
+            buf: list[str] = []
+            state = {"in_t": False, "skip": 0}
+
+            def start(name, attrs):
+                if name == f"{_XLSX_MAIN} si":
+                    buf.clear()
+                elif name == f"{_XLSX_MAIN} rPh":
+                    state["skip"] += 1
+                elif name == f"{_XLSX_MAIN} t" and not state["skip"]:
+                    state["in_t"] = True
+
+            def end(name):
+                if name == f"{_XLSX_MAIN} si":
+                    out.append("".join(buf))
+                elif name == f"{_XLSX_MAIN} rPh":
+                    state["skip"] -= 1
+                elif name == f"{_XLSX_MAIN} t":
+                    state["in_t"] = False
+
+            def text(data):
+                if state["in_t"]:
+                    buf.append(data)
+
+            _xlsx_small_part(self.zf, "xl/sharedStrings.xml", self.label, self.budget, start, end, text)
+            self._strings = out
+        return self._strings
+
+    def date_styles(self) -> set[int]:
+        if self._date_styles is None:
+            custom: dict[int, str] = {}
+            xf_fmts: list[int] = []
+            state = {"xfs": False}
+
+            def start(name, attrs):
+                if name == f"{_XLSX_MAIN} numFmt":
+                    try:
+                        custom[int(attrs.get("numFmtId", "-1"))] = attrs.get("formatCode", "")
+                    except ValueError:
+                        pass
+                elif name == f"{_XLSX_MAIN} cellXfs":
+                    state["xfs"] = True
+                elif name == f"{_XLSX_MAIN} xf" and state["xfs"]:
+                    try:
+                        xf_fmts.append(int(attrs.get("numFmtId", "0")))
+                    except ValueError:
+                        xf_fmts.append(0)
+
+            def end(name):
+                if name == f"{_XLSX_MAIN} cellXfs":
+                    state["xfs"] = False
+
+            _xlsx_small_part(self.zf, "xl/styles.xml", self.label, self.budget, start, end)
+            self._date_styles = {i for i, f in enumerate(xf_fmts)
+                                 if f in _DATE_FORMAT_IDS or (f in custom and _xlsx_is_date_format(custom[f]))}
+        return self._date_styles
+
+    def grid(self, idx: int) -> list[list]:
+        part = self.parts[idx]
+        sheet = self.names[idx]
+        b = _GridBuilder(self.label, sheet)
+        if not part or part not in self.zf.namelist():
+            return b.rows  # a chart sheet or a missing part: no cells
+        strings = self.strings()
+        dates = self.date_styles()
+        st = {"row": 0, "col": 0, "t": "n", "s": 0, "v": None, "in_v": False, "in_t": False, "is": [],
+              "in_cell": False, "in_row": False}
+        vbuf: list[str] = []
+        C, V, T, ROW = (f"{_XLSX_MAIN} c", f"{_XLSX_MAIN} v", f"{_XLSX_MAIN} t", f"{_XLSX_MAIN} row")
+
+        def start(name, attrs):
+            if name == C:
+                ref = attrs.get("r")
+                col = st["col"]
+                if ref:
+                    m = _COL_RE.match(ref)
+                    if m:
+                        col = _col_index(m.group(1))
+                st["cell_col"] = col
+                st["t"] = attrs.get("t", "n")
+                try:
+                    st["s"] = int(attrs.get("s", "0"))
+                except ValueError:
+                    st["s"] = 0
+                st["in_cell"] = True
+                st["is"] = []
+                vbuf.clear()
+                st["has_v"] = False
+            elif name == V and st["in_cell"]:
+                st["in_v"] = True
+                st["has_v"] = True
+            elif name == T and st["in_cell"]:
+                st["in_t"] = True
+            elif name == ROW:
+                r = attrs.get("r")
+                target = st["row"] + 1
+                if r:
+                    try:
+                        target = int(r)
+                    except ValueError:
+                        pass
+                if target > st["row"] + 1:
+                    b.skip_rows(target - st["row"] - 1)
+                st["row"] = max(target, st["row"] + 1) if target > st["row"] else st["row"] + 1
+                st["col"] = 0
+                st["in_row"] = True
+
+        def end(name):
+            if name == V:
+                st["in_v"] = False
+            elif name == T:
+                st["in_t"] = False
+            elif name == C:
+                st["in_cell"] = False
+                col = st["cell_col"]
+                value = self._value(st["t"], "".join(vbuf), st["has_v"], "".join(st["is"]), st["s"], strings,
+                                    dates)
+                if col < len(b.row) + b.pending_cells:
+                    col = len(b.row) + b.pending_cells  # out-of-order reference: keep file order
+                b.skip_cells(col - len(b.row) - b.pending_cells)
+                b.cell(value)
+                st["col"] = col + 1
+            elif name == ROW:
+                b.end_row()
+                st["in_row"] = False
+
+        def text(data):
+            if st["in_v"]:
+                vbuf.append(data)
+            elif st["in_t"]:
+                st["is"].append(data)
+
+        parser = _new_parser()
+        parser.StartElementHandler = start
+        parser.EndElementHandler = end
+        parser.CharacterDataHandler = text
+        with _zip_open_checked(self.zf, part, self.label, self.budget) as fh:
+            _feed(parser, fh, self.label, self.budget)
+        return b.rows
+
+    @staticmethod
+    def _value(t: str, v: str, has_v: bool, inline: str, style: int, strings: list[str], dates: set[int]):
+        if t == "inlineStr":
+            return inline if inline != "" else None
+        if not has_v:
+            return None
+        if t == "s":
+            try:
+                s = strings[int(v)]
+            except (ValueError, IndexError):
+                return None
+            return s if s != "" else None
+        if t == "b":
+            return "TRUE" if v.strip() in ("1", "true") else "FALSE"
+        if t in ("str", "e", "d"):
+            return v if v != "" else None
+        try:
+            f = float(v)
+        except ValueError:
+            return v
+        if style in dates and math.isfinite(f):
+            from datetime import datetime, timedelta
+
+            try:
+                return str(datetime(1899, 12, 30) + timedelta(days=f))
+            except OverflowError:
+                return f
+        return f
+
+
+_ODS_TABLE = "urn:oasis:names:tc:opendocument:xmlns:table:1.0"
+_ODS_OFFICE = "urn:oasis:names:tc:opendocument:xmlns:office:1.0"
+_ODS_TEXT = "urn:oasis:names:tc:opendocument:xmlns:text:1.0"
+
+
+def _ods_repeat(attrs, key: str) -> int:
+    try:
+        return max(1, int(attrs.get(key, "1")))
+    except ValueError:
+        return 1
+
+
+def _ods_sheets(zf: zipfile.ZipFile, label: str) -> tuple[list[str], list[list[list]]]:
+    """All sheets of an ODS file in one streaming pass over content.xml."""
+    budget = [MAX_UNCOMPRESSED_BYTES]
+    names: list[str] = []
+    grids: list[list[list]] = []
+    TABLE, ROW = f"{_ODS_TABLE} table", f"{_ODS_TABLE} table-row"
+    CELL, COVERED = f"{_ODS_TABLE} table-cell", f"{_ODS_TABLE} covered-table-cell"
+    P, S, TAB, BR = (f"{_ODS_TEXT} p", f"{_ODS_TEXT} s", f"{_ODS_TEXT} tab", f"{_ODS_TEXT} line-break")
+    ANNOT = f"{_ODS_OFFICE} annotation"
+    st = {"b": None, "cell": None, "annot": 0, "paras": [], "depth_table": 0}
+
+    def start(name, attrs):
+        b = st["b"]
+        if name == TABLE:
+            st["depth_table"] += 1
+            if st["depth_table"] == 1:
+                names.append(attrs.get(f"{_ODS_TABLE} name", f"Sheet{len(names) + 1}"))
+                st["b"] = _GridBuilder(label, names[-1])
+        elif b is None or st["depth_table"] != 1:
+            return
+        elif name == ROW:
+            st["row_repeat"] = _ods_repeat(attrs, f"{_ODS_TABLE} number-rows-repeated")
+        elif name in (CELL, COVERED):
+            st["cell"] = {
+                "repeat": _ods_repeat(attrs, f"{_ODS_TABLE} number-columns-repeated"),
+                "type": attrs.get(f"{_ODS_OFFICE} value-type", ""),
+                "value": attrs.get(f"{_ODS_OFFICE} value"),
+                "bool": attrs.get(f"{_ODS_OFFICE} boolean-value"),
+                "date": attrs.get(f"{_ODS_OFFICE} date-value"),
+                "time": attrs.get(f"{_ODS_OFFICE} time-value"),
+            }
+            st["paras"] = []
+        elif name == ANNOT:
+            st["annot"] += 1
+        elif st["cell"] is not None and not st["annot"]:
+            if name == P:
+                st["paras"].append([])
+            elif st["paras"]:
+                if name == S:
+                    st["paras"][-1].append(" " * min(_ods_repeat(attrs, f"{_ODS_TEXT} c"), 1000))
+                elif name == TAB:
+                    st["paras"][-1].append("\t")
+                elif name == BR:
+                    st["paras"][-1].append("\n")
+
+    def end(name):
+        b = st["b"]
+        if name == TABLE:
+            st["depth_table"] -= 1
+            if st["depth_table"] == 0 and b is not None:
+                grids.append(b.rows)
+                st["b"] = None
+        elif b is None or st["depth_table"] != 1:
+            return
+        elif name == ROW:
+            b.end_row(st.get("row_repeat", 1))
+        elif name in (CELL, COVERED) and st["cell"] is not None:
+            c = st["cell"]
+            st["cell"] = None
+            b.cell(_ods_value(c, st["paras"]), c["repeat"])
+        elif name == ANNOT:
+            st["annot"] -= 1
+
+    def text(data):
+        if st["cell"] is not None and not st["annot"] and st["paras"]:
+            st["paras"][-1].append(data)
+
+    parser = _new_parser()
+    parser.StartElementHandler = start
+    parser.EndElementHandler = end
+    parser.CharacterDataHandler = text
+    with _zip_open_checked(zf, "content.xml", label, budget) as fh:
+        _feed(parser, fh, label, budget)
+    return names, grids
+
+
+def _ods_value(c: dict, paras: list[list[str]]):
+    kind = c["type"]
+    if kind in ("float", "percentage", "currency") and c["value"] is not None:
+        try:
+            return float(c["value"])
+        except ValueError:
+            pass
+    if kind == "boolean" and c["bool"] is not None:
+        return "TRUE" if c["bool"].strip().lower() == "true" else "FALSE"
+    if kind == "date" and c["date"]:
+        d = c["date"]
+        return d.replace("T", " ") if "T" in d else f"{d} 00:00:00"
+    if kind == "time" and c["time"]:
+        return c["time"]
+    text = "\n".join("".join(p) for p in paras)
+    return text if text.strip() != "" else None
+
+
 # --------------------------------------------------------------------------- public
+
+
+def _read_regular_file(p: Path, label: str) -> bytes:
+    """The bytes of ``p`` if it is a regular file of at most MAX_FILE_BYTES.
+
+    Opened without blocking (a FIFO or device never blocks or streams forever) and
+    checked with fstat on the open descriptor, so the file read is the file checked.
+    """
+    fd = os.open(p, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    try:
+        st = os.fstat(fd)
+        if stat.S_ISDIR(st.st_mode):
+            raise ReadError(f"{label} is a folder, not a file.")
+        if not stat.S_ISREG(st.st_mode):
+            kind = ("a named pipe (FIFO)" if stat.S_ISFIFO(st.st_mode) else
+                    "a device" if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode) else
+                    "a socket" if stat.S_ISSOCK(st.st_mode) else "not a regular file")
+            raise ReadError(f"{label} is {kind}, not a regular file; Ballast reads only regular files.")
+        if st.st_size > MAX_FILE_BYTES:
+            raise ReadError(f"{label} is {st.st_size:,} bytes, larger than the {MAX_FILE_BYTES:,} bytes Ballast "
+                            "reads; split it or save only the columns needed.")
+        chunks, total = [], 0
+        while True:
+            chunk = os.read(fd, 1 << 20)
+            if not chunk:
+                break
+            total += len(chunk)
+            if total > MAX_FILE_BYTES:  # grew while being read
+                raise ReadError(f"{label} is larger than the {MAX_FILE_BYTES:,} bytes Ballast reads; split it or "
+                                "save only the columns needed.")
+            chunks.append(chunk)
+        return b"".join(chunks)
+    finally:
+        os.close(fd)
 
 
 def read_table(path, sheet=None, *, decimal: str | None = None, encoding: str | None = None) -> Table:
@@ -1205,10 +1787,7 @@ def read_table(path, sheet=None, *, decimal: str | None = None, encoding: str | 
     if decimal is not None and decimal not in (".", ","):
         raise ReadError(f"decimal must be '.' or ',', not {decimal!r} (reading {label}).")
     try:
-        if p.is_dir():
-            raise ReadError(f"{label} is a folder, not a file.")
-        with open(p, "rb") as fh:
-            data = fh.read()
+        data = _read_regular_file(p, label)
     except ReadError:
         raise
     except FileNotFoundError:

@@ -512,9 +512,10 @@ def test_missing_file_folder_and_permission(tmp_path, monkeypatch):
     def deny(*args, **kwargs):
         raise PermissionError(13, "Permission denied")
 
-    monkeypatch.setattr("builtins.open", deny)
+    monkeypatch.setattr("fitcore.io.os.open", deny)  # the reader opens with os.open (no blocking)
     with pytest.raises(ReadError, match=r"^'locked.csv' cannot be opened: permission denied\.$"):
         read_table(p)
+    monkeypatch.undo()
 
 
 @pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0, reason="root can read files without permission")
