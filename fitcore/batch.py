@@ -653,7 +653,7 @@ def _read_sheets(path: Path, spec: BatchSpec):
     try:
         first = read_table(path, sheet=spec.sheet)
     except ReadError as exc:
-        yield "", exc
+        yield "" if spec.sheet is None else str(spec.sheet), exc
         return
     if not first.sheet_names or spec.sheet is not None:
         yield (first.dialect.sheet or "") if first.sheet_names else "", first

@@ -212,8 +212,8 @@ def main(argv=None) -> int:
         try:
             from tqdm import tqdm
 
-            bar = tqdm(total=None, unit="curve", file=sys.stderr, desc="fitting",
-                       disable=not sys.stderr.isatty(), dynamic_ncols=True)
+            bar = tqdm(total=None, unit=" curve", file=sys.stderr, desc="fitting",
+                       disable=not sys.stderr.isatty())
         except ImportError:  # the bar is a comfort, not a need
             bar = None
     failed: list = []
