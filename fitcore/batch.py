@@ -319,13 +319,17 @@ def _fitcore_version() -> str:
     return __version__
 
 
-def _engine(engine: str, jobs: int | None, scheduler: str | None):
+def _check_run(engine: str, jobs, scheduler) -> None:
     if engine not in ("local", "dask"):
         raise BatchError(f"unknown engine {engine!r}: choose 'local' or 'dask'")
     if jobs is not None and (not isinstance(jobs, (int, np.integer)) or isinstance(jobs, bool) or jobs < 1):
         raise BatchError(f"jobs must be a whole number of at least 1, not {jobs!r}")
     if scheduler and engine != "dask":
         raise BatchError("a scheduler address needs engine='dask'")
+
+
+def _engine(engine: str, jobs: int | None, scheduler: str | None):
+    _check_run(engine, jobs, scheduler)
     n = int(jobs) if jobs is not None else default_jobs()
     if engine == "dask":
         return _DaskPool(n, scheduler)
@@ -481,6 +485,7 @@ def iter_fit_many(datasets: Iterable, model, loss: str = "l2", *, jobs: int | No
     """Like :func:`fit_many`, but yields the results one by one, in input order, as they
     are ready (the input may be a generator: it is read a few chunks ahead only)."""
     mdl = _check_method(model, loss, fit_options)
+    _check_run(engine, jobs, scheduler)
     from .model import Model
 
     model_spec = model
@@ -931,6 +936,7 @@ def fit_sources(paths: Iterable, spec: BatchSpec, *, jobs: int | None = None, en
     with ``error`` filled. A path that does not exist raises :class:`BatchError`
     before anything is fitted, as do a bad method and an unreachable engine."""
     _check_method(spec.model, spec.loss, spec.options)
+    _check_run(engine, jobs, scheduler)
     if not isinstance(spec.model, str):
         raise BatchError("fit_sources takes the model as a built-in name or a formula text")
     files, problems = find_files(paths)
