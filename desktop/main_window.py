@@ -632,7 +632,7 @@ class MainWindow(QMainWindow):
 
         self.unknowns = UnknownsView(self.document, self.push, self.plot)
         lay = self.estimates.layout()
-        lay.insertWidget(lay.count() - 1, self.unknowns, 2)  # above the caution text
+        lay.insertWidget(lay.count() - 1, self.unknowns, 1)  # above the caution text
 
     def show_comparison(self):
         """Open the loss comparison and run it for the ticked losses."""

@@ -217,12 +217,25 @@ class MethodPanel(QWidget):
         scale_row.addWidget(self.scale_edit)
         form.addRow("Scale", scale_row)
 
+        self.weight_combo = QComboBox()  # weighting rules of calibrations (issue 14)
+        from fitcore.weighting import RULES, TITLES
+
+        for name in RULES:
+            self.weight_combo.addItem(TITLES[name], name)
+        self.weight_combo.setToolTip("How the variance of y grows along the curve: weights "
+                                     "1/x, 1/x\u00b2, 1/y, 1/y\u00b2, or a power of the mean "
+                                     "estimated from replicate standards (relative sigma; "
+                                     "the scale is still estimated)")
+        form.addRow("Weights", self.weight_combo)
+        self.weight_combo.currentIndexChanged.connect(self._on_weighting_picked)
+
         self.alpha_spin = QDoubleSpinBox()
         self.alpha_spin.setRange(-20.0, 2.0)
         self.alpha_spin.setSingleStep(0.25)
         self.alpha_spin.setDecimals(3)
         form.addRow("Alpha", self.alpha_spin)
-        for combo, n in ((self.model_combo, 10), (self.loss_combo, 10), (self.scale_combo, 4)):
+        for combo, n in ((self.model_combo, 10), (self.loss_combo, 10), (self.scale_combo, 4),
+                         (self.weight_combo, 4)):
             combo.setSizeAdjustPolicy(QComboBox.AdjustToMinimumContentsLengthWithIcon)
             combo.setMinimumContentsLength(n)
         self.model_combo.view().setMinimumWidth(self.model_combo.fontMetrics().horizontalAdvance(
@@ -372,6 +385,11 @@ class MethodPanel(QWidget):
         if name == "general" and s.alpha is None:  # a method saved without a shape
             new = new.with_(alpha=1.0)
         self._propose(new, f"Loss: {_loss_title(name)}")
+
+    def _on_weighting_picked(self, _i=None):
+        rule = self.weight_combo.currentData() or "none"
+        self._propose(self.document.settings.with_(weighting=None if rule == "none" else rule),
+                      f"Weighting: {self.weight_combo.currentText()}")
 
     def _say(self, text: str = ""):
         """Show (or with "" clear) the message about rejected input."""
@@ -532,6 +550,8 @@ class MethodPanel(QWidget):
             i = self.loss_combo.findData(s.loss)
             if i >= 0:
                 self.loss_combo.setCurrentIndex(i)
+            i = self.weight_combo.findData(getattr(s, "weighting", None) or "none")
+            self.weight_combo.setCurrentIndex(max(i, 0))
             if s.scale == "auto":
                 self.scale_combo.setCurrentIndex(0)
                 self.scale_edit.setEnabled(False)

@@ -76,6 +76,10 @@ class PaneSizer(QObject):
             need += max(table.sizeHintForColumn(last), header.sectionSizeHint(last))
         need += 2 * table.frameWidth() + table.verticalScrollBar().sizeHint().width()
         margins = self.estimates.layout().contentsMargins()
+        scroll = getattr(self.window, "estimates_scroll", None)
+        if scroll is not None and scroll.verticalScrollBar().isVisible():
+            # a tall pane (e.g. the Unknowns under the estimates) scrolls: its bar takes width
+            need += scroll.verticalScrollBar().sizeHint().width()
         return int(need + margins.left() + margins.right() + 6)
 
     def fit(self) -> None:

@@ -20,13 +20,14 @@ from __future__ import annotations
 import re
 
 import numpy as np
-from PySide6.QtCore import Qt, Signal
+from PySide6.QtCore import QSize, Qt, Signal
 from PySide6.QtGui import QGuiApplication, QUndoCommand
 from PySide6.QtWidgets import (
     QHBoxLayout,
     QHeaderView,
     QLabel,
     QPushButton,
+    QSizePolicy,
     QTableWidget,
     QTableWidgetItem,
     QVBoxLayout,
@@ -156,7 +157,10 @@ class UnknownsView(QWidget):
         self.table.verticalHeader().setVisible(False)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
         self.table.horizontalHeader().setStretchLastSection(True)
-        self.table.setMinimumHeight(90)
+        # the pane scrolls as a whole when short; the Unknowns take the height left over
+        # rather than raising the pane's minimum (that would squeeze the estimates' width)
+        self.setSizePolicy(QSizePolicy.Preferred, QSizePolicy.Ignored)
+        self.setMinimumHeight(0)
         lay.addWidget(self.table, 1)
         self.limits_label = QLabel("")
         self.limits_label.setWordWrap(True)
@@ -176,6 +180,16 @@ class UnknownsView(QWidget):
             plot.axes_changed.connect(self._draw_marks)
         document.subscribe(self._on_document)
         self.recompute()
+
+    # the estimates pane scrolls when its preferred height exceeds the window, and its
+    # scroll bar would narrow the estimates table: the Unknowns ask for little height
+    # and take what is left over
+    def sizeHint(self):
+        hint = super().sizeHint()
+        return QSize(hint.width(), min(hint.height(), 120))
+
+    def hasHeightForWidth(self) -> bool:
+        return False
 
     # ------------------------------------------------------------------ editing
     def set_samples(self, samples) -> None:

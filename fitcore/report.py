@@ -611,6 +611,11 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "",
                    "relative": "relative weights only (scaled by the fit)"}.get(
             res.sigma_mode, res.sigma_mode)
         out.append(("sigma", meaning))
+    rule = (getattr(res, "info", None) or {}).get("weighting")
+    if rule:  # a weighting rule of fitcore.weighting (issue 14)
+        from .weighting import rule_text
+
+        out.append(("weighting", rule_text(rule)))
     out.append((
         "points",
         f"{res.n_used} used, {res.n_excluded} excluded by the analyst, "

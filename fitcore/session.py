@@ -533,6 +533,13 @@ def _method_options(c: "_Check", md: dict) -> dict:
                 c.fail(f"'{path}' should be null, an object or a list, found {_kind(v)}")
         elif name == "max_iter":
             out[name] = c.int_(v, path)
+        elif name == "weighting":  # a rule of fitcore.weighting, or null
+            from .weighting import WeightingError, normalise_rule
+
+            try:
+                out[name] = None if v is None else normalise_rule(c.str_(v, path))
+            except WeightingError as e:
+                c.fail(f"'{path}': {e}")
         else:
             out[name] = c.tree(v, path)
     if "loss" not in md:

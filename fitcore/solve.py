@@ -44,6 +44,7 @@ from .solvers.assemble import _assemble
 from .solvers.dispatch import _run
 from .solvers.problem import FitError
 from .solvers.setup import _prepare
+from . import weighting as _weighting
 
 # internal names that tests and older callers reach through this module
 from .scale import mad  # noqa: F401
@@ -58,7 +59,7 @@ __all__ = ["FitError", "alpha_profile", "fit"]
 
 def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
         excluded=None, p0=None, fixed=None, tuning=None, sigma_mode: str = "absolute",
-        max_iter: int = 2000) -> FitResult:
+        max_iter: int = 2000, weighting=None) -> FitResult:
     """Fit ``model`` to the points ``(x, y)`` under a (robust) loss.
 
     Parameters
@@ -94,14 +95,25 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
         Dict of parameters held at a value.
     tuning
         Tuning constant in units of the scale (default: 95 % Gaussian efficiency).
+    weighting
+        A weighting rule instead of a sigma column: ``"1/x"``, ``"1/x^2"``, ``"1/y"``,
+        ``"1/y^2"`` or ``"power"`` (variance a power of the mean, from replicate
+        standards); it gives relative sigma (see :mod:`fitcore.weighting`) and is
+        recorded in ``info["weighting"]``.
     """
+    rule = None
+    if weighting is not None:
+        sigma, sigma_mode, rule = _weighting.prepare_for_fit(weighting, x, y, sigma, sigma_mode, excluded)
     setup = _prepare(model, x, y, loss, scale=scale, alpha=alpha, sigma=sigma,
                      excluded=excluded, p0=p0, fixed=fixed, tuning=tuning,
                      sigma_mode=sigma_mode, max_iter=max_iter)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         outcome = _run(setup)
-    return _assemble(setup, outcome)
+    res = _assemble(setup, outcome)
+    if rule is not None:
+        res.info["weighting"] = rule
+    return res
 
 
 def alpha_profile(model, x, y, alphas=None, *, sigma=None, excluded=None, p0=None,

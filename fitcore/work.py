@@ -182,6 +182,7 @@ class Method:
     tuning: float | None = None
     sigma_mode: str = "absolute"
     max_iter: int = 2000
+    weighting: str | None = None  # a rule of fitcore.weighting ("1/x^2", ...), None = none
 
     def __post_init__(self):
         s = object.__setattr__
@@ -244,6 +245,10 @@ class Method:
             kw["sigma_mode"] = res.sigma_mode
         if scale_was_fixed(res):
             kw["scale"] = float(res.scale)
+        rule = (getattr(res, "info", None) or {}).get("weighting")
+        if rule:  # the rule's relative sigma are not the analyst's sigma column
+            kw["weighting"] = rule["rule"]
+            kw.pop("sigma_mode", None)
         kw.update(changes)
         return cls(**kw)
 

@@ -24,6 +24,7 @@ OPTION_STRATEGIES = {
     "tuning": st.one_of(st.none(), positive),
     "sigma_mode": st.sampled_from(["absolute", "relative"]),
     "max_iter": st.integers(1, 10**6),
+    "weighting": st.one_of(st.none(), st.sampled_from(["1/x", "1/x^2", "1/y", "1/y^2", "power"])),
 }
 
 
