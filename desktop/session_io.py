@@ -72,7 +72,8 @@ def ask_unsaved(parent, text: str) -> str:
 
 
 #: the view fields a session keeps, with their types
-VIEW_FIELDS = {"log_x": bool, "log_y": bool, "colour_by": str, "diagnostics": bool}
+VIEW_FIELDS = {"log_x": bool, "log_y": bool, "colour_by": str, "diagnostics": bool,
+               "unknowns": list}  # unknowns: [[name, [readings...]], ...] (issue 14)
 COLOUR_MODES = ("none", "leverage", "influence")
 
 
@@ -146,6 +147,9 @@ def window_view(window) -> dict:
     if diag is not None:
         view["colour_by"] = str(diag.colour_mode)
         view["diagnostics"] = bool(diag.enabled)
+    unknowns = getattr(window, "unknowns", None)
+    if unknowns is not None and unknowns.samples:
+        view["unknowns"] = [[n, list(r)] for n, r in unknowns.samples]
     return view
 
 
@@ -156,6 +160,10 @@ def clean_view(raw) -> dict:
     out = {k: v for k, v in raw.items() if k in VIEW_FIELDS and isinstance(v, VIEW_FIELDS[k])}
     if out.get("colour_by") not in (None, *COLOUR_MODES):
         out.pop("colour_by")
+    if "unknowns" in out:
+        from .unknowns_view import clean_samples
+
+        out["unknowns"] = clean_samples(out["unknowns"])
     return out
 
 
@@ -169,6 +177,8 @@ def apply_view(window, view: dict) -> None:
         window.diag_action.setChecked(bool(view["diagnostics"]))
     if "colour_by" in view and hasattr(window, "set_colour_mode"):
         window.set_colour_mode(view["colour_by"])
+    if "unknowns" in view and getattr(window, "unknowns", None) is not None:
+        window.unknowns.set_samples(view["unknowns"])
 
 
 def session_json(session, view: dict | None = None) -> str:

@@ -102,6 +102,27 @@ def parse_unknowns(text: str, taken=()) -> list[tuple[str, tuple[float, ...]]]:
     return [(n, tuple(merged[n])) for n in order]
 
 
+def clean_samples(raw) -> list[tuple[str, tuple[float, ...]]]:
+    """The well-formed ``[name, [readings...]]`` entries of a stored list (a session's
+    view); anything else is left out."""
+    out = []
+    if not isinstance(raw, list):
+        return out
+    for entry in raw[:10000]:
+        if not (isinstance(entry, (list, tuple)) and len(entry) == 2):
+            continue
+        name, readings = entry
+        if not isinstance(name, str) or not isinstance(readings, (list, tuple)) or not readings:
+            continue
+        try:
+            vals = tuple(float(v) for v in readings if not isinstance(v, bool))
+        except (TypeError, ValueError):
+            continue
+        if len(vals) == len(readings) and all(np.isfinite(vals)):
+            out.append((name[:200], vals))
+    return out
+
+
 def readings_text(readings) -> str:
     return "  ".join(f"{v:.10g}" for v in readings)
 

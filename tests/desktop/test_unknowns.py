@@ -116,3 +116,18 @@ def test_lack_of_fit_is_copied_with_replicate_standards(open_window):
     text = win.reports.copy("plain")
     assert "lack of fit: F = " in text and "Calibration checks" in text
     assert "lack of fit" in win.unknowns.limits_label.text()
+
+
+def test_unknowns_survive_a_session_save_and_reopen(calib, open_window, tmp_path):
+    from desktop.unknowns_view import clean_samples
+
+    calib.unknowns.paste("A\t2.9\t3.0\nB\t13.5\n")
+    path = tmp_path / "cal.ballast"
+    assert calib.sessions.save_to(path)
+    w2 = open_window(name="w2")
+    assert w2.sessions.open_session(path)
+    assert w2.runner.wait()
+    assert w2.unknowns.samples == [("A", (2.9, 3.0)), ("B", (13.5,))]
+    assert _values(w2) == pytest.approx(_values(calib), rel=1e-12)
+    # a damaged list keeps only its well-formed entries
+    assert clean_samples([["A", [1.0]], ["B", []], [3, [1.0]], ["C", ["x"]], "D"]) == [("A", (1.0,))]
