@@ -428,7 +428,16 @@ def _chunked(items: Iterable, size_of: Callable[[Any], int], max_items: int, max
 
 # =========================================================================== fit_many
 
-_FIT_OPTIONS = ("scale", "alpha", "p0", "fixed", "tuning", "sigma_mode", "max_iter")
+def _fit_options() -> tuple[str, ...]:
+    """The keyword options of :func:`fitcore.fit` that apply to every data set alike
+    (read from its signature, so a new option works in a batch at once)."""
+    import inspect
+
+    from .solve import fit
+
+    per_set = {"model", "x", "y", "loss", "sigma", "excluded"}
+    return tuple(n for n, p in inspect.signature(fit).parameters.items()
+                 if n not in per_set and p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD))
 
 
 def _check_method(model, loss, options) -> Any:
@@ -437,10 +446,11 @@ def _check_method(model, loss, options) -> Any:
     from .model import Model
     from .solve import FitError
 
-    unknown = sorted(set(options) - set(_FIT_OPTIONS))
+    allowed = _fit_options()
+    unknown = sorted(set(options) - set(allowed))
     if unknown:
         raise TypeError(f"fit_many got unknown option(s) {', '.join(unknown)}; fit options are "
-                        f"{', '.join(_FIT_OPTIONS)} (sigma and excluded go with each data set)")
+                        f"{', '.join(allowed)} (sigma and excluded go with each data set)")
     if loss not in LOSS_NAMES:
         raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
     if isinstance(model, Model):
@@ -536,7 +546,7 @@ def fit_many(datasets: Iterable, model, loss: str = "l2", *, jobs: int | None = 
         generator is read a few chunks ahead only.
     model, loss, **fit_options
         As for :func:`fitcore.fit` (``scale``, ``alpha``, ``p0``, ``fixed``,
-        ``tuning``, ``sigma_mode``, ``max_iter``), the same for every data set.
+        ``tuning``, ``sigma_mode``, ``max_iter``, ...), the same for every data set.
     jobs : int, optional
         Worker processes (default: the cores this process may use); 1 fits here.
     engine : {"local", "dask"}

@@ -113,6 +113,8 @@ def build_parser() -> argparse.ArgumentParser:
     meth.add_argument("--sigma-mode", choices=("absolute", "relative"), default="absolute",
                       help="sigma are known standard uncertainties (absolute, default) or "
                            "relative weights")
+    meth.add_argument("--weighting", metavar="RULE",
+                      help="calibration weighting rule (1/x, 1/x^2, 1/y, 1/y^2, power; default none)")
     meth.add_argument("--start", type=_assignment, action="append", default=[], metavar="NAME=VALUE",
                       help="start value of a parameter (repeatable)")
     meth.add_argument("--hold", type=_assignment, action="append", default=[], metavar="NAME=VALUE",
@@ -178,6 +180,13 @@ def main(argv=None) -> int:
     options = {"scale": args.scale, "sigma_mode": args.sigma_mode}
     if args.alpha is not None:
         options["alpha"] = args.alpha
+    if args.weighting:
+        from .weighting import normalise_rule
+
+        try:
+            options["weighting"] = normalise_rule(args.weighting)
+        except ValueError as exc:
+            return _usage_error(parser, f"--weighting: {exc}")
     if args.start:
         options["p0"] = dict(args.start)
     if args.hold:
