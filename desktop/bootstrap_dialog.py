@@ -246,8 +246,11 @@ class BootstrapDialog(QDialog):
                 self.table.setItem(r, c, it)
         text = rec.method_text or f"{b.kind} bootstrap, B = {b.B}"
         seed = "" if "seed" in text else f" (seed {rec.seed})"
+        warns = "".join(f"<br><b>Warning</b>: {html.escape(w)}."
+                        for w in getattr(b, "warnings", None) or [])
         self.method.setText(f"<b>Method</b>: {html.escape(text)}{seed}. "
-                            f"Analytic: {html.escape(str(res.covariance_recipe))}, Student t.")
+                            f"Analytic: {html.escape(str(res.covariance_recipe))}, Student t."
+                            + warns)
 
     def _on_document(self, event, **info):
         if event in ("data", "mask", "settings") and self.record is not None:

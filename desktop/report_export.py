@@ -799,6 +799,7 @@ class ReportExporter:
                            f'<td class="num">{ana}</td>'
                            f'<td class="num">{boot}</td></tr>')
             out.append("</table>")
+            out += [f"<p><b>Warning</b>: {_h(w)}.</p>" for w in getattr(b, "warnings", None) or []]
         diag = getattr(win, "diagnostics", None)
         if current and diag is not None and getattr(diag, "diagnostics", None) is not None \
                 and getattr(diag, "for_result", None) is res:

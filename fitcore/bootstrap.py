@@ -9,7 +9,9 @@ section 6.2):
 * **residual** bootstrap: keep x, draw from the fit's whitened residuals and refit
   ``y* = f(x, theta) + sigma_i e*_i``. The residuals are the modified residuals
   ``r_i / sqrt(1 - h_ii)`` (h from the Jacobian of the fit), centred to mean zero
-  (Davison & Hinkley 1997, algorithm 6.3). Assumes exchangeable errors.
+  (Davison & Hinkley 1997, algorithm 6.3); for a robust fit, leverages from the
+  weighted Jacobian and centring where the fit's own loss puts the residuals (see
+  :func:`modified_residuals`). Assumes exchangeable errors.
 
 Every refit repeats the original method: same model, loss, tuning constant, shape,
 held parameters, sigma mode and scale rule (an automatic scale is re-estimated per
@@ -34,7 +36,7 @@ import math
 import os
 import time
 from concurrent import futures
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
@@ -43,6 +45,7 @@ from .diagnostics import hat_values, refit_settings, used_mask, whitened
 from .model import Model, design_model
 from .result import FitResult
 from .solve import FitError, fit
+from .threads import limit_process, small_problem
 
 CHUNK = 25  # resamples per chunk (fixed: it defines the random streams)
 POOL_MIN_SECONDS = 4.0  # use the pool (processes=None) when the rest would take longer
@@ -72,6 +75,11 @@ class BootstrapResult:
         Worker processes used (1 = this process).
     method_text
         e.g. ``"case bootstrap, B = 999, percentile intervals, seed 0"``.
+    bias
+        ``mean(samples) - estimate`` per parameter (0 for held parameters).
+    warnings
+        One text per parameter whose bootstrap distribution is shifted from the
+        estimate by more than its own spread (see :func:`shift_warnings`).
     """
 
     intervals: np.ndarray
@@ -88,6 +96,8 @@ class BootstrapResult:
     processes: int
     method_text: str
     elapsed: float = 0.0
+    bias: np.ndarray | None = None
+    warnings: list = field(default_factory=list)
 
 
 # --------------------------------------------------------------------------- worker
@@ -116,11 +126,14 @@ def _build_model(spec):
     return _MODEL_CACHE[key]
 
 
-def _run_chunk(job: dict, seed_seq, count: int) -> np.ndarray:
+def _run_chunk(job: dict, seed_seq, count: int, cancel: Callable[[], bool] | None = None
+               ) -> np.ndarray:
     """Refit ``count`` resamples drawn with ``default_rng(seed_seq)``.
 
     Top-level so that a spawned worker can import it. Returns ``(count, n_params)``
-    values with a NaN row for each failed resample.
+    values with a NaN row for each failed resample; fewer rows when ``cancel()`` said
+    True between two resamples (checked before each one, so a cancel is answered within
+    one refit). The refits are small problems: they run with one BLAS thread.
     """
     model = _build_model(job["model"])
     rng = np.random.default_rng(seed_seq)
@@ -128,22 +141,30 @@ def _run_chunk(job: dict, seed_seq, count: int) -> np.ndarray:
     n = x.size
     p = len(model.param_names)
     out = np.full((count, p), np.nan)
-    for b in range(count):
-        if job["kind"] == "case":
-            pick = rng.integers(0, n, n)
-            xb, yb = x[pick], y[pick]
-            sb = None if sig is None else sig[pick]
-        else:
-            e = job["resid"][rng.integers(0, n, n)]
-            xb, sb = x, sig
-            yb = job["fitted"] + (e if sig is None else sig * e)
-        try:
-            r = fit(model, xb, yb, sigma=sb, p0=job["p0"], **job["settings"])
-        except (FitError, ValueError, ArithmeticError, np.linalg.LinAlgError):
-            continue
-        if r.converged and np.all(np.isfinite(r.values)):
-            out[b] = r.values
+    with small_problem(n * p):
+        for b in range(count):
+            if cancel is not None and cancel():
+                return out[:b]
+            if job["kind"] == "case":
+                pick = rng.integers(0, n, n)
+                xb, yb = x[pick], y[pick]
+                sb = None if sig is None else sig[pick]
+            else:
+                e = job["resid"][rng.integers(0, n, n)]
+                xb, sb = x, sig
+                yb = job["fitted"] + (e if sig is None else sig * e)
+            try:
+                r = fit(model, xb, yb, sigma=sb, p0=job["p0"], **job["settings"])
+            except (FitError, ValueError, ArithmeticError, np.linalg.LinAlgError):
+                continue
+            if r.converged and np.all(np.isfinite(r.values)):
+                out[b] = r.values
     return out
+
+
+def _worker_start():
+    """Pool worker set-up: one BLAS thread (every refit is a small problem)."""
+    limit_process(1)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -186,6 +207,86 @@ def model_spec(model: Model, x: np.ndarray, p: np.ndarray):
         if _same_model(model, built, x, p):
             return spec
     return None
+
+
+def modified_residuals(res: FitResult, J: np.ndarray, r: np.ndarray, used: np.ndarray
+                       ) -> np.ndarray:
+    """Residuals to resample: ``r_i / sqrt(1 - h_ii)``, centred by the fit's own loss.
+
+    Davison & Hinkley (1997, algorithm 6.3) centre the modified residuals of a
+    least-squares fit by their mean, which is where the least-squares equations put
+    them. A robust fit puts its residuals where ``sum psi(r_i / s) = 0`` instead; one
+    gross outlier moves their *mean* far from there (a well at 3 % among responses
+    near 100 % moves it by several units), so mean-centred resamples are all shifted
+    by that amount and the whole bootstrap distribution with them (issue 17 item 8:
+    a 4PL top of 97.4 got the interval [98.4, 103.8]). Here the residuals are centred
+    by the M-estimate of location under the fit's loss and scale (the mean for least
+    squares, the median for L1). Leverages use the fit's robust weights
+    (``sqrt(w) J``), as the point diagnostics do.
+    """
+    from .diagnostics import loss_of
+
+    if res.loss == "l2":
+        w = np.ones(r.size)
+    else:
+        w = np.clip(np.asarray(res.weights, float)[used], 0.0, None)
+    h = hat_values(J * np.sqrt(w)[:, None])
+    with np.errstate(all="ignore"):
+        e = r / np.sqrt(np.where(h < 1 - 1e-12, 1.0 - h, np.nan))
+    e = e[np.isfinite(e)]
+    if e.size == 0:
+        return e
+    return e - residual_centre(e, res.loss, None if res.loss in ("l2", "l1") else loss_of(res),
+                               float(res.scale))
+
+
+def residual_centre(e: np.ndarray, loss_name: str, loss=None, scale: float = 1.0) -> float:
+    """Location of ``e`` under a loss: the root of ``sum psi((e - c) / scale) = 0``.
+
+    Least squares: the mean; L1: the median; other losses: reweighted means from the
+    median (psi(u)/u as weights) until the location stops moving. Falls back to the
+    median when the scale or the weights are unusable.
+    """
+    e = np.asarray(e, dtype=float)
+    if loss_name == "l2":
+        return float(np.mean(e))
+    c = float(np.median(e))
+    if loss_name == "l1" or loss is None or not (scale > 0 and math.isfinite(scale)):
+        return c
+    for _ in range(100):
+        u = (e - c) / scale
+        with np.errstate(all="ignore"):
+            w = np.asarray(loss.weight(u), dtype=float)
+        sw = float(np.sum(w))
+        if not (sw > 0 and np.all(np.isfinite(w))):
+            return float(np.median(e))
+        c_new = float(np.sum(w * e) / sw)
+        if abs(c_new - c) <= 1e-12 * (scale + abs(c)):
+            return c_new
+        c = c_new
+    return c
+
+
+def shift_warnings(names, values, samples, stderr, free) -> tuple[np.ndarray, list[str]]:
+    """Bootstrap bias ``mean(samples) - estimate`` per parameter, and a warning for each
+    parameter whose bootstrap distribution sits further from the estimate than its own
+    spread (|bias| > standard deviation of the samples): its percentile interval is
+    then not centred on the estimate and may not contain it."""
+    p = len(names)
+    bias = np.full(p, np.nan)
+    warns: list[str] = []
+    if samples.shape[0] < 2:
+        return bias, warns
+    bias = np.mean(samples, axis=0) - np.asarray(values, float)
+    bias[~free] = 0.0
+    for j, name in enumerate(names):
+        b, sd = float(bias[j]), float(stderr[j])
+        if free[j] and math.isfinite(b) and math.isfinite(sd) and abs(b) > sd:
+            warns.append(f"{name}: the bootstrap distribution is shifted from the estimate by "
+                         f"{b:+.3g} (bias), more than its own spread ({sd:.3g}); its "
+                         f"percentile interval is not centred on the estimate: do not use "
+                         f"it as the uncertainty of {name}")
+    return bias, warns
 
 
 def _percentile(samples: np.ndarray, level: float, values: np.ndarray, free: np.ndarray):
@@ -256,13 +357,10 @@ def bootstrap(res: FitResult, kind: str = "case", B: int = 999, seed: int = 0,
            "p0": dict(zip(res.param_names, (float(v) for v in res.values))),
            "settings": settings, "model": res.model}
     if kind == "residual":
-        h = hat_values(J)
-        with np.errstate(all="ignore"):
-            e = r / np.sqrt(np.where(h < 1 - 1e-12, 1.0 - h, np.nan))
-        e = e[np.isfinite(e)]
+        e = modified_residuals(res, J, r, used)
         if e.size == 0:
             raise FitError("no residuals to resample")
-        job["resid"] = e - e.mean()
+        job["resid"] = e
         job["fitted"] = res.fitted[used].copy()
         # keep the number of points: draw n residuals from the usable ones
         if e.size != n:
@@ -284,10 +382,11 @@ def bootstrap(res: FitResult, kind: str = "case", B: int = 999, seed: int = 0,
         cancelled = True
     else:
         t1 = time.perf_counter()
-        chunks[0] = _run_chunk(job, seeds[0], counts[0])
-        done += counts[0]
+        chunks[0] = _run_chunk(job, seeds[0], counts[0], cancel)
+        done += chunks[0].shape[0]
         report()
-        per = (time.perf_counter() - t1) / counts[0]
+        per = (time.perf_counter() - t1) / max(1, chunks[0].shape[0])
+        cancelled = chunks[0].shape[0] < counts[0]
 
     n_proc = 1
     rest = list(range(1, n_chunks))
@@ -305,11 +404,12 @@ def bootstrap(res: FitResult, kind: str = "case", B: int = 999, seed: int = 0,
                 n_proc = 1  # no pool on this system: finish here, same streams
             rest = [] if cancelled else [j for j in rest if j not in chunks]
     for j in rest:
-        if cancel is not None and cancel():
+        if cancelled or (cancel is not None and cancel()):
             cancelled = True
             break
-        chunks[j] = _run_chunk(job, seeds[j], counts[j])
-        done += counts[j]
+        chunks[j] = _run_chunk(job, seeds[j], counts[j], cancel)
+        done += chunks[j].shape[0]
+        cancelled = chunks[j].shape[0] < counts[j]
         report()
 
     p = len(res.param_names)
@@ -323,7 +423,11 @@ def bootstrap(res: FitResult, kind: str = "case", B: int = 999, seed: int = 0,
     stderr = (np.std(samples, axis=0, ddof=1) if samples.shape[0] > 1
               else np.full(p, np.nan))
     stderr[~free] = 0.0
+    bias, warns = shift_warnings(res.param_names, res.values, samples, stderr, free)
     text = f"{kind} bootstrap, B = {B}, percentile intervals, seed {seed}"
+    if kind == "residual":
+        text += (", modified residuals centred under the fit's loss"
+                 if res.loss != "l2" else ", modified residuals centred to mean zero")
     if cancelled:
         text += f" (cancelled after {allv.shape[0]} resamples)"
     if n_failed:
@@ -333,7 +437,7 @@ def bootstrap(res: FitResult, kind: str = "case", B: int = 999, seed: int = 0,
                            param_names=tuple(res.param_names), B=B, n_done=int(allv.shape[0]),
                            n_failed=n_failed, kind=kind, seed=int(seed), level=float(level),
                            cancelled=cancelled, processes=n_proc, method_text=text,
-                           elapsed=time.perf_counter() - t0)
+                           elapsed=time.perf_counter() - t0, bias=bias, warnings=warns)
 
 
 def _run_pool(job, rest, seeds, counts, chunks, n_proc, done, B, progress, cancel):
@@ -341,7 +445,8 @@ def _run_pool(job, rest, seeds, counts, chunks, n_proc, done, B, progress, cance
 
     ctx = multiprocessing.get_context("spawn")
     cancelled = False
-    ex = futures.ProcessPoolExecutor(max_workers=n_proc, mp_context=ctx)
+    ex = futures.ProcessPoolExecutor(max_workers=n_proc, mp_context=ctx,
+                                     initializer=_worker_start)
     try:
         pending = {ex.submit(_run_chunk, job, seeds[j], counts[j]): j for j in rest}
         while pending:
@@ -361,4 +466,5 @@ def _run_pool(job, rest, seeds, counts, chunks, n_proc, done, B, progress, cance
     return cancelled, done
 
 
-__all__ = ["bootstrap", "BootstrapResult", "model_spec", "CHUNK"]
+__all__ = ["bootstrap", "BootstrapResult", "model_spec", "modified_residuals", "residual_centre",
+           "shift_warnings", "CHUNK"]

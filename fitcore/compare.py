@@ -30,6 +30,7 @@ absolute it can be far too small, which would exaggerate the shift.)
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
@@ -39,6 +40,7 @@ import numpy as np
 from .losses import LOSS_NAMES, LOSS_TITLES
 from .result import FitResult
 from .solve import FitError, alpha_profile, fit
+from .threads import small_problem
 
 DEFAULT_LOSSES = ("l2", "huber", "cauchy", "tukey", "adaptive")
 
@@ -64,6 +66,29 @@ def _resolve(model):
         return resolve_model(model)
     except (TypeError, ValueError) as e:
         raise FitError(str(e)) from e
+
+
+def _shared_guess(mdl):
+    """``mdl`` with its start-value guess remembered for the last data it saw.
+
+    Every loss of a comparison fits the same points, so the (costly) automatic start
+    values are the same for all of them: computed once, handed out as copies. The fits
+    take exactly the path they take without it (the guess is only reused, never
+    changed). Models without a guess are returned as they are.
+    """
+    if mdl.guess is None:
+        return mdl
+    inner = mdl.guess
+    memo: dict = {}
+
+    def guess(x, y):
+        xa, ya = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+        key = (xa.shape, xa.tobytes(), ya.tobytes())
+        if memo.get("key") != key:
+            memo["key"], memo["value"] = key, np.array(inner(x, y), dtype=float)
+        return memo["value"].copy()
+
+    return dataclasses.replace(mdl, guess=guess)
 
 
 def _safe_fit(model, x, y, loss, kwargs):
@@ -198,19 +223,23 @@ def compare_losses(model, x, y, losses: Sequence[str] = DEFAULT_LOSSES, *,
     out = LossComparison(losses=losses, param_names=mdl.param_names,
                          results={lo: None for lo in losses})
     total = len(losses)
-    for i, loss in enumerate(losses):
-        if cancel is not None and cancel():
-            out.cancelled = True
-            break
-        kw = dict(fit_kwargs)
-        if loss == "general":
-            kw["alpha"] = alpha
-        res, err = _safe_fit(mdl, x, y, loss, kw)
-        out.results[loss] = res
-        if err is not None:
-            out.errors[loss] = err
-        if progress is not None:
-            progress(i + 1, total)
+    shared = _shared_guess(mdl)
+    with small_problem(np.size(x) * len(mdl.param_names)):
+        for i, loss in enumerate(losses):
+            if cancel is not None and cancel():
+                out.cancelled = True
+                break
+            kw = dict(fit_kwargs)
+            if loss == "general":
+                kw["alpha"] = alpha
+            res, err = _safe_fit(shared, x, y, loss, kw)
+            if res is not None and res.model is not mdl:
+                res = dataclasses.replace(res, model=mdl)  # the analyst's model, not the wrapper
+            out.results[loss] = res
+            if err is not None:
+                out.errors[loss] = err
+            if progress is not None:
+                progress(i + 1, total)
     return out
 
 

@@ -46,6 +46,7 @@ import numpy as np
 from .losses import DEFAULT_TUNING, get_loss
 from .result import FitResult
 from .solve import FitError, fit
+from .threads import small_problem
 from .work import scale_was_fixed
 
 HIGH_LEVERAGE_ABS = 0.5
@@ -236,6 +237,38 @@ def _irls_step(res: FitResult, J: np.ndarray, r: np.ndarray) -> np.ndarray:
     return out
 
 
+def _exact_refits(res, idx, settings, p0, base, free, inv_se, infl_free, exact, progress,
+                  cancel):
+    """Refit leaving out each used point in turn (one BLAS thread: small solves).
+
+    Fills ``infl_free`` and ``exact`` in place; returns ``(cancelled, done, n_failed)``.
+    """
+    n = idx.size
+    cancelled, done, n_failed = False, 0, 0
+    with small_problem(n * int(np.count_nonzero(free))):
+        for pos, i in enumerate(idx):
+            if cancel is not None and cancel():
+                cancelled = True
+                break
+            excl = base.copy()
+            excl[i] = True
+            try:
+                ri = fit(res.model, res.x, res.y, sigma=res.sigma, excluded=excl, p0=p0,
+                         **settings)
+                vals = ri.values[free]
+                if not np.all(np.isfinite(vals)):
+                    raise FitError("non-finite estimates")
+                infl_free[pos] = (vals - res.values[free]) * inv_se
+            except (FitError, ValueError, ArithmeticError, np.linalg.LinAlgError):
+                infl_free[pos] = np.nan
+                n_failed += 1
+            exact[i] = True
+            done += 1
+            if progress is not None:
+                progress(done, n)
+    return cancelled, done, n_failed
+
+
 def point_diagnostics(res: FitResult, exact_limit: int = 500, *,
                       progress: Callable[[int, int], None] | None = None,
                       cancel: Callable[[], bool] | None = None,
@@ -308,26 +341,8 @@ def point_diagnostics(res: FitResult, exact_limit: int = 500, *,
         p0 = dict(zip(res.param_names, (float(v) for v in res.values)))
         base = np.asarray(res.excluded, bool)
         free = res.free
-        for pos, i in enumerate(idx):
-            if cancel is not None and cancel():
-                cancelled = True
-                break
-            excl = base.copy()
-            excl[i] = True
-            try:
-                ri = fit(res.model, res.x, res.y, sigma=res.sigma, excluded=excl, p0=p0,
-                         **settings)
-                vals = ri.values[free]
-                if not np.all(np.isfinite(vals)):
-                    raise FitError("non-finite estimates")
-                infl_free[pos] = (vals - res.values[free]) * inv_se
-            except (FitError, ValueError, ArithmeticError, np.linalg.LinAlgError):
-                infl_free[pos] = np.nan
-                n_failed += 1
-            exact[i] = True
-            done += 1
-            if progress is not None:
-                progress(done, n)
+        cancelled, done, n_failed = _exact_refits(res, idx, settings, p0, base, free, inv_se,
+                                                  infl_free, exact, progress, cancel)
     influence = np.full((n_all, p_all), np.nan)
     influence[np.ix_(idx, np.flatnonzero(res.free))] = infl_free
     with np.errstate(all="ignore"):

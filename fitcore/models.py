@@ -873,6 +873,29 @@ def _logistic_design(x, hill, ec50):
     return np.column_stack([1.0 - g, g])
 
 
+def _logistic_designs(x, pairs):
+    """:func:`_logistic_design` for many ``(hill, EC50)`` pairs at once, (G, n, 2).
+
+    The same element-wise operations in the same order as the single version (so the
+    same numbers), without a Python call and two small arrays per pair.
+    """
+    hs = np.array([float(h) for h, _ in pairs])
+    les = np.array([math.log(e) for _, e in pairs])  # math.log, as _log_ratio uses
+    with np.errstate(all="ignore"):
+        pos = x > 0
+        lx = np.log(np.where(pos, x, 1.0))
+        lr = np.where(pos, lx[None, :] - les[:, None], np.where(x == 0, -np.inf, np.nan)[None, :])
+        z = hs[:, None] * lr
+    zero = hs == 0
+    if zero.any():
+        z[zero] = np.where(np.isinf(lr[zero]), 0.0, z[zero])
+    g = special.expit(-z)
+    out = np.empty(g.shape + (2,))
+    out[:, :, 0] = 1.0 - g
+    out[:, :, 1] = g
+    return out
+
+
 def _logistic_guess(x, y):
     """(bottom, top, hill, EC50): robust scan over hill and EC50, plateaus linear.
 
@@ -893,8 +916,7 @@ def _logistic_guess(x, y):
     ]
     def crits(pairs):
         # every candidate at once (one 5 Huber + 3 Tukey robust fit each)
-        return _criteria(np.stack([_logistic_design(x, h, e) for h, e in pairs]), y, noise,
-                         finite_only=True)[0]
+        return _criteria(_logistic_designs(x, pairs), y, noise, finite_only=True)[0]
 
     coarse = crits(cands)
     order = sorted(range(len(cands)), key=lambda i: coarse[i])  # stable, as before
@@ -1115,18 +1137,28 @@ def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
     def basis(xc, w):
         return np.column_stack([shape(x, xc, w), np.ones_like(x)])
 
+    def bases(pairs):
+        """``basis`` for many (centre, width) pairs at once, (G, n, 2): the same
+        element-wise arithmetic, broadcast instead of one call per pair."""
+        xc = np.array([float(p[0]) for p in pairs])[:, None]
+        w = np.array([float(p[1]) for p in pairs])[:, None]
+        out = np.ones((len(pairs), x.size, 2))
+        with np.errstate(all="ignore"):
+            out[:, :, 0] = shape(x[None, :], xc, w)
+        return out
+
     best = (np.inf, None, None, None)
     # the width scan of every candidate centre at once (as _profile without refinement,
     # centre by centre), then each centre's best width fitted with the full iterations
     with np.errstate(all="ignore"):
-        stack = np.stack([basis(xc, w) for xc in centres for w in grid])
+        stack = bases([(xc, w) for xc in centres for w in grid])
     scan_crit, _ = _criteria(stack, y, noise, finite_only=True)
     scan_crit = scan_crit.reshape(len(centres), len(grid))
     picked = [(xc, float(grid[int(np.argmin(v))])) for xc, v in zip(centres, scan_crit)
               if np.min(v) < np.inf]
     if picked:
         with np.errstate(all="ignore"):
-            finals = np.stack([basis(xc, w) for xc, w in picked])
+            finals = bases(picked)
         coefs, res = _robust_lstsq_many(finals, y)
         for (xc, w), coef, r in zip(picked, coefs, res):
             crit = _criterion(r, noise)
@@ -1139,13 +1171,13 @@ def _peak_start(x, y, shape: Callable[[np.ndarray, float, float], np.ndarray]):
         # each local grid at once (the same robust fit per candidate as one by one)
         crit, x0, w, coef = best
         xcs = x0 + w * np.linspace(-0.5, 0.5, 11)
-        v, cs = _criteria(np.stack([basis(xc, w) for xc in xcs]), y, noise)
+        v, cs = _criteria(bases([(xc, w) for xc in xcs]), y, noise)
         j = _first_better(v, best[0])
         if j is not None:
             best = (v[j], float(xcs[j]), w, cs[j])
         crit, x0, w, coef = best
         wcs = w * np.geomspace(0.6, 1.6, 9)
-        v, cs = _criteria(np.stack([basis(x0, wc) for wc in wcs]), y, noise)
+        v, cs = _criteria(bases([(x0, wc) for wc in wcs]), y, noise)
         j = _first_better(v, best[0])
         if j is not None:
             best = (v[j], x0, float(wcs[j]), cs[j])

@@ -151,10 +151,15 @@ def test_progress_and_cancel():
         return asked["n"] > 2
 
     b = bootstrap(res, B=200, cancel=cancel, processes=1)
-    assert b.cancelled and b.n_done == 2 * CHUNK
-    assert "cancelled after 50 resamples" in b.method_text
+    # cancel is asked before every resample, so it is answered within one refit
+    assert b.cancelled and b.n_done == 1
+    assert "cancelled after 1 resamples" in b.method_text
     full = bootstrap(res, B=200, processes=1)
-    np.testing.assert_array_equal(b.samples, full.samples[:50])
+    np.testing.assert_array_equal(b.samples, full.samples[:1])
+    asked["n"] = -40  # now True at the 43rd question: inside the second chunk
+    b = bootstrap(res, B=200, cancel=cancel, processes=1)
+    assert b.cancelled and CHUNK < b.n_done < 2 * CHUNK
+    np.testing.assert_array_equal(b.samples, full.samples[:b.n_done])
 
 
 def test_bad_input():
@@ -191,3 +196,65 @@ def test_custom_model_runs_in_this_process():
     res = fitcore.fit(custom, x, y)
     b = bootstrap(res, B=30, processes=2)
     assert b.processes == 1 and b.samples.shape == (30, 2)
+
+
+# ------------------------------------------------------------ residual centring (issue 17)
+def _dose_response(seed=4):
+    """Invented inhibition curve, 8 doses x 3 wells, one empty well reading ~3 %."""
+    rng = np.random.default_rng(seed)
+    x = np.repeat(np.geomspace(0.3, 1000, 8), 3)
+    y = 6 + (97 - 6) / (1 + (x / 33) ** 1.2) + rng.normal(0, 2.0, x.size)
+    y[4] = 3.0  # the well without cells, at a dose where the curve is near the top
+    return x, y
+
+
+def test_residual_bootstrap_of_a_robust_fit_is_centred_on_its_estimate():
+    """A gross outlier among the residuals of a Huber fit must not shift every resample:
+    mean-centred residuals moved the 4PL top by ~ outlier / n, so its percentile
+    interval excluded the estimate (issue 17 item 8). Centred under the fit's loss,
+    each interval contains its estimate and no shift warning is given."""
+    from fitcore.bootstrap import modified_residuals
+    from fitcore.diagnostics import used_mask, whitened
+
+    x, y = _dose_response()
+    res = fitcore.fit("logistic4", x, y, loss="huber")
+    _, J, r, _ = whitened(res)
+    e = modified_residuals(res, J, r, used_mask(res))
+    # the uncentred mean is pulled by the outlier by far more than the centring moved it
+    assert abs(np.mean(r)) > 1.0 and abs(np.median(e)) < 0.5
+    b = bootstrap(res, kind="residual", B=100, seed=2, processes=1)
+    assert np.all(b.intervals[:, 0] < res.values) and np.all(res.values < b.intervals[:, 1])
+    assert b.warnings == [] and np.all(np.abs(b.bias) < b.stderr)
+    assert "centred under the fit's loss" in b.method_text
+
+
+def test_residual_centre_matches_statsmodels_location():
+    """Huber location of the residuals at a given scale: statsmodels
+    robust.norms.estimate_location with HuberT(1.345) (outside reference); least
+    squares centres by the mean, L1 by the median (Davison & Hinkley 1997, alg. 6.3)."""
+    from fitcore.bootstrap import residual_centre
+    from fitcore.losses import get_loss
+
+    rng = np.random.default_rng(8)
+    e = np.append(rng.normal(0.3, 1.0, 40), [-30.0, -25.0])
+    ref = sm.robust.norms.estimate_location(e, 1.2, norm=sm.robust.norms.HuberT(1.345),
+                                            tol=1e-13, maxiter=500)
+    ours = residual_centre(e, "huber", get_loss("huber", tuning=1.345), 1.2)
+    assert ours == pytest.approx(float(ref), abs=1e-9)
+    assert residual_centre(e, "l2") == pytest.approx(np.mean(e))
+    assert residual_centre(e, "l1") == pytest.approx(np.median(e))
+
+
+def test_shift_warning_names_parameter_and_bias():
+    from fitcore.bootstrap import shift_warnings
+
+    rng = np.random.default_rng(1)
+    samples = np.column_stack([rng.normal(10.0, 1.0, 500), rng.normal(5.0, 1.0, 500)])
+    sd = samples.std(axis=0, ddof=1)
+    bias, warns = shift_warnings(("a", "b"), np.array([10.0, 2.0]), samples, sd,
+                                 np.array([True, True]))
+    assert bias[1] == pytest.approx(3.0, abs=0.2) and abs(bias[0]) < 0.2
+    assert len(warns) == 1 and warns[0].startswith("b: ") and f"{bias[1]:+.3g}" in warns[0]
+    bias, warns = shift_warnings(("a", "b"), np.array([10.0, 2.0]), samples, sd,
+                                 np.array([True, False]))
+    assert warns == [] and bias[1] == 0.0
