@@ -426,7 +426,7 @@ def bootstrap(res: FitResult, kind: str = "case", B: int = 999, seed: int = 0,
     bias, warns = shift_warnings(res.param_names, res.values, samples, stderr, free)
     text = f"{kind} bootstrap, B = {B}, percentile intervals, seed {seed}"
     if kind == "residual":
-        text += (", modified residuals centred under the fit's loss"
+        text += (", modified residuals centred under the loss of the fit"
                  if res.loss != "l2" else ", modified residuals centred to mean zero")
     if cancelled:
         text += f" (cancelled after {allv.shape[0]} resamples)"

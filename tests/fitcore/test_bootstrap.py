@@ -225,7 +225,7 @@ def test_residual_bootstrap_of_a_robust_fit_is_centred_on_its_estimate():
     b = bootstrap(res, kind="residual", B=100, seed=2, processes=1)
     assert np.all(b.intervals[:, 0] < res.values) and np.all(res.values < b.intervals[:, 1])
     assert b.warnings == [] and np.all(np.abs(b.bias) < b.stderr)
-    assert "centred under the fit's loss" in b.method_text
+    assert "centred under the loss of the fit" in b.method_text
 
 
 def test_residual_centre_matches_statsmodels_location():
