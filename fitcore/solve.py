@@ -45,6 +45,7 @@ from .solvers.dispatch import _run
 from .solvers.problem import FitError
 from .solvers.setup import _prepare
 from . import weighting as _weighting
+from .threads import small_problem
 
 # internal names that tests and older callers reach through this module
 from .scale import mad  # noqa: F401
@@ -104,13 +105,15 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     rule = None
     if weighting is not None:
         sigma, sigma_mode, rule = _weighting.prepare_for_fit(weighting, x, y, sigma, sigma_mode, excluded)
-    setup = _prepare(model, x, y, loss, scale=scale, alpha=alpha, sigma=sigma,
-                     excluded=excluded, p0=p0, fixed=fixed, tuning=tuning,
-                     sigma_mode=sigma_mode, max_iter=max_iter)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        outcome = _run(setup)
-    res = _assemble(setup, outcome)
+    # small problems run with one BLAS thread (fitcore.threads; ~4 parameters assumed)
+    with small_problem(np.size(x) * 4):
+        setup = _prepare(model, x, y, loss, scale=scale, alpha=alpha, sigma=sigma,
+                         excluded=excluded, p0=p0, fixed=fixed, tuning=tuning,
+                         sigma_mode=sigma_mode, max_iter=max_iter)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            outcome = _run(setup)
+        res = _assemble(setup, outcome)
     if rule is not None:
         res.info["weighting"] = rule
     return res

@@ -72,7 +72,10 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
     for _ in range(60):
         alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor)
         loss = get_loss("general", tuning=1.0, alpha=alpha)
-        inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter)
+        # loose solves while (alpha, c) still move; the solve after the loop is the
+        # full-accuracy one (polished) at the final shape and scale
+        inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter,
+                         xtol=1e-9, ftol=1e-12, polish_steps=False)
         total += inner.n_iter
         nll = _nll(inner.r, alpha, math.log(c))
         if abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0):
