@@ -59,7 +59,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special
 
 __all__ = [
     "CalibrationError",
@@ -580,7 +580,7 @@ def detection_limits(result, level: float = 0.95, readings: int = 1, *,
         raise CalibrationError("the number of readings K must be a whole number") from None
     if K < 1:
         raise CalibrationError("the number of readings K must be at least 1")
-    t1 = float(stats.t.ppf(level, result.dof))
+    t1 = float(special.stdtrit(result.dof, level))  # the t quantile (scipy.stats.t.ppf)
     rules = {"lod_ich": RULE_ICH_LOD, "loq_ich": RULE_ICH_LOQ,
              "critical_x": RULE_ISO_XC, "detection_x": RULE_ISO_XD}
     if _classical(result):
@@ -660,7 +660,7 @@ def lack_of_fit(result) -> LackOfFit | None:
     if not ss_pe > 0:
         return None
     F = (ss_lof / df_lof) / (ss_pe / df_pe)
-    return LackOfFit(F=float(F), p_value=float(stats.f.sf(F, df_lof, df_pe)),
+    return LackOfFit(F=float(F), p_value=float(special.fdtrc(df_lof, df_pe, F)),
                      df_lof=int(df_lof), df_pe=int(df_pe), ss_lof=ss_lof, ss_pe=ss_pe,
                      levels=int(g))
 
