@@ -26,72 +26,41 @@ from PySide6.QtWidgets import (
     QProgressBar, QPushButton, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
+from fitcore.compare import DEFAULT_LOSSES
+from fitcore.compare import FIT_KWARGS as COMPARE_OPTIONS
+from fitcore.losses import LOSS_NAMES, LOSSES, loss_short_title, loss_title
+
 from .document import Document
 from .estimates_view import fmt_value
 from .jobs import Job
 
-DEFAULT_LOSSES = ("l2", "huber", "cauchy", "tukey", "adaptive")
-#: our own pens: colour and dash pattern per loss (dash as well as hue, for
-#: readers who do not tell the colours apart)
-LOSS_PENS = {
-    "l2": ((70, 70, 70), Qt.DashLine),
-    "l1": ((130, 85, 30), Qt.DashDotLine),
-    "huber": ((31, 92, 170), Qt.SolidLine),
-    "pseudo_huber": ((95, 160, 215), Qt.DotLine),
-    "cauchy": ((214, 120, 0), Qt.SolidLine),
-    "geman_mcclure": ((150, 150, 20), Qt.DashDotLine),
-    "welsch": ((190, 55, 55), Qt.DotLine),
-    "tukey": ((0, 135, 105), Qt.DashLine),
-    "general": ((105, 60, 175), Qt.DashDotDotLine),
-    "adaptive": ((165, 35, 140), Qt.SolidLine),
-}
+#: Qt dash patterns for the registry's dash names (each loss's pen is in its row of
+#: fitcore.losses.LOSSES)
+DASHES = {"solid": Qt.SolidLine, "dash": Qt.DashLine, "dot": Qt.DotLine,
+          "dashdot": Qt.DashDotLine, "dashdotdot": Qt.DashDotDotLine}
+_NO_PEN = ((60, 60, 60), "solid")
 DIFF_BG = QBrush(QColor(255, 221, 214))
 FAIL_FG = QBrush(QColor(180, 35, 24))
 #: role holding the raw number behind a table cell (tests and copying)
 VALUE_ROLE = Qt.UserRole + 7
 
 
+def _pen_of(name: str):
+    e = LOSSES.get(name)
+    return (e.colour, e.dash) if e is not None else _NO_PEN
+
+
 def loss_pen(name: str, width: float = 2.0):
-    rgb, style = LOSS_PENS.get(name, ((60, 60, 60), Qt.SolidLine))
-    return pg.mkPen(*rgb, width=width, style=style)
-
-
-def _loss_names() -> tuple[str, ...]:
-    try:
-        import fitcore
-
-        return tuple(fitcore.LOSS_NAMES)
-    except Exception:  # noqa: BLE001
-        return DEFAULT_LOSSES
-
-
-SHORT_TITLES = {"l2": "least squares", "l1": "L1", "huber": "Huber", "pseudo_huber": "pseudo-Huber",
-                "cauchy": "Cauchy", "geman_mcclure": "Geman-McClure", "welsch": "Welsch",
-                "tukey": "Tukey", "general": "general", "adaptive": "adaptive"}
-
-
-def _loss_title(name: str) -> str:
-    """Short name for headers and the legend (the long title is in the tooltips)."""
-    return SHORT_TITLES.get(name, name)
-
-
-def _long_title(name: str) -> str:
-    try:
-        from fitcore.losses import LOSS_TITLES
-
-        return LOSS_TITLES.get(name, name)
-    except Exception:  # noqa: BLE001
-        return name
+    rgb, dash = _pen_of(name)
+    return pg.mkPen(*rgb, width=width, style=DASHES[dash])
 
 
 def comparison_request(document: Document, losses) -> dict:
     """Copies of everything one comparison needs (safe to hand to a worker)."""
     req = document.fit_request()
-    kw = dict(req["kwargs"])
-    kw.pop("loss", None)
-    if "general" not in losses:
-        kw.pop("alpha", None)
-    else:
+    # the options a comparison passes on (each loss keeps its own tuning constant)
+    kw = {k: v for k, v in req["kwargs"].items() if k in COMPARE_OPTIONS}
+    if "general" in losses:
         alpha = document.settings.alpha
         kw["alpha"] = 1.0 if alpha is None else float(alpha)
     kw["sigma"] = req["sigma"]
@@ -295,10 +264,10 @@ class CompareView(QWidget):
         grid = QGridLayout(box)
         grid.setContentsMargins(6, 4, 6, 4)
         self.checks: dict[str, QCheckBox] = {}
-        for k, name in enumerate(_loss_names()):
-            cb = QCheckBox(_loss_title(name))
+        for k, name in enumerate(LOSS_NAMES):
+            cb = QCheckBox(loss_short_title(name))
             cb.setChecked(name in DEFAULT_LOSSES)
-            cb.setToolTip(_long_title(name))
+            cb.setToolTip(loss_title(name))
             self.checks[name] = cb
             grid.addWidget(cb, k // 5, k % 5)
         grid.setHorizontalSpacing(14)
@@ -468,13 +437,13 @@ class CompareView(QWidget):
         self.table.clear()
         self.table.setRowCount(len(names) + len(extra))
         self.table.setColumnCount(len(losses))
-        self.table.setHorizontalHeaderLabels([_loss_title(n) for n in losses])
+        self.table.setHorizontalHeaderLabels([loss_short_title(n) for n in losses])
         self.table.setVerticalHeaderLabels(names + extra)
         for c, loss in enumerate(losses):
             hdr = self.table.horizontalHeaderItem(c)
-            hdr.setForeground(QBrush(QColor(*LOSS_PENS.get(loss, ((60, 60, 60), 0))[0])))
+            hdr.setForeground(QBrush(QColor(*_pen_of(loss)[0])))
             hdr.setData(VALUE_ROLE, loss)
-            hdr.setToolTip(_long_title(loss))
+            hdr.setToolTip(loss_title(loss))
         flagged = self.differing()
         bold = QFont()
         bold.setBold(True)
@@ -502,8 +471,8 @@ class CompareView(QWidget):
                     it.setBackground(DIFF_BG)
                     it.setFont(bold)
                     it.setToolTip("Differs by more than the combined standard uncertainty from:\n" +
-                                  "\n".join(f"  {_loss_title(o)}: {d:+.4g} ({abs(d) / cu:.2g} combined u)"
-                                            if cu > 0 else f"  {_loss_title(o)}: {d:+.4g}"
+                                  "\n".join(f"  {loss_short_title(o)}: {d:+.4g} ({abs(d) / cu:.2g} combined u)"
+                                            if cu > 0 else f"  {loss_short_title(o)}: {d:+.4g}"
                                             for o, d, cu in pairs))
                 self.table.setItem(row, c, it)
             base = len(names)
@@ -554,7 +523,7 @@ class CompareView(QWidget):
             curve.setZValue(5)
             plot.data_plot.addItem(curve, ignoreBounds=True)
             self.curves[loss] = curve
-            self.legend.addItem(curve, _loss_title(loss))
+            self.legend.addItem(curve, loss_short_title(loss))
         if hasattr(plot, "set_single_fit_visible"):
             plot.set_single_fit_visible(False)
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 import os
 
 import numpy as np
+from fitcore import models
 from PySide6.QtCore import QItemSelection, QItemSelectionModel, QSettings, Qt
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence, QUndoStack
 from PySide6.QtWidgets import (
@@ -37,12 +38,7 @@ def model_title(settings: Settings) -> str:
     """A model's name for messages: the built-in title, or the formula."""
     if settings.model_kind == "formula":
         return f"formula {settings.model}"
-    try:
-        import fitcore
-
-        return fitcore.get_model(settings.model).title or settings.model
-    except (ValueError, KeyError, TypeError):
-        return settings.model
+    return models.model_title(settings.model, **settings.model_options)
 
 
 class MainWindow(QMainWindow):

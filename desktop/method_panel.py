@@ -20,25 +20,14 @@ from PySide6.QtWidgets import (
     QLabel, QLineEdit, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
+from fitcore.losses import LOSS_NAMES, LOSSES, loss_title
+from fitcore.models import builtin_models, model_short_title, model_title
+
 from .commands import SettingsCommand
 from .document import Document, Settings
 
 FORMULA_ITEM = "formula..."
 
-#: short texts for the model list (the closed combo box is narrow); the full title and
-#: the internal name (what sessions store) are in each item's tooltip
-MODEL_SHORT = {
-    "line": "Straight line", "line_origin": "Line through origin", "poly2": "Quadratic",
-    "poly3": "Cubic", "poly4": "Quartic", "poly5": "Quintic",
-    "exp_decay": "Exp. decay (time const.)", "exp_decay_rate": "Exp. decay (rate const.)",
-    "exp_rise": "Exp. rise to plateau", "power_law": "Power law",
-    "michaelis_menten": "Michaelis-Menten", "logistic4": "4-parameter logistic",
-    "logistic5": "5-parameter logistic", "arrhenius": "Arrhenius law",
-    "gauss_peak": "Gaussian peak", "lorentz_peak": "Lorentzian peak",
-}
-#: short texts for the loss list (full titles in the tooltips)
-LOSS_SHORT = {"l1": "least absolute (L1)", "general": "general (Barron)",
-              "adaptive": "adaptive (Barron)"}
 OK_COLOUR, WARN_COLOUR, BAD_COLOUR = "#1a7f37", "#b45309", "#b42318"
 #: names that usually mean the variable, when a formula uses them instead of x
 _VARIABLE_LIKE = ("t", "time", "T", "X", "s", "z", "conc", "dose", "temp", "q", "v", "u", "w")
@@ -55,16 +44,6 @@ def model_param_names(settings: Settings) -> tuple[str, ...]:
         return tuple(settings.build_model().param_names)
     except ValueError:  # an unknown model or options it does not take
         return ()
-
-
-def model_title(name: str) -> str:
-    """The full title of a built-in model (its name when unknown)."""
-    try:
-        import fitcore
-
-        return fitcore.get_model(name).title or name
-    except Exception:  # noqa: BLE001
-        return name
 
 
 def formula_check(text: str) -> tuple[str, str]:
@@ -88,15 +67,6 @@ def formula_check(text: str) -> tuple[str, str]:
             head = "Warning: the model does not depend on x (it is a constant)."
         return "warn", f"{head} Parameters: {params}."
     return "ok", msg
-
-
-def _loss_title(name: str) -> str:
-    try:
-        from fitcore.losses import LOSS_TITLES
-
-        return LOSS_TITLES.get(name, name)
-    except Exception:  # noqa: BLE001
-        return name
 
 
 class LossPreview(pg.PlotWidget):
@@ -166,15 +136,9 @@ class MethodPanel(QWidget):
         box = QGroupBox("Method")
         form = QFormLayout(box)
         self.model_combo = QComboBox()
-        try:
-            import fitcore
-
-            names = list(fitcore.builtin_models())
-        except Exception:  # noqa: BLE001 - models module not there yet
-            names = ["line"]
-        for n in names:
+        for n in builtin_models():
             title = model_title(n)
-            self.model_combo.addItem(MODEL_SHORT.get(n, title), n)
+            self.model_combo.addItem(model_short_title(n), n)
             self.model_combo.setItemData(self.model_combo.count() - 1, f"{title} ({n})", Qt.ToolTipRole)
         self.model_combo.addItem(FORMULA_ITEM, FORMULA_ITEM)
         self.model_combo.setItemData(self.model_combo.count() - 1,
@@ -192,15 +156,9 @@ class MethodPanel(QWidget):
         form.addRow("", self.model_info)
 
         self.loss_combo = QComboBox()
-        try:
-            import fitcore
-
-            loss_names = list(fitcore.LOSS_NAMES)
-        except Exception:  # noqa: BLE001
-            loss_names = ["l2", "huber"]
-        for n in loss_names:
-            title = _loss_title(n)
-            self.loss_combo.addItem(LOSS_SHORT.get(n, title), n)
+        for n in LOSS_NAMES:
+            title = loss_title(n)
+            self.loss_combo.addItem(LOSSES[n].menu, n)
             self.loss_combo.setItemData(self.loss_combo.count() - 1, title, Qt.ToolTipRole)
         form.addRow("Loss", self.loss_combo)
 
@@ -313,8 +271,8 @@ class MethodPanel(QWidget):
                 self._on_formula_done()
             return
         self._update_formula_box()
-        self._propose(self._prune(s.with_(model=name, model_kind="builtin")),
-                      f"Model: {MODEL_SHORT.get(name, name)}")
+        self._propose(self._prune(s.with_(model=name, model_kind="builtin", model_options={})),
+                      f"Model: {model_short_title(name)}")
 
     def _on_formula_typed(self, text: str):
         if self._updating:
@@ -335,7 +293,7 @@ class MethodPanel(QWidget):
             return
         self._formula_refused = ""
         s = self.document.settings
-        self._propose(self._prune(s.with_(model=text, model_kind="formula")),
+        self._propose(self._prune(s.with_(model=text, model_kind="formula", model_options={})),
                       f"Model: formula {text[:40]}")
         self._update_formula_box()
 
@@ -344,7 +302,7 @@ class MethodPanel(QWidget):
         s = self.document.settings
         if s.model_kind == "formula":
             return f"the formula {s.model}"
-        return f"{model_title(s.model)} ({s.model})"
+        return f"{model_title(s.model, **s.model_options)} ({s.model})"
 
     def _update_formula_box(self):
         """Keep the formula box, its note and the model line in step with the combo and
@@ -384,7 +342,7 @@ class MethodPanel(QWidget):
         new = s.with_(loss=name)
         if name == "general" and s.alpha is None:  # a method saved without a shape
             new = new.with_(alpha=1.0)
-        self._propose(new, f"Loss: {_loss_title(name)}")
+        self._propose(new, f"Loss: {loss_title(name)}")
 
     def _on_weighting_picked(self, _i=None):
         rule = self.weight_combo.currentData() or "none"

@@ -39,6 +39,7 @@ from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from .estimates_view import fmt_value
+from fitcore.losses import loss_phrase
 from fitcore.report import format_interval
 
 LEVEL = 0.95
@@ -148,14 +149,7 @@ def _loss_words(res) -> str:
     name = str(res.loss)
     if name == "l2":
         return "least squares (no robust weighting)"
-    try:
-        from fitcore.losses import get_loss
-
-        kw = {"alpha": res.alpha} if name == "general" and res.alpha is not None else {}
-        title = get_loss(name, **kw).title or name
-    except Exception:  # noqa: BLE001 - the name alone still reads
-        title = name
-    text = f"the {title} loss"
+    text = loss_phrase(name)
     if res.tuning is not None and math.isfinite(float(res.tuning)):
         text += f" with tuning constant {float(res.tuning):.4g} × scale"
     if res.alpha is not None:

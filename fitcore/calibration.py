@@ -59,7 +59,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special
 
 __all__ = [
     "CalibrationError",
@@ -332,13 +332,14 @@ def _root_in(result, lo: float, hi: float, target: float, n: int = 801):
     d = _f(result, grid) - target
     roots = []
     ok = np.isfinite(d)
-    for i in range(grid.size - 1):
-        if not (ok[i] and ok[i + 1]):
-            continue
-        a, b = d[i], d[i + 1]
+    both = ok[:-1] & ok[1:]
+    with np.errstate(invalid="ignore"):
+        hit = both & ((d[:-1] == 0.0) | (d[:-1] * d[1:] < 0))
+    for i in np.flatnonzero(hit):  # only the sign changes are visited
+        a = d[i]
         if a == 0.0:
             roots.append(float(grid[i]))
-        elif a * b < 0:
+        else:
             r = optimize.brentq(lambda t: float(_f(result, t)[0]) - target,
                                 grid[i], grid[i + 1], xtol=1e-14 * max(1.0, abs(grid[i])),
                                 rtol=4 * np.finfo(float).eps, maxiter=200)
@@ -446,23 +447,36 @@ def _fieller(result, x0, target, m, t, var_read_fn) -> tuple[float, float]:
         v = float(g @ C @ g) + var_read_fn(x) / m
         return (target - float(_f(result, x)[0])) ** 2 - t * t * v
 
+    def h_grid(xs):
+        # the same as h on many x at once (one Jacobian call): the scan is vectorised
+        with np.errstate(all="ignore"):
+            J = np.asarray(result.model.jac(xs, result.values), float).reshape(xs.size, -1)
+            var = np.einsum("ij,jk,ik->i", J, C, J)
+            vr = np.array([var_read_fn(float(v)) for v in xs]) if _varies(result) \
+                else np.full(xs.size, var_read_fn(float(x0)))
+            return (target - _f(result, xs)) ** 2 - t * t * (var + vr / m)
+
     lo, hi = calibrated_range(result)
     span = hi - lo
     out = []
     for direction, limit in ((-1, lo - 2 * span), (1, hi + 2 * span)):
         grid = np.linspace(x0, limit, 400)
-        prev = x0
+        hv = h_grid(grid[1:])
         edge = -math.inf if direction < 0 else math.inf
-        for xv in grid[1:]:
-            hv = h(xv)
-            if not math.isfinite(hv):
-                break
-            if hv > 0:
-                edge = optimize.brentq(h, prev, xv, xtol=1e-12 * max(1.0, abs(xv)))
-                break
-            prev = xv
+        bad = ~np.isfinite(hv)
+        pos = hv > 0
+        stop = np.flatnonzero(bad | pos)
+        if stop.size and pos[stop[0]]:
+            k = int(stop[0])
+            prev = grid[k]  # grid[k] is the last point inside (grid[0] = x0)
+            edge = optimize.brentq(h, prev, grid[k + 1], xtol=1e-12 * max(1.0, abs(grid[k + 1])))
         out.append(edge)
     return (out[0], out[1])
+
+
+def _varies(result) -> bool:
+    """True when the variance of a reading depends on x (sigma or a weighting rule)."""
+    return result.sigma is not None or _weighting(result) is not None
 
 
 # --------------------------------------------------------------------------- public
@@ -566,7 +580,7 @@ def detection_limits(result, level: float = 0.95, readings: int = 1, *,
         raise CalibrationError("the number of readings K must be a whole number") from None
     if K < 1:
         raise CalibrationError("the number of readings K must be at least 1")
-    t1 = float(stats.t.ppf(level, result.dof))
+    t1 = float(special.stdtrit(result.dof, level))  # the t quantile (scipy.stats.t.ppf)
     rules = {"lod_ich": RULE_ICH_LOD, "loq_ich": RULE_ICH_LOQ,
              "critical_x": RULE_ISO_XC, "detection_x": RULE_ISO_XD}
     if _classical(result):
@@ -646,7 +660,7 @@ def lack_of_fit(result) -> LackOfFit | None:
     if not ss_pe > 0:
         return None
     F = (ss_lof / df_lof) / (ss_pe / df_pe)
-    return LackOfFit(F=float(F), p_value=float(stats.f.sf(F, df_lof, df_pe)),
+    return LackOfFit(F=float(F), p_value=float(special.fdtrc(df_lof, df_pe, F)),
                      df_lof=int(df_lof), df_pe=int(df_pe), ss_lof=ss_lof, ss_pe=ss_pe,
                      levels=int(g))
 

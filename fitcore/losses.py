@@ -37,48 +37,10 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from functools import lru_cache
+from typing import Callable
 
 import numpy as np
 from scipy import integrate, optimize
-
-LOSS_NAMES = (
-    "l2",
-    "l1",
-    "huber",
-    "pseudo_huber",
-    "cauchy",
-    "geman_mcclure",
-    "welsch",
-    "tukey",
-    "general",
-    "adaptive",
-)
-
-LOSS_TITLES = {
-    "l2": "least squares (L2)",
-    "l1": "least absolute deviations (L1)",
-    "huber": "Huber",
-    "pseudo_huber": "pseudo-Huber",
-    "cauchy": "Cauchy",
-    "geman_mcclure": "Geman-McClure",
-    "welsch": "Welsch",
-    "tukey": "Tukey biweight",
-    "general": "general robust loss (Barron)",
-    "adaptive": "adaptive robust loss (Barron, alpha and scale by maximum likelihood)",
-}
-
-# 95 % Gaussian efficiency (check-values.md sections 1.7 and 2).
-DEFAULT_TUNING = {
-    "huber": 1.345,
-    "pseudo_huber": 1.28710,
-    "cauchy": 2.3849,
-    "geman_mcclure": 1.89371,
-    "welsch": 2.9846,
-    "tukey": 4.685,
-}
-
-REDESCENDING = {"cauchy", "geman_mcclure", "welsch", "tukey"}
-
 
 def _as_array(u):
     return np.asarray(u, dtype=float)
@@ -94,7 +56,7 @@ class Loss:
 
     @property
     def title(self) -> str:
-        return LOSS_TITLES.get(self.name, self.name)
+        return loss_title(self.name)
 
     @property
     def redescending(self) -> bool:
@@ -398,26 +360,132 @@ def tuning_for_efficiency(name: str, target: float = 0.95, alpha: float | None =
     return float(optimize.brentq(f, lo, hi, xtol=1e-12))
 
 
+# ============================================================================ registry
+@dataclass(frozen=True)
+class LossEntry:
+    """One row of the loss registry: everything the engine, the reports and the views
+    know about a loss.
+
+    Attributes
+    ----------
+    name
+        The internal name (``fit(..., loss=name)``).
+    make
+        ``make(name, tuning, alpha) -> Loss``: builds the loss (the class, or a shape
+        fixed for a named member of the general family).
+    title
+        The full title, for reports, tooltips and the method statement.
+    short
+        A short title for table headers and plot legends.
+    menu
+        The label in the window's loss list (where the full title is too wide).
+    default_tuning
+        The tuning constant giving 95 % Gaussian efficiency (None where none is used or
+        where it is computed from the shape).
+    family
+        ``"monotone"`` (psi never falls: every point keeps some pull),
+        ``"redescending"`` (far points get weight towards 0), or ``"shape"`` (the
+        general and adaptive losses: redescending for alpha < 1).
+    colour, dash
+        The loss's pen in plots: RGB and dash pattern (``"solid"``, ``"dash"``,
+        ``"dot"``, ``"dashdot"``, ``"dashdotdot"``); dash as well as hue, for readers
+        who do not tell the colours apart. Our own choice of pens.
+    """
+
+    name: str
+    make: Callable[[str, "float | None", "float | None"], Loss]
+    title: str
+    short: str
+    menu: str
+    default_tuning: float | None
+    family: str
+    colour: tuple[int, int, int]
+    dash: str
+
+    @property
+    def redescending(self) -> bool:
+        return self.family == "redescending"
+
+
+def _plain(cls):
+    return lambda name, tuning, alpha: cls(name)
+
+
+def _tuned(cls):
+    return lambda name, tuning, alpha: cls(name, tuning)
+
+
+def _shaped(alpha_fixed: float | None):
+    if alpha_fixed is None:
+        return lambda name, tuning, alpha: General(name, tuning, alpha)
+    return lambda name, tuning, alpha: General(name, tuning, alpha_fixed)
+
+
+#: the loss registry, in menu order. To add a loss: write its class above (rho,
+#: weight, dpsi) and add ONE row here; tests in tests/fitcore/test_losses.py check
+#: every row (efficiency of the default tuning, weight(0) = 1, psi = rho').
+#: Default tunings: 95 % Gaussian efficiency (check-values.md sections 1.7 and 2).
+LOSSES: dict[str, LossEntry] = {e.name: e for e in (
+    LossEntry("l2", _plain(L2), "least squares (L2)", "least squares", "least squares (L2)",
+              None, "monotone", (70, 70, 70), "dash"),
+    LossEntry("l1", _plain(L1), "least absolute deviations (L1)", "L1", "least absolute (L1)",
+              None, "monotone", (130, 85, 30), "dashdot"),
+    LossEntry("huber", _tuned(Huber), "Huber", "Huber", "Huber",
+              1.345, "monotone", (31, 92, 170), "solid"),
+    LossEntry("pseudo_huber", _shaped(1.0), "pseudo-Huber", "pseudo-Huber", "pseudo-Huber",
+              1.28710, "monotone", (95, 160, 215), "dot"),
+    LossEntry("cauchy", _tuned(Cauchy), "Cauchy", "Cauchy", "Cauchy",
+              2.3849, "redescending", (214, 120, 0), "solid"),
+    LossEntry("geman_mcclure", _shaped(-2.0), "Geman-McClure", "Geman-McClure",
+              "Geman-McClure", 1.89371, "redescending", (150, 150, 20), "dashdot"),
+    LossEntry("welsch", _tuned(Welsch), "Welsch", "Welsch", "Welsch",
+              2.9846, "redescending", (190, 55, 55), "dot"),
+    LossEntry("tukey", _tuned(Tukey), "Tukey biweight", "Tukey", "Tukey biweight",
+              4.685, "redescending", (0, 135, 105), "dash"),
+    LossEntry("general", _shaped(None), "general robust loss (Barron)", "general",
+              "general (Barron)", None, "shape", (105, 60, 175), "dashdotdot"),
+    LossEntry("adaptive", _shaped(None),
+              "adaptive robust loss (Barron, alpha and scale by maximum likelihood)",
+              "adaptive", "adaptive (Barron)", None, "shape", (165, 35, 140), "solid"),
+)}
+
+LOSS_NAMES = tuple(LOSSES)
+LOSS_TITLES = {n: e.title for n, e in LOSSES.items()}
+DEFAULT_TUNING = {n: e.default_tuning for n, e in LOSSES.items() if e.default_tuning is not None}
+REDESCENDING = {n for n, e in LOSSES.items() if e.family == "redescending"}
+
+
+def loss_entry(name: str) -> LossEntry:
+    """The registry row of ``name`` (ValueError for an unknown loss)."""
+    try:
+        return LOSSES[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown loss {name!r}; choose one of {', '.join(LOSS_NAMES)}") \
+            from None
+
+
+def loss_title(name: str) -> str:
+    """The full title of a loss (its name when unknown): what reports and every view
+    print."""
+    e = LOSSES.get(name) if isinstance(name, str) else None
+    return e.title if e is not None else str(name)
+
+
+def loss_short_title(name: str) -> str:
+    """The short title for table headers and legends (its name when unknown)."""
+    e = LOSSES.get(name) if isinstance(name, str) else None
+    return e.short if e is not None else str(name)
+
+
+def loss_phrase(name: str) -> str:
+    """The loss in running text: ``"the Huber loss"``, ``"the general robust loss
+    (Barron)"`` (the word "loss" once)."""
+    title = loss_title(name)
+    return f"the {title}" if "loss" in title.split(" (")[0] else f"the {title} loss"
+
+
 def _make(name: str, tuning: float | None, alpha: float | None) -> Loss:
-    if name == "l2":
-        return L2("l2")
-    if name == "l1":
-        return L1("l1")
-    if name == "huber":
-        return Huber("huber", tuning)
-    if name == "tukey":
-        return Tukey("tukey", tuning)
-    if name == "cauchy":
-        return Cauchy("cauchy", tuning)
-    if name == "welsch":
-        return Welsch("welsch", tuning)
-    if name == "pseudo_huber":
-        return General("pseudo_huber", tuning, 1.0)
-    if name == "geman_mcclure":
-        return General("geman_mcclure", tuning, -2.0)
-    if name in ("general", "adaptive"):
-        return General(name, tuning, alpha)
-    raise ValueError(f"unknown loss {name!r}; choose one of {', '.join(LOSS_NAMES)}")
+    return loss_entry(name).make(name, tuning, alpha)
 
 
 _GENERAL_ALWAYS_EFFICIENT = 1.0  # width where every width is 95 % efficient

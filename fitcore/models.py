@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import math
 import re
+from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
@@ -1279,25 +1280,47 @@ def _lorentz_peak():
 
 # ================================================================= registry
 
-# name -> (builder, accepted options with defaults)
+@dataclass(frozen=True)
+class ModelEntry:
+    """One row of the model registry.
+
+    ``build(**options)`` makes the :class:`~fitcore.model.Model` (whose ``title``,
+    formula, parameter descriptions and units are set where it is built, above);
+    ``options`` are the options it accepts with their defaults; ``short`` is the
+    short title for the window's model list (the closed list is narrow).
+    """
+
+    name: str
+    build: Callable[..., Model]
+    options: dict
+    short: str
+
+
+#: the model registry, in menu order. To add a model: write its builder above (a
+#: Model with title, formula, jac, guess, descriptions, units) and add ONE row here;
+#: tests/fitcore/test_models.py checks every row (jacobian, start values, a recovery fit).
+MODELS: dict[str, ModelEntry] = {e.name: e for e in (
+    ModelEntry("line", _line, {}, "Straight line"),
+    ModelEntry("line_origin", _line_origin, {}, "Line through origin"),
+    ModelEntry("poly2", lambda: _poly(2), {}, "Quadratic"),
+    ModelEntry("poly3", lambda: _poly(3), {}, "Cubic"),
+    ModelEntry("poly4", lambda: _poly(4), {}, "Quartic"),
+    ModelEntry("poly5", lambda: _poly(5), {}, "Quintic"),
+    ModelEntry("exp_decay", _exp_decay, {"rate": False}, "Exp. decay (time const.)"),
+    ModelEntry("exp_decay_rate", lambda: _exp_decay(rate=True), {}, "Exp. decay (rate const.)"),
+    ModelEntry("exp_rise", _exp_rise, {}, "Exp. rise to plateau"),
+    ModelEntry("power_law", _power_law, {}, "Power law"),
+    ModelEntry("michaelis_menten", _michaelis_menten, {}, "Michaelis-Menten"),
+    ModelEntry("logistic4", _logistic4, {}, "4-parameter logistic"),
+    ModelEntry("logistic5", _logistic5, {}, "5-parameter logistic"),
+    ModelEntry("arrhenius", _arrhenius, {"t_ref": None}, "Arrhenius law"),
+    ModelEntry("gauss_peak", _gauss_peak, {}, "Gaussian peak"),
+    ModelEntry("lorentz_peak", _lorentz_peak, {}, "Lorentzian peak"),
+)}
+# name -> (builder, accepted options with defaults), read from the registry
 _REGISTRY: dict[str, tuple[Callable[..., Model], dict]] = {
-    "line": (_line, {}),
-    "line_origin": (_line_origin, {}),
-    "poly2": (lambda: _poly(2), {}),
-    "poly3": (lambda: _poly(3), {}),
-    "poly4": (lambda: _poly(4), {}),
-    "poly5": (lambda: _poly(5), {}),
-    "exp_decay": (_exp_decay, {"rate": False}),
-    "exp_decay_rate": (lambda: _exp_decay(rate=True), {}),
-    "exp_rise": (_exp_rise, {}),
-    "power_law": (_power_law, {}),
-    "michaelis_menten": (_michaelis_menten, {}),
-    "logistic4": (_logistic4, {}),
-    "logistic5": (_logistic5, {}),
-    "arrhenius": (_arrhenius, {"t_ref": None}),
-    "gauss_peak": (_gauss_peak, {}),
-    "lorentz_peak": (_lorentz_peak, {}),
-}
+    n: (e.build, e.options) for n, e in MODELS.items()}
+
 
 _ALIASES = {"polynomial": "polynomial", "poly1": "line", "linear": "line"}
 _POLY_RE = re.compile(r"^poly(\d+)$")
@@ -1458,3 +1481,18 @@ def model_info(name: str, **options) -> dict:
             for d in m.derived
         ],
     }
+
+
+def model_title(name: str, **options) -> str:
+    """The full title of a built-in model (its name when it is not one)."""
+    try:
+        return get_model(name, **options).title or str(name)
+    except (ValueError, TypeError):
+        return str(name)
+
+
+def model_short_title(name: str) -> str:
+    """The short title of a built-in model for narrow lists (the full title, or the
+    name, when the registry has no short one)."""
+    e = MODELS.get(name) if isinstance(name, str) else None
+    return e.short if e is not None else model_title(name)

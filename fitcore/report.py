@@ -32,6 +32,8 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from .losses import loss_title
+
 __all__ = [
     "CAUTION",
     "FORMATS",
@@ -484,14 +486,7 @@ def loss_label(res) -> str:
     """The loss in words: its title, tuning constant and shape (``"Huber; tuning
     constant 1.345 × scale"``), never its internal name."""
     name = str(res.loss)
-    title = name
-    try:  # the loss catalogue gives the human title; the name alone also reads well
-        from .losses import get_loss
-
-        title = get_loss(name).title or name
-    except Exception:  # noqa: BLE001 - an unknown/absent loss must not stop a report
-        pass
-    parts = [title]  # the title only: the internal name adds nothing for a reader
+    parts = [loss_title(name)]  # the title only: the internal name adds nothing for a reader
     if res.tuning is not None and math.isfinite(float(res.tuning)):
         parts.append(f"tuning constant {float(res.tuning):.6g} × scale")
     if res.alpha is not None:

@@ -65,7 +65,8 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         alpha, c = warm
         s, total = c, 0
         inner = _irls_lm(prob, theta, get_loss("general", tuning=1.0, alpha=alpha), c,
-                         linear=linear, max_iter=max_iter, xtol=1e-9, polish_steps=False)
+                         linear=linear, max_iter=max_iter, xtol=1e-9, polish_steps=False,
+                         check=False)
     c_floor = max(1e-6 * s, 1e-300)
     nll_old = math.inf
     prof = None
@@ -75,7 +76,7 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         # loose solves while (alpha, c) still move; the solve after the loop is the
         # full-accuracy one (polished) at the final shape and scale
         inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter,
-                         xtol=1e-9, ftol=1e-12, polish_steps=False)
+                         xtol=1e-9, ftol=1e-12, polish_steps=False, check=False)
         total += inner.n_iter
         nll = _nll(inner.r, alpha, math.log(c))
         if abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0):

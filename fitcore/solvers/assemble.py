@@ -7,6 +7,7 @@ from .. import uncertainty as unc
 from ..result import FitResult
 from .dispatch import _Outcome
 from .setup import _Setup
+from .verdict import _insensitive, _pole_in_range
 
 
 def _covariance(st: _Setup, out: _Outcome, theta, r):
@@ -41,7 +42,48 @@ def _covariance(st: _Setup, out: _Outcome, theta, r):
     if dof <= 0:
         message += "; no degrees of freedom left, so uncertainties cannot be estimated"
         cov_free = np.full((k, k), np.nan)
+    if not st.linear:
+        converged, message, cov_free = _curve_checks(st, theta, converged, message, cov_free)
+        if not converged:
+            message += _offset_hint(st.prob.x)
     return cov_free, recipe, converged, message
+
+
+def _offset_hint(x) -> str:
+    """A hint when x lies far from 0 against its spread (timestamps, years): the
+    model's parameters then cancel each other to many digits."""
+    lo, hi = float(np.min(x)), float(np.max(x))
+    span, centre = hi - lo, abs(0.5 * (lo + hi))
+    if span > 0 and centre > 1e3 * span:
+        return (f"; x lies far from 0 against its spread (from {lo:.10g} to {hi:.10g}), which "
+                f"ruins the conditioning: subtract an origin (e.g. x - {lo:.10g}) and fit again")
+    return ""
+
+
+def _curve_checks(st: _Setup, theta, converged, message, cov_free):
+    """Parameters that no longer affect the curve, and a pole inside the data: the
+    fit is then not converged, whatever the solver's stopping rule said, and such a
+    parameter's uncertainty is not reported (it would look finite, e.g. 2e49)."""
+    prob = st.prob
+    dead = _insensitive(prob, theta)
+    if dead:
+        names = [np.asarray(st.mdl.param_names)[st.free][j] for j in dead]
+        which = ", ".join(names)
+        converged = False
+        message = (f"{which} no longer {'affects' if len(names) == 1 else 'affect'} the curve "
+                   f"(a saturated exponential, a width or rate gone to zero or infinity): "
+                   f"the estimate is not determined; try other start values or hold "
+                   f"{'it' if len(names) == 1 else 'them'}")
+        cov_free = cov_free.copy()
+        cov_free[dead, :] = np.nan
+        cov_free[:, dead] = np.nan
+    pole = _pole_in_range(prob, theta)
+    if pole is not None:
+        converged = False
+        message = (f"the fitted curve has a pole or a non-finite value inside the data's x "
+                   f"range (near x = {pole:.6g}): not a valid fit; try other start values "
+                   f"or bounds") + ("" if not dead else "; " + message)
+    return converged, message, cov_free
 
 
 def _assemble(st: _Setup, out: _Outcome) -> FitResult:

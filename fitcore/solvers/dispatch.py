@@ -1,12 +1,13 @@
 """Dispatch: one solver per kind of loss, each returning an :class:`_Outcome`."""
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
 import numpy as np
 
-from ..losses import Loss
+from ..losses import Loss, get_loss
 from ..scale import mad
 from . import large
 from .adaptive import _fit_adaptive
@@ -15,6 +16,8 @@ from .lm import _irls_lm, _refine_linear_ls
 from .mscale import SCALE_METHOD, _m_estimate, _robust_with_scale, _newton_with_mad
 from .problem import _Inner, _safe_scale, _start_scale
 from .setup import _Setup
+from .start import _improve
+from .verdict import _first_order
 
 
 @dataclass
@@ -29,6 +32,12 @@ class _Outcome:
 
 
 def _run(st: _Setup) -> _Outcome:
+    """The fit, with more starts where the first attempt fails the verdict or starts
+    blank (:mod:`.start`)."""
+    return _improve(st, _run_once)
+
+
+def _run_once(st: _Setup) -> _Outcome:
     if st.loss == "l2":
         return _run_l2(st)
     if st.loss == "l1":
@@ -45,8 +54,12 @@ def _run_l2(st: _Setup) -> _Outcome:
     if refined is not None:
         th, r_th, inv_ata = refined
         st.info["inv_jtj"] = inv_ata
-        inner = _Inner(th, r_th, 0.5 * float(r_th @ r_th), inner.n_iter, inner.converged,
-                       "converged (least-squares solution with iterative refinement)")
+        # the refined solution is judged afresh (the loop's own point may have failed the
+        # first-order test only through the rounding that the refinement removes)
+        ok = _first_order(prob, th, r_th, None, 1.0)[0]
+        inner = _Inner(th, r_th, 0.5 * float(r_th @ r_th), inner.n_iter, ok,
+                       "converged (least-squares solution with iterative refinement)" if ok else
+                       "the refined least-squares solution fails the first-order test")
     dof = st.dof
     s = math.sqrt(float(np.sum(inner.r ** 2)) / dof) if dof > 0 else float("nan")
     return _Outcome(inner, s, "residual standard deviation sqrt(RSS/(n - p))", inner.n_iter,
@@ -63,7 +76,15 @@ def _run_l1(st: _Setup) -> _Outcome:
         inner = _Inner(theta, r, float(np.sum(np.abs(r))), 1, True,
                        "converged (exact linear programme)")
     else:
-        inner = _l1_nonlinear(prob, st.theta0, max_iter=st.max_iter)
+        # from a converged robust fit, not the raw start: sequential LP follows the
+        # nearest kink of the L1 objective, so its start must already fit the majority
+        theta0 = st.theta0
+        huber = get_loss("huber")
+        pre = _run_m(dataclasses.replace(st, loss="huber", loss_obj=huber, fixed_scale=None,
+                                         info={}))
+        if pre.inner.converged:
+            theta0 = pre.inner.theta
+        inner = _l1_nonlinear(prob, theta0, max_iter=st.max_iter)
     s = _safe_scale(mad(inner.r), inner.r, prob)
     return _Outcome(inner, s, "normalised MAD of the residuals (does not affect the L1 estimate)",
                     inner.n_iter, st.loss_obj)

@@ -7,6 +7,7 @@ import math
 import numpy as np
 
 from ..losses import Loss
+from .verdict import COSINE_TOL, _first_order
 from .problem import FitError, _Inner, _objective, _Problem, _project, _start_residuals
 
 
@@ -59,15 +60,25 @@ class _StepSolver:
         return float(z @ self.g - 0.5 * z @ self.G @ z)
 
 
+_SCALE_MEMORY = 0.25  # the column scaling's memory factor per iteration (squared norms)
+
+
 def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
              linear: bool, max_iter: int = 500, xtol: float = 1e-13,
-             ftol: float = 1e-15, polish_steps: bool = True) -> _Inner:
+             ftol: float = 1e-15, polish_steps: bool = True,
+             check: bool = True) -> _Inner:
     """Minimise sum rho(r(theta)/s) by reweighted, damped Gauss-Newton steps.
 
     The damping follows Nielsen's gain-ratio rule (Madsen, Nielsen & Tingleff, *Methods
     for non-linear least squares problems*, 2004): the gain ratio compares the actual
     decrease of the robust objective with the decrease predicted by the reweighted
     quadratic model. After convergence a few undamped steps polish the solution.
+
+    Stopping (small steps, no further decrease, a refused polishing step) is not the
+    verdict: with ``check`` (full-accuracy solves) ``converged`` is True only when the
+    first-order test of :mod:`.verdict` holds at the returned point. The loose inner
+    solves of the scale iterations pass ``check=False`` (their verdict is the final
+    solve's).
     """
     lower, upper = prob.lower, prob.upper
     theta = _project(np.asarray(theta, dtype=float).copy(), lower, upper)
@@ -103,7 +114,11 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
         Jw = J * sw[:, None]
         rw = r * sw
         d2 = np.einsum("ij,ij->j", Jw, Jw)
-        dmax = np.maximum(dmax, d2)
+        # column scaling from the current column norms, with a memory that fades by
+        # half per iteration (a plain running maximum goes stale once a column shrinks
+        # by orders of magnitude, as in MGH10's valley; the current norms alone let a
+        # shrinking column's parameter run away in one step, as in MGH17)
+        dmax = np.maximum(d2, dmax * _SCALE_MEMORY)
         D = np.sqrt(np.where(dmax > 0, dmax, 1.0))
         step_solver = _StepSolver(Jw, rw, D)
         if lam is None:
@@ -170,6 +185,14 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             polish = 1  # a few undamped steps to reach full accuracy
     else:
         message = f"did not converge in {max_iter} iterations"
+    if converged and check and phi > 0.0:
+        ok, cos, j = _first_order(prob, theta, r, None if loss.name == "l2" else loss, s)
+        if not ok:
+            name = np.asarray(prob.model.param_names)[prob.free][j]
+            converged = False
+            message = (f"stopped at a point that is not a minimum (first-order test: the "
+                       f"gradient along {name} has cosine {cos:.1e} with the residuals, "
+                       f"above {COSINE_TOL:g}); try other start values")
     return _Inner(theta, r, phi, it, converged, message)
 
 

@@ -37,7 +37,7 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     s = _safe_scale(s0, prob.resid(theta), prob)
     total = 0
     if auto:
-        loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False)
+        loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False, check=False)
         inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
         total += inner.n_iter
         prev = None  # (s, g(s)) of the previous update, for the secant step
@@ -365,7 +365,7 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         got = _newton_accepted(prob, theta, s, loss)
         if got is not None:
             return got
-    loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False)
+    loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False, check=False)
     # the start scale will move: below 200 points (no Newton step from this solve) the
     # first fit need not be exact either
     first = loose if prob.n >= 200 else dict(loose, xtol=1e-4)
@@ -489,4 +489,5 @@ def _near_l1(prob: _Problem, theta, s: float, *, linear: bool, max_iter: int) ->
     tests/fitcore/test_breakdown.py). Cheaper than an exact nonlinear L1 fit.
     """
     return _irls_lm(prob, theta, get_loss("huber", tuning=_NEAR_L1_TUNING), s, linear=linear,
-                    max_iter=max_iter, xtol=1e-4, ftol=1e-7, polish_steps=False)
+                    max_iter=max_iter, xtol=1e-4, ftol=1e-7, polish_steps=False,
+                    check=False)

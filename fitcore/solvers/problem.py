@@ -258,7 +258,8 @@ _EXACT = 1e-13  # a MAD below this fraction of max |y| (whitened) counts as zero
 
 def _exact_floor(prob: _Problem) -> float:
     ref = float(np.max(np.abs(prob.y / prob.sig))) if prob.n else 0.0
-    return _EXACT * ref if ref > 0 and math.isfinite(ref) else 1e-300
+    # (at least 1e-150, so that its square, which the steps divide by, stays normal)
+    return max(_EXACT * ref, 1e-150) if ref > 0 and math.isfinite(ref) else 1e-150
 
 
 def _start_scale(prob: _Problem, theta) -> float:

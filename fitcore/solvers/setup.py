@@ -2,6 +2,7 @@
 problem over the used points and the free parameters that the solvers work on."""
 from __future__ import annotations
 
+import difflib
 import math
 from dataclasses import dataclass, field
 
@@ -66,14 +67,38 @@ def _resolve(model) -> Model:
         return model
     if isinstance(model, str):
         try:
-            from ..models import resolve_model
+            from ..models import builtin_models, resolve_model
         except ImportError:  # catalogue not available: formulas only
             from ..formula import parse_formula as resolve_model
+            builtin_models = None
+        text = model.strip()
+        if builtin_models is not None and text.isidentifier() and text != "x":
+            _refuse_bare_name(text, resolve_model, builtin_models())
         return resolve_model(model)
     raise FitError(f"a model must be a built-in name, a formula or a fitcore.Model, not {type(model).__name__}")
 
 
+def _refuse_bare_name(text: str, resolve, names) -> None:
+    """A single name that is not a built-in model would be read as a formula with one
+    parameter (a constant): refuse it, with the closest built-in names."""
+    try:
+        resolve(text.lower())
+        if text.lower() in {n.lower() for n in names}:
+            return
+    except (ValueError, TypeError):
+        pass
+    close = difflib.get_close_matches(text.lower(), names, n=3, cutoff=0.6)
+    hint = (f"did you mean {' or '.join(repr(c) for c in close)}? " if close else
+            f"the built-in models are {', '.join(names)}; ")
+    raise FitError(f"{text!r} is not a built-in model; {hint}(a single name is not fitted as "
+                   f"a formula; to fit a constant, write it with x, e.g. 'c + 0*x')")
+
+
 def _as_1d(name, v, n=None):
+    if np.iscomplexobj(v) or (isinstance(v, (list, tuple))
+                              and any(isinstance(e, complex) for e in v)):
+        raise FitError(f"{name} holds complex numbers; fitcore fits real data: fit the real "
+                       f"and imaginary parts (or the magnitude) as separate data sets")
     try:
         a = np.asarray(v, dtype=float).ravel()
     except (TypeError, ValueError):
@@ -81,6 +106,25 @@ def _as_1d(name, v, n=None):
     if n is not None and a.size != n:
         raise FitError(f"{name} has {a.size} values but x has {n}")
     return a
+
+
+_SCALE_RANGE = 1e100  # a fixed scale this far from the data's size is refused
+
+
+def _check_scale(s: float, prob: _Problem) -> None:
+    """A fixed scale must be on the data's scale: far above it every residual is
+    negligible (the loss cannot tell points apart and the fit reads as exact), far
+    below it every point is an outlier and the arithmetic underflows."""
+    with np.errstate(all="ignore"):
+        ref = float(np.max(np.abs(prob.y if prob.unit else prob.y / prob.sig)))
+    if s * s == 0.0 or not math.isfinite(s * s):
+        raise FitError(f"a fixed scale of {s:g} is outside what double precision can square; "
+                       f"give a scale near the scatter of y")
+    if ref > 0 and math.isfinite(ref) and not (ref / _SCALE_RANGE <= s <= ref * _SCALE_RANGE):
+        raise FitError(f"a fixed scale of {s:g} is {s / ref:.1g} times the largest |y| "
+                       f"({ref:.3g}): every residual would be "
+                       f"{'negligible against it' if s > ref else 'an outlier at it'}; "
+                       f"give a scale near the scatter of y")
 
 
 def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tuning,
@@ -173,6 +217,7 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
             raise FitError(f"scale must be 'auto' or a positive number, not {scale!r}") from None
         if not (fixed_scale > 0 and math.isfinite(fixed_scale)):
             raise FitError(f"scale must be a positive number, not {scale!r}")
+        _check_scale(fixed_scale, prob)
     elif absolute and loss not in ("l2", "l1", "adaptive"):
         fixed_scale = 1.0
 

@@ -16,7 +16,7 @@ from PySide6.QtGui import QGuiApplication
 from desktop import compare_view
 from desktop.compare_view import DEFAULT_LOSSES, VALUE_ROLE, run_comparison
 from desktop.estimates_view import fmt_value
-from fitcore.compare import adaptive_reading, compare_losses
+from fitcore.compare import FIT_KWARGS, adaptive_reading, compare_losses
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
 
@@ -37,8 +37,7 @@ def loaded(win, tmp_path, write_demo_csv):
 
 def side_by_side(doc, losses=DEFAULT_LOSSES):
     m = doc.measurements
-    kw = doc.settings.to_fit_kwargs()
-    kw.pop("loss")
+    kw = {k: v for k, v in doc.settings.to_fit_kwargs().items() if k in FIT_KWARGS}
     return compare_losses(doc.settings.model, m.x, m.y, losses=losses, sigma=m.sigma,
                           excluded=doc.excluded.copy(), **kw)
 

@@ -188,14 +188,14 @@ def test_start_value_that_is_not_a_number_is_marked_and_not_used(make_win):
     t = win.method_panel.param_table
     t.item(1, 1).setText("abc")
     settle(win)
-    assert dict(doc.settings.p0) == {}
+    assert doc.settings.p0 is None
     assert t.item(1, 1).background().color().red() == 255  # red cell
     assert "not a number" in t.item(1, 1).toolTip()
     msg = win.method_panel.input_msg
     assert msg.isVisible() and '"abc"' in msg.text() and "not used" in msg.text()
     t.item(1, 1).setText("0.5")
     settle(win)
-    assert dict(doc.settings.p0) == {"b": 0.5} and not msg.isVisible()
+    assert doc.settings.p0 == {"b": 0.5} and not msg.isVisible()
 
 
 def test_adaptive_loss_shows_the_fitted_alpha(make_win):

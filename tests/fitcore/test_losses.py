@@ -203,3 +203,33 @@ def test_general_loss_width_solves_the_efficiency_below_the_threshold():
     for alpha in (0.0, 1.0, 1.5):
         k = default_general_tuning(alpha)
         assert efficiency(_make("general", k, alpha)) == pytest.approx(0.95, abs=1e-9)
+
+
+# ---------------------------------------------------------------------- the registry
+@pytest.mark.parametrize("name", LOSS_NAMES)
+def test_every_registry_row_is_complete_and_consistent(name):
+    # one row per loss (fitcore.losses.LOSSES): what the engine, the reports and the
+    # views read. The 95 % efficiency target is Holland & Welsch (1977), as above.
+    from fitcore.losses import LOSSES, loss_phrase, loss_short_title, loss_title
+
+    e = LOSSES[name]
+    assert e.name == name and e.title and e.short and e.menu
+    assert loss_title(name) == e.title and loss_short_title(name) == e.short
+    assert loss_phrase(name).count("loss") == 1  # "the X loss", never "loss ... loss"
+    assert e.family in ("monotone", "redescending", "shape")
+    assert e.dash in ("solid", "dash", "dot", "dashdot", "dashdotdot")
+    assert len(e.colour) == 3 and all(0 <= c <= 255 for c in e.colour)
+    loss = get_loss(name, alpha=1.0 if name == "general" else None)
+    assert float(loss.weight(np.array([0.0]))[0]) == pytest.approx(1.0)
+    if e.family != "shape":
+        assert loss.redescending == (e.family == "redescending")
+    if e.default_tuning is not None:
+        assert loss.tuning == e.default_tuning
+        assert efficiency(loss) == pytest.approx(0.95, abs=5e-4)
+
+
+def test_pens_differ_between_losses():
+    from fitcore.losses import LOSSES
+
+    pens = {(e.colour, e.dash) for e in LOSSES.values()}
+    assert len(pens) == len(LOSSES)

@@ -618,3 +618,17 @@ def test_arrhenius_recovers_lnA_and_Ea_from_automatic_start():
     der = {d.name: d for d in m.derived}
     assert der["A"].func(res.values) == pytest.approx(math.exp(res.values[0]))
     assert der["k_ref"].func(res.values) == pytest.approx(m(np.array([298.15]), res.values)[0])
+
+
+def test_every_model_registry_row_builds_with_a_title():
+    # one row per built-in model (fitcore.models.MODELS); the full title lives in the
+    # built Model, the short one in the row
+    from fitcore.models import MODELS, get_model, model_short_title, model_title
+
+    assert list(MODELS) == fitcore.builtin_models()
+    for name, e in MODELS.items():
+        m = get_model(name)
+        assert m.title and model_title(name) == m.title
+        assert e.short and model_short_title(name) == e.short
+    assert model_title("polynomial", degree=7) == get_model("polynomial", degree=7).title
+    assert model_title("no such model") == "no such model"
