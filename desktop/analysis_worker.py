@@ -31,6 +31,12 @@ import threading
 
 import numpy as np
 
+from fitcore.bootstrap import BootstrapResult, bootstrap, model_spec
+from fitcore.bootstrap import build_model as _rebuild_model
+from fitcore.compare import AdaptiveReading, LossComparison, adaptive_reading, compare_losses
+from fitcore.diagnostics import PointDiagnostics, point_diagnostics
+from fitcore.models import resolve_model
+from fitcore.result import FitResult
 
 #: above this many points a job runs in a thread instead: such fits are long numpy
 #: calls that leave the GIL free for long stretches (measured: 12 ms longest event gap
@@ -73,7 +79,6 @@ def run_comparison_core(model, x, y, kwargs: dict, losses, progress=None, cancel
     fit that worked; "" when no point has high leverage) warns that all the losses can
     agree because a point far out in x pulls every one of them.
     """
-    from fitcore.compare import adaptive_reading, compare_losses
 
     kw = dict(kwargs)
     flag = _Flag(cancel) if cancel is not None else None
@@ -97,7 +102,6 @@ def run_comparison_core(model, x, y, kwargs: dict, losses, progress=None, cancel
     note = ""
     base = cmp.results.get("l2") or next((r for r in cmp.results.values() if r is not None), None)
     if base is not None and not getattr(cmp, "cancelled", False):
-        from fitcore.diagnostics import point_diagnostics
 
         try:
             note = point_diagnostics(base, exact_limit=0).note
@@ -131,10 +135,6 @@ def encode(o):
 
 
 def _classes():
-    from fitcore.bootstrap import BootstrapResult
-    from fitcore.compare import AdaptiveReading, LossComparison
-    from fitcore.diagnostics import PointDiagnostics
-    from fitcore.result import FitResult
 
     return {c.__name__: c for c in (FitResult, LossComparison, AdaptiveReading,
                                     PointDiagnostics, BootstrapResult)}
@@ -171,21 +171,18 @@ def _hashable(k):
 
 def model_description(model, x, values):
     """A plain description that rebuilds ``model`` exactly in another process, or None."""
-    from fitcore.bootstrap import model_spec
 
     spec = model_spec(model, np.asarray(x, float), np.asarray(values, float))
     return None if spec is None else list(spec)
 
 
 def build_model(desc):
-    from fitcore.bootstrap import _build_model
-
+    """The model of a job: a built-in name or formula, or a description from
+    :func:`model_description` (rebuilt by :func:`fitcore.bootstrap.build_model`)."""
     if isinstance(desc, str):
-        from fitcore.models import resolve_model
-
         return resolve_model(desc)
     desc = [decode(d) for d in desc]
-    return _build_model(tuple(desc))
+    return _rebuild_model(tuple(desc))
 
 
 # ---------------------------------------------------------------------------- child side
@@ -198,12 +195,10 @@ def _run(request: dict, progress, cancel):
                                    progress, cancel, request.get("with_adaptive", True))
     res = decode(request["result"], model)
     if kind == "diagnostics":
-        from fitcore.diagnostics import point_diagnostics
 
         return point_diagnostics(res, exact_limit=int(request["exact_limit"]), progress=progress,
                                  cancel=cancel)
     if kind == "bootstrap":
-        from fitcore.bootstrap import bootstrap
 
         return bootstrap(res, kind=request["boot_kind"], B=int(request["B"]),
                          seed=int(request["seed"]), level=float(request["level"]),

@@ -447,7 +447,7 @@ class MainWindow(QMainWindow):
         """Show measurements built in code (scripts, benchmarks, tests)."""
         self.undo_stack.clear()
         self.document.apply_measurements(m, settings=settings)
-        self.method_panel._sync_from_document()
+        self.method_panel.sync_from_document()
 
     def dragEnterEvent(self, ev):
         if ev.mimeData().hasUrls():

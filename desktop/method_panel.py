@@ -243,7 +243,7 @@ class MethodPanel(QWidget):
         self.alpha_spin.editingFinished.connect(self._on_alpha_changed)
         self.param_table.itemChanged.connect(self._on_param_edited)
         document.subscribe(self._on_document)
-        self._sync_from_document()
+        self.sync_from_document()
 
     # ------------------------------------------------------------ helpers
     def _propose(self, new: Settings, text: str):
@@ -451,7 +451,7 @@ class MethodPanel(QWidget):
     # ------------------------------------------------------------ follow the document
     def _on_document(self, event, **info):
         if event in ("settings", "data"):
-            self._sync_from_document()
+            self.sync_from_document()
         elif event == "result" and self.document.settings.loss == "adaptive":
             res = self.document.result
             self.preview.show_loss("adaptive", res.alpha if res is not None else None)
@@ -491,7 +491,9 @@ class MethodPanel(QWidget):
         finally:
             self._updating = was
 
-    def _sync_from_document(self):
+    def sync_from_document(self):
+        """Show the document's method in the panel's fields (after the document was
+        replaced from outside, e.g. by an opened session)."""
         s = self.document.settings
         self._updating = True
         try:

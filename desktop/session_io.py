@@ -447,7 +447,7 @@ class SessionManager(QObject):
             self._forget_recovery = False
         panel = getattr(win, "method_panel", None)
         if panel is not None:
-            panel._sync_from_document()
+            panel.sync_from_document()
         if view is None:  # a session without a stored view: a sample set's own view
             view = dialogs.sample_view(session.source_file) if session.source_file else None
         if view:

@@ -104,7 +104,7 @@ class BootstrapResult:
 _MODEL_CACHE: dict = {}
 
 
-def _build_model(spec):
+def build_model(spec):
     """Rebuild a model in a worker from ``("builtin", name) | ("formula", text) |
     ("design", A, names, name)``; the model objects hold Python functions that do not
     travel between processes."""
@@ -135,7 +135,7 @@ def _run_chunk(job: dict, seed_seq, count: int, cancel: Callable[[], bool] | Non
     True between two resamples (checked before each one, so a cancel is answered within
     one refit). The refits are small problems: they run with one BLAS thread.
     """
-    model = _build_model(job["model"])
+    model = build_model(job["model"])
     rng = np.random.default_rng(seed_seq)
     x, y, sig = job["x"], job["y"], job["sigma"]
     n = x.size
@@ -201,7 +201,7 @@ def model_spec(model: Model, x: np.ndarray, p: np.ndarray):
             cands.append(("formula", t))
     for spec in cands:
         try:
-            built = _build_model(spec)
+            built = build_model(spec)
         except Exception:  # noqa: BLE001 - not that kind of model
             continue
         if _same_model(model, built, x, p):

@@ -189,7 +189,7 @@ def test_failed_loss_is_shown_as_failed(loaded, monkeypatch):
         out.errors["cauchy"] = "the cauchy fit failed: invented failure for the test"
         return out
 
-    monkeypatch.setattr(fc, "compare_losses", one_fails)
+    monkeypatch.setattr(analysis_worker, "compare_losses", one_fails)
     view = run_and_wait(loaded)
     c = [view.table.horizontalHeaderItem(k).data(VALUE_ROLE) for k in range(view.table.columnCount())]
     item = view.table.item(0, c.index("cauchy"))

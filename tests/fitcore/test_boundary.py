@@ -35,3 +35,19 @@ def test_no_code_execution_primitives_in_the_library():
                 names = [a.name for a in node.names] + [getattr(node, "module", "") or ""]
                 assert not any(n.split(".")[0] in ("pickle", "dill", "marshal") for n in names), \
                     f"{path.name}:{node.lineno} imports a pickle-like module"
+
+
+def test_the_windows_pure_modules_import_no_qt():
+    # the window's document (its state: data set, method, exclusion record) and the
+    # analysis child process's module stay free of Qt, like fitcore
+    code = (
+        "import importlib, sys\n"
+        "for m in ('desktop.document', 'desktop.analysis_worker', 'fitcore.work'):\n"
+        "    importlib.import_module(m)\n"
+        "bad = [m for m in sys.modules if m.split('.')[0] in ('PySide6', 'pyqtgraph', 'shiboken6')]\n"
+        "print(','.join(bad)); sys.exit(1 if bad else 0)\n"
+    )
+    root = FITCORE.parent
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         cwd=str(root))
+    assert out.returncode == 0, f"a pure module pulled in Qt: {out.stdout} {out.stderr[-500:]}"
