@@ -97,6 +97,37 @@ class FitResult:
             r = self.covariance / np.outer(se, se)
         return r
 
+    def _one_sided_pull(self) -> str:
+        """A warning when a monotone loss (Huber, pseudo-Huber, L1) down-weights points
+        that lie mostly on one side of the curve, else "".
+
+        Such a loss still pulls the fit toward every outlier with a bounded force, so
+        one-sided outliers shift it by about (excess on one side) x tuning x scale / n,
+        while the uncertainties shrink as 1/sqrt(n): the bias in standard errors grows
+        as excess / sqrt(n). The warning is given when the excess is at least sqrt(n)
+        and at least 70 % of the down-weighted points (our thresholds).
+        """
+        if self.loss not in ("huber", "pseudo_huber", "l1"):
+            return ""
+        used = ~self.excluded & np.isfinite(self.residuals)
+        if self.loss == "l1":
+            with np.errstate(all="ignore"):
+                far = used & (np.abs(self.std_residuals) > 2.0)
+        else:
+            far = used & (self.weights < 0.5)
+        m = int(far.sum())
+        if m == 0:
+            return ""
+        above = int(np.sum(self.residuals[far] > 0))
+        below = m - above
+        excess = abs(above - below)
+        if excess < 0.7 * m or excess < np.sqrt(max(self.n_used, 1)):
+            return ""
+        return (f"{m} down-weighted points lie {above} above and {below} below the curve: "
+                f"a monotone loss ({self.loss}) still pulls the fit toward one-sided "
+                f"outliers, a bias that grows against the uncertainties with the number of "
+                f"points; a redescending loss (tukey, welsch) gives them no pull")
+
     @property
     def warnings(self) -> tuple[str, ...]:
         """Plain sentences on signs that this fit should not be trusted as it stands.
@@ -123,6 +154,9 @@ class FitResult:
                     f"count less than half: a robust fit assumes that most points follow "
                     f"the model; check the model and the data before relying on it"
                 )
+        one_sided = self._one_sided_pull()
+        if one_sided:
+            out.append(one_sided)
         free = np.flatnonzero(self.free)
         if not self.model.is_linear and free.size >= 2:
             rho = self.correlation

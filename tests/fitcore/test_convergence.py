@@ -131,3 +131,29 @@ def test_timestamps_far_from_zero_get_a_hint_to_subtract_an_origin():
     assert "subtract an origin (e.g. x - 1700000000)" in res.message
     shifted = fitcore.fit("exp_decay", t - t[0], y)
     assert shifted.converged and shifted.values[1] == pytest.approx(100, rel=0.05)
+
+
+# ---------------------------------------------------------------- one-sided pull
+def _one_sided(n, frac, seed):
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0, 8, n)
+    y = 3 * np.exp(-x / 2) + 0.5 + rng.normal(0, 0.05, n)
+    bad = rng.random(n) < frac
+    y[bad] += rng.uniform(0.5, 3.0, bad.sum())
+    return x, y
+
+
+def test_monotone_loss_under_one_sided_outliers_warns_and_suggests_a_redescending_loss():
+    # invented data: 10 % of 1000 points pushed up (the README's coverage case)
+    x, y = _one_sided(1000, 0.10, 0)
+    huber = fitcore.fit("exp_decay", x, y, loss="huber")
+    assert any("monotone loss (huber)" in w and "redescending" in w for w in huber.warnings)
+    tukey = fitcore.fit("exp_decay", x, y, loss="tukey")
+    assert not any("monotone loss" in w for w in tukey.warnings)
+
+
+def test_few_one_sided_outliers_give_no_bias_warning():
+    # 8 % of 60 points: an excess below sqrt(n), a bias well under one standard error
+    x, y = _one_sided(60, 0.08, 1)
+    res = fitcore.fit("exp_decay", x, y, loss="huber")
+    assert not any("monotone loss" in w for w in res.warnings)
