@@ -16,33 +16,35 @@ from PySide6.QtWidgets import (
     QVBoxLayout, QWidget,
 )
 
+from fitcore.report import (
+    CAUTION,
+    DataRecord,
+    convergence_text,
+    estimate_cells,
+    estimates_text,
+    format_interval,
+    format_uncertainty,
+    format_value,
+    loss_label,
+    resolve_unit,
+)
+
 from .document import Document
 
-try:  # one wording everywhere: the window, the copies and the report
-    from fitcore.report import CAUTION
-except ImportError:  # pragma: no cover - fitcore without its report module
-    CAUTION = ("Robust weights are not a licence to discard data: follow your laboratory's "
-               "procedures and the applicable standards when excluding or down-weighting points.")
+#: the one caution text (fitcore.report.CAUTION), re-exported for the window's widgets
+__all__ = ["CAUTION", "EstimatesView", "fmt_value", "estimates_plain_text"]
 LEVEL = 0.95
 
 
 def fmt_value(value: float, u: float, *, held: bool = False, rich=False) -> str:
-    """``value(u)`` rounded GUM style, by ``fitcore.format_value`` when available."""
-    try:
-        import fitcore
-
-        return fitcore.format_value(value, u, style="paren", held=held, rich=rich)
-    except Exception:  # noqa: BLE001 - report module absent or a value it refuses
-        if not np.isfinite(u) or u <= 0:
-            return f"{value:.6g}"
-        return f"{value:.6g} ± {u:.2g}"
+    """``value(u)`` rounded GUM style (``fitcore.format_value``); a value it refuses is
+    an error, never quietly printed another way."""
+    return format_value(value, u, style="paren", held=held, rich=rich)
 
 
 def interval_text(lo: float, hi: float, value: float, u: float) -> str:
     """``[lo, hi]`` by the one interval rule (``fitcore.report.format_interval``): the
     limits to the last decimal of the rounded estimate beside them, in its notation."""
-    from fitcore.report import format_interval
-
     if not (np.isfinite(lo) and np.isfinite(hi)):
         return ""
     return format_interval(lo, hi, value, u)
@@ -51,24 +53,18 @@ def interval_text(lo: float, hi: float, value: float, u: float) -> str:
 def unc_text(value: float, u: float) -> str:
     """The standard uncertainty column: two significant digits at the decimal and with
     the power of ten of the rounded estimate (``fitcore.report.format_uncertainty``)."""
-    from fitcore.report import format_uncertainty
-
     return format_uncertainty(value, u)
 
 
 def unit_of(expr: str, x_unit: str, y_unit: str) -> str:
     """Turn a model's unit expression ("y/x", "1/x", "x") into real units, exactly as
     the copied text and the report do (``fitcore.report.resolve_unit``)."""
-    from fitcore.report import resolve_unit
-
     return resolve_unit(expr, x_unit, y_unit)
 
 
 def summary_lines(res) -> list[tuple[str, str]]:
     """(label, text) pairs describing how the fit was made (the loss by its title, as
     the copied text states it)."""
-    from fitcore.report import convergence_text, loss_label
-
     def g(name, default=None):
         return getattr(res, name, default)
 
@@ -84,16 +80,18 @@ def summary_lines(res) -> list[tuple[str, str]]:
         ("converged", convergence_text(res)),
         ("covariance", str(g("covariance_recipe", ""))),
     ]
+    if g("fixed"):
+        lines.append(("held", "uncertainties are conditional on the held values"))
     return lines
 
 
-def estimates_plain_text(res, x_unit: str = "", y_unit: str = "", reasons=None) -> str:
+def estimates_plain_text(res, x_unit: str = "", y_unit: str = "", reasons=None,
+                         data: DataRecord | None = None) -> str:
     """Plain-text estimates for the clipboard (``fitcore.report.estimates_text``);
-    ``reasons`` (point index -> the analyst's reason) lists why points were excluded."""
-    from fitcore.report import estimates_text
-
+    ``reasons`` (point index -> the analyst's reason) lists why points were excluded,
+    ``data`` where the data came from."""
     return estimates_text(res, "plain", level=LEVEL, x_unit=x_unit, y_unit=y_unit,
-                          reasons=reasons)
+                          reasons=reasons, data=data)
 
 
 class EstimatesView(QWidget):
@@ -138,6 +136,9 @@ class EstimatesView(QWidget):
         caution.setStyleSheet("color: #6b4e00; background: #fff6d6; padding: 4px;")
         lay.addWidget(caution)
         self.corr_button.toggled.connect(self._show_corr)
+        #: callable giving the data record (file, SHA-256, reading notes) of the copies;
+        #: the window's report exporter sets it (it knows the file's hash)
+        self.data_source = None
         self._shown = None  # the result whose cells are on screen
         self._shown_stale = False
         document.subscribe(self._on_document)
@@ -204,29 +205,17 @@ class EstimatesView(QWidget):
             self.corr_table.setRowCount(0)
             return
         m = doc.measurements
-        ci = res.intervals(LEVEL)
-        derived = []
-        try:
-            derived = res.derived_values()
-        except Exception:  # noqa: BLE001 - a derived quantity that cannot be evaluated
-            derived = []
-        rows = [(n, res.values[k], res.stderr[k], ci[k, 0], ci[k, 1],
-                 unit_of(res.model.units.get(n, ""), m.x_unit, m.y_unit),
-                 n in res.fixed) for k, n in enumerate(res.param_names)]
-        t = res.t_quantile(LEVEL)
-        for name, v, u, d in derived:
-            rows.append((name, v, u, v - t * u, v + t * u, unit_of(d.unit, m.x_unit, m.y_unit), False))
-        self.table.setRowCount(len(rows))
-        for r, (n, v, u, lo, hi, unit, held) in enumerate(rows):
-            cells = [n + (" (held)" if held else ""), fmt_value(v, u), unc_text(v, u),
-                     "" if held else interval_text(lo, hi, v, u), unit]
-            for c, text in enumerate(cells):
+        cells = estimate_cells(res, LEVEL, x_unit=m.x_unit, y_unit=m.y_unit)
+        self.table.setRowCount(len(cells))
+        for r, c in enumerate(cells):
+            texts = [c["name"], c["estimate"], c["uncertainty"], c["interval"], c["unit"]]
+            for col, text in enumerate(texts):
                 it = QTableWidgetItem(text)
-                if c in (1, 2, 3):
+                if col in (1, 2, 3):
                     it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
                 if doc.stale:
                     it.setForeground(Qt.gray)
-                self.table.setItem(r, c, it)
+                self.table.setItem(r, col, it)
         text = "<br>".join(f"<b>{html.escape(a)}</b>: {html.escape(b)}"
                            for a, b in summary_lines(res))
         warnings = getattr(res, "warnings", ())
@@ -253,4 +242,5 @@ class EstimatesView(QWidget):
             return ""
         m = self.document.measurements
         reasons = {i: r for i, r, _t in self.document.exclusion_record()}
-        return estimates_plain_text(res, m.x_unit, m.y_unit, reasons)
+        data = self.data_source() if self.data_source is not None else DataRecord.from_data(m)
+        return estimates_plain_text(res, m.x_unit, m.y_unit, reasons, data=data)

@@ -16,6 +16,8 @@ from PySide6.QtWidgets import (
     QTableView,
 )
 
+from fitcore.report import point_label
+
 from . import dialogs
 from .commands import MaskCommand
 from .document import Document, Measurements, Settings
@@ -57,7 +59,7 @@ class MainWindow(QMainWindow):
         self.qsettings = qsettings if qsettings is not None else QSettings("Ballast", "Ballast")
         self.document = Document()
         self.undo_stack = QUndoStack(self)
-        self.ask_reasons = False
+        self.ask_reasons = True  # on by default: a record wants a reason
         #: (generation, message, ms) said when the last data were opened: the first result
         #: of those data says it again, so the status bar ends on it whether the fit ran
         #: before the message (inline) or after it (deferred or in the worker)
@@ -168,7 +170,7 @@ class MainWindow(QMainWindow):
         self._action(e, "Re&store selected points", self.restore_selected, "Insert")
         self._action(e, "&Toggle selected points", self.toggle_selected, "Ctrl+T")
         self.reason_action = self._action(e, "Ask for a &reason when excluding", self._set_ask_reasons,
-                                          checkable=True, checked=False)
+                                          checkable=True, checked=True)
         e.addSeparator()
         self._action(e, "&Copy estimates", self.copy_estimates, "Ctrl+Shift+C")
         self.reports.add_copy_menu(e)
@@ -218,7 +220,7 @@ class MainWindow(QMainWindow):
         self.logx_action.setChecked(s.value("view/log_x", False, type=bool))
         self.logy_action.setChecked(s.value("view/log_y", False, type=bool))
         self.std_resid_action.setChecked(s.value("view/std_residuals", True, type=bool))
-        self.reason_action.setChecked(s.value("edit/ask_reasons", False, type=bool))
+        self.reason_action.setChecked(s.value("edit/ask_reasons", True, type=bool))
 
     def save_state(self):
         s = self.qsettings
@@ -329,7 +331,8 @@ class MainWindow(QMainWindow):
                 continue
             bad = np.flatnonzero(~(np.asarray(values, float) > 0))
             if bad.size:
-                shown = ", ".join(f"#{i + 1}" for i in bad[:8]) + (", ..." if bad.size > 8 else "")
+                shown = ", ".join(point_label(i, m.source_rows) for i in bad[:8]) \
+                    + (", ..." if bad.size > 8 else "")
                 parts.append(f"log {name} axis: {bad.size} point{'s' if bad.size > 1 else ''} with "
                              f"{name} <= 0 not drawn ({shown}); still fitted")
         return ("Note: " + "; ".join(parts) + ". Switch the log axis off (View menu) to see them."

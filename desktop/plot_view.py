@@ -36,7 +36,7 @@ USED, DOWN, EXCLUDED = 0, 1, 2
 COLOURS = {
     USED: (QColor(31, 92, 170), QColor(12, 45, 95)),
     DOWN: (QColor(232, 150, 30), QColor(140, 80, 0)),
-    EXCLUDED: (None, QColor(200, 30, 45)),
+    EXCLUDED: (None, QColor(90, 90, 110)),  # slate-grey crossed ring: our own look
 }
 SELECT_COLOUR = QColor(255, 200, 0)
 

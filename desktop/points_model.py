@@ -199,6 +199,8 @@ class PointsModel(QAbstractTableModel):
             return m.label("y")
         if name == "sigma_y":
             return f"u({m.y_name})" if m.sigma is not None else "sigma_y"
+        if name == "#":  # file rows, as every copy and the report name the points
+            return "row" if m.source_rows is not None else "#"
         return name
 
     def raw(self, row: int, col: int):
@@ -209,8 +211,9 @@ class PointsModel(QAbstractTableModel):
             v = self.extra[col - _NCOL].values
             return float(v[row]) if row < len(v) else float("nan")
         name = COLUMNS[col]
-        if name == "#":
-            return row + 1
+        if name == "#":  # the one identifier: the file row (the place in the data without one)
+            fr = m.file_row(row)
+            return row + 1 if fr is None else fr
         if name == "x":
             return float(m.x[row])
         if name == "y":
@@ -240,7 +243,8 @@ class PointsModel(QAbstractTableModel):
         else:
             name = COLUMNS[col]
             if name == "#":
-                return np.arange(n)
+                rows = m.source_rows
+                return np.asarray(rows, np.int64) if rows is not None else np.arange(n)
             if name == "reason":
                 return np.array(doc.reasons, dtype=str) if n else np.zeros(0, dtype=str)
             if name == "status":
@@ -313,7 +317,8 @@ class PointsModel(QAbstractTableModel):
                 return self.row_flag_tip or None
             if name == "#":
                 fr = doc.measurements.file_row(row)
-                return f"point {row + 1}; row {fr} of the file" if fr is not None else None
+                return (f"row {fr} of the file (point {row + 1} of the data)" if fr is not None
+                        else f"point {row + 1} of the data (file rows not known)")
             if name == "status":
                 return "Uncheck to exclude this point; check to restore it"
             if name == "reason" and doc.excluded[row]:

@@ -39,8 +39,7 @@ from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from .estimates_view import fmt_value
-from fitcore.losses import loss_phrase
-from fitcore.report import format_interval
+from fitcore.report import DataRecord, format_interval, method_statement
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -65,7 +64,7 @@ COPY_FORMATS = (
 )
 
 LEGEND = ("Filled circles: points used, their size growing with the robust weight; "
-          "orange: down-weighted (weight below 0.5); hollow crossed red rings: excluded by "
+          "orange: down-weighted (weight below 0.5); grey crossed rings: excluded by "
           "the analyst. Line: fitted curve; shaded: {pct} pointwise confidence band.")
 
 
@@ -145,71 +144,8 @@ def _g(x, digits: int = 6) -> str:
     return f"{x:.{digits}g}"
 
 
-def _loss_words(res) -> str:
-    name = str(res.loss)
-    if name == "l2":
-        return "least squares (no robust weighting)"
-    text = loss_phrase(name)
-    if res.tuning is not None and math.isfinite(float(res.tuning)):
-        text += f" with tuning constant {float(res.tuning):.4g} × scale"
-    if res.alpha is not None:
-        how = "fitted" if name == "adaptive" else "chosen"
-        text += f", shape alpha = {float(res.alpha):.4g} ({how})"
-    return text
-
-
 def _plural(n: int, word: str) -> str:
     return f"{n} {word}" + ("" if n == 1 else "s")
-
-
-def method_statement(res, source: str = "", y_unit: str = "", level: float = LEVEL) -> str:
-    """How the estimates were obtained, in plain words (one paragraph of text)."""
-    m = res.model
-    model = m.title or m.name
-    if m.formula and m.formula != model:
-        model = f"{model}, {m.formula}"
-    n_total = len(res.x)
-    where = f" in {os.path.basename(source)}" if source else ""
-    parts = [f"The model ({model}) was fitted to {res.n_used} of the "
-             f"{_plural(n_total, 'point')}{where} "
-             f"by minimising {_loss_words(res)}."]
-    if res.sigma is not None and res.sigma_mode != "none":
-        parts.append("Each residual was divided by the standard uncertainty given for its y "
-                     + ("(taken as known, absolute)." if res.sigma_mode == "absolute"
-                        else "(taken as relative weights only)."))
-    unit = f" {y_unit}" if y_unit and (res.sigma is None or res.sigma_mode == "none") else ""
-    if res.loss != "l2":
-        parts.append(f"The residual scale was {float(res.scale):.4g}{unit} "
-                     f"({res.scale_method}).")
-    else:
-        parts.append(f"The residual standard deviation was {float(res.scale):.4g}{unit}.")
-    if res.n_excluded:
-        parts.append(f"{_plural(res.n_excluded, 'point')} "
-                     f"{'was' if res.n_excluded == 1 else 'were'} excluded by the analyst; "
-                     "each is listed with its reason and time in the exclusion record.")
-    else:
-        parts.append("No point was excluded by the analyst.")
-    if res.loss != "l2":
-        parts.append(f"The loss gave {_plural(res.n_downweighted, 'point')} a weight below 0.5.")
-    if res.fixed:
-        parts.append("Held at given values: "
-                     + ", ".join(f"{k} = {_g(v, 10)}" for k, v in res.fixed.items()) + ".")
-    t = res.t_quantile(level)
-    pct = f"{100 * level:.6g} %"
-    cov = res.covariance_recipe or "the default recipe"
-    if math.isfinite(t):
-        parts.append(f"Standard uncertainties come from the covariance ({cov}); intervals are "
-                     f"two-sided {pct} Student-t intervals with {res.dof} degrees of freedom "
-                     f"(t = {t:.4g}).")
-    else:
-        parts.append(f"Standard uncertainties come from the covariance ({cov}); no interval "
-                     "can be given (no degrees of freedom left).")
-    if not res.converged:
-        parts.append(f"WARNING: the fit did not converge ({res.message}).")
-    from fitcore import __version__
-
-    parts.append(f"Computed with Ballast {__version__}.")
-    return " ".join(parts)
 
 
 def _image_png_b64(img: QImage) -> str:
@@ -393,6 +329,9 @@ class ReportExporter:
         self.window = window
         self.document = window.document
         self.last_dir = ""
+        est = getattr(window, "estimates", None)
+        if est is not None:  # the estimates view's own copy states the same data record
+            est.data_source = self.data_record
 
     # ------------------------------------------------------------------ common
     def _status(self, text: str, ms: int = 6000):
@@ -420,6 +359,13 @@ class ReportExporter:
     def _reasons(self) -> dict:
         """The analyst's reason per excluded point (index -> text), for the method block."""
         return {i: r for i, r, _t in self.document.exclusion_record()}
+
+    def data_record(self) -> DataRecord:
+        """Where the data came from and how they were read (file, sheet, SHA-256,
+        columns and units, reading notes, file rows), for every copy and the report."""
+        sessions = getattr(self.window, "sessions", None)
+        sha = getattr(sessions, "source_sha256", "") if sessions is not None else ""
+        return DataRecord.from_data(self.document.measurements, sha256=sha or "")
 
     def _units(self):
         m = self.document.measurements
@@ -464,7 +410,8 @@ class ReportExporter:
         res = res if res is not None else self.document.result
         x_unit, y_unit = self._units()
         text = estimates_text(res, fmt, level=LEVEL, full_precision=full_precision,
-                              x_unit=x_unit, y_unit=y_unit, reasons=self._reasons())
+                              x_unit=x_unit, y_unit=y_unit, reasons=self._reasons(),
+                              data=self.data_record())
         if fmt == "html":
             text = _bordered(text)
         return text + self._unknowns_text(res, fmt, full_precision)
@@ -563,7 +510,8 @@ class ReportExporter:
             return ""
         x_unit, y_unit = self._units()
         reasons = self._reasons()
-        text = points_csv(res, reasons, x_unit=x_unit, y_unit=y_unit)
+        text = points_csv(res, reasons, x_unit=x_unit, y_unit=y_unit,
+                          rows=self.document.measurements.source_rows)
         return path if self._write_text(path, text, "points CSV") else ""
 
     # ------------------------------------------------------------------ plot
@@ -695,10 +643,10 @@ class ReportExporter:
             out += [f"<h2>{'Unknown samples' if view.samples else 'Calibration checks'}</h2>",
                     unknowns]
 
-        out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, m.source, y_unit))}</p>",
+        out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, LEVEL, y_unit=y_unit, data=self.data_record()))}</p>",
                 '<table border="1" cellspacing="0" cellpadding="3">']
         out += [f"<tr><th>{_h(k)}</th><td>{_h(v)}</td></tr>" for k, v in method_lines(
-            res, LEVEL, y_unit=y_unit, reasons=self._reasons())]
+            res, LEVEL, y_unit=y_unit, reasons=self._reasons(), data=self.data_record())]
         out.append("</table>")
 
         free = [n for n in res.param_names if n not in res.fixed]

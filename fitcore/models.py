@@ -792,9 +792,10 @@ def _michaelis_menten():
         return np.array([_safe(coef[0], top), k])
 
     derived = (
-        Derived("efficiency", lambda p: p[0] / p[1],
+        Derived("initial_slope", lambda p: p[0] / p[1],
                 lambda p: np.array([1.0 / p[1], -p[0] / p[1] ** 2]),
-                "initial slope Vmax/Km (catalytic efficiency up to the enzyme amount)",
+                "slope at x = 0, Vmax/Km (kcat/Km, the catalytic efficiency, only "
+                "after dividing by the enzyme concentration)",
                 "y/x"),
     )
     return Model(
@@ -972,8 +973,9 @@ def _logistic4():
         Derived("log10_EC50", lambda p: math.log10(p[3]),
                 lambda p: np.array([0.0, 0.0, 0.0, 1.0 / (p[3] * math.log(10.0))]),
                 "decimal logarithm of EC50", ""),
-        Derived("span", lambda p: p[1] - p[0], lambda p: np.array([-1.0, 1.0, 0.0, 0.0]),
-                "top - bottom", "y"),
+        Derived("range", lambda p: p[1] - p[0],
+                lambda p: np.array([-1.0, 1.0, 0.0, 0.0]),
+                "height of the transition, top - bottom", "y"),
     )
     return Model(
         "logistic4", names, f, jac, guess=guess,

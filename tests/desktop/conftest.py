@@ -8,6 +8,15 @@ os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 import pytest
 
 
+@pytest.fixture(autouse=True)
+def no_reason_dialog(monkeypatch):
+    """The window asks for a reason when excluding (on by default); tests that do not
+    answer it themselves answer with an empty reason instead of a modal dialog."""
+    from desktop import dialogs
+
+    monkeypatch.setattr(dialogs, "ask_text", lambda parent, title, label: "")
+
+
 @pytest.fixture
 def settings_file(tmp_path):
     """Path of a throw-away QSettings ini file (the user's own settings stay untouched)."""

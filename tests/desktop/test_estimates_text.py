@@ -97,15 +97,18 @@ def test_copied_text_names_units_loss_convergence_and_exclusions_plainly(win):
     for row in rows[:2]:
         assert re.search(rf"^\s+{row[0]}\s+= \S+ {re.escape(row[COL['unit']])}   95 % CI ",
                          text, re.M), row
-        assert "(" + row[COL["unit"]] + ")" not in text.replace("(mg/L)/s", "")
+        estimates = text.split("\nMethod\n")[0]  # the data lines name the y column "Conc (mg/L)"
+        assert "(" + row[COL["unit"]] + ")" not in estimates.replace("(mg/L)/s", "")
     # the loss by its title and constant, without its internal name
     assert "Huber; tuning constant 1.345" in text and "(huber)" not in text
     conv = [ln for ln in text.splitlines() if ln.strip().startswith("converged")]
     assert conv and conv[0].split()[1] == ("yes" if res.converged else "NO")
     assert "(converged)" not in text
-    # which point was excluded and why: number 6 in the points table (index 5)
+    # which point was excluded and why, named by its row in the file (index 5: the
+    # sixth data row, row 7 of the file under its header row)
     m = win.document.measurements
-    assert f"#6 (x = {m.x[5]:.10g}, y = {m.y[5]:.10g}): pipette bubble" in text
+    assert m.file_row(5) == 7
+    assert f"row 7 (x = {m.x[5]:.10g}, y = {m.y[5]:.10g}): pipette bubble" in text
     # the estimates view's own copy button gives the same text
     assert win.estimates.plain_text() == text
 

@@ -41,6 +41,13 @@ def win(open_window, tmp_path, write_demo_csv):
     return w
 
 
+def data_side_by_side(doc):
+    """The data record of the window's file, read again by fitcore alone."""
+    path = doc.measurements.source
+    sel = fitcore.read_table(path).choose(0, 1)
+    return fr.DataRecord.from_data(sel)
+
+
 def side_by_side(doc):
     m = doc.measurements
     return fitcore.fit(doc.settings.model, m.x, m.y, sigma=m.sigma, excluded=doc.excluded.copy(),
@@ -57,7 +64,10 @@ def test_every_copy_format_equals_fitcore_report_side_by_side(win, key, fmt, ful
     res = side_by_side(win.document)
     # the window adds the analyst's reason for the point it excluded (the fixture's)
     assert clip == fr.estimates_text(res, fmt, level=0.95, full_precision=full,
-                                     x_unit="s", y_unit="mV", reasons={5: "pipette bubble"})
+                                     x_unit="s", y_unit="mV", reasons={5: "pipette bubble"},
+                                     data=data_side_by_side(win.document))
+    # 17.1: the method block of every copy says where the data came from
+    assert "SHA-256" in clip and "line.csv" in clip and "reading notes" in clip
 
 
 def test_default_copy_carries_html_and_plain_text(win):
@@ -66,7 +76,8 @@ def test_default_copy_carries_html_and_plain_text(win):
     assert md.hasText() and md.hasHtml()
     assert md.text() == text == fr.estimates_text(side_by_side(win.document), "plain",
                                                   x_unit="s", y_unit="mV",
-                                                  reasons={5: "pipette bubble"})
+                                                  reasons={5: "pipette bubble"},
+                                                  data=data_side_by_side(win.document))
     h = md.html()
     assert h.startswith("<table border=\"1\"") and "<td>a</td>" in h and "<td>b</td>" in h
     # the shortcut is wired to it
@@ -129,7 +140,7 @@ def test_html_report_is_self_contained_and_complete(win, tmp_path):
     corr_row = fr.correlation_text(res, "html").split("\n")[2]
     assert corr_row.replace("<td>", '<td class="num">') in text
     assert "was fitted to 29 of the 30 points in line.csv" in text
-    assert "Huber loss with tuning constant 1.345" in text
+    assert "the Huber loss (tuning constant 1.345 × scale)" in text
     assert html_escape(fr.CAUTION) in text
     # exclusion record: point, file row, value, reason, when
     when = win.document.times[5]
@@ -231,19 +242,22 @@ def test_plot_png_and_svg_at_the_chosen_size(win, tmp_path, monkeypatch):
     assert win.reports.write_plot()
     img = QImage(str(tmp_path / "plot.png"))
     assert (img.width(), img.height()) == (640, 360)
-    # the excluded point's red ring is in the picture
-    red = 0
+    # the excluded point's slate-grey ring (90, 90, 110) is in the picture: a grey with
+    # a blue cast that neither the black/grey text nor the blue or orange points give
+    ring = 0
     for yy in range(0, img.height(), 2):
         for xx in range(0, img.width(), 2):
             c = img.pixelColor(xx, yy)
-            red += c.red() > 170 and c.green() < 90 and c.blue() < 100
-    assert red > 0
+            ring += (abs(c.red() - c.green()) <= 4 and c.blue() - c.red() >= 10
+                     and 70 < c.red() < 160)
+    assert ring > 0
 
     assert win.reports.write_plot(tmp_path / "plot.svg", (1000, 700))
     svg = (tmp_path / "plot.svg").read_text(encoding="utf-8")
     assert 'viewBox="0 0 1000 700"' in svg
     assert "<image" not in svg  # vector symbols, no embedded bitmaps
-    assert "#c81e2d" in svg  # the excluded point's ring colour (plot_view.COLOURS)
+    assert "#5a5a6e" in svg  # the excluded point's ring colour (plot_view.COLOURS)
+    assert "#c81e2d" not in svg  # not the red mark of masked points (issue 17.17)
     from PySide6.QtSvg import QSvgRenderer
 
     assert QSvgRenderer(str(tmp_path / "plot.svg")).isValid()
@@ -346,7 +360,10 @@ def test_points_can_be_traced_to_their_file_rows(open_window, tmp_path):
     doc = w.document
     assert doc.measurements.file_row(57) == 62 and doc.measurements.file_row(0) == 5
     tip = w.points_model.data(w.points_model.index(57, COL["#"]), Qt.ToolTipRole)
-    assert tip == "point 58; row 62 of the file"
+    assert tip == "row 62 of the file (point 58 of the data)"
+    # the table shows the file row itself, under a "row" header
+    assert w.points_model.data(w.points_model.index(57, COL["#"])) == 62
+    assert w.points_model.headerData(COL["#"], Qt.Horizontal) == "row"
     w.push(MaskCommand(doc, doc.make_mask_change([57], True, reason="cosmic ray")))
     assert w.runner.wait()
     html = w.reports.report_html()

@@ -94,6 +94,7 @@ def test_box_without_the_reason_option_asks_nothing(make_win, monkeypatch):
     win = make_win()
     doc = demo_line(win)
     monkeypatch.setattr(dialogs, "ask_text", lambda *a: pytest.fail("asked"))
+    win.reason_action.setChecked(False)  # on by default
     _box(win, 10, 16)
     settle(win)
     assert doc.excluded.sum() > 0 and not any(doc.reasons)
@@ -338,7 +339,8 @@ def test_sorted_table_keeps_selection_and_cells_of_each_point(make_win):
     proxy = win.proxy
     for r in range(proxy.rowCount()):
         i = proxy.mapToSource(proxy.index(r, 0)).row()
-        assert proxy.index(r, COL["#"]).data() == i + 1
+        fr = doc.measurements.file_row(i)  # the one identifier: the file row when known
+        assert proxy.index(r, COL["#"]).data() == (i + 1 if fr is None else fr)
         assert proxy.mapFromSource(win.points_model.index(i, 0)).row() == r
     res = np.asarray(doc.result.residuals)
     shown = [res[proxy.mapToSource(proxy.index(r, 0)).row()] for r in range(proxy.rowCount())]

@@ -19,7 +19,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import fitcore
-from fitcore import report
+from fitcore import report, report_text
 from fitcore.model import Derived, linear_model
 from fitcore.report import format_correlation, format_value
 from fitcore.result import FitResult
@@ -356,7 +356,7 @@ def test_latex_escapes_and_siunitx():
     assert r"\begin{tabular}" in tex and r"\end{tabular}" in tex
     assert "$" + format_value(res.values[0], res.stderr[0], rich="latex") + "$" in tex
     si = report.estimates_text(res, "siunitx", units={"a_0": "mV", "b%": ""})
-    assert rf"\SI{{{format_value(res.values[0], res.stderr[0])}}}{{mV}}" in si
+    assert rf"\qty{{{format_value(res.values[0], res.stderr[0])}}}{{mV}}" in si
     assert rf"\num{{{format_value(res.values[1], res.stderr[1])}}}" in si
     # an unescaped underscore or percent outside math would break the document
     body = re.sub(r"\$[^$]*\$", "", tex)
@@ -381,7 +381,8 @@ def test_held_parameter():
     held = FitResult(**{**res.__dict__, "fixed": {"a": float(res.values[0])},
                         "stderr": np.array([0.0, res.stderr[1]])})
     text = report.estimates_text(held)
-    assert "(held)" in text and "held parameters" in text
+    assert "held at " in text and "held parameters" in text
+    assert "(exact)" not in text and "conditional on them" in text
     corr = report.correlation_text(held)
     assert "held" in corr
 
@@ -571,7 +572,7 @@ def test_interval_limits_have_the_decimals_of_the_estimate(value, u, t):
 
 
 def test_every_report_format_quotes_intervals_by_the_one_rule(demo):
-    rows = {r.name: r for r in report._rows(demo, 0.95, None, "", "")}
+    rows = {r.name: r for r in report_text._rows(demo, 0.95, None, "", "")}
     plain = report.estimates_text(demo)
     for r in rows.values():
         lo, hi = report.interval_limits(r.low, r.high, r.value, r.u)
@@ -631,12 +632,13 @@ def test_convergence_text():
 
 
 def test_excluded_points_are_listed_with_reasons(demo):
-    # point index 6 of the invented demo data is excluded: number 7 in the points table
+    # point index 6 of the invented demo data is excluded: point 7 of the data, named
+    # so when the file rows are not known
     text = report.estimates_text(demo, reasons={6: "bubble\nin the cell"})
-    assert "#7 (x = 6, y = 17.5): bubble in the cell" in text
-    assert "no reason given" not in text
+    assert "point 7 (x = 6, y = 17.5): bubble in the cell" in text
+    assert report.NO_REASON not in text
     # without reasons (library use) the point is still named, with x and y
-    assert "#7 (x = 6, y = 17.5)" in report.estimates_text(demo)
+    assert "point 7 (x = 6, y = 17.5)" in report.estimates_text(demo)
     # many exclusions: 20 listed, then a count; one a line in the plain text
     x = np.arange(40.0)
     y = 2.0 + 0.5 * x + 0.1 * np.sin(x)
@@ -646,10 +648,10 @@ def test_excluded_points_are_listed_with_reasons(demo):
     lines = report.estimates_text(res, reasons={0: "first"}).splitlines()
     start = next(i for i, ln in enumerate(lines) if ln.strip().startswith("excluded points"))
     listed = lines[start:start + 21]
-    assert listed[0].split("excluded points")[1].strip() == "#1 (x = 0, y = 2): first"
+    assert listed[0].split("excluded points")[1].strip() == "point 1 (x = 0, y = 2): first"
     # y = 2.5 + 0.1 sin(1) = 2.58414709848... to 10 significant digits
-    assert listed[1].strip() == "#2 (x = 1, y = 2.584147098): no reason given"
-    assert listed[19].strip().startswith("#20 ")
+    assert listed[1].strip() == "point 2 (x = 1, y = 2.584147098): NO REASON GIVEN"
+    assert listed[19].strip().startswith("point 20 ")
     assert listed[20].strip() == "and 5 more"
     for fmt in ("tsv", "markdown", "latex", "html"):
         assert "and 5 more" in report.estimates_text(res, fmt)
