@@ -13,7 +13,7 @@ Nothing here imports Qt; every function returns a ``str``.
 """
 from __future__ import annotations
 
-from .numbers import (  # noqa: F401 - re-exported
+from .numbers import (
     format_correlation,
     format_interval,
     format_uncertainty,
@@ -22,7 +22,7 @@ from .numbers import (  # noqa: F401 - re-exported
     held_value_text,
     interval_limits,
 )
-from .report_text import (  # noqa: F401 - re-exported
+from .report_text import (
     CAUTION,
     FORMATS,
     MAX_LISTED_EXCLUSIONS,
@@ -71,4 +71,6 @@ __all__ = [
     "point_status",
     "points_csv",
     "curve_csv",
+    "loss_title",
+    "MAX_LISTED_EXCLUSIONS",
 ]

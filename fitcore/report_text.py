@@ -63,8 +63,9 @@ def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
     """Turn a unit written in data units (``"y/x"``, ``"1/x"``) into real unit text.
 
     A bare ``"x"`` or ``"y"`` is the data unit as it is (``"mg/L"``, no parentheses);
-    a compound unit brackets a data unit only where it must (``"(mg/L)/s"``). Returns ``""`` when a needed data unit is unknown (blank), so that no half-made
-    unit is printed. A unit that is neither ``x`` nor ``y`` based is kept as given.
+    a compound unit brackets a data unit only where it must (``"(mg/L)/s"``). Returns
+    ``""`` when a needed data unit is unknown (blank), so that no half-made unit is
+    printed. A unit that is neither ``x`` nor ``y`` based is kept as given.
     """
     expr = (expr or "").strip()
     if not expr:
@@ -224,10 +225,10 @@ _SHEET_NOTE = re.compile(r"^read sheet '(.*)' of \d+")
 class DataRecord:
     """Where the data of a fit came from and how they were read, for the record.
 
-    Built by :meth:`from_data` from any data object with the attributes of
-    ``fitcore.io.Selection`` or the window's measurements (``source``, ``x_name``,
-    ``y_name``, ``sigma_name``, ``x_unit``, ``y_unit``, ``notes``, ``source_rows``,
-    ``sha256``); every field may be blank.
+    Built by :meth:`from_data` from a ``fitcore.work.DataSet`` or a
+    ``fitcore.io.Selection`` (``source``, ``x_name``, ``y_name``, ``sigma_name``,
+    ``x_unit``, ``y_unit``, ``notes``, ``source_rows``, ``source_sha256``/``sha256``,
+    ``columns["sheet"]``); every field may be blank.
 
     Attributes
     ----------
@@ -267,8 +268,11 @@ class DataRecord:
         """A record from a data object (see the class notes); ``sha256``/``sheet``
         override what the object carries."""
         notes = tuple(str(n) for n in (getattr(data, "notes", ()) or ()))
+        columns = getattr(data, "columns", None)
         if not sheet:
             sheet = str(getattr(data, "sheet", "") or "")
+        if not sheet and isinstance(columns, Mapping):  # fitcore.work.DataSet
+            sheet = str(columns.get("sheet", "") or "")
         if not sheet:  # the reader names the sheet it read in its first note
             for n in notes:
                 m = _SHEET_NOTE.match(n)
@@ -279,7 +283,8 @@ class DataRecord:
         x = getattr(data, "x", ())
         return cls(
             source=str(getattr(data, "source", "") or ""),
-            sha256=str(sha256 or getattr(data, "sha256", "") or ""),
+            sha256=str(sha256 or getattr(data, "sha256", "")
+                       or getattr(data, "source_sha256", "") or ""),
             sheet=sheet,
             x_column=str(getattr(data, "x_name", "") or ""),
             y_column=str(getattr(data, "y_name", "") or ""),
