@@ -250,6 +250,9 @@ class _ExportPlot:
             old.setVisible(False)  # hidden, not removed: the plot view still refers to it
             plot.addItem(new)
             self._keep.append(new)
+        arrows = getattr(v, "resid_arrows", None)
+        if arrows is not None:  # pyqtgraph draws vector symbols when not from its atlas
+            arrows.opts["useCache"] = False
         QApplication.processEvents()
 
     def image(self) -> QImage:

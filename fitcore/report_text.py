@@ -86,15 +86,17 @@ def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
     return re.sub(r"\b[xy]\b", rep, expr)
 
 
-def loss_title(name: str, alpha=None) -> str:
-    """The human title of a loss (``"Huber"``, ``"Tukey biweight"``), from the loss
-    catalogue; an unknown name is an error, never printed as it is."""
-    from .losses import LOSS_TITLES
+def loss_title(name: str) -> str:
+    """The human title of a loss (``"Huber"``, ``"Tukey biweight"``) from the loss
+    registry (``fitcore.losses.LOSSES``); an unknown name is an error, never printed
+    as it is."""
+    from .losses import LOSSES
+    from .losses import loss_title as registry_title
 
     name = str(name)
-    if name not in LOSS_TITLES:
+    if name not in LOSSES:
         raise ValueError(f"unknown loss {name!r}: no title to print")
-    return LOSS_TITLES[name]
+    return registry_title(name)
 
 
 def loss_label(res) -> str:
@@ -351,8 +353,11 @@ def method_statement(res, level: float = 0.95, *, y_unit: str = "",
     if str(res.loss) == "l2":
         how = "least squares (no robust weighting)"
     else:  # the words of loss_label, as a phrase: "the Huber loss (tuning constant ...)"
-        title, *rest = loss_label(res).split("; ")
-        how = f"the {title} loss" + (f" ({'; '.join(rest)})" if rest else "")
+        from .losses import loss_phrase
+
+        loss_title(res.loss)  # an unknown loss is an error here too
+        _title, *rest = loss_label(res).split("; ")
+        how = loss_phrase(str(res.loss)) + (f" ({'; '.join(rest)})" if rest else "")
     parts = [f"The model ({model}) was fitted to {res.n_used} of the "
              f"{_plural(n_total, 'point')}{where} by minimising {how}."]
     if res.sigma is not None and res.sigma_mode != "none":
@@ -428,6 +433,11 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "",
                    "relative": "relative weights only (scaled by the fit)"}.get(
             res.sigma_mode, res.sigma_mode)
         out.append(("sigma", meaning))
+    rule = (getattr(res, "info", None) or {}).get("weighting")
+    if rule:  # a weighting rule of fitcore.weighting (issue 14)
+        from .weighting import rule_text
+
+        out.append(("weighting", rule_text(rule)))
     out.append((
         "points",
         f"{res.n_used} used, {res.n_excluded} excluded by the analyst, "
