@@ -45,6 +45,7 @@ import numpy as np
 from scipy import special
 
 from .model import Derived, Model, linear_model
+from .scale import MAD_CONSTANT, huber_weights, mad_about_median, row_medians, tukey_weights
 
 __all__ = ["builtin_models", "get_model", "resolve_model", "model_info", "GAS_CONSTANT"]
 
@@ -81,36 +82,11 @@ def _finite_pairs(x, y, limit=_GUESS_MAX_POINTS):
     return x, y
 
 
-def _fast_median(v):
-    # one selection plus the maximum of the lower half (a two-index partition is
-    # several times slower); equal to np.median
-    n = v.size
-    h = n // 2
-    part = np.partition(v, h)
-    return 0.5 * (part[:h].max() + part[h]) if n % 2 == 0 else part[h]
-
-
-def _row_medians(v):
-    """np.median(v, axis=1) for a 2-d array, by the same one-selection route."""
-    n = v.shape[1]
-    h = n // 2
-    part = np.partition(v, h, axis=1)
-    return 0.5 * (part[:, :h].max(axis=1) + part[:, h]) if n % 2 == 0 else part[:, h]
-
-
-def _mad(r):
-    """Normalised median absolute deviation about the median (0 for empty input)."""
-    r = np.asarray(r, dtype=float)
-    if r.size == 0:
-        return 0.0
-    return float(1.482602218505602 * _fast_median(np.abs(r - _fast_median(r))))
-
-
 def _spread(y):
     """A positive, finite robust spread of y (MAD, else IQR, else range, else 1)."""
     y = np.asarray(y, dtype=float)
     if y.size:
-        s = _mad(y)
+        s = mad_about_median(y)
         if s > 0 and np.isfinite(s):
             return s
         q = np.percentile(y, [0, 25, 75, 100])
@@ -200,14 +176,14 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
         c = wls(np.ones(n))
         r = y - As @ c
         for it in range(n_huber + n_tukey):
-            s = _mad(r)
+            s = mad_about_median(r)
             if not (s > 0 and np.isfinite(s)):
                 break
             u = np.abs(r) / s
             if it < n_huber:
-                w = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
+                w = huber_weights(u)
             else:
-                w = np.where(u < 4.685, (1.0 - (u / 4.685) ** 2) ** 2, 0.0)
+                w = tukey_weights(u)
             if np.count_nonzero(w) <= kk:
                 break
             c_new = wls(w)
@@ -280,14 +256,14 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
             if rows.size == 0:
                 break
             rr = r[rows] if rows.size < live.size else r
-            centre = _row_medians(rr)
-            sc = 1.482602218505602 * _row_medians(np.abs(rr - centre[:, None]))
+            centre = row_medians(rr)
+            sc = MAD_CONSTANT * row_medians(np.abs(rr - centre[:, None]))
             stop = ~((sc > 0) & np.isfinite(sc))
             u = np.abs(rr) / np.where(stop, 1.0, sc)[:, None]
             if it < n_huber:
-                w = np.minimum(1.345 / u, 1.0)  # (1.345/0 = inf -> 1), as the single version
+                w = huber_weights(u)
             else:
-                w = np.where(u < 4.685, (1.0 - (u / 4.685) ** 2) ** 2, 0.0)
+                w = tukey_weights(u)
             stop |= np.count_nonzero(w, axis=1) <= k
             if stop.any():
                 go = rows[~stop]
@@ -325,7 +301,7 @@ def _noise_scale(x, y):
     (sorted by x) divided by sqrt 2, with a floor (see below)."""
     order = np.argsort(x, kind="mergesort")
     d = np.diff(np.asarray(y, dtype=float)[order])
-    s = _mad(d) / math.sqrt(2.0) if d.size >= 2 else 0.0
+    s = mad_about_median(d) / math.sqrt(2.0) if d.size >= 2 else 0.0
     # floor: 2 % of the 5-95 % range of y, so that on a coarse grid a curve that is
     # nearly right still scores better than one that is far off
     y = np.asarray(y, dtype=float)

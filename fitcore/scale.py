@@ -1,4 +1,5 @@
-"""Robust residual scale estimates."""
+"""Robust statistics shared by the engine and the start values: medians, the
+normalised MAD, Huber and Tukey IRLS weights, and residual scale estimates."""
 from __future__ import annotations
 
 import math
@@ -51,6 +52,44 @@ def median(v, overwrite: bool = False) -> float:
     if n % 2:
         return upper
     return 0.5 * (float(p[:h].max()) + upper)
+
+
+def row_medians(v) -> np.ndarray:
+    """``np.median(v, axis=1)`` for a 2-d float array, by the same one-selection route
+    as :func:`median`."""
+    v = np.asarray(v, dtype=float)
+    n = v.shape[1]
+    h = n // 2
+    part = np.partition(v, h, axis=1)
+    return 0.5 * (part[:, :h].max(axis=1) + part[:, h]) if n % 2 == 0 else part[:, h]
+
+
+def mad_about_median(r) -> float:
+    """Normalised MAD about the median, ``1.4826 * median|r - median(r)|``, of all
+    values as given (non-finite ones included: the start-value code relies on their
+    place in the ordering); 0 for empty input."""
+    r = np.asarray(r, dtype=float)
+    if r.size == 0:
+        return 0.0
+    return float(MAD_CONSTANT * median(np.abs(r - median(r))))
+
+
+#: Huber's and Tukey's tuning constants for 95 % efficiency (as the registry's)
+HUBER_K = 1.345
+TUKEY_C = 4.685
+
+
+def huber_weights(u, k: float = HUBER_K) -> np.ndarray:
+    """Huber's IRLS weights ``min(1, k/|u|)`` of standardised residuals ``|u|``
+    (1 at u = 0)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.minimum(k / np.asarray(u, dtype=float), 1.0)
+
+
+def tukey_weights(u, c: float = TUKEY_C) -> np.ndarray:
+    """Tukey biweight IRLS weights ``(1 - (u/c)^2)^2`` for ``|u| < c``, else 0."""
+    u = np.asarray(u, dtype=float)
+    return np.where(u < c, (1.0 - (u / c) ** 2) ** 2, 0.0)
 
 
 @lru_cache(maxsize=256)

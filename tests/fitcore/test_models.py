@@ -632,3 +632,17 @@ def test_every_model_registry_row_builds_with_a_title():
         assert e.short and model_short_title(name) == e.short
     assert model_title("polynomial", degree=7) == get_model("polynomial", degree=7).title
     assert model_title("no such model") == "no such model"
+
+
+def test_start_value_helpers_are_the_shared_robust_statistics():
+    # the start values use fitcore.scale's median, MAD and Huber/Tukey weights (one
+    # copy of each); the weights against their textbook forms (Huber 1981; Tukey's
+    # biweight, e.g. statsmodels.robust.norms), the MAD against numpy
+    from fitcore.scale import MAD_CONSTANT, huber_weights, mad_about_median, tukey_weights
+
+    u = np.array([0.0, 0.5, 1.345, 2.0, 4.0, 4.685, 9.0])
+    assert np.array_equal(huber_weights(u), np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300)))
+    assert np.allclose(tukey_weights(u), np.where(u < 4.685, (1 - (u / 4.685) ** 2) ** 2, 0.0))
+    r = np.array([3.0, -1.0, 0.5, 10.0, 2.0, 2.5])
+    assert mad_about_median(r) == pytest.approx(MAD_CONSTANT * np.median(np.abs(r - np.median(r))))
+    assert mad_about_median([]) == 0.0
