@@ -80,6 +80,24 @@ class ModelChoice:
         return f"{cur.title} does not fit these data: {why}."
 
 
+#: peak models, tried only when the data have their highest or lowest values inside the x range
+PEAKS = ("gauss_peak", "lorentz_peak")
+
+
+def _has_inner_extreme(x, y) -> bool:
+    """True when the largest or smallest y (after a running median of 5) lies away from
+    both ends of the x range (a peak or a dip; monotone data cannot need a peak model)."""
+    n = x.size
+    if n < 7:
+        return True
+    yo = y[np.argsort(x, kind="stable")]
+    pad = np.pad(yo, 2, mode="edge")
+    smooth = np.median(np.lib.stride_tricks.sliding_window_view(pad, 5), axis=1)
+    edge = max(1, n // 10)
+    inner = slice(edge, n - edge)
+    return bool(np.argmax(smooth) in range(n)[inner] or np.argmin(smooth) in range(n)[inner])
+
+
 def _thin(x, y, sigma, max_points):
     n = x.size
     if n <= max_points:
@@ -185,7 +203,7 @@ def assess(model, x, y, sigma=None, *, title: str | None = None) -> ModelScore:
 
 
 def choose_model(x, y, sigma=None, current="line", *, candidates: Sequence[str] = CANDIDATES,
-                 max_points: int = 200, progress: Callable | None = None,
+                 max_points: int = 80, progress: Callable | None = None,
                  cancel: Callable[[], bool] | None = None) -> ModelChoice:
     """Is ``current`` a good model for these data, and if not, which catalogue model is?
 
@@ -201,6 +219,7 @@ def choose_model(x, y, sigma=None, current="line", *, candidates: Sequence[str] 
         ok &= np.isfinite(sigma) & (sigma > 0)
         sigma = sigma[ok]
     x, y, sigma = _thin(x[ok], y[ok], sigma, max_points)
+    candidates = [c for c in candidates if c not in PEAKS or _has_inner_extreme(x, y)]
     names = list(dict.fromkeys([current] + [c for c in candidates if c != current])) \
         if isinstance(current, str) else [current] + list(candidates)
     scores = []
