@@ -10,7 +10,7 @@ from __future__ import annotations
 from typing import Callable
 
 from PySide6.QtCore import Qt
-from PySide6.QtWidgets import QFrame, QHBoxLayout, QLabel, QPushButton, QToolButton, QVBoxLayout, QWidget
+from PySide6.QtWidgets import QFrame, QHBoxLayout, QLabel, QPushButton, QSizePolicy, QToolButton, QVBoxLayout, QWidget
 
 _COLOURS = {"info": ("#eef4fb", "#7a9cc6"), "warning": ("#fdf5e6", "#d19a3a")}
 
@@ -28,6 +28,9 @@ class _Message(QFrame):
         row.setSpacing(6)
         self.label = QLabel(text)
         self.label.setWordWrap(True)
+        # a long message wraps instead of widening the pane it sits in
+        self.label.setMinimumWidth(120)
+        self.label.setSizePolicy(QSizePolicy.Ignored, QSizePolicy.Preferred)
         self.label.setTextInteractionFlags(Qt.TextSelectableByMouse)
         if tooltip:
             self.label.setToolTip(tooltip)

@@ -453,7 +453,8 @@ class MainWindow(QMainWindow):
             self.banner.show_message("model", f"{choice.reason()}{extra} Choose another model in Method.",
                                      kind="warning")
             return
-        new = Settings(model=choice.best.model, loss=settings.loss, scale=settings.scale, alpha=settings.alpha)
+        # the loss, scale and weighting stay; held and start values belonged to the old model
+        new = settings.with_(model=choice.best.model, model_kind="builtin", model_options={}, p0=None, fixed={})
         cmd = SettingsCommand(doc, new, text=f"Model: {choice.best.title}")
         self.push(cmd)
         self.banner.show_message(
