@@ -304,14 +304,19 @@ class MainWindow(QMainWindow):
         """
         import fitcore
 
-        if not self.sessions.confirm_replace(os.path.basename(str(path))):
-            return False
+        name = os.path.basename(str(path))
         if str(path).lower().endswith(".ballast"):
+            if not self.sessions.confirm_replace(name):
+                return False
             return self.sessions.open_session(path)
-        try:
+        try:  # read first: a file that cannot be read never asks about the work on screen
             table = fitcore.read_table(path)
         except (ValueError, OSError) as err:
-            dialogs.error_box(self, "Cannot open file", f"{os.path.basename(str(path))}: {err}")
+            text = str(err)
+            # the reader's messages usually name the file already: say it once
+            dialogs.error_box(self, "Cannot open file", text if name in text else f"{name}: {text}")
+            return False
+        if not self.sessions.confirm_replace(name):
             return False
         suggested = dialogs.sample_method(path)
         settings = Settings(**suggested) if suggested else None

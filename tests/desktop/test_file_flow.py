@@ -484,3 +484,19 @@ def test_read_notes_stay_in_the_banner(make_win, tmp_path):
     assert text.startswith("Read notes for notes.csv:") and "n/a" in text, text
     w.banner.message("notes").close_button.click()
     assert w.banner.text("notes") == ""
+
+
+# ------------------------------------------------------------------ 2c. small things
+def test_an_unreadable_file_is_refused_before_asking_about_unsaved_work(worked, asked, tmp_path, errors):
+    """Read first, then ask: a junk file never brings up Save / Discard / Cancel, and
+    its message names the file once."""
+    w = worked
+    junk = tmp_path / "junk.csv"
+    junk.write_bytes(b"\x00\x01\x02 not a table \xff\xfe" * 20)
+    before = snapshot(w)
+    n_asked = len(asked)
+    assert not w.open_path(str(junk))
+    assert len(asked) == n_asked  # not asked
+    title, text = errors[-1]
+    assert text.count("junk.csv") == 1, text
+    assert_unchanged(w, before)
