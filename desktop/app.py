@@ -155,8 +155,33 @@ def main(argv=None) -> int:
     app.setApplicationName("Ballast")
     _quit_on_interrupt(app)
 
-    create_window(args)
+    try:
+        create_window(args)
+    except Exception as err:  # noqa: BLE001 - the program must start: retry once with fresh settings
+        create_window(args, qsettings=_fresh_settings(err))
     return app.exec()  # safe: Qt event loop
+
+
+def _fresh_settings(err):
+    """Settings for a second start after the first window failed to build: the user's
+    settings file is moved aside (``.damaged``), reported, and an empty one is used."""
+    from PySide6.QtCore import QSettings
+
+    qs = QSettings()
+    name = qs.fileName()
+    moved = ""
+    if name and os.path.isfile(name):
+        moved = name + ".damaged"
+        try:
+            os.replace(name, moved)
+        except OSError:
+            moved = ""
+    qs = QSettings()
+    qs.clear()
+    print(f"ballast: the window could not be built with the saved settings ({type(err).__name__}: {err}); "
+          + (f"they were moved to {moved} and defaults are used." if moved else "defaults are used."),
+          file=sys.stderr)
+    return qs
 
 
 def create_window(args, qsettings=None, recovery_dir=None):
@@ -168,19 +193,34 @@ def create_window(args, qsettings=None, recovery_dir=None):
     """
     from .main_window import MainWindow, first_sample_set
 
+    from . import dialogs
+
     win = MainWindow(qsettings, recovery_dir=recovery_dir)
     win.sessions.interactive = True  # ask before closing with unsaved work
     win.show()
-    if win.sessions.offer_recovery():
-        return win
-    if args.file:
-        win.open_path(args.file)
-    elif args.samples:
-        win.open_sample_picker()
-    else:
-        first = first_sample_set()
-        if first:
-            win.open_path(first)
+    reset = getattr(win, "settings_reset", [])
+    if reset:
+        win.statusBar().showMessage("Damaged settings were reset to their defaults: " + ", ".join(reset) + ".",
+                                    15000)
+    try:
+        if win.sessions.offer_recovery():
+            return win
+    except Exception as err:  # noqa: BLE001 - a start-up step that fails must not stop the program
+        dialogs.error_box(win, "Recovery failed", f"Autosaved work could not be offered ({type(err).__name__}: "
+                          f"{err}). Ballast starts without it; the recovery files are left in "
+                          f"{win.sessions.recovery_dir}.")
+    try:
+        if args.file:
+            win.open_path(args.file)
+        elif args.samples:
+            win.open_sample_picker()
+        else:
+            first = first_sample_set()
+            if first:
+                win.open_path(first)
+    except Exception as err:  # noqa: BLE001 - as above: report, keep the (empty) window
+        dialogs.error_box(win, "Cannot open the file", f"{args.file or 'The first sample set'} could not be "
+                          f"opened ({type(err).__name__}: {err}).")
     return win
 
 

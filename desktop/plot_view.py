@@ -24,8 +24,6 @@ from pyqtgraph.Qt import internals as pg_internals
 from PySide6.QtCore import QLineF, QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QBrush, QColor, QPainter, QPen, QPixmap
 
-from fitcore.work import curve_grid
-
 from .commands import MaskCommand
 from .document import Document
 
@@ -560,8 +558,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         # gross outlier does not squash all the others onto a line.
         self.resid_standardised = True
         self._resid_shown_standardised = True
-        self.resid_arrows = pg.ScatterPlotItem(size=9, useCache=False, pen=pg.mkPen(60, 60, 60),
-                                               brush=pg.mkBrush(60, 60, 60))
+        self.resid_arrows = pg.ScatterPlotItem(size=9, pen=pg.mkPen(60, 60, 60), brush=pg.mkBrush(60, 60, 60))
         self.resid_plot.addItem(self.resid_arrows)
         self.resid_plot.setLabel("left", "residual")
         self.stale_text = pg.TextItem("", color=(200, 30, 45), anchor=(0, 0))
@@ -823,9 +820,13 @@ class PlotView(pg.GraphicsLayoutWidget):
             self._set_residual_points()
             self._mark_stale()
             return
-        grid = curve_grid(m.x, log_x=self.log_x)
-        if grid.size == 0:
+        xs = m.x[np.isfinite(m.x)]
+        if self.log_x:
+            xs = xs[xs > 0]
+        if xs.size == 0:
             return
+        lo, hi = float(xs.min()), float(xs.max())
+        grid = np.geomspace(lo, hi, 400) if self.log_x and lo > 0 and hi > lo else np.linspace(lo, hi, 400)
         with np.errstate(all="ignore"):
             try:
                 yhat = np.asarray(res.predict(grid), float)

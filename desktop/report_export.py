@@ -19,6 +19,7 @@ measurement file is never written: every export refuses to overwrite it.
 """
 from __future__ import annotations
 
+import base64
 import datetime as _dt
 import html
 import math
@@ -27,21 +28,18 @@ from pathlib import Path
 
 import numpy as np
 from pyqtgraph import functions as fn
-from PySide6.QtCore import QByteArray, QMarginsF, QMimeData, QObject, QPointF, QRectF, QSizeF, Qt
-from PySide6.QtGui import (
-    QAbstractTextDocumentLayout, QBrush, QGuiApplication, QImage, QPageLayout, QPageSize, QPainter,
-    QPen, QTextCharFormat, QTextDocument, QTextFormat, QTextObjectInterface,
+from PySide6.QtCore import (
+    QBuffer, QByteArray, QIODevice, QMarginsF, QMimeData, QPointF, QSizeF, Qt, QUrl,
 )
-from PySide6.QtSvg import QSvgRenderer
+from PySide6.QtGui import (
+    QBrush, QGuiApplication, QImage, QPageLayout, QPageSize, QPainter, QPen, QTextDocument,
+)
 from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from .estimates_view import fmt_value
 from fitcore.report import DataRecord, format_interval, method_statement
-from fitcore.work import curve_grid
-from fitcore.report_plot import LEGEND_TEXT, plot_svg
-from fitcore.report_text import signoff_html
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -51,12 +49,8 @@ CURVE_POINTS = 1001
 REPORT_MAX_ROWS = 2000
 PDF_MAX_ROWS = 500
 #: default pixel size of the report's plot images
-REPORT_PLOT_SIZE = (900, 620)
-#: what stands for the plot in the HTML a QTextDocument lays out (replaced by an object
-#: that paints the SVG, so the PDF's plot is vector)
-PLOT_MARK = "[[ballast-report-plot]]"
-#: the sign-off names, remembered in the window's settings
-SIGNOFF_KEYS = ("analyst", "reviewer", "review_date")
+REPORT_PLOT_SIZE = (900, 430)
+REPORT_RESID_SIZE = (900, 220)
 
 #: (key, menu text, fitcore format, full precision)
 COPY_FORMATS = (
@@ -69,7 +63,9 @@ COPY_FORMATS = (
     ("html", "&HTML and plain text (rich-text editors)", "html", False),
 )
 
-LEGEND = LEGEND_TEXT  # the report plot's key (fitcore.report_plot)
+LEGEND = ("Filled circles: points used, their size growing with the robust weight; "
+          "orange: down-weighted (weight below 0.5); grey crossed rings: excluded by "
+          "the analyst. Line: fitted curve; shaded: {pct} pointwise confidence band.")
 
 
 # ============================================================================ hooks
@@ -77,27 +73,6 @@ def ask_save_path(parent, title: str, start: str, filt: str) -> str:
     """A file name to write, or "" when cancelled (tests replace this function)."""
     path, _ = QFileDialog.getSaveFileName(parent, title, start, filt)
     return path
-
-
-def ask_signoff(parent, current: dict):
-    """The sign-off names as a dict (analyst, reviewer, review_date), or None when
-    cancelled (tests replace this function)."""
-    from PySide6.QtWidgets import QDialog, QDialogButtonBox, QFormLayout, QLineEdit
-
-    dlg = QDialog(parent)
-    dlg.setWindowTitle("Report sign-off")
-    form = QFormLayout(dlg)
-    edits = {}
-    for key, label in zip(SIGNOFF_KEYS, ("Analyst", "Reviewer", "Date of review")):
-        edits[key] = QLineEdit(current.get(key, ""))
-        form.addRow(label, edits[key])
-    buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
-    buttons.accepted.connect(dlg.accept)
-    buttons.rejected.connect(dlg.reject)
-    form.addRow(buttons)
-    if dlg.exec() != QDialog.Accepted:
-        return None
-    return {k: e.text().strip() for k, e in edits.items()}
 
 
 def ask_plot_size(parent, width: int, height: int):
@@ -171,6 +146,15 @@ def _g(x, digits: int = 6) -> str:
 
 def _plural(n: int, word: str) -> str:
     return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+def _image_png_b64(img: QImage) -> str:
+    ba = QByteArray()
+    buf = QBuffer(ba)
+    buf.open(QIODevice.WriteOnly)
+    img.save(buf, "PNG")
+    buf.close()
+    return base64.b64encode(bytes(ba)).decode("ascii")
 
 
 def _same_file(a: str, b: str) -> bool:
@@ -299,6 +283,15 @@ def plot_image(window, width: int, height: int) -> QImage:
         ex.close()
 
 
+def _single_plot_image(window, which: str, width: int, height: int) -> QImage:
+    ex = _ExportPlot(window, width, height)
+    try:
+        item = ex.view.data_plot if which == "data" else ex.view.resid_plot
+        return ex.item_image(item, width, height)
+    finally:
+        ex.close()
+
+
 def write_plot_svg(window, path, width: int, height: int) -> None:
     """The plot as SVG at ``width`` x ``height`` (pyqtgraph's SVG exporter)."""
     from PySide6.QtCore import QRect, QRectF, QSize
@@ -329,66 +322,6 @@ def write_plot_svg(window, path, width: int, height: int) -> None:
         os.replace(tmp, str(path))
     finally:
         ex.close()
-
-
-# ============================================================================ PDF
-_SVG_OBJECT = QTextFormat.UserObject + 1
-_SVG_DATA = QTextFormat.UserProperty + 1
-#: layout width of the PDF page in CSS-like pixels (the report's plot is 900 wide)
-PDF_LAYOUT_WIDTH = 960
-FOOTER_HEIGHT = 28
-
-
-def page_footer(page: int, pages: int) -> str:
-    """The foot of every PDF page: ``"page 2 of 3"``."""
-    return f"page {page} of {pages}"
-
-
-class _SvgObject(QObject, QTextObjectInterface):
-    """Paints an SVG kept in a text format (the report's plot) as vector graphics."""
-
-    def intrinsicSize(self, doc, pos, fmt):
-        r = QSvgRenderer(fmt.property(_SVG_DATA))
-        return QSizeF(r.defaultSize())
-
-    def drawObject(self, painter, rect, doc, pos, fmt):
-        QSvgRenderer(fmt.property(_SVG_DATA)).render(painter, rect)
-
-
-def print_paged(tdoc: QTextDocument, printer, title: str = "") -> int:
-    """Print ``tdoc`` page by page with ``title`` and "page X of Y" at the foot of each
-    page; returns the number of pages."""
-    painter = QPainter()
-    if not painter.begin(printer):
-        raise OSError("could not start the PDF printer")
-    try:
-        page = printer.pageLayout().paintRectPixels(printer.resolution())
-        scale = page.width() / PDF_LAYOUT_WIDTH
-        body_h = page.height() / scale - FOOTER_HEIGHT
-        tdoc.setPageSize(QSizeF(PDF_LAYOUT_WIDTH, body_h))
-        pages = tdoc.pageCount()
-        layout = tdoc.documentLayout()
-        for k in range(pages):
-            if k:
-                printer.newPage()
-            painter.save()
-            painter.scale(scale, scale)
-            painter.translate(0, -k * body_h)
-            ctx = QAbstractTextDocumentLayout.PaintContext()
-            ctx.clip = QRectF(0, k * body_h, PDF_LAYOUT_WIDTH, body_h)
-            painter.setClipRect(ctx.clip)
-            layout.draw(painter, ctx)
-            painter.restore()
-            painter.save()
-            painter.scale(scale, scale)
-            painter.setPen(QPen(Qt.darkGray))
-            foot = QRectF(0, body_h + 6, PDF_LAYOUT_WIDTH, FOOTER_HEIGHT - 6)
-            painter.drawText(foot, int(Qt.AlignLeft | Qt.AlignVCenter), title)
-            painter.drawText(foot, int(Qt.AlignRight | Qt.AlignVCenter), page_footer(k + 1, pages))
-            painter.restore()
-    finally:
-        painter.end()
-    return pages
 
 
 # ============================================================================ exporter
@@ -436,33 +369,6 @@ class ReportExporter:
         sessions = getattr(self.window, "sessions", None)
         sha = getattr(sessions, "source_sha256", "") if sessions is not None else ""
         return DataRecord.from_data(self.document.measurements, sha256=sha or "")
-
-    def signoff(self) -> dict:
-        """The sign-off names (analyst, reviewer, date of review) remembered in the
-        window's settings; blank when never typed (the report prints blank lines)."""
-        qs = getattr(self.window, "qsettings", None)
-        if qs is None:
-            return {k: "" for k in SIGNOFF_KEYS}
-        return {k: str(qs.value(f"report/{k}", "") or "") for k in SIGNOFF_KEYS}
-
-    def set_signoff(self, analyst=None, reviewer=None, review_date=None) -> dict:
-        """Remember sign-off names (None keeps a field); asked once, printed in every report."""
-        qs = getattr(self.window, "qsettings", None)
-        if qs is None:
-            return self.signoff()
-        for k, v in zip(SIGNOFF_KEYS, (analyst, reviewer, review_date)):
-            if v is not None:
-                qs.setValue(f"report/{k}", " ".join(str(v).split()))
-        qs.sync()
-        return self.signoff()
-
-    def edit_signoff(self) -> bool:
-        """Ask for the sign-off names (the menu action); False when cancelled."""
-        got = ask_signoff(self.window, self.signoff())
-        if got is None:
-            return False
-        self.set_signoff(**got)
-        return True
 
     def _units(self):
         m = self.document.measurements
@@ -573,9 +479,13 @@ class ReportExporter:
 
     # ------------------------------------------------------------------ CSV
     def curve_grid(self, n: int = CURVE_POINTS) -> np.ndarray:
+        m = self.document.measurements
+        xs = m.x[np.isfinite(m.x)]
+        lo, hi = float(xs.min()), float(xs.max())
         plot = getattr(self.window, "plot", None)
-        return curve_grid(self.document.measurements.x, n,
-                          log_x=plot is not None and plot.log_x)
+        if plot is not None and plot.log_x and lo > 0 and hi > lo:
+            return np.geomspace(lo, hi, n)
+        return np.linspace(lo, hi, n)
 
     def write_curve_csv(self, path=None) -> str:
         """Fitted curve and confidence band on a fine grid over the data's x range."""
@@ -666,18 +576,19 @@ class ReportExporter:
         now = _dt.datetime.now().astimezone().isoformat(timespec="seconds")
         src = m.source or "(not from a file)"
 
-        # the plot is drawn from the data (fitcore.report_plot), never from the window
-        # (no selection halo, no zoom state): vector SVG in the HTML and in the PDF
-        plot = getattr(self.window, "plot", None)
-        svg = plot_svg(res, x_label=m.label("x"), y_label=m.label("y"), level=LEVEL,
-                       log_x=bool(getattr(plot, "log_x", False)),
-                       width=REPORT_PLOT_SIZE[0], height=REPORT_PLOT_SIZE[1])
-        if images == "embed":
-            plot_html = svg
-        else:  # QTextDocument: an object that paints the SVG (see PLOT_MARK)
-            if resources is not None:
-                resources[PLOT_MARK] = svg
-            plot_html = PLOT_MARK
+        imgs = {"plot": _single_plot_image(self.window, "data", *REPORT_PLOT_SIZE),
+                "residuals": _single_plot_image(self.window, "resid", *REPORT_RESID_SIZE)}
+
+        def img(key, alt):
+            im = imgs[key]
+            w = im.width()
+            if images == "embed":
+                url = "data:image/png;base64," + _image_png_b64(im)
+            else:
+                url = f"report:{key}.png"
+                if resources is not None:
+                    resources[url] = im
+            return f'<img src="{url}" width="{w}" alt="{_h(alt)}">'
 
         out = [
             "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
@@ -718,8 +629,10 @@ class ReportExporter:
         out += [
                 f'<p class="caution"><b>Caution.</b> {_h(CAUTION)}</p>']
 
-        out += ["<h2>Plot</h2>", f"<p>{plot_html}</p>",
-                f'<p class="small">{_h(LEGEND_TEXT.format(pct=pct))}</p>']
+        out += ["<h2>Plot</h2>", "<p>" + img("plot", "data, fitted curve and band") + "</p>",
+                "<p>" + img("residuals", "residuals") + "</p>",
+                f'<p class="small">{_h(LEGEND.format(pct=pct))} Lower panel: residuals '
+                "y − fitted.</p>"]
 
         est = self.estimates("html", res=res)
         out += ["<h2>Estimates</h2>",
@@ -775,8 +688,7 @@ class ReportExporter:
                        "export holds all of them.</p>")
         sig_head = "<th>u(y)</th>" if m.sigma is not None else ""
         out += ['<table border="1" cellspacing="0" cellpadding="2" class="points">',
-                f"<tr><th>{'row' if m.source_rows is not None else '#'}</th>"
-                f"<th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
+                f"<tr><th>#</th><th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
                 "<th>fitted</th><th>residual</th><th>std. residual</th><th>weight</th>"
                 "<th>status</th><th>reason</th></tr>"]
         reasons = doc.reasons
@@ -785,16 +697,14 @@ class ReportExporter:
                    "down-weighted": ' class="down" bgcolor="#fff8dc"'}.get(status[i], "")
             sig = f'<td class="num">{_g(m.sigma[i])}</td>' if m.sigma is not None else ""
             out.append(
-                f'<tr{cls}><td class="num">{fr if (fr := m.file_row(i)) is not None else i + 1}</td>'
-                f'<td class="num">{_g(m.x[i])}</td>'
+                f'<tr{cls}><td class="num">{i + 1}</td><td class="num">{_g(m.x[i])}</td>'
                 f'<td class="num">{_g(m.y[i])}</td>{sig}<td class="num">{_g(res.fitted[i])}</td>'
                 f'<td class="num">{_g(res.residuals[i], 4)}</td>'
                 f'<td class="num">{_g(res.std_residuals[i], 3)}</td>'
                 f'<td class="num">{float(res.weights[i]):.3f}</td><td>{status[i]}</td>'
                 f"<td>{_h(reasons[i]) if status[i] == 'excluded' else ''}</td></tr>")
         out.append("</table>")
-        out += ["<h2>Sign-off</h2>", signoff_html(**self.signoff()),
-                f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
+        out += [f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
                 "</body></html>"]
         return "\n".join(out) + "\n"
 
@@ -870,30 +780,19 @@ class ReportExporter:
         return path if self._write_text(path, text, "report") else ""
 
     def text_document(self, res=None) -> QTextDocument:
-        """The report as a ``QTextDocument`` (what the PDF prints); the plot is an
-        object that paints its SVG (vector), not an image."""
+        """The report as a ``QTextDocument`` (what the PDF prints)."""
         resources: dict = {}
         text = self.report_html(res, images="resource", resources=resources,
                                 max_rows=PDF_MAX_ROWS)
         tdoc = QTextDocument()
         tdoc.setDefaultStyleSheet("")
+        for url, im in resources.items():
+            tdoc.addResource(QTextDocument.ImageResource, QUrl(url), im)
         tdoc.setHtml(text)
-        svg = resources.get(PLOT_MARK)
-        if svg:
-            handler = _SvgObject(tdoc)
-            tdoc.documentLayout().registerHandler(_SVG_OBJECT, handler)
-            tdoc._svg_handler = handler  # kept alive with the document
-            cur = tdoc.find(PLOT_MARK)
-            if not cur.isNull():
-                fmt = QTextCharFormat()
-                fmt.setObjectType(_SVG_OBJECT)
-                fmt.setProperty(_SVG_DATA, QByteArray(svg.encode("utf-8")))
-                cur.insertText("\ufffc", fmt)
         return tdoc
 
     def write_pdf(self, path=None) -> str:
-        """The report as PDF through Qt's printing (A4, no external program): vector
-        plot, "page X of Y" at the foot of every page."""
+        """The report as PDF through Qt's printing (A4, no external program)."""
         from PySide6.QtPrintSupport import QPrinter
 
         res = self._result("write a report")
@@ -913,8 +812,9 @@ class ReportExporter:
             printer.setCreator("Ballast")
             with _busy():
                 tdoc = self.text_document(res)
-                self.pages_printed = print_paged(tdoc, printer, os.path.basename(
-                    self.document.measurements.source or "Ballast report"))
+                # lay the page out at a screen-like width so the 900 px plots fit the page
+                tdoc.setPageSize(QSizeF(960, 960 * 297 / 210))
+                tdoc.print_(printer)
             del printer
             if not os.path.isfile(tmp) or os.path.getsize(tmp) == 0:
                 raise OSError("Qt's PDF printer wrote nothing")
@@ -944,7 +844,6 @@ class ReportExporter:
 
         act(menu, "Write &report (HTML)...", self.write_html, "Ctrl+R")
         act(menu, "Write report as P&DF...", self.write_pdf, "Ctrl+Shift+R")
-        act(menu, "Report &sign-off names...", self.edit_signoff)
         sub = menu.addMenu("E&xport")
         act(sub, "Fitted &curve and band (CSV)...", self.write_curve_csv)
         act(sub, "&Residuals and weights per point (CSV)...", self.write_points_csv)

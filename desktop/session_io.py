@@ -200,8 +200,9 @@ def write_session(path, session, view: dict | None = None) -> Path:
     return save_session_text(path, session_json(session, view))
 
 
-def write_recovery_with_view(session, folder, for_path=None, view: dict | None = None) -> Path:
-    """:func:`fitcore.session.write_recovery`, keeping the view too."""
+def write_recovery_with_view(session, folder, for_path=None, view: dict | None = None, target=None) -> Path:
+    """:func:`fitcore.session.write_recovery`, keeping the view too (into ``target``
+    when given: a window's own recovery file)."""
     from fitcore.session import SessionError, recovery_path
 
     folder = Path(folder)
@@ -211,14 +212,16 @@ def write_recovery_with_view(session, folder, for_path=None, view: dict | None =
         raise SessionError(f"could not create the recovery folder {folder}: "
                            f"{exc.strerror or exc}") from None
     session.saved_as = "" if for_path is None else str(Path(for_path).expanduser().absolute())
-    return write_session(recovery_path(for_path, folder), session, view)
+    return write_session(target or recovery_path(for_path, folder), session, view)
 
 
 def read_view(path) -> dict | None:
     """The ``"view"`` stored in a session file, or None when it has none (older files)."""
+    from fitcore.session import SessionError, load_json_bounded, read_bounded_file
+
     try:
-        doc = json.loads(Path(path).read_bytes().decode("utf-8-sig"))
-    except (OSError, ValueError, RecursionError):
+        doc = load_json_bounded(read_bounded_file(path).decode("utf-8-sig"))
+    except (SessionError, UnicodeDecodeError):
         return None
     if not isinstance(doc, dict) or "view" not in doc:
         return None
@@ -255,6 +258,15 @@ class SessionManager(QObject):
         self._forget_recovery = False  # the user chose to discard the work on screen
         self.source_sha256 = ""
         self.last_recovery: Path | None = None
+        from fitcore.session import new_recovery_owner, window_recovery_path
+
+        #: this window's own recovery file (with a lock naming this process); a window
+        #: never deletes another running window's file
+        self.own_recovery = window_recovery_path(self.recovery_dir, new_recovery_owner())
+        self._claimed = False
+        #: after a restore: the path the crashed work was saved to, offered (not used) at
+        #: the next save; a recovery file is not trusted to name where to write
+        self.suggested_path: str | None = None
         self.last_check: bool | None = None  # did the reopened session reproduce?
         self._applying = False
         self._verify = None  # (stored session, generation) awaiting the refit
@@ -284,7 +296,9 @@ class SessionManager(QObject):
             self._check_reproduced()
         elif not self._applying:
             self.dirty = True
-        if self.dirty and self.document.has_data and not self._applying:
+        # autosave at most autosave_ms after the first unsaved change: the timer is not
+        # restarted by later changes (a steady stream of edits would postpone it forever)
+        if self.has_unsaved_work() and not self._applying and not self._timer.isActive():
             self._timer.start()
 
     @staticmethod
@@ -348,7 +362,7 @@ class SessionManager(QObject):
         return self.save_to(self.path)
 
     def save_as(self) -> bool:
-        start = self.path or self._suggest_name()
+        start = self.path or self.suggested_path or self._suggest_name()
         path = ask_save_path(self.window, start)
         if not path:
             return False
@@ -364,7 +378,7 @@ class SessionManager(QObject):
 
     def save_to(self, path) -> bool:
         """Write the session to ``path`` atomically; a failure says why, loses nothing."""
-        from fitcore.session import SessionError, discard_recovery, recovery_path
+        from fitcore.session import SessionError
 
         if not self.document.has_data:
             dialogs.error_box(self.window, "Nothing to save", "Open measurements first.")
@@ -383,14 +397,12 @@ class SessionManager(QObject):
         except (SessionError, OSError) as err:
             dialogs.error_box(self.window, "Cannot save the session", str(err))
             return False
-        old = self.path
         self.path = path
         self.dirty = False
         self.modified = False
         self._timer.stop()
-        for p in {recovery_path(old, self.recovery_dir), recovery_path(None, self.recovery_dir),
-                  recovery_path(path, self.recovery_dir)}:
-            discard_recovery(p)
+        self.suggested_path = None
+        self.discard_recovery()  # this window's own file only; other windows' files stay
         self._title()
         add = getattr(self.window, "_add_recent", None)
         if add is not None:
@@ -495,66 +507,85 @@ class SessionManager(QObject):
         """Write the recovery file now (normally called by the debounce timer)."""
         from fitcore.session import SessionError
 
-        if not self.document.has_data or not self.dirty:
+        from fitcore.session import claim_recovery
+
+        if not self.has_unsaved_work():  # nothing a crash could lose: no recovery file
             return None
         try:
             session = document_to_session(self.document, source_sha256=self.source_sha256)
+            if not self._claimed:
+                claim_recovery(self.own_recovery)  # the lock first: never seen as orphaned
+                self._claimed = True
             self.last_recovery = write_recovery_with_view(session, self.recovery_dir,
-                                                          for_path=self.path,
-                                                          view=window_view(self.window))
+                                                          for_path=self.path or self.suggested_path,
+                                                          view=window_view(self.window),
+                                                          target=self.own_recovery)
         except (SessionError, OSError) as err:
             self._status(f"Autosave failed: {err}", 15000)
             return None
         return self.last_recovery
 
     def discard_recovery(self):
-        from fitcore.session import discard_recovery, recovery_path
+        """Delete this window's own recovery file and lock (never another window's)."""
+        from fitcore.session import release_recovery
 
         self._timer.stop()
-        discard_recovery(recovery_path(self.path, self.recovery_dir))
-        if self.last_recovery is not None:
-            discard_recovery(self.last_recovery)
+        release_recovery(self.own_recovery)
+        self._claimed = False
 
     def offer_recovery(self) -> bool:
-        """Offer to restore work a crash left behind; True if restored.
+        """Offer to restore work that crashed windows left behind; True if restored.
 
-        The newest readable recovery file is offered. Declined: all recovery files are
-        removed. An unreadable one is reported and left in place for inspection.
+        Only orphaned recovery files are offered (their window no longer runs); the files
+        of running windows are never read, offered or deleted. Each orphan is offered in
+        turn, newest first: Restore loads it into this window (it then lives on as this
+        window's own recovery file), Discard deletes that one. An unreadable one is
+        reported and set aside as ``<name>.damaged`` so it is not offered again.
+        Leftover temporary files of dead writers are removed first.
         """
-        from fitcore.session import SessionError, discard_recovery, find_recovery, load_session
+        from fitcore.session import (
+            SessionError,
+            clean_debris,
+            load_session,
+            orphaned_recovery,
+            release_recovery,
+            set_aside_damaged,
+        )
 
-        files = find_recovery(self.recovery_dir)
-        if not files:
-            return False
-        newest = files[0]
-        try:
-            session = load_session(newest)
-        except SessionError as err:
-            dialogs.error_box(self.window, "Cannot read the recovery file",
-                              f"{err}\nThe file is left at {newest}.")
-            return False
-        what = (f"for {os.path.basename(session.saved_as)}" if session.saved_as
-                else "that was never saved")
-        src = os.path.basename(session.source_file) if session.source_file else "pasted data"
-        text = (f"Ballast found work {what}, autosaved at {session.created or 'an unknown time'} "
-                f"({dialogs.counted(session.n_points, 'point')} from {src}, "
-                f"{len(session.exclusions)} excluded). "
-                "It was probably left by a crash. Restore it?")
-        if not ask_restore(self.window, text):
-            for f in files:
-                discard_recovery(f)
-            return False
-        if not self._show(session, "recovered work", read_view(newest)):
-            return False
-        self.path = session.saved_as or None
-        self.dirty = True  # recovered work is not saved yet
-        self.modified = True
-        self._title()
-        self.autosave()  # keep it safe under its own name until saved
-        for f in files:
-            if self.last_recovery is None or f.resolve() != self.last_recovery.resolve():
-                discard_recovery(f)
-        return True
+        clean_debris(self.recovery_dir)
+        for orphan in orphaned_recovery(self.recovery_dir):
+            try:
+                session = load_session(orphan)
+            except SessionError as err:
+                moved = set_aside_damaged(orphan)
+                where = (f"It was renamed to {moved} and will not be offered again."
+                         if moved else f"It is left at {orphan}.")
+                dialogs.error_box(self.window, "Cannot read the recovery file", f"{err}\n{where}")
+                continue
+            what = (f"for {os.path.basename(session.saved_as)}" if session.saved_as
+                    else "that was never saved")
+            src = os.path.basename(session.source_file) if session.source_file else "pasted data"
+            text = (f"Ballast found work {what}, autosaved at {session.created or 'an unknown time'} "
+                    f"({dialogs.counted(session.n_points, 'point')} from {src}, "
+                    f"{len(session.exclusions)} excluded). "
+                    "It was probably left by a crash. Restore it?")
+            if not ask_restore(self.window, text):
+                release_recovery(orphan)
+                continue
+            if not self._show(session, "recovered work", read_view(orphan)):
+                return False
+            self.path = None  # the stored path is a suggestion: Save asks where to write
+            self.suggested_path = session.saved_as or None
+            self.dirty = True  # recovered work is not saved yet
+            self.modified = True
+            self.autosave()  # safe under this window's own name until saved
+            if self.last_recovery is not None and self.last_recovery.exists():
+                release_recovery(orphan)
+            if self.suggested_path:
+                self._status(f"Recovered work for {os.path.basename(self.suggested_path)}; Save asks where to "
+                             "save it (the recovered file is not overwritten without asking).", 15000)
+            return True
+        return False
 
     # ------------------------------------------------------------------ closing
     def confirm_close(self) -> bool:

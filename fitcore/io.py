@@ -1010,10 +1010,16 @@ def _convert_column(col, n: int, decimal: str):
     if decimal == ",":
         as_text = col.astype(str)
         has_point = as_text.str.contains(".", regex=False).to_numpy(dtype=bool)
-        quick = pd.to_numeric(as_text.str.replace(",", ".", regex=False), errors="coerce")
+        try:
+            quick = pd.to_numeric(as_text.str.replace(",", ".", regex=False), errors="coerce")
+        except (OverflowError, ValueError, TypeError):
+            quick = np.full(n, np.nan)
     else:
         has_point = np.zeros(n, bool)
-        quick = pd.to_numeric(col, errors="coerce")
+        try:
+            quick = pd.to_numeric(col, errors="coerce")
+        except (OverflowError, ValueError, TypeError):  # e.g. a 400-digit integer: cell by cell below
+            quick = np.full(n, np.nan)
     quick = np.asarray(quick, dtype=float)
     ok = np.isfinite(quick) & ~has_point
     values = np.where(ok, quick, np.nan)
@@ -1026,7 +1032,10 @@ def _convert_column(col, n: int, decimal: str):
             empty_rows.append(i)
             continue
         if isinstance(cell, (int, float, np.floating, np.integer)) and not isinstance(cell, bool):
-            v = float(cell)
+            try:
+                v = float(cell)
+            except OverflowError:  # an integer beyond the float range: reported as not finite
+                v = math.inf
             grouped = False
         else:
             s = str(cell)

@@ -59,6 +59,8 @@ __all__ = [
     "find_recovery",
     "recovery_for",
     "discard_recovery",
+    "load_json_bounded",
+    "read_bounded_file",
 ]
 
 FORMAT_TAG = "ballast-session"
@@ -679,10 +681,71 @@ def session_from_dict(doc, where: str = "session") -> Session:
     )
 
 
-def session_from_json(text: str, where: str = "session") -> Session:
-    """Parse JSON text into a :class:`Session` (data only; nothing is executed)."""
+#: Bounds of :func:`load_json_bounded` (a session is a few levels deep; its numbers
+#: are floats written with repr, at most 17 significant digits).
+MAX_SESSION_BYTES = 256 * 1024 * 1024
+MAX_JSON_DEPTH = 64
+MAX_INT_DIGITS = 40
+_JSON_TOKEN_RE = None
+
+
+def _json_depth(text: str, limit: int) -> int:
+    """Deepest nesting of [ and { outside strings; stops counting past ``limit``."""
+    global _JSON_TOKEN_RE
+    if _JSON_TOKEN_RE is None:
+        import re
+
+        _JSON_TOKEN_RE = re.compile(r'"(?:[^"\\]|\\.)*"|[\[\]{}]')
+    depth = deepest = 0
+    for m in _JSON_TOKEN_RE.finditer(text):
+        ch = m.group()
+        if ch in "[{":
+            depth += 1
+            if depth > deepest:
+                deepest = depth
+                if deepest > limit:
+                    return deepest
+        elif ch in "]}":
+            depth -= 1
+    return deepest
+
+
+def load_json_bounded(text: str, where: str = "session", *, max_bytes: int | None = None,
+                      max_depth: int | None = None, max_int_digits: int | None = None):
+    """Decode JSON text with bounds on size, nesting depth and integer length.
+
+    Every failure is a :class:`SessionError` naming ``where`` and the bound: text that
+    is not JSON, nesting deeper than ``max_depth`` (a 1 KB file of 995 brackets would
+    otherwise raise RecursionError), an integer of more than ``max_int_digits`` digits
+    (a 400-digit integer would raise OverflowError when read as a float), text longer
+    than ``max_bytes`` characters. Used for every session and recovery file.
+    """
+    max_bytes = MAX_SESSION_BYTES if max_bytes is None else max_bytes
+    max_depth = MAX_JSON_DEPTH if max_depth is None else max_depth
+    max_int_digits = MAX_INT_DIGITS if max_int_digits is None else max_int_digits
+    if not isinstance(text, str):
+        raise SessionError(f"{where}: not a Ballast session (no text)")
+    if len(text) > max_bytes:
+        raise SessionError(f"{where}: the file is {len(text):,} characters long, more than the "
+                           f"{max_bytes:,} a session may have")
+    depth = _json_depth(text, max_depth)
+    if depth > max_depth:
+        raise SessionError(f"{where}: not a Ballast session - the JSON is nested too deeply "
+                           f"(more than {max_depth} levels; a session has about 5)")
+
+    def parse_int(digits: str):
+        n = len(digits.lstrip("+-"))
+        if n > max_int_digits:
+            raise SessionError(f"{where}: the file holds an integer with {n:,} digits; a session's "
+                               f"numbers have at most {max_int_digits} digits")
+        return int(digits)
+
+    def parse_constant(name: str):
+        raise SessionError(f"{where}: the file holds {name}, which is not JSON "
+                           "(non-finite numbers are written as \"nan\", \"inf\", \"-inf\")")
+
     try:
-        doc = json.loads(text)
+        return json.loads(text, parse_int=parse_int, parse_constant=parse_constant)
     except json.JSONDecodeError as exc:
         raise SessionError(
             f"{where}: not a Ballast session - the file is not valid JSON "
@@ -691,7 +754,59 @@ def session_from_json(text: str, where: str = "session") -> Session:
     except RecursionError:
         raise SessionError(f"{where}: not a Ballast session - the JSON is nested too deeply") \
             from None
-    return session_from_dict(doc, where)
+    except (ValueError, OverflowError) as exc:  # e.g. a float literal too long to convert
+        raise SessionError(f"{where}: not a Ballast session - {exc}") from None
+
+
+def session_from_json(text: str, where: str = "session") -> Session:
+    """Parse JSON text into a :class:`Session` (data only; nothing is executed)."""
+    doc = load_json_bounded(text, where)
+    try:
+        return session_from_dict(doc, where)
+    except SessionError:
+        raise
+    except (ValueError, TypeError, OverflowError, KeyError, IndexError, RecursionError) as exc:
+        # a field the checks above let through in an unexpected shape: still a plain message
+        raise SessionError(f"{where}: the session holds a value Ballast cannot use "
+                           f"({type(exc).__name__}: {str(exc)[:200]})") from None
+
+
+def read_bounded_file(path, what: str = "session file", max_bytes: int | None = None) -> bytes:
+    """The bytes of a regular file of at most ``max_bytes`` (default MAX_SESSION_BYTES).
+
+    A FIFO or device is refused without blocking; every failure is a SessionError.
+    """
+    import stat as _stat
+
+    path = Path(path)
+    limit = MAX_SESSION_BYTES if max_bytes is None else max_bytes
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    except FileNotFoundError:
+        raise SessionError(f"the {what} {path} does not exist") from None
+    except OSError as exc:
+        raise SessionError(f"could not read the {what} {path}: {exc.strerror or exc}") from None
+    try:
+        st = os.fstat(fd)
+        if not _stat.S_ISREG(st.st_mode):
+            raise SessionError(f"the {what} {path} is not a regular file (a folder, pipe or device)")
+        if st.st_size > limit:
+            raise SessionError(f"the {what} {path} is {st.st_size:,} bytes, more than the {limit:,} "
+                               "a session may have")
+        chunks, total = [], 0
+        while True:
+            chunk = os.read(fd, 1 << 20)
+            if not chunk:
+                break
+            total += len(chunk)
+            if total > limit:
+                raise SessionError(f"the {what} {path} is more than {limit:,} bytes")
+            chunks.append(chunk)
+        return b"".join(chunks)
+    except OSError as exc:
+        raise SessionError(f"could not read the {what} {path}: {exc.strerror or exc}") from None
+    finally:
+        os.close(fd)
 
 
 # ============================================================================ files
@@ -709,20 +824,49 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def write_atomically(path, data: bytes) -> None:
+def _umask() -> int:
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    old = os.umask(0o022)
+    os.umask(old)
+    return old
+
+
+def write_atomically(path, data: bytes, verify=None) -> None:
     """Write ``data`` to ``path`` so that a crash leaves the old file or the new one,
-    complete: a temporary file in the same folder, flushed and fsync-ed, moved over
-    ``path`` with :func:`os.replace`, then the folder fsync-ed. Raises OSError."""
+    complete: a temporary file in the same folder, flushed and fsync-ed, checked by
+    ``verify(temporary_path)`` when given (it raises ValueError or OSError when the
+    file is not what it should be), moved over ``path`` with :func:`os.replace`, then
+    the folder fsync-ed. Raises OSError (a failed check as OSError too).
+
+    A symbolic link is written through (its target is replaced, the link stays). A new
+    file gets the mode the umask allows (0666 & ~umask); a replaced file keeps its mode.
+    The temporary file is ``.<name>.<pid>.<random>.tmp``; :func:`clean_debris` removes
+    those of dead processes, and each write first removes its own target's debris.
+    """
     path = Path(path)
+    if path.is_symlink():
+        path = Path(os.path.realpath(path))
     folder = path.parent
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+    clean_debris(folder, path.name)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".tmp", dir=folder)
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        if verify is not None:
+            try:
+                verify(tmp)
+            except (ValueError, OSError) as exc:
+                raise OSError(f"the written file did not check out ({exc}); the old file is kept") from None
         try:
-            mode = path.stat().st_mode & 0o777 if path.exists() else 0o644
+            mode = path.stat().st_mode & 0o777 if path.exists() else 0o666 & ~_umask()
             os.chmod(tmp, mode)
         except OSError:
             pass
@@ -776,13 +920,7 @@ def load_session(path) -> Session:
         Ballast, missing fields or fields of the wrong type.
     """
     path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except FileNotFoundError:
-        raise SessionError(f"the session file {path} does not exist") from None
-    except OSError as exc:
-        raise SessionError(f"could not read the session file {path}: {exc.strerror or exc}") \
-            from None
+    raw = read_bounded_file(path)
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
@@ -864,3 +1002,165 @@ def discard_recovery(path) -> None:
         Path(path).unlink()
     except FileNotFoundError:
         pass
+
+
+# ============================================================================ per-window recovery
+# Each running window owns one recovery file, ``window-<pid>-<token>.ballast.recovery``,
+# and beside it a lock ``window-<pid>-<token>.ballast.lock`` holding the owner's process
+# id, its start time (Linux: /proc/<pid>/stat) and host name, written before the first
+# recovery file. A recovery file is *orphaned* when its owner is gone (no lock, a dead
+# process, or a process id reused by another program); only orphaned files are offered
+# at start, and a window only ever deletes its own file (or an orphan it has restored or
+# the user declined). Files of another host (a shared folder) are never touched.
+LOCK_SUFFIX = ".ballast.lock"
+DAMAGED_SUFFIX = ".damaged"
+
+
+def process_start_time(pid: int) -> str:
+    """The start time of process ``pid`` in clock ticks since boot ("" where unknown)."""
+    try:
+        with open(f"/proc/{int(pid)}/stat", "rb") as fh:
+            stat_line = fh.read().decode("ascii", "replace")
+        return stat_line.rsplit(")", 1)[1].split()[19]
+    except (OSError, IndexError, ValueError):
+        return ""
+
+
+def process_alive(pid: int, start: str = "") -> bool:
+    """True when process ``pid`` runs (and, when ``start`` is given and known, is the
+    same process that had that start time: a reused process id is not the owner)."""
+    try:
+        pid = int(pid)
+    except (TypeError, ValueError):
+        return False
+    if pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        pass  # exists, owned by someone else
+    except OSError:
+        return False
+    if start:
+        now = process_start_time(pid)
+        if now and now != str(start):
+            return False
+    return True
+
+
+def _host() -> str:
+    import socket
+
+    try:
+        return socket.gethostname()
+    except OSError:
+        return ""
+
+
+def new_recovery_owner() -> str:
+    """An owner tag for one window: ``<pid>-<8 hex digits>``."""
+    import secrets
+
+    return f"{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def window_recovery_path(folder, owner: str) -> Path:
+    """The recovery file of the window with owner tag ``owner``."""
+    return Path(folder) / f"window-{owner}{RECOVERY_SUFFIX}"
+
+
+def recovery_lock_path(recovery_file) -> Path:
+    p = Path(recovery_file)
+    stem = p.name[: -len(RECOVERY_SUFFIX)] if p.name.endswith(RECOVERY_SUFFIX) else p.name
+    return p.with_name(stem + LOCK_SUFFIX)
+
+
+def claim_recovery(recovery_file) -> Path:
+    """Write the lock of ``recovery_file`` for this process (before the file itself)."""
+    lock = recovery_lock_path(recovery_file)
+    lock.parent.mkdir(parents=True, exist_ok=True)
+    info = {"pid": os.getpid(), "start": process_start_time(os.getpid()), "host": _host()}
+    write_atomically(lock, json.dumps(info).encode("utf-8"))
+    return lock
+
+
+def recovery_owner_alive(recovery_file) -> bool:
+    """True when the window that owns ``recovery_file`` still runs (or may: another host)."""
+    lock = recovery_lock_path(recovery_file)
+    try:
+        info = load_json_bounded(read_bounded_file(lock, "lock file", 4096).decode("utf-8", "replace"), "lock")
+    except SessionError:
+        return False  # no lock (an older Ballast, or a crash before it): orphaned
+    if not isinstance(info, dict):
+        return False
+    host = info.get("host")
+    if isinstance(host, str) and host and host != _host():
+        return True  # cannot check a process on another machine: leave its files alone
+    return process_alive(info.get("pid", 0), str(info.get("start", "") or ""))
+
+
+def orphaned_recovery(folder) -> list[Path]:
+    """Recovery files in ``folder`` whose owner is gone, newest first."""
+    return [p for p in find_recovery(folder) if not recovery_owner_alive(p)]
+
+
+def release_recovery(recovery_file) -> None:
+    """Delete a recovery file and its lock (the owner's own, or an orphan dealt with)."""
+    for p in (Path(recovery_file), recovery_lock_path(recovery_file)):
+        try:
+            p.unlink()
+        except FileNotFoundError:
+            pass
+        except OSError:
+            pass
+
+
+def set_aside_damaged(recovery_file) -> Path | None:
+    """Rename an unreadable recovery file to ``<name>.damaged`` (kept for inspection,
+    never offered again) and remove its lock; returns the new path (None on failure)."""
+    p = Path(recovery_file)
+    target = p.with_name(p.name + DAMAGED_SUFFIX)
+    try:
+        os.replace(p, target)
+    except OSError:
+        return None
+    try:
+        recovery_lock_path(p).unlink()
+    except OSError:
+        pass
+    return target
+
+
+_DEBRIS_RE = None
+
+
+def clean_debris(folder, name: str | None = None) -> list[Path]:
+    """Remove temporary files that :func:`write_atomically` left behind in ``folder``
+    when its process died (``.<name>.<pid>.<random>.tmp`` whose pid no longer runs).
+    ``name`` limits the search to debris of one target file. Returns what was removed."""
+    global _DEBRIS_RE
+    import re
+
+    if _DEBRIS_RE is None:
+        _DEBRIS_RE = re.compile(r"^\.(?P<name>.+)\.(?P<pid>\d+)\.[^./]+\.tmp$")
+    folder = Path(folder)
+    removed = []
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    for entry in entries:
+        m = _DEBRIS_RE.match(entry.name)
+        if not m or (name is not None and m.group("name") != name):
+            continue
+        pid = int(m.group("pid"))
+        if pid == os.getpid() or process_alive(pid):
+            continue
+        try:
+            os.unlink(entry.path)
+            removed.append(Path(entry.path))
+        except OSError:
+            pass
+    return removed
