@@ -68,6 +68,11 @@ __all__ = [
 MAX_LENGTH = 500
 #: Deepest nesting of operations accepted (``exp(exp(...))``, ``-(-(...))``).
 MAX_DEPTH = 100
+#: Nested constant powers multiply their exponents, ((c*x)**a)**b has degree a*b; the
+#: product may be at most this large (sympy would otherwise expand c**(a*b) exactly).
+MAX_TOTAL_EXPONENT = 1000
+#: At most this many powers with a non-constant exponent inside each other (x**x**x...).
+MAX_POWER_TOWER = 6
 
 class RealAbs(sympy.Function):
     """``|u|`` of a real ``u``, with derivative ``sign(u)``.
@@ -504,6 +509,119 @@ def _check_x_name(x_name) -> str:
     return x_name
 
 
+def _const_of(node: ast.AST):
+    """The float value of a part without names (other than constants), else None."""
+    if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)) and not isinstance(node.value, bool):
+        try:
+            return float(node.value)
+        except OverflowError:
+            return math.inf
+    if isinstance(node, ast.Name) and node.id in CONSTANTS:
+        return float(CONSTANTS[node.id])
+    if isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.USub, ast.UAdd)):
+        v = _const_of(node.operand)
+        return None if v is None else (-v if isinstance(node.op, ast.USub) else v)
+    if isinstance(node, ast.BinOp) and type(node.op) in (ast.Add, ast.Sub, ast.Mult, ast.Div, ast.Pow):
+        a, b = _const_of(node.left), _const_of(node.right)
+        if a is None or b is None:
+            return None
+        with np.errstate(all="ignore"):
+            return float({ast.Add: np.add, ast.Sub: np.subtract, ast.Mult: np.multiply, ast.Div: np.divide,
+                          ast.Pow: np.power}[type(node.op)](np.float64(a), np.float64(b)))
+    return None
+
+
+def _power_bounds(node: ast.AST) -> tuple[float, int]:
+    """(product of nested constant exponents, height of non-constant power towers)."""
+    if isinstance(node, ast.BinOp) and isinstance(node.op, ast.Pow):
+        if _const_of(node) is not None:  # folded numerically by the reader
+            return 1.0, 0
+        size, tower = _power_bounds(node.left)
+        exponent = _const_of(node.right)
+        if exponent is not None:
+            mag = abs(exponent) if math.isfinite(exponent) else math.inf
+            return size * max(1.0, mag), tower
+        rsize, rtower = _power_bounds(node.right)
+        return max(size, rsize), 1 + max(tower, rtower)
+    size, tower = 1.0, 0
+    for child in ast.iter_child_nodes(node):
+        s, t = _power_bounds(child)
+        size, tower = max(size, s), max(tower, t)
+    return size, tower
+
+
+def _check_power_bounds(tree: ast.AST, text: str) -> None:
+    size, tower = _power_bounds(tree)
+    if size > MAX_TOTAL_EXPONENT:
+        shown = f"{size:.3g}" if math.isfinite(size) else "an unbounded number"
+        raise FormulaError(
+            f"the powers in this formula reach a total exponent of {shown}; the limit is "
+            f"{MAX_TOTAL_EXPONENT} (powers of powers multiply their exponents, so ((c*x)**a)**b has "
+            "exponent a*b)", text=text)
+    if tower > MAX_POWER_TOWER:
+        raise FormulaError(
+            f"the formula stacks {tower} powers with non-constant exponents (like x**x**x); the limit "
+            f"is {MAX_POWER_TOWER}", text=text)
+
+
+_SCRIPT_FREE = {"DIGIT", "LOW", "COMMON"}
+
+
+def _letter_script(ch: str) -> str:
+    """A rough script name of one identifier character ('' for digits and '_')."""
+    if ch.isascii():
+        return "LATIN" if ch.isalpha() else ""
+    try:
+        word = unicodedata.name(ch).split()[0]
+    except ValueError:
+        return "UNKNOWN"
+    return "" if word in _SCRIPT_FREE else word
+
+
+_IDENT_RE = re.compile(r"[^\W\d]\w*")
+
+
+def _check_identifiers(src: str, lead: int, text: str) -> None:
+    """Refuse look-alike names: a name that Unicode normalisation (NFKC, which Python
+    applies to names) would turn into another one (mathematical bold a is a), and a name
+    that mixes scripts (a Cyrillic a inside Latin letters). The message shows the code point."""
+    seen: dict[str, tuple[str, int]] = {}  # script -> (first letter, column) over all names
+    for m in _IDENT_RE.finditer(src):
+        ident = m.group()
+        for k, ch in enumerate(ident):
+            sc = _letter_script(ch)
+            if sc and sc not in seen:
+                seen[sc] = (ch, lead + m.start() + k + 1)
+        if ident.isascii():
+            continue
+        for k, ch in enumerate(ident):
+            norm = unicodedata.normalize("NFKC", ch)
+            if norm != ch:
+                col = lead + m.start() + k + 1
+                raise FormulaError(
+                    f"the name {ident!r} contains {ch!r} (U+{ord(ch):04X}) at column {col}, which stands for "
+                    f"{norm!r}; write {unicodedata.normalize('NFKC', ident)!r} if that is meant",
+                    text=text, column=col, snippet=ch)
+        scripts = {_letter_script(ch) for ch in ident} - {""}
+        if len(scripts) > 1:
+            odd = next(ch for ch in ident if _letter_script(ch) not in ("", "LATIN")) if "LATIN" in scripts \
+                else ident[0]
+            col = lead + m.start() + ident.index(odd) + 1
+            raise FormulaError(
+                f"the name {ident!r} mixes scripts ({', '.join(sorted(scripts)).lower()}): {odd!r} is "
+                f"U+{ord(odd):04X} {unicodedata.name(odd, '')}; use letters of one script in a name",
+                text=text, column=col, snippet=odd)
+    # Latin names beside names in another alphabet that has Latin look-alikes (Greek is
+    # allowed: mu, sigma and tau are common parameter names)
+    others = [sc for sc in seen if sc not in ("LATIN", "GREEK")]
+    if others and ("LATIN" in seen or len(others) > 1):
+        ch, col = seen[others[0]]
+        raise FormulaError(
+            f"the formula mixes Latin letters with {others[0].lower()} letters: {ch!r} at column {col} is "
+            f"U+{ord(ch):04X} {unicodedata.name(ch, '')}, which can look like a Latin letter; use letters of "
+            "one alphabet", text=text, column=col, snippet=ch)
+
+
 @functools.lru_cache(maxsize=256)
 def _analyse_cached(text: str, x_name: str) -> ParsedFormula:
     if len(text) > MAX_LENGTH:
@@ -528,6 +646,7 @@ def _analyse_cached(text: str, x_name: str) -> ParsedFormula:
     if not src:
         raise FormulaError("the formula is empty" if not m else
                            "the formula is empty after 'y ='", text=text)
+    _check_identifiers(src, lead, text)
     try:
         tree = ast.parse(src, mode="eval")
     except SyntaxError as err:
@@ -535,6 +654,10 @@ def _analyse_cached(text: str, x_name: str) -> ParsedFormula:
     except (ValueError, MemoryError, RecursionError):
         raise FormulaError("the formula cannot be read (it holds characters or nesting "
                            "that a formula cannot have)", text=text) from None
+    try:
+        _check_power_bounds(tree, text)
+    except RecursionError:
+        raise FormulaError("the formula is nested too deeply", text=text) from None
 
     reader = _Reader(text, src, lead, x_name)
     try:

@@ -294,9 +294,34 @@ def test_huge_constant_powers_do_not_hang():
     # 9**9**9 is refused as having no finite value rather than computed exactly
     with pytest.raises(FormulaError, match="no finite real value"):
         parse_formula("a*9**9**9")
-    m = parse_formula("a*(2*x)**(2**53)")  # the exponent stays inexact inside sympy
-    assert m.param_names == ("a",)
-    assert np.isinf(m.f(np.array([1.0]), [1.0]))[0]
+    # a huge exponent on an expression with names is refused with the bound it breaks
+    # (was: kept inexact inside sympy; issue 16 bounds the total exponent)
+    with pytest.raises(FormulaError, match="total exponent of 9.01e\\+15; the limit is 1000"):
+        parse_formula("a*(2*x)**(2**53)")
+
+
+@pytest.mark.parametrize("text, match", [
+    ("(((3*a)**999)**999)**999+x", "total exponent of 9.97e\\+08; the limit is 1000"),
+    ("(((2*x)**1000)**1000)**1000*a", "total exponent of 1e\\+09"),
+    ("a*x" + "**x" * 7, "stacks 7 powers with non-constant exponents"),
+    ("(x+1)**100000*a", "total exponent of 1e\\+05"),
+])
+def test_power_work_is_bounded(text, match):
+    # issue 16: the first took over 590 s, the second 16 s and 570 MB
+    with pytest.raises(FormulaError, match=match):
+        parse_formula(text)
+    assert parse_formula("a*x**1000 + b").param_names == ("a", "b")  # at the limit: fine
+    assert parse_formula("a*9**9**0.1*x").param_names == ("a",)  # constants fold numerically
+
+
+def test_look_alike_names_are_refused_with_their_code_point():
+    with pytest.raises(FormulaError, match="U\\+0430 CYRILLIC SMALL LETTER A"):
+        parse_formula("\u0430*x + a")  # Cyrillic a beside Latin a: two look-alike parameters
+    with pytest.raises(FormulaError, match="mixes scripts"):
+        parse_formula("a\u0430*x")
+    with pytest.raises(FormulaError, match="U\\+1D41A.*stands for 'a'"):
+        parse_formula("\U0001d41a*x + a")  # mathematical bold a would be merged into a
+    assert parse_formula("\u03bc*x + \u03c3").param_names == ("\u03bc", "\u03c3")  # Greek names stay allowed
 
 
 def test_deep_nesting_is_handled():

@@ -64,3 +64,11 @@ def test_hostile_tables(tmp_path_factory):
     # the caps are stated in the messages (issue 16: "a clear message that states the cap")
     assert "4,000,000 cells" in records["far_cell.xlsx"]["message"]
     assert "200,000 cells" in records["repeated_rows.ods"]["message"]
+
+
+def test_hostile_sessions_and_formulas(tmp_path_factory):
+    records = run_corpus(tmp_path_factory, "session", "formula")
+    assert len(records) >= 8
+    assert check(records) == []
+    assert "400 digits" in records["huge_int.ballast"]["message"]
+    assert "total exponent" in records["formula:tower_const"]["message"]
