@@ -29,6 +29,7 @@ from PySide6.QtWidgets import (
 from fitcore.compare import DEFAULT_LOSSES
 from fitcore.compare import FIT_KWARGS as COMPARE_OPTIONS
 from fitcore.losses import LOSS_NAMES, LOSSES, loss_short_title, loss_title
+from fitcore.work import curve_grid
 
 from .document import Document
 from .estimates_view import fmt_value
@@ -498,13 +499,9 @@ class CompareView(QWidget):
             return
         plot = self.plot
         m = self.document.measurements
-        xs = m.x[np.isfinite(m.x)]
-        if plot.log_x:
-            xs = xs[xs > 0]
-        if xs.size == 0:
+        grid = curve_grid(m.x, log_x=plot.log_x)
+        if grid.size == 0:
             return
-        lo, hi = float(xs.min()), float(xs.max())
-        grid = np.geomspace(lo, hi, 400) if plot.log_x and 0 < lo < hi else np.linspace(lo, hi, 400)
         stale = self.generation != self.document.generation
         self.legend = pg.LegendItem(offset=(-10, 10), labelTextColor=(30, 30, 30),
                                     brush=pg.mkBrush(255, 255, 255, 215), pen=pg.mkPen(160, 160, 160))

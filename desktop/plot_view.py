@@ -24,6 +24,8 @@ from pyqtgraph.Qt import internals as pg_internals
 from PySide6.QtCore import QLineF, QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QBrush, QColor, QPainter, QPen, QPixmap
 
+from fitcore.work import curve_grid
+
 from .commands import MaskCommand
 from .document import Document
 
@@ -820,13 +822,9 @@ class PlotView(pg.GraphicsLayoutWidget):
             self._set_residual_points()
             self._mark_stale()
             return
-        xs = m.x[np.isfinite(m.x)]
-        if self.log_x:
-            xs = xs[xs > 0]
-        if xs.size == 0:
+        grid = curve_grid(m.x, log_x=self.log_x)
+        if grid.size == 0:
             return
-        lo, hi = float(xs.min()), float(xs.max())
-        grid = np.geomspace(lo, hi, 400) if self.log_x and lo > 0 and hi > lo else np.linspace(lo, hi, 400)
         with np.errstate(all="ignore"):
             try:
                 yhat = np.asarray(res.predict(grid), float)

@@ -40,6 +40,7 @@ from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from .estimates_view import fmt_value
 from fitcore.report import DataRecord, format_interval, method_statement
+from fitcore.work import curve_grid
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -479,13 +480,9 @@ class ReportExporter:
 
     # ------------------------------------------------------------------ CSV
     def curve_grid(self, n: int = CURVE_POINTS) -> np.ndarray:
-        m = self.document.measurements
-        xs = m.x[np.isfinite(m.x)]
-        lo, hi = float(xs.min()), float(xs.max())
         plot = getattr(self.window, "plot", None)
-        if plot is not None and plot.log_x and lo > 0 and hi > lo:
-            return np.geomspace(lo, hi, n)
-        return np.linspace(lo, hi, n)
+        return curve_grid(self.document.measurements.x, n,
+                          log_x=plot is not None and plot.log_x)
 
     def write_curve_csv(self, path=None) -> str:
         """Fitted curve and confidence band on a fine grid over the data's x range."""

@@ -25,7 +25,10 @@ import numpy as np
 from .models import get_model, resolve_model
 
 __all__ = ["DataSet", "Method", "Exclusion", "FIT_OPTIONS", "DATA_ARGUMENTS",
-           "MODEL_FIELDS"]
+           "MODEL_FIELDS", "curve_grid"]
+
+#: points on the x grid a fitted curve is drawn or written on
+CURVE_POINTS = 400
 
 #: the keywords of :func:`fitcore.fit` that come from the data set and the exclusion
 #: record rather than from the method
@@ -139,6 +142,22 @@ class DataSet:
     def with_(self, **kw) -> "DataSet":
         """A copy with some fields changed."""
         return replace(self, **kw)
+
+
+def curve_grid(x, n: int = CURVE_POINTS, log_x: bool = False) -> np.ndarray:
+    """The x values a fitted curve is evaluated on: ``n`` points from the smallest to
+    the largest finite x, evenly spaced, or evenly on a log scale over the positive x
+    when ``log_x`` (what a log axis can show). Empty when there is no such x."""
+    xs = np.asarray(x, dtype=float).ravel()
+    xs = xs[np.isfinite(xs)]
+    if log_x:
+        xs = xs[xs > 0]
+    if xs.size == 0:
+        return np.zeros(0)
+    lo, hi = float(xs.min()), float(xs.max())
+    if log_x and hi > lo:
+        return np.geomspace(lo, hi, n)
+    return np.linspace(lo, hi, n)
 
 
 # ============================================================================ method

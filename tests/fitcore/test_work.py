@@ -147,3 +147,13 @@ def test_data_set_checks_lengths_and_fills_the_column_choice():
     assert d.columns == {"x": "Time", "y": "Signal", "sigma": None}
     assert d.file_row(1) == 3 and d.names["x"] == "Time"
     assert DataSet([1.0], [2.0], source_rows=[1, 2]).source_rows is None  # wrong length
+
+
+def test_one_curve_grid_for_plot_comparison_and_csv():
+    from fitcore.work import curve_grid
+
+    x = np.array([-1.0, 0.0, 2.0, np.nan, 10.0])
+    assert np.array_equal(curve_grid(x, 5), np.linspace(-1.0, 10.0, 5))
+    assert np.allclose(curve_grid(x, 3, log_x=True), [2.0, np.sqrt(20.0), 10.0])
+    assert curve_grid([-1.0, 0.0], log_x=True).size == 0  # nothing a log axis can show
+    assert curve_grid([3.0], 4).tolist() == [3.0] * 4
