@@ -29,8 +29,10 @@ from PySide6.QtWidgets import (
 from fitcore.compare import DEFAULT_LOSSES
 from fitcore.compare import FIT_KWARGS as COMPARE_OPTIONS
 from fitcore.losses import LOSS_NAMES, LOSSES, loss_short_title, loss_title
+from fitcore.models import resolve_model
 from fitcore.work import curve_grid
 
+from . import analysis_worker as aw
 from .document import Document
 from .estimates_view import fmt_value
 from .jobs import Job
@@ -77,15 +79,11 @@ def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: boo
     Runs in a child process (:mod:`desktop.analysis_worker`) up to
     ``CHILD_MAX_POINTS`` points, else in the calling thread.
     """
-    from . import analysis_worker as aw
-
     n = int(np.size(request["x"]))
     if use_child is None:
         # a model with options travels as a built object, which stays in this process
         use_child = n <= aw.CHILD_MAX_POINTS and isinstance(request["model"], str)
     if use_child:
-        from fitcore.models import resolve_model
-
         model = resolve_model(request["model"])
         msg = {"kind": "compare", "model": request["model"], "x": aw.encode(request["x"]),
                "y": aw.encode(request["y"]), "kwargs": aw.encode(request["kwargs"]),

@@ -20,7 +20,9 @@ from PySide6.QtWidgets import (
     QLabel, QLineEdit, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
-from fitcore.losses import LOSS_NAMES, LOSSES, loss_title
+from fitcore.formula import validate_formula
+from fitcore.losses import LOSS_NAMES, LOSSES, get_loss, loss_title
+from fitcore.weighting import RULES, TITLES
 from fitcore.models import builtin_models, model_short_title, model_title
 
 from .commands import SettingsCommand
@@ -37,8 +39,6 @@ def model_param_names(settings: Settings) -> tuple[str, ...]:
     """Parameter names of the settings' model (empty when it cannot be built)."""
     try:
         if settings.model_kind == "formula":
-            from fitcore.formula import validate_formula
-
             ok, _msg, names = validate_formula(settings.model)
             return tuple(names) if ok else ()
         return tuple(settings.build_model().param_names)
@@ -50,8 +50,6 @@ def formula_check(text: str) -> tuple[str, str]:
     """``(level, message)`` for a formula: level "ok", "warn" (valid but almost surely
     a mistake: it does not use x) or "bad" (refused)."""
     try:
-        from fitcore.formula import validate_formula
-
         ok, msg, names = validate_formula(text)
     except Exception as err:  # noqa: BLE001 - formula module not there
         return "bad", f"formulas are not available ({err})"
@@ -100,12 +98,10 @@ class LossPreview(pg.PlotWidget):
         """Draw the loss ``name`` (alpha only for the general/adaptive loss)."""
         u = np.linspace(-self.U_MAX, self.U_MAX, 401)
         try:
-            import fitcore
-
-            loss = fitcore.get_loss(name, alpha=alpha if name in ("general", "adaptive") else None)
+            loss = get_loss(name, alpha=alpha if name in ("general", "adaptive") else None)
             rho = np.asarray(loss.rho(u), float)
             w = np.asarray(loss.weight(u), float)
-        except Exception as err:  # noqa: BLE001 - engine missing or a bad alpha
+        except ValueError as err:  # an unknown loss or a bad alpha: say so, draw nothing
             self.message = str(err)
             self.rho_curve.setData([], [])
             self.w_curve.setData([], [])
@@ -176,8 +172,6 @@ class MethodPanel(QWidget):
         form.addRow("Scale", scale_row)
 
         self.weight_combo = QComboBox()  # weighting rules of calibrations (issue 14)
-        from fitcore.weighting import RULES, TITLES
-
         for name in RULES:
             self.weight_combo.addItem(TITLES[name], name)
         self.weight_combo.setToolTip("How the variance of y grows along the curve: weights "
@@ -563,9 +557,7 @@ class MethodPanel(QWidget):
         if s.model_kind == "formula":
             return ""
         try:
-            import fitcore
-
-            m = fitcore.get_model(s.model)
-            return m.formula or m.title
-        except Exception:  # noqa: BLE001
+            m = s.build_model()
+        except ValueError:  # an unknown model or options it does not take
             return ""
+        return m.formula or m.title

@@ -25,6 +25,8 @@ import traceback
 import numpy as np
 from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal, Slot
 
+import fitcore
+
 from .document import Document
 
 
@@ -33,8 +35,6 @@ def run_fit(request: dict):
 
     Returns ``(result, None)`` or ``(None, message)`` for input the engine refuses.
     """
-    import fitcore
-
     kw = dict(request["kwargs"])
     try:
         res = fitcore.fit(request["model"], request["x"], request["y"],
