@@ -149,13 +149,19 @@ def _plural(n: int, word: str) -> str:
     return f"{n} {word}" + ("" if n == 1 else "s")
 
 
-def _image_png_b64(img: QImage) -> str:
+def _png_bytes(img: QImage) -> bytes:
     ba = QByteArray()
     buf = QBuffer(ba)
     buf.open(QIODevice.WriteOnly)
-    img.save(buf, "PNG")
+    ok = img.save(buf, "PNG")
     buf.close()
-    return base64.b64encode(bytes(ba)).decode("ascii")
+    if not ok:
+        raise OSError("the plot could not be encoded as PNG")
+    return bytes(ba)
+
+
+def _image_png_b64(img: QImage) -> str:
+    return base64.b64encode(_png_bytes(img)).decode("ascii")
 
 
 def _same_file(a: str, b: str) -> bool:
@@ -301,9 +307,11 @@ def write_plot_svg(window, path, width: int, height: int) -> None:
     ex = _ExportPlot(window, width, height)
     try:
         ex.use_vector_points()
-        tmp = str(path) + ".part"
+        data = QByteArray()
+        buf = QBuffer(data)
+        buf.open(QIODevice.WriteOnly)
         gen = QSvgGenerator()
-        gen.setFileName(tmp)
+        gen.setOutputDevice(buf)
         gen.setSize(QSize(int(width), int(height)))
         gen.setViewBox(QRect(0, 0, int(width), int(height)))
         gen.setResolution(96)  # so the drawing is width x height CSS pixels
@@ -318,11 +326,47 @@ def write_plot_svg(window, path, width: int, height: int) -> None:
         finally:
             p.end()
         del gen
-        if not os.path.isfile(tmp) or os.path.getsize(tmp) == 0:
-            raise OSError(f"could not write {path}")
-        os.replace(tmp, str(path))
+        buf.close()
+        from fitcore.session import write_atomically
+
+        write_atomically(path, bytes(data), verify=check_svg)
     finally:
         ex.close()
+
+
+# ============================================================================ checks
+# Each writer goes through fitcore.session.write_atomically, which calls one of these on
+# the written temporary file before it replaces the old file (a full disk or a cut
+# write leaves the old file and an error for the user).
+def check_png(path) -> None:
+    """A complete PNG: the signature, an IEND chunk at the end, and Qt decodes it."""
+    with open(path, "rb") as fh:
+        data = fh.read()
+    if not data.startswith(b"\x89PNG\r\n\x1a\n") or not data.endswith(b"IEND\xaeB`\x82"):
+        raise ValueError("the PNG file is incomplete")
+    img = QImage()
+    if not img.loadFromData(data, "PNG") or img.isNull():
+        raise ValueError("the PNG file does not decode")
+
+
+def check_pdf(path) -> None:
+    """A complete PDF: the header and the end-of-file marker after its trailer."""
+    with open(path, "rb") as fh:
+        head = fh.read(8)
+        fh.seek(0, os.SEEK_END)
+        size = fh.tell()
+        fh.seek(max(0, size - 2048))
+        tail = fh.read()
+    if not head.startswith(b"%PDF-") or b"%%EOF" not in tail or b"startxref" not in tail:
+        raise ValueError("the PDF file is incomplete (no trailer)")
+
+
+def check_svg(path) -> None:
+    """A complete SVG: XML that ends with the closing svg tag."""
+    with open(path, "rb") as fh:
+        data = fh.read()
+    if b"<svg" not in data[:4096] or not data.rstrip().endswith(b"</svg>"):
+        raise ValueError("the SVG file is incomplete")
 
 
 # ============================================================================ exporter
@@ -538,9 +582,10 @@ class ReportExporter:
             if fmt == "svg":
                 write_plot_svg(self.window, path, w, h)
             elif fmt == "png":
+                from fitcore.session import write_atomically
+
                 img = plot_image(self.window, w, h)
-                if not img.save(path, "PNG"):
-                    raise OSError(f"could not write {path}")
+                write_atomically(path, _png_bytes(img), verify=check_png)
             else:
                 raise ValueError(f"plots are exported as .png or .svg, not .{fmt}")
         except (OSError, ValueError) as err:
@@ -798,7 +843,18 @@ class ReportExporter:
         path = self._target("Write report (PDF)", "-report.pdf", "PDF (*.pdf)", path)
         if not path:
             return ""
-        tmp = path + ".part"
+        import tempfile
+
+        from fitcore.session import write_atomically
+
+        folder = os.path.dirname(os.path.abspath(path))
+        try:  # the printer's own file, named as write_atomically names its debris
+            fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(path)}.{os.getpid()}.", suffix=".tmp",
+                                       dir=folder)
+            os.close(fd)
+        except OSError as err:
+            dialogs.error_box(self.window, "Cannot write the PDF report", f"{path}: {err}")
+            return ""
         try:
             printer = QPrinter(QPrinter.HighResolution)
             printer.setOutputFormat(QPrinter.PdfFormat)
@@ -813,16 +869,22 @@ class ReportExporter:
                 tdoc.setPageSize(QSizeF(960, 960 * 297 / 210))
                 tdoc.print_(printer)
             del printer
-            if not os.path.isfile(tmp) or os.path.getsize(tmp) == 0:
-                raise OSError("Qt's PDF printer wrote nothing")
-            os.replace(tmp, path)
+            try:
+                check_pdf(tmp)
+            except ValueError as err:
+                raise OSError(f"Qt's PDF printer did not finish the file ({err}); the disk may be full") from None
+            with open(tmp, "rb") as fh:
+                data = fh.read()
+            write_atomically(path, data, verify=check_pdf)
         except OSError as err:
+            dialogs.error_box(self.window, "Cannot write the PDF report",
+                              f"{path}: {err}. The previous file, if any, is unchanged.")
+            return ""
+        finally:
             try:
                 os.unlink(tmp)
             except OSError:
                 pass
-            dialogs.error_box(self.window, "Cannot write the PDF report", f"{path}: {err}")
-            return ""
         self._status(f"PDF report written to {path}.")
         return path
 
