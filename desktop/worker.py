@@ -61,7 +61,10 @@ class _FitTask(QRunnable):
     def run(self):
         t0 = time.perf_counter()
         res, msg = run_fit(self.request)
-        self.signals.done.emit(res, msg, self.request["generation"], time.perf_counter() - t0)
+        try:
+            self.signals.done.emit(res, msg, self.request["generation"], time.perf_counter() - t0)
+        except RuntimeError:  # the window closed during a long fit: nobody is left to take the result
+            pass
 
 
 class FitRunner(QObject):
