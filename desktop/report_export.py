@@ -19,7 +19,6 @@ measurement file is never written: every export refuses to overwrite it.
 """
 from __future__ import annotations
 
-import base64
 import datetime as _dt
 import html
 import math
@@ -28,12 +27,12 @@ from pathlib import Path
 
 import numpy as np
 from pyqtgraph import functions as fn
-from PySide6.QtCore import (
-    QBuffer, QByteArray, QIODevice, QMarginsF, QMimeData, QPointF, QSizeF, Qt, QUrl,
-)
+from PySide6.QtCore import QBuffer, QByteArray, QIODevice, QMarginsF, QMimeData, QPointF, QRectF, QSizeF, Qt
 from PySide6.QtGui import (
-    QBrush, QGuiApplication, QImage, QPageLayout, QPageSize, QPainter, QPen, QTextDocument,
+    QAbstractTextDocumentLayout, QBrush, QGuiApplication, QImage, QPageLayout, QPageSize, QPainter,
+    QPen, QTextDocument,
 )
+from PySide6.QtSvg import QSvgRenderer
 from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 
 from . import dialogs
@@ -41,6 +40,8 @@ from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from .estimates_view import fmt_value
 from fitcore.report import DataRecord, format_interval, method_statement
 from fitcore.work import curve_grid
+from fitcore.report_plot import LEGEND_TEXT, plot_svg
+from fitcore.report_text import signoff_html
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -50,8 +51,12 @@ CURVE_POINTS = 1001
 REPORT_MAX_ROWS = 2000
 PDF_MAX_ROWS = 500
 #: default pixel size of the report's plot images
-REPORT_PLOT_SIZE = (900, 430)
-REPORT_RESID_SIZE = (900, 220)
+REPORT_PLOT_SIZE = (900, 620)
+#: what stands for the plot in the HTML a QTextDocument lays out (replaced by an object
+#: that paints the SVG, so the PDF's plot is vector)
+PLOT_MARK = "[[ballast-report-plot]]"
+#: the sign-off names, remembered in the window's settings
+SIGNOFF_KEYS = ("analyst", "reviewer", "review_date")
 
 #: (key, menu text, fitcore format, full precision)
 COPY_FORMATS = (
@@ -64,9 +69,7 @@ COPY_FORMATS = (
     ("html", "&HTML and plain text (rich-text editors)", "html", False),
 )
 
-LEGEND = ("Filled circles: points used, their size growing with the robust weight; "
-          "orange: down-weighted (weight below 0.5); grey crossed rings: excluded by "
-          "the analyst. Line: fitted curve; shaded: {pct} pointwise confidence band.")
+LEGEND = LEGEND_TEXT  # the report plot's key (fitcore.report_plot)
 
 
 # ============================================================================ hooks
@@ -74,6 +77,27 @@ def ask_save_path(parent, title: str, start: str, filt: str) -> str:
     """A file name to write, or "" when cancelled (tests replace this function)."""
     path, _ = QFileDialog.getSaveFileName(parent, title, start, filt)
     return path
+
+
+def ask_signoff(parent, current: dict):
+    """The sign-off names as a dict (analyst, reviewer, review_date), or None when
+    cancelled (tests replace this function)."""
+    from PySide6.QtWidgets import QDialog, QDialogButtonBox, QFormLayout, QLineEdit
+
+    dlg = QDialog(parent)
+    dlg.setWindowTitle("Report sign-off")
+    form = QFormLayout(dlg)
+    edits = {}
+    for key, label in zip(SIGNOFF_KEYS, ("Analyst", "Reviewer", "Date of review")):
+        edits[key] = QLineEdit(current.get(key, ""))
+        form.addRow(label, edits[key])
+    buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
+    buttons.accepted.connect(dlg.accept)
+    buttons.rejected.connect(dlg.reject)
+    form.addRow(buttons)
+    if dlg.exec() != QDialog.Accepted:
+        return None
+    return {k: e.text().strip() for k, e in edits.items()}
 
 
 def ask_plot_size(parent, width: int, height: int):
@@ -147,21 +171,6 @@ def _g(x, digits: int = 6) -> str:
 
 def _plural(n: int, word: str) -> str:
     return f"{n} {word}" + ("" if n == 1 else "s")
-
-
-def _png_bytes(img: QImage) -> bytes:
-    ba = QByteArray()
-    buf = QBuffer(ba)
-    buf.open(QIODevice.WriteOnly)
-    ok = img.save(buf, "PNG")
-    buf.close()
-    if not ok:
-        raise OSError("the plot could not be encoded as PNG")
-    return bytes(ba)
-
-
-def _image_png_b64(img: QImage) -> str:
-    return base64.b64encode(_png_bytes(img)).decode("ascii")
 
 
 def _same_file(a: str, b: str) -> bool:
@@ -290,15 +299,6 @@ def plot_image(window, width: int, height: int) -> QImage:
         ex.close()
 
 
-def _single_plot_image(window, which: str, width: int, height: int) -> QImage:
-    ex = _ExportPlot(window, width, height)
-    try:
-        item = ex.view.data_plot if which == "data" else ex.view.resid_plot
-        return ex.item_image(item, width, height)
-    finally:
-        ex.close()
-
-
 def write_plot_svg(window, path, width: int, height: int) -> None:
     """The plot as SVG at ``width`` x ``height`` (pyqtgraph's SVG exporter)."""
     from PySide6.QtCore import QRect, QRectF, QSize
@@ -338,6 +338,17 @@ def write_plot_svg(window, path, width: int, height: int) -> None:
 # Each writer goes through fitcore.session.write_atomically, which calls one of these on
 # the written temporary file before it replaces the old file (a full disk or a cut
 # write leaves the old file and an error for the user).
+def _png_bytes(img: QImage) -> bytes:
+    ba = QByteArray()
+    buf = QBuffer(ba)
+    buf.open(QIODevice.WriteOnly)
+    ok = img.save(buf, "PNG")
+    buf.close()
+    if not ok:
+        raise OSError("the plot could not be encoded as PNG")
+    return bytes(ba)
+
+
 def check_png(path) -> None:
     """A complete PNG: the signature, an IEND chunk at the end, and Qt decodes it."""
     with open(path, "rb") as fh:
@@ -367,6 +378,88 @@ def check_svg(path) -> None:
         data = fh.read()
     if b"<svg" not in data[:4096] or not data.rstrip().endswith(b"</svg>"):
         raise ValueError("the SVG file is incomplete")
+
+
+# ============================================================================ PDF
+#: layout width of the PDF page in CSS-like pixels (the report's plot is 900 wide)
+PDF_LAYOUT_WIDTH = 960
+FOOTER_HEIGHT = 28
+
+
+def page_footer(page: int, pages: int) -> str:
+    """The foot of every PDF page: ``"page 2 of 3"``."""
+    return f"page {page} of {pages}"
+
+
+PLOT_ANCHOR = "ballast-report-plot"
+
+
+def _plot_rect(tdoc: QTextDocument):
+    """Where the plot's reserved line lies in the laid-out document (layout units)."""
+    svg = getattr(tdoc, "plot_svg", "")
+    if not svg:
+        return None, None
+    layout = tdoc.documentLayout()
+    block = tdoc.begin()
+    while block.isValid():
+        it = block.begin()
+        while not it.atEnd():
+            if PLOT_ANCHOR in it.fragment().charFormat().anchorNames():
+                r = layout.blockBoundingRect(block)
+                line = block.layout().lineAt(0)
+                w, h = REPORT_PLOT_SIZE
+                top = r.top() + line.y() + line.height()  # under the anchor's line
+                return QRectF(r.left(), top, w, h), QSvgRenderer(QByteArray(svg.encode("utf-8")))
+            it += 1
+        block = block.next()
+    return None, None
+
+
+def paint_page(painter: QPainter, tdoc: QTextDocument, k: int, body_h: float) -> None:
+    """Page ``k`` of ``tdoc`` (laid out ``body_h`` high) at the painter's origin, the
+    plot painted as vector graphics from its SVG into the line reserved for it."""
+    painter.save()
+    painter.translate(0, -k * body_h)
+    clip = QRectF(0, k * body_h, PDF_LAYOUT_WIDTH, body_h)
+    painter.setClipRect(clip)
+    ctx = QAbstractTextDocumentLayout.PaintContext()
+    ctx.clip = clip
+    tdoc.documentLayout().draw(painter, ctx)
+    rect, renderer = _plot_rect(tdoc)
+    if rect is not None and rect.intersects(clip):
+        renderer.render(painter, rect)
+    painter.restore()
+
+
+def print_paged(tdoc: QTextDocument, printer, title: str = "") -> int:
+    """Print ``tdoc`` page by page with ``title`` and "page X of Y" at the foot of each
+    page; returns the number of pages."""
+    painter = QPainter()
+    if not painter.begin(printer):
+        raise OSError("could not start the PDF printer")
+    try:
+        page = printer.pageLayout().paintRectPixels(printer.resolution())
+        scale = page.width() / PDF_LAYOUT_WIDTH
+        body_h = page.height() / scale - FOOTER_HEIGHT
+        tdoc.setPageSize(QSizeF(PDF_LAYOUT_WIDTH, body_h))
+        pages = tdoc.pageCount()
+        for k in range(pages):
+            if k:
+                printer.newPage()
+            painter.save()
+            painter.scale(scale, scale)
+            paint_page(painter, tdoc, k, body_h)
+            painter.restore()
+            painter.save()
+            painter.scale(scale, scale)
+            painter.setPen(QPen(Qt.darkGray))
+            foot = QRectF(0, body_h + 6, PDF_LAYOUT_WIDTH, FOOTER_HEIGHT - 6)
+            painter.drawText(foot, int(Qt.AlignLeft | Qt.AlignVCenter), title)
+            painter.drawText(foot, int(Qt.AlignRight | Qt.AlignVCenter), page_footer(k + 1, pages))
+            painter.restore()
+    finally:
+        painter.end()
+    return pages
 
 
 # ============================================================================ exporter
@@ -414,6 +507,33 @@ class ReportExporter:
         sessions = getattr(self.window, "sessions", None)
         sha = getattr(sessions, "source_sha256", "") if sessions is not None else ""
         return DataRecord.from_data(self.document.measurements, sha256=sha or "")
+
+    def signoff(self) -> dict:
+        """The sign-off names (analyst, reviewer, date of review) remembered in the
+        window's settings; blank when never typed (the report prints blank lines)."""
+        qs = getattr(self.window, "qsettings", None)
+        if qs is None:
+            return {k: "" for k in SIGNOFF_KEYS}
+        return {k: str(qs.value(f"report/{k}", "") or "") for k in SIGNOFF_KEYS}
+
+    def set_signoff(self, analyst=None, reviewer=None, review_date=None) -> dict:
+        """Remember sign-off names (None keeps a field); asked once, printed in every report."""
+        qs = getattr(self.window, "qsettings", None)
+        if qs is None:
+            return self.signoff()
+        for k, v in zip(SIGNOFF_KEYS, (analyst, reviewer, review_date)):
+            if v is not None:
+                qs.setValue(f"report/{k}", " ".join(str(v).split()))
+        qs.sync()
+        return self.signoff()
+
+    def edit_signoff(self) -> bool:
+        """Ask for the sign-off names (the menu action); False when cancelled."""
+        got = ask_signoff(self.window, self.signoff())
+        if got is None:
+            return False
+        self.set_signoff(**got)
+        return True
 
     def _units(self):
         m = self.document.measurements
@@ -582,9 +702,9 @@ class ReportExporter:
             if fmt == "svg":
                 write_plot_svg(self.window, path, w, h)
             elif fmt == "png":
+                img = plot_image(self.window, w, h)
                 from fitcore.session import write_atomically
 
-                img = plot_image(self.window, w, h)
                 write_atomically(path, _png_bytes(img), verify=check_png)
             else:
                 raise ValueError(f"plots are exported as .png or .svg, not .{fmt}")
@@ -618,19 +738,18 @@ class ReportExporter:
         now = _dt.datetime.now().astimezone().isoformat(timespec="seconds")
         src = m.source or "(not from a file)"
 
-        imgs = {"plot": _single_plot_image(self.window, "data", *REPORT_PLOT_SIZE),
-                "residuals": _single_plot_image(self.window, "resid", *REPORT_RESID_SIZE)}
-
-        def img(key, alt):
-            im = imgs[key]
-            w = im.width()
-            if images == "embed":
-                url = "data:image/png;base64," + _image_png_b64(im)
-            else:
-                url = f"report:{key}.png"
-                if resources is not None:
-                    resources[url] = im
-            return f'<img src="{url}" width="{w}" alt="{_h(alt)}">'
+        # the plot is drawn from the data (fitcore.report_plot), never from the window
+        # (no selection halo, no zoom state): vector SVG in the HTML and in the PDF
+        plot = getattr(self.window, "plot", None)
+        svg = plot_svg(res, x_label=m.label("x"), y_label=m.label("y"), level=LEVEL,
+                       log_x=bool(getattr(plot, "log_x", False)),
+                       width=REPORT_PLOT_SIZE[0], height=REPORT_PLOT_SIZE[1])
+        if images == "embed":
+            plot_html = svg
+        else:  # QTextDocument: an object that paints the SVG (see PLOT_MARK)
+            if resources is not None:
+                resources[PLOT_MARK] = svg
+            plot_html = PLOT_MARK
 
         out = [
             "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
@@ -671,10 +790,8 @@ class ReportExporter:
         out += [
                 f'<p class="caution"><b>Caution.</b> {_h(CAUTION)}</p>']
 
-        out += ["<h2>Plot</h2>", "<p>" + img("plot", "data, fitted curve and band") + "</p>",
-                "<p>" + img("residuals", "residuals") + "</p>",
-                f'<p class="small">{_h(LEGEND.format(pct=pct))} Lower panel: residuals '
-                "y − fitted.</p>"]
+        out += ["<h2>Plot</h2>", f"<p>{plot_html}</p>",
+                f'<p class="small">{_h(LEGEND_TEXT.format(pct=pct))}</p>']
 
         est = self.estimates("html", res=res)
         out += ["<h2>Estimates</h2>",
@@ -730,7 +847,8 @@ class ReportExporter:
                        "export holds all of them.</p>")
         sig_head = "<th>u(y)</th>" if m.sigma is not None else ""
         out += ['<table border="1" cellspacing="0" cellpadding="2" class="points">',
-                f"<tr><th>#</th><th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
+                f"<tr><th>{'row' if m.source_rows is not None else '#'}</th>"
+                f"<th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
                 "<th>fitted</th><th>residual</th><th>std. residual</th><th>weight</th>"
                 "<th>status</th><th>reason</th></tr>"]
         reasons = doc.reasons
@@ -739,14 +857,16 @@ class ReportExporter:
                    "down-weighted": ' class="down" bgcolor="#fff8dc"'}.get(status[i], "")
             sig = f'<td class="num">{_g(m.sigma[i])}</td>' if m.sigma is not None else ""
             out.append(
-                f'<tr{cls}><td class="num">{i + 1}</td><td class="num">{_g(m.x[i])}</td>'
+                f'<tr{cls}><td class="num">{fr if (fr := m.file_row(i)) is not None else i + 1}</td>'
+                f'<td class="num">{_g(m.x[i])}</td>'
                 f'<td class="num">{_g(m.y[i])}</td>{sig}<td class="num">{_g(res.fitted[i])}</td>'
                 f'<td class="num">{_g(res.residuals[i], 4)}</td>'
                 f'<td class="num">{_g(res.std_residuals[i], 3)}</td>'
                 f'<td class="num">{float(res.weights[i]):.3f}</td><td>{status[i]}</td>'
                 f"<td>{_h(reasons[i]) if status[i] == 'excluded' else ''}</td></tr>")
         out.append("</table>")
-        out += [f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
+        out += ["<h2>Sign-off</h2>", signoff_html(**self.signoff()),
+                f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
                 "</body></html>"]
         return "\n".join(out) + "\n"
 
@@ -822,19 +942,25 @@ class ReportExporter:
         return path if self._write_text(path, text, "report") else ""
 
     def text_document(self, res=None) -> QTextDocument:
-        """The report as a ``QTextDocument`` (what the PDF prints)."""
+        """The report as a ``QTextDocument`` (what the PDF prints); the plot is an
+        object that paints its SVG (vector), not an image."""
         resources: dict = {}
         text = self.report_html(res, images="resource", resources=resources,
                                 max_rows=PDF_MAX_ROWS)
         tdoc = QTextDocument()
         tdoc.setDefaultStyleSheet("")
-        for url, im in resources.items():
-            tdoc.addResource(QTextDocument.ImageResource, QUrl(url), im)
+        h = REPORT_PLOT_SIZE[1]
+        text = text.replace(PLOT_MARK, f'</p><p style="margin-bottom:{h}px"><a name="{PLOT_ANCHOR}">'
+                                       f'&nbsp;</a></p><p>')
         tdoc.setHtml(text)
+        # the plot: a line as high as the plot, painted from its SVG by paint_page (Qt's
+        # text layout can only hold bitmaps; a vector PDF needs the plot painted)
+        tdoc.plot_svg = resources.get(PLOT_MARK, "")
         return tdoc
 
     def write_pdf(self, path=None) -> str:
-        """The report as PDF through Qt's printing (A4, no external program)."""
+        """The report as PDF through Qt's printing (A4, no external program): vector
+        plot, "page X of Y" at the foot of every page."""
         from PySide6.QtPrintSupport import QPrinter
 
         res = self._result("write a report")
@@ -865,9 +991,8 @@ class ReportExporter:
             printer.setCreator("Ballast")
             with _busy():
                 tdoc = self.text_document(res)
-                # lay the page out at a screen-like width so the 900 px plots fit the page
-                tdoc.setPageSize(QSizeF(960, 960 * 297 / 210))
-                tdoc.print_(printer)
+                self.pages_printed = print_paged(tdoc, printer, os.path.basename(
+                    self.document.measurements.source or "Ballast report"))
             del printer
             try:
                 check_pdf(tmp)
@@ -903,6 +1028,7 @@ class ReportExporter:
 
         act(menu, "Write &report (HTML)...", self.write_html, "Ctrl+R")
         act(menu, "Write report as P&DF...", self.write_pdf, "Ctrl+Shift+R")
+        act(menu, "Report &sign-off names...", self.edit_signoff)
         sub = menu.addMenu("E&xport")
         act(sub, "Fitted &curve and band (CSV)...", self.write_curve_csv)
         act(sub, "&Residuals and weights per point (CSV)...", self.write_points_csv)

@@ -1,4 +1,5 @@
-"""Regenerate resources/screenshot.png (the README's picture of the window), offscreen.
+"""Regenerate resources/screenshot.png and resources/report.png (the README's pictures of
+the window and of the first page of its report), offscreen.
 
 Usage::
 
@@ -62,8 +63,32 @@ def main(out: str) -> None:
     img = win.grab()
     assert img.save(out)
     print(f"{out}: {img.width()}x{img.height()}, {os.path.getsize(out) // 1024} KB, point {worst + 1} excluded")
+    report_out = str(Path(out).with_name("report.png"))
+    save_report_page(win, report_out)
+    print(f"{report_out}: first page of the report (as the PDF lays it out)")
     win.sessions.dirty = False
     win.close()
+
+
+def save_report_page(win, out: str, page: int = 0) -> None:
+    """One page of the report as the PDF lays it out (desktop.report_export.print_paged),
+    painted into an image: the README's picture of the filed record."""
+    from PySide6.QtCore import QSizeF
+    from PySide6.QtGui import QImage, QPainter
+
+    from desktop.report_export import PDF_LAYOUT_WIDTH, paint_page
+
+    win.reports.set_signoff(analyst="A. Analyst", reviewer="", review_date="")
+    tdoc = win.reports.text_document()
+    h = PDF_LAYOUT_WIDTH * 297 / 210
+    tdoc.setPageSize(QSizeF(PDF_LAYOUT_WIDTH, h))
+    img = QImage(PDF_LAYOUT_WIDTH, int(h), QImage.Format_RGB32)
+    img.fill(0xFFFFFF)
+    p = QPainter(img)
+    p.setRenderHint(QPainter.Antialiasing, True)
+    paint_page(p, tdoc, page, h)
+    p.end()
+    assert img.save(out)
 
 
 if __name__ == "__main__":
