@@ -32,6 +32,8 @@ __all__ = [
     "method_lines",
     "method_statement",
     "estimate_cells",
+    "signoff_lines",
+    "signoff_html",
     "siunitx_unit",
     "DataRecord",
     "data_lines",
@@ -986,3 +988,29 @@ def curve_csv(
     for row in zip(xg, fitted, low, high):
         w.writerow([_full(v) for v in row])
     return buf.getvalue()
+
+
+# ============================================================================ sign-off
+#: a blank line to sign or fill in by hand
+BLANK = "_" * 28
+
+
+def signoff_lines(analyst: str = "", reviewer: str = "",
+                  review_date: str = "") -> list[tuple[str, str]]:
+    """The sign-off block of a report as ``(label, text)`` pairs: analyst, signature
+    and date, reviewer, signature, date of review. A field not given is a blank line
+    (:data:`BLANK`) to fill in by hand on the printed record."""
+    def v(s):
+        s = _one_line(s or "")
+        return s or BLANK
+
+    return [("Analyst", v(analyst)), ("Analyst's signature and date", BLANK),
+            ("Reviewer", v(reviewer)), ("Reviewer's signature", BLANK),
+            ("Date of review", v(review_date))]
+
+
+def signoff_html(analyst: str = "", reviewer: str = "", review_date: str = "") -> str:
+    """:func:`signoff_lines` as an HTML table (for the report)."""
+    rows = "".join(f'<tr><th align="left">{_h(k)}</th><td>{_h(t)}</td></tr>'
+                   for k, t in signoff_lines(analyst, reviewer, review_date))
+    return f'<table class="signoff" border="0" cellpadding="6">{rows}</table>'

@@ -7,7 +7,6 @@ and the exported confidence band of a least-squares line against statsmodels'
 """
 from __future__ import annotations
 
-import base64
 import csv
 import io
 import re
@@ -123,16 +122,28 @@ def test_html_report_is_self_contained_and_complete(win, tmp_path):
     assert path
     text = (tmp_path / "r.html").read_text(encoding="utf-8")
     res = win.document.result
-    # self-contained: no link to any outside file; the plots are embedded PNGs
+    # self-contained: no link to any outside file; the plot is inline SVG drawn from
+    # the data (fitcore.report_plot), no bitmap and no window state (17.5)
     assert not re.search(r"(src|href)=\"(?!data:)", text)
-    pngs = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', text)
-    assert len(pngs) == 2
-    sizes = []
-    for b in pngs:
-        img = QImage.fromData(base64.b64decode(b), "PNG")
-        assert not img.isNull()
-        sizes.append((img.width(), img.height()))
-    assert sizes == [report_export.REPORT_PLOT_SIZE, report_export.REPORT_RESID_SIZE]
+    assert "<img" not in text and text.count("<svg") == 1
+    svg = text[text.index("<svg"):text.index("</svg>") + 6]
+    from PySide6.QtCore import QByteArray
+    from PySide6.QtSvg import QSvgRenderer
+
+    assert QSvgRenderer(QByteArray(svg.encode("utf-8"))).isValid()
+    assert svg.count(">Time (s)</text>") == 2  # the x-axis title under both panels
+    assert "residual y − fitted" in svg
+    assert "#5a5a6e" in svg and "#ffc800" not in svg  # excluded ring; no selection halo
+    # the same data give the same plot, whatever the window shows (zoom, selection)
+    win.document.set_selection([0])
+    win.plot.data_plot.vb.setRange(xRange=(0, 1), yRange=(0, 1), padding=0)
+    again = win.reports.report_html()
+    assert again[again.index("<svg"):again.index("</svg>") + 6] == svg
+    # the sign-off block: blank lines to fill in when no names were given (17.4)
+    signoff = text[text.index("<h2>Sign-off</h2>"):]
+    from fitcore.report_text import BLANK
+
+    assert signoff.count(BLANK) == 5
     # estimates as fitcore formats them, correlation, method in words, caution
     est = fr.estimates_text(side_by_side(win.document), "html", x_unit="s", y_unit="mV")
     first_row = est.split("\n")[2]
@@ -153,7 +164,8 @@ def test_html_report_is_self_contained_and_complete(win, tmp_path):
     # the points table: one row per point with its weight
     rows = re.findall(r"<tr[^>]*><td class=\"num\">(\d+)</td>.*?<td class=\"num\">([0-9.]+)</td>"
                       r"<td>(used|down-weighted|excluded)</td>", text)
-    assert [int(r[0]) for r in rows] == list(range(1, 31))
+    m = win.document.measurements  # the points by their file rows (17.3)
+    assert [int(r[0]) for r in rows] == [m.file_row(i) for i in range(30)]
     assert [float(r[1]) for r in rows] == [round(float(w), 3) for w in res.weights]
     assert [r[2] for r in rows] == fr.point_status(res)
     assert "SHA-256" in text and win.sessions.source_sha256 in text
@@ -176,6 +188,11 @@ def test_pdf_report_prints_through_qt(win, tmp_path):
     for words in ("Fit report: line.csv", "Estimates", "Method", "Correlation of the estimates",
                   "Exclusion record", "pipette bubble", "Points", "Caution."):
         assert words in plain, words
+    # the plot is vector (no image object in the file) and every page is numbered
+    assert not re.search(rb"/Subtype\s*/Image", raw)
+    pages = win.reports.pages_printed
+    assert pages >= 2  # 30 points, method, record and sign-off do not fit one A4 page
+    assert report_export.page_footer(2, pages) == f"page 2 of {pages}"
     if shutil.which("pdftoppm"):  # poppler reads the file Qt wrote
         out = subprocess.run(["pdftoppm", "-r", "30", "-f", "1", "-l", "1", "-png",
                               str(tmp_path / "r.pdf"), str(tmp_path / "page")],
@@ -183,6 +200,31 @@ def test_pdf_report_prints_through_qt(win, tmp_path):
         assert out.returncode == 0, out.stderr
         page = QImage(str(next(tmp_path.glob("page*.png"))))
         assert page.height() > page.width() > 200  # A4 portrait
+
+
+def test_signoff_names_are_typed_once_and_remembered(win, tmp_path, monkeypatch):
+    asked = []
+    monkeypatch.setattr(report_export, "ask_signoff", lambda parent, current: (
+        asked.append(dict(current)), {"analyst": "R. Lindqvist", "reviewer": "M. Osei",
+                                      "review_date": ""})[1])
+    assert win.reports.edit_signoff()
+    assert asked == [{"analyst": "", "reviewer": "", "review_date": ""}]
+    text = win.reports.report_html()
+    signoff = text[text.index("<h2>Sign-off</h2>"):]
+    from fitcore.report_text import BLANK
+
+    assert "R. Lindqvist" in signoff and "M. Osei" in signoff
+    assert signoff.count(BLANK) == 3  # two signatures and the date of review, by hand
+    # remembered in the window's settings: a new window prints them without asking
+    win.qsettings.sync()
+    from PySide6.QtCore import QSettings
+
+    again = QSettings(win.qsettings.fileName(), QSettings.IniFormat)
+    assert again.value("report/analyst") == "R. Lindqvist"
+    # the menu carries the action
+    from desktop import report_export as rx
+
+    assert rx.ReportExporter.edit_signoff is not None
 
 
 def test_report_refuses_a_stale_result(win, tmp_path, errors, monkeypatch):

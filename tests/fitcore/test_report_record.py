@@ -191,3 +191,23 @@ def test_derived_names_are_plain_descriptions():
     res = fitcore.fit("logistic4", x, y)
     d = {n: v for n, v, _u, _d in res.derived_values()}
     assert d["range"] == pytest.approx(res.values[1] - res.values[0], rel=1e-12)
+
+
+# ------------------------------------------------------------------ 17.5 plot from the data
+def test_report_plot_is_svg_drawn_from_the_data_without_qt():
+    import xml.etree.ElementTree as ET
+
+    from fitcore.report_plot import POINT_COLOURS, plot_svg
+
+    res = _line_with_exclusion()
+    svg = plot_svg(res, x_label="Time (s)", y_label="Signal (mV)")
+    root = ET.fromstring(svg)  # well-formed XML
+    ns = "{http://www.w3.org/2000/svg}"
+    texts = [t.text for t in root.iter(ns + "text")]
+    assert texts.count("Time (s)") == 2 and "Signal (mV)" in texts  # both x-axis titles
+    # one symbol per point in each panel; the excluded one a crossed ring in both
+    circles = list(root.iter(ns + "circle"))
+    assert len(circles) == 2 * len(res.x)
+    ring = POINT_COLOURS["excluded"][1]
+    assert svg.count(f'stroke="{ring}"') == 2
+    assert "<image" not in svg and "clipPath" not in svg
