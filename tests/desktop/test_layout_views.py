@@ -65,10 +65,11 @@ def test_log_axis_names_the_points_it_cannot_draw(make_win):
     settle(win)
     win.logx_action.setChecked(True)
     note = win.log_axis_note()
-    assert "2 points with x <= 0" in note and "#1, #2" in note and "still fitted" in note
+    # no file rows (measurements not read from a file): named by their place in the data
+    assert "2 points with x <= 0" in note and "point 1, point 2" in note and "still fitted" in note
     assert note in win.statusBar().currentMessage()
     win.logy_action.setChecked(True)
-    assert "1 point with y <= 0" in win.log_axis_note() and "#1)" in win.log_axis_note()
+    assert "1 point with y <= 0" in win.log_axis_note() and "(point 1)" in win.log_axis_note()
     win.logx_action.setChecked(False)
     win.logy_action.setChecked(False)
     assert win.log_axis_note() == ""
