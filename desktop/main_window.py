@@ -13,13 +13,15 @@ from PySide6.QtCore import QItemSelection, QItemSelectionModel, QSettings, Qt
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence, QUndoStack
 from PySide6.QtWidgets import (
     QAbstractItemView, QFileDialog, QLabel, QMainWindow, QMessageBox, QScrollArea, QSplitter,
-    QTableView,
+    QTableView, QVBoxLayout, QWidget,
 )
 
 from fitcore.report import point_label
+from fitcore.model_choice import choose_model, fit_problem
 
 from . import dialogs
-from .commands import MaskCommand
+from .banner import Banner
+from .commands import MaskCommand, SettingsCommand
 from .document import Document, Measurements, Settings
 from .estimates_view import CAUTION, EstimatesView
 from .method_panel import MethodPanel
@@ -27,6 +29,7 @@ from .plot_view import PlotView
 from .points_model import ColumnFitter, PointsModel, make_proxy
 from .report_export import ReportExporter
 from .session_io import SessionManager
+from .jobs import Job
 from .worker import FitRunner
 
 FILE_FILTER = ("Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;Ballast sessions (*.ballast);;"
@@ -60,10 +63,6 @@ class MainWindow(QMainWindow):
         self.document = Document()
         self.undo_stack = QUndoStack(self)
         self.ask_reasons = True  # on by default: a record wants a reason
-        #: (generation, message, ms) said when the last data were opened: the first result
-        #: of those data says it again, so the status bar ends on it whether the fit ran
-        #: before the message (inline) or after it (deferred or in the worker)
-        self._load_note = None
 
         self.plot = PlotView(self.document, self.push, ask_reason=self._ask_reason)
         self.points_model = PointsModel(self.document, self.push, self)
@@ -83,8 +82,21 @@ class MainWindow(QMainWindow):
         self.estimates = EstimatesView(self.document)
         self.runner = FitRunner(self.document, parent=self)
 
+        # messages the analyst must read (read notes, a model kept or changed) stay in a
+        # banner above the plot; the status bar only carries passing news
+        self.banner = Banner()
+        plot_box = QWidget()
+        plot_lay = QVBoxLayout(plot_box)
+        plot_lay.setContentsMargins(0, 0, 0, 0)
+        plot_lay.setSpacing(0)
+        plot_lay.addWidget(self.banner)
+        plot_lay.addWidget(self.plot, 1)
+        self.model_check = Job(self)
+        self.model_check.finished.connect(self._model_check_done)
+        self._model_check_for = None  # (measurements, settings) the running check is about
+        self._model_problem = ""  # why the method kept for new data does not fit them
         self.centre = QSplitter(Qt.Vertical)
-        self.centre.addWidget(self.plot)
+        self.centre.addWidget(plot_box)
         self.centre.addWidget(self.table)
         self.centre.setStretchFactor(0, 3)
         self.centre.setStretchFactor(1, 2)
@@ -258,6 +270,7 @@ class MainWindow(QMainWindow):
             ev.ignore()
             return
         self.save_state()
+        self.model_check.shutdown(1000)
         self.runner.enabled = False
         self.runner.wait(5000)
         self._shutdown_analysis()
@@ -312,14 +325,19 @@ class MainWindow(QMainWindow):
         """
         import fitcore
 
-        if not self.sessions.confirm_replace(os.path.basename(str(path))):
-            return False
+        name = os.path.basename(str(path))
         if str(path).lower().endswith(".ballast"):
+            if not self.sessions.confirm_replace(name):
+                return False
             return self.sessions.open_session(path)
-        try:
+        try:  # read first: a file that cannot be read never asks about the work on screen
             table = fitcore.read_table(path)
         except (ValueError, OSError) as err:
-            dialogs.error_box(self, "Cannot open file", f"{os.path.basename(str(path))}: {err}")
+            text = str(err)
+            # the reader's messages usually name the file already: say it once
+            dialogs.error_box(self, "Cannot open file", text if name in text else f"{name}: {text}")
+            return False
+        if not self.sessions.confirm_replace(name):
             return False
         suggested = dialogs.sample_method(path)
         settings = Settings(**suggested) if suggested else None
@@ -403,19 +421,82 @@ class MainWindow(QMainWindow):
             dialogs.error_box(self, "Cannot use this table", f"{what}{err}{keep}")
             return False
         self.undo_stack.clear()  # a new data set starts a new history
-        self._load_note = None
+        self.model_check.cancel()
+        self._model_check_for = None
         self.document.apply_measurements(m, settings=settings)
         name = os.path.basename(m.source) if m.source != "clipboard" else "pasted table"
         self.setWindowTitle(f"Ballast - {name}")
-        note = "; ".join(m.notes)
-        text = (f"{dialogs.counted(m.n, 'point')} from {name}" + (f". {note}" if note else "")
-                + (f". {method_note}" if method_note else ""))
-        ms = 20000 if method_note else 15000
-        doc = self.document
-        fitted = doc.result is not None and doc.result_generation == doc.generation
-        self._load_note = None if fitted else (doc.generation, text, ms)
-        self.statusBar().showMessage(text, ms)
+        self.banner.clear()
+        self._show_read_notes(m, name)
+        if self._model_problem:
+            self._start_model_check(m, settings, self._model_problem)
+        elif method_note:
+            self.banner.show_message("model", method_note,
+                                     kind="warning" if method_note.startswith("Switched") else "info")
+        self.statusBar().showMessage(f"{dialogs.counted(m.n, 'point')} from {name}"
+                                     + (f" ({dialogs.counted(len(m.notes), 'read note')} above the plot)"
+                                        if m.notes else ""), 15000)
         return True
+
+    # ------------------------------------------------------------------ notes and model check
+    def _show_read_notes(self, m: Measurements, name: str) -> None:
+        """What the reader left out or guessed, in the banner until closed."""
+        notes = [str(n) for n in m.notes]
+        if not notes:
+            return
+        more = len(notes) - 3
+        text = (f"Read notes for {name}: " + "; ".join(notes[:3])
+                + (f"; and {more} more (point at this text to see all)" if more > 0 else ""))
+        self.banner.show_message("notes", text, tooltip="\n".join(notes))
+
+    def _start_model_check(self, m: Measurements, settings: Settings, problem: str) -> None:
+        """Try the catalogue models off the GUI thread (see fitcore.model_choice)."""
+        self._model_check_for = (m, settings)
+        self.banner.show_message(
+            "model", f"{model_title(settings)} does not fit these data ({problem}). "
+            "Trying the catalogue models...", kind="warning")
+        used = ~self.document.excluded
+        x, y = m.x[used], m.y[used]
+        sig = None if m.sigma is None else m.sigma[used]
+        current = settings.model
+
+        def work(progress, cancel):
+            return choose_model(x, y, sig, current, progress=progress, cancel=cancel)
+
+        self.model_check.start(work)
+
+    def _model_check_done(self, choice) -> None:
+        m, settings = self._model_check_for or (None, None)
+        self._model_check_for = None
+        doc = self.document
+        if m is None or doc.measurements is not m:
+            return  # new data meanwhile: the answer is moot
+        if doc.settings != settings:  # a method chosen by hand meanwhile
+            self.banner.clear("model")
+            return
+        if choice.keep or choice.best is None or choice.best.model == settings.model:
+            extra = "" if choice.best is None else " No catalogue model fits them better."
+            self.banner.show_message("model", f"{choice.reason()}{extra} Choose another model in Method.",
+                                     kind="warning")
+            return
+        # the loss, scale and weighting stay; held and start values belonged to the old model
+        new = settings.with_(model=choice.best.model, model_kind="builtin", model_options={}, p0=None, fixed={})
+        cmd = SettingsCommand(doc, new, text=f"Model: {choice.best.title}")
+        self.push(cmd)
+        self.banner.show_message(
+            "model", f"Model changed to {choice.best.title}. {choice.reason()} "
+            f"Of the catalogue models it is the simplest that fits these data as well as any "
+            f"(robust criterion over {len(choice.scores)} models).",
+            kind="warning", actions=[("Undo", lambda: self._undo_model_change(cmd, settings))])
+
+    def _undo_model_change(self, cmd, before: Settings) -> None:
+        stack = self.undo_stack
+        if stack.index() > 0 and stack.command(stack.index() - 1) is cmd:
+            stack.undo()
+        elif self.document.settings != before:
+            self.push(SettingsCommand(self.document, before, text=f"Model: {model_title(before)}"))
+        self.banner.show_message("model", f"Model back to {model_title(before)}, which does not fit these "
+                                 "data well. Choose another in Method.", kind="warning")
 
     def method_for(self, m: Measurements, suggested: Settings | None = None):
         """``(settings, note)``: the method new data ``m`` open with, and what to tell.
@@ -433,6 +514,7 @@ class MainWindow(QMainWindow):
 
         doc = self.document
         current = doc.settings
+        self._model_problem = ""
         if suggested is not None:
             first, what = suggested, "the suggested model"
             note = ""
@@ -452,6 +534,8 @@ class MainWindow(QMainWindow):
             if res is not None and not (res.converged and np.all(np.isfinite(res.values))):
                 msg = res.message if not res.converged else "the estimates are not finite"
             if msg is None:
+                if s is first and suggested is None:
+                    self._model_problem = fit_problem(s.model, m.x[idx], res)
                 if s is line and first is not line:
                     note = (f"Switched to a straight line: {what}, {model_title(first)}, "
                             f"cannot fit these data ({problems[0].rstrip('.')}). Choose another "
@@ -503,11 +587,6 @@ class MainWindow(QMainWindow):
                                              "(the previous result is kept, marked stale)", 15000)
             elif res is not None:
                 note = self.log_axis_note()
-                gen, text, ms = self._load_note or (None, "", 0)
-                if gen == self.document.result_generation:  # the first fit of new data
-                    self._load_note = None
-                    self.statusBar().showMessage(text + (f" {note}" if note else ""), ms)
-                    return
                 self.statusBar().showMessage(f"Fitted {dialogs.counted(res.n_used, 'point')} "
                                              f"({res.loss})." + (f" {note}" if note else ""),
                                              15000 if note else 4000)

@@ -560,7 +560,8 @@ class PlotView(pg.GraphicsLayoutWidget):
         # gross outlier does not squash all the others onto a line.
         self.resid_standardised = True
         self._resid_shown_standardised = True
-        self.resid_arrows = pg.ScatterPlotItem(size=9, pen=pg.mkPen(60, 60, 60), brush=pg.mkBrush(60, 60, 60))
+        self.resid_arrows = pg.ScatterPlotItem(size=9, useCache=False, pen=pg.mkPen(60, 60, 60),
+                                               brush=pg.mkBrush(60, 60, 60))
         self.resid_plot.addItem(self.resid_arrows)
         self.resid_plot.setLabel("left", "residual")
         self.stale_text = pg.TextItem("", color=(200, 30, 45), anchor=(0, 0))

@@ -717,7 +717,7 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
             note = (f"{_rows_text(np.asarray(sel.dropped_rows))}: left out, no usable number in "
                     f"{sel.x_name}, {sel.y_name}" + (f" or {sel.sigma_name}" if sel.sigma_name else ""))
         if codes is None:
-            yield (meta, sel.x, sel.y, sel.sigma, excl, _info(sel, note))
+            yield (meta, sel.x, sel.y, sel.sigma, excl, _info(sel, note, spec, sel.source_rows))
             continue
         if (codes < 0).any():
             empty = f"{int((codes < 0).sum())} row(s) with an empty {spec.group} cell belong to no curve"
@@ -732,7 +732,7 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
                 continue
             yield ((source, sheet, label, ycol), sel.x[idx], sel.y[idx],
                    None if sel.sigma is None else sel.sigma[idx],
-                   None if excl is None else excl[idx], _info(sel, note))
+                   None if excl is None else excl[idx], _info(sel, note, spec, sel.source_rows[idx]))
 
 
 def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
@@ -764,9 +764,37 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
         warnings="; ".join(w.replace("\n", " ") for w in warn), report=report)
 
 
-def _info(sel, note: str) -> dict:
-    return {"note": note, "x_name": sel.x_name, "y_name": sel.y_name, "x_unit": sel.x_unit,
+def _info(sel, note: str, spec: BatchSpec, rows) -> dict:
+    info = {"note": note, "x_name": sel.x_name, "y_name": sel.y_name, "x_unit": sel.x_unit,
             "y_unit": sel.y_unit}
+    if spec.report:  # what the report's data record needs
+        info.update(sigma_name=sel.sigma_name or "", sha256=sel.sha256, rows=np.asarray(rows))
+    return info
+
+
+def _method_html(res, meta, info) -> list[str]:
+    """The report's data record and method paragraph, in the words the window's report
+    uses (fitcore.report.data_lines / method_statement)."""
+    import html
+
+    from . import report
+
+    if not (hasattr(report, "DataRecord") and hasattr(report, "method_statement")):
+        return []
+    source, sheet, _, _ = meta
+    rows = info.get("rows")
+    data = report.DataRecord(
+        source=source, sha256=info.get("sha256", ""), sheet=sheet, x_column=info.get("x_name", ""),
+        y_column=info.get("y_name", ""), sigma_column=info.get("sigma_name", ""),
+        x_unit=info.get("x_unit", ""), y_unit=info.get("y_unit", ""), n_points=int(len(res.x)),
+        notes=(info["note"],) if info.get("note") else (),
+        file_rows=None if rows is None else tuple(int(r) for r in rows))
+    out = ["<h2>Data</h2>", "<table>" + "".join(
+        f"<tr><th>{html.escape(k)}</th><td style='text-align:left'>{html.escape(str(v))}</td></tr>"
+        for k, v in report.data_lines(data)) + "</table>"]
+    out += ["<h2>Method</h2>",
+            f"<p>{html.escape(report.method_statement(res, y_unit=info.get('y_unit', ''), data=data))}</p>"]
+    return out
 
 
 def _report_html(res, meta, info) -> str:
@@ -799,6 +827,7 @@ def _plain_report_html(res, title: str, meta, info) -> str:
         f"<h1>Ballast report: {esc(title)}</h1>",
         "<table>" + "".join(f"<tr><th>{esc(k)}</th><td style='text-align:left'>{esc(str(v))}</td></tr>"
                             for k, v in what if v) + "</table>",
+        *_method_html(res, meta, info),
         "<h2>Estimates</h2>",
         estimates_text(res, "html", x_unit=x_unit, y_unit=y_unit),
         "<h2>Plot</h2>",

@@ -204,9 +204,10 @@ def test_kept_model_is_announced(worked, asked, tmp_path):
     assert w.runner.wait()
     doc = w.document
     assert doc.settings.model == "exp_decay"  # kept: the same kind of data each week
-    msg = w.statusBar().currentMessage()
+    msg = w.banner.text("model")  # stays above the plot (the status bar moves on)
     assert ("Model kept from the previous data: Exponential decay (time constant); choose "
             "another in Method") in msg, msg
+    assert not w.model_check.running  # it fits these data: no catalogue search
     ref = fitcore.fit("exp_decay", doc.measurements.x, doc.measurements.y, loss="huber")
     np.testing.assert_allclose(doc.result.values, ref.values, rtol=1e-10)
 
@@ -227,12 +228,8 @@ def test_model_that_cannot_fit_the_new_data_falls_back_to_a_line(worked, asked, 
     assert w.runner.wait()
     doc = w.document
     assert doc.settings.model == "line" and doc.settings.loss == "huber"
-    # The switch is announced whichever way the fit ran: inline, the load message
-    # ("2 points from two.csv. Switched ...") comes last; in the worker, the fit's
-    # message ("Fitted 2 points (huber). Switched ...") repeats the note. Which way it
-    # runs depends on how long the previous fit took, so only the content is checked.
-    msg = w.statusBar().currentMessage()
-    assert "2 points" in msg and "Switched to a straight line" in msg and "Exponential decay" in msg, msg
+    msg = w.banner.text("model")  # not the status bar, which the fit's own news replaces
+    assert msg.startswith("Switched to a straight line") and "Exponential decay" in msg, msg
     ref = fitcore.fit("line", doc.measurements.x, doc.measurements.y, loss="huber")
     np.testing.assert_allclose(doc.result.values, ref.values, rtol=1e-12)
 
@@ -244,7 +241,7 @@ def test_sample_sets_still_open_with_their_own_model(worked, asked):
     assert w.open_path(str(path))
     assert w.runner.wait()
     assert w.document.settings.model == "logistic4"
-    assert "Model kept" not in w.statusBar().currentMessage()
+    assert "Model kept" not in w.banner.text("model") and not w.model_check.running
 
 
 # ------------------------------------------------------------------ 3. stale estimates
@@ -427,3 +424,79 @@ class _Drop:
 
     def acceptProposedAction(self):
         pass
+
+
+# ------------------------------------------------------------------ 2b. a model chosen deliberately
+def write_line_csv(path, n=16, seed=5):
+    """Invented calibration line (absorbance against concentration), one bad standard."""
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0.0, 30.0, n)
+    y = 0.004 + 0.0985 * x + rng.normal(0, 0.002, n)
+    y[9] += 0.05
+    return write_rows(path, [(f"{a:.3f}", f"{b:.5f}") for a, b in zip(x, y)],
+                      header="Concentration (mg/L),Absorbance")
+
+
+def test_a_kept_model_that_does_not_fit_the_new_data_is_replaced_with_an_undo(worked, asked, tmp_path):
+    """A calibration line opened after a decay fit: the decay's time constant is not
+    determined by a straight calibration line (the '4000 +- 24000' case), so the
+    simplest catalogue model that fits as well as any (the straight line) replaces it,
+    said in the banner with an Undo; the Undo button brings the decay back."""
+    w = worked
+    asked.answer = "discard"
+    assert w.open_path(str(write_line_csv(tmp_path / "calibration.csv")))
+    assert "does not fit these data" in w.banner.text("model")
+    assert w.model_check.wait(300000)
+    assert w.runner.wait()
+    doc = w.document
+    assert doc.settings.model == "line" and doc.settings.loss == "huber"
+    msg = w.banner.text("model")
+    assert msg.startswith("Model changed to Straight line.") and "Exponential decay" in msg, msg
+    ref = fitcore.fit("line", doc.measurements.x, doc.measurements.y, loss="huber")
+    np.testing.assert_allclose(doc.result.values, ref.values, rtol=1e-10)
+    undo = w.banner.message("model").buttons[0]
+    assert undo.text() == "Undo"
+    undo.click()
+    assert w.runner.wait()
+    assert doc.settings.model == "exp_decay"
+    assert "Model back to Exponential decay" in w.banner.text("model")
+
+
+def test_a_line_kept_for_decay_data_gives_way_to_the_decay(make_win, tmp_path):
+    w = make_win()
+    assert w.open_path(str(write_line_csv(tmp_path / "line.csv")))
+    assert w.runner.wait()
+    assert w.document.settings.model == "line" and not w.model_check.running  # a line fits a line
+    assert w.open_path(str(write_decay_csv(tmp_path / "decay.csv")))
+    assert "misses the data systematically" in w.banner.text("model")
+    assert w.model_check.wait(300000)
+    assert w.document.settings.model == "exp_decay"
+    assert w.undo_stack.count() == 1 and w.undo_stack.undoText() == "Model: Exponential decay (time constant)"
+
+
+def test_read_notes_stay_in_the_banner(make_win, tmp_path):
+    rows = [(i, 2.0 * i + 1.0) for i in range(12)]
+    rows[4] = (4, "n/a")
+    w = make_win()
+    assert w.open_path(str(write_rows(tmp_path / "notes.csv", rows)))
+    assert w.runner.wait()
+    text = w.banner.text("notes")
+    assert text.startswith("Read notes for notes.csv:") and "n/a" in text, text
+    w.banner.message("notes").close_button.click()
+    assert w.banner.text("notes") == ""
+
+
+# ------------------------------------------------------------------ 2c. small things
+def test_an_unreadable_file_is_refused_before_asking_about_unsaved_work(worked, asked, tmp_path, errors):
+    """Read first, then ask: a junk file never brings up Save / Discard / Cancel, and
+    its message names the file once."""
+    w = worked
+    junk = tmp_path / "junk.csv"
+    junk.write_bytes(b"\x00\x01\x02 not a table \xff\xfe" * 20)
+    before = snapshot(w)
+    n_asked = len(asked)
+    assert not w.open_path(str(junk))
+    assert len(asked) == n_asked  # not asked
+    title, text = errors[-1]
+    assert text.count("junk.csv") == 1, text
+    assert_unchanged(w, before)

@@ -273,6 +273,7 @@ def test_residual_range_holds_still_until_residuals_leave_it(qtbot, settings_fil
     win.load_measurements(doc.measurements, doc.settings)
     assert win.runner.wait()
     doc = win.document
+    win.plot.set_residuals_standardised(False)  # the range logic on raw residuals
     vb = win.plot.vb_resid
     r = doc.result.residuals
     y0, y1 = vb.viewRange()[1]

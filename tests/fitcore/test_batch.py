@@ -328,6 +328,7 @@ def test_cli_report_dir_one_page_per_curve(folder, tmp_path):
                      "long_B1_Signal.html"]
     text = (reports / "long_A1_Signal.html").read_text(encoding="utf-8")
     assert "<html" in text.lower() and "<svg" in text and "Robust weights are not a licence" in text
+    assert "file rows 2 to 19" in text  # well A1's own rows, as the window's data record names them
     # the estimates in the page are those of the single fit of well A1, rounded per GUM
     table = fitcore.read_table(folder / "long.tsv")
     codes, labels = table.groups("Well")
