@@ -95,7 +95,7 @@ def ask_signoff(parent, current: dict):
     buttons.accepted.connect(dlg.accept)
     buttons.rejected.connect(dlg.reject)
     form.addRow(buttons)
-    if dlg.exec() != QDialog.Accepted:
+    if dlg.exec() != QDialog.Accepted:  # safe: Qt dialog event loop
         return None
     return {k: e.text().strip() for k, e in edits.items()}
 
