@@ -35,6 +35,9 @@ from PySide6.QtWidgets import (
 )
 
 LEVEL = 0.95
+# models whose detection limits are shown before any unknown is pasted: the usual
+# calibration functions (common practice: ISO 8466-1/-2 straight and quadratic lines)
+CALIBRATION_MODELS = frozenset({"line", "line_origin", "poly2", "poly3"})
 COLUMNS = ("sample", "readings", "x", "u(x)", f"{int(LEVEL * 100)}% interval", "flags")
 
 
@@ -330,6 +333,14 @@ class UnknownsView(QWidget):
         self._draw_marks()
         self.updated.emit()
 
+    def limits_apply(self) -> bool:
+        """Detection limits belong to calibrations: shown for the calibration-line models
+        (:data:`CALIBRATION_MODELS`) and, for any other curve, once unknowns are pasted."""
+        res = self.for_result
+        if res is None:
+            return False
+        return bool(self.samples) or getattr(res.model, "name", "") in CALIBRATION_MODELS
+
     @property
     def stale(self) -> bool:
         doc = self.document
@@ -409,6 +420,10 @@ class UnknownsView(QWidget):
         u = f" {_h(x_unit)}" if x_unit else ""
         lim = self.limits
         parts = []
+        if not self.limits_apply():
+            lim = None  # a decay's "LOD in minutes" would only mislead
+            parts.append("Paste readings of unknown samples to read them off the curve; "
+                         "detection limits are shown with them.")
         if isinstance(lim, DetectionLimits):
             parts.append(f"<b>LOD</b> {lim.lod_ich:.3g}{u}, <b>LOQ</b> {lim.loq_ich:.3g}{u} "
                          "(ICH Q2(R1): 3.3&sigma;/S, 10&sigma;/S)")

@@ -131,3 +131,23 @@ def test_unknowns_survive_a_session_save_and_reopen(calib, open_window, tmp_path
     assert _values(w2) == pytest.approx(_values(calib), rel=1e-12)
     # a damaged list keeps only its well-formed entries
     assert clean_samples([["A", [1.0]], ["B", []], [3, [1.0]], ["C", ["x"]], "D"]) == [("A", (1.0,))]
+
+
+def test_detection_limits_wait_for_unknowns_on_a_curve_that_is_no_calibration(open_window):
+    # a decay's "LOD in minutes" is meaningless; limits appear once unknowns are read back
+    win = open_window()
+    x = np.linspace(0, 180, 25)
+    y = 12000 * np.exp(-x / 41.0) + 190 + np.random.default_rng(3).normal(0, 60, x.size)
+    win.load_measurements(Measurements(x, y, x_unit="min", source="invented"),
+                          Settings(model="exp_decay", loss="huber"))
+    assert win.runner.wait()
+    view = win.unknowns
+    assert "LOD" not in view.limits_label.text()
+    assert "Paste readings" in view.limits_label.text()
+    view.paste("S1\t5000\n")
+    assert "LOD" in view.limits_label.text() or "limits not available" in view.limits_label.text()
+
+
+def test_detection_limits_shown_at_once_for_a_calibration_line(calib):
+    assert calib.unknowns.limits_apply()
+    assert "LOD" in calib.unknowns.limits_label.text()
