@@ -445,6 +445,7 @@ def _check_method(model, loss, options) -> Any:
     from .losses import LOSS_NAMES
     from .model import Model
     from .solve import FitError
+    from .solvers.setup import _check_alpha
 
     allowed = _fit_options()
     unknown = sorted(set(options) - set(allowed))
@@ -453,6 +454,7 @@ def _check_method(model, loss, options) -> Any:
                         f"{', '.join(allowed)} (sigma and excluded go with each data set)")
     if loss not in LOSS_NAMES:
         raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
+    _check_alpha(loss, options.get("alpha"))
     if isinstance(model, Model):
         return model
     if not isinstance(model, str):

@@ -284,8 +284,14 @@ class Method:
         return resolve_model(self.model_spec())
 
     def to_fit_kwargs(self) -> dict:
-        """Every option for :func:`fitcore.fit` (besides model, x, y, sigma, excluded)."""
+        """Every option for :func:`fitcore.fit` (besides model, x, y, sigma, excluded).
+
+        ``alpha`` is kept in the method as the analyst's preference for the general loss
+        (switching back to it restores the shape), but it is passed only with
+        ``loss="general"``: ``fit()`` refuses a shape for a loss that has none."""
         kw = {name: getattr(self, name) for name in FIT_OPTIONS}
+        if self.loss != "general":
+            del kw["alpha"]
         kw["fixed"] = dict(self.fixed) or None
         if isinstance(self.p0, Mapping):
             kw["p0"] = dict(self.p0)

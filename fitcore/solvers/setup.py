@@ -127,6 +127,16 @@ def _check_scale(s: float, prob: _Problem) -> None:
                        f"give a scale near the scatter of y")
 
 
+def _check_alpha(loss: str, alpha) -> None:
+    """``alpha`` is the shape of the general loss only: with any other loss it would be
+    ignored (the adaptive loss fits its own), so it is refused rather than dropped."""
+    if alpha is None or loss == "general":
+        return
+    what = ("fits its own shape; to hold alpha fixed use loss='general'" if loss == "adaptive"
+            else "has none; leave alpha out or use loss='general'")
+    raise FitError(f"alpha is the shape of the general loss; the {loss} loss {what}")
+
+
 def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tuning,
              sigma_mode, max_iter) -> _Setup:
     """Check the input and build the problem; every refusal is a FitError."""
@@ -140,6 +150,7 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         raise
     except ValueError as e:  # formula and catalogue errors are ValueErrors with messages
         raise FitError(str(e)) from e
+    _check_alpha(loss, alpha)
     try:
         loss_obj = get_loss(loss, tuning=tuning, alpha=alpha if loss != "adaptive" else None)
     except ValueError as e:

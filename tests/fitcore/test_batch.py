@@ -96,6 +96,8 @@ def test_fit_many_options_progress_and_errors():
         fitcore.fit_many(data, "line", "l2", sigmas=1)
     with pytest.raises(fitcore.FitError, match="unknown loss"):
         fitcore.fit_many(data, "line", "lsq")
+    with pytest.raises(fitcore.FitError, match="alpha is the shape of the general loss"):
+        fitcore.fit_many(data, "line", "huber", alpha=0.5)  # refused once, not per curve
     with pytest.raises(fitcore.FitError):
         fitcore.fit_many(data, "a*exp(-x/", "l2")
     with pytest.raises(fitcore.BatchError, match="jobs"):

@@ -115,6 +115,21 @@ def test_constant_y_under_exp_decay_names_the_undetermined_time_constant():
     assert np.isnan(res.stderr[res.param_names.index("tau")])
 
 
+@pytest.mark.parametrize("loss", ["l2", "l1", "huber", "tukey", "adaptive"])
+def test_alpha_with_a_loss_that_has_no_fixed_alpha_is_refused(loss):
+    # only the general loss takes a shape; the adaptive loss fits it (common practice:
+    # a meaningless option combination is an error, not silently ignored)
+    with pytest.raises(fitcore.FitError, match=f"^alpha is the shape of the general loss; "
+                                               f"the {loss} loss"):
+        fitcore.fit("line", X, Y, loss=loss, alpha=0.5)
+    assert fitcore.fit("line", X, Y, loss=loss, alpha=None).converged
+
+
+def test_alpha_is_taken_by_the_general_loss():
+    res = fitcore.fit("line", X, Y, loss="general", alpha=0.5)
+    assert res.alpha == 0.5
+
+
 @pytest.mark.parametrize("which", ["x", "y"])
 def test_complex_input_is_refused(which):
     args = {"x": X, "y": Y}
