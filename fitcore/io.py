@@ -569,6 +569,11 @@ class _Layout:
 _PLAIN_NUMBER_RE = re.compile(r"^\s*[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?\s*$")
 
 
+# a character that cannot occur in a cell _numlike accepts (digits, signs, exponent,
+# decimal marks, group separators and white space)
+_NOT_NUMBER_CHAR_RE = re.compile(r"[^\deE+\-.,'\u2019\u00a0\u202f\u2212\u2013\s]")
+
+
 def _cell_kind(cell) -> int:
     """0 = empty, 1 = number, 2 = text."""
     if cell is None:
@@ -578,13 +583,30 @@ def _cell_kind(cell) -> int:
     s = str(cell)
     if _PLAIN_NUMBER_RE.match(s):  # fast path: most cells of a wide file
         return 1
+    if _NOT_NUMBER_CHAR_RE.search(s):  # a letter or sign no number has: text (header cells)
+        return 2
     s = s.strip()
     if not s:
         return 0
     return 1 if _numlike(s) else 2
 
 
+# the plain-number pattern for cells joined by "\n" (no white space across a line end)
+_PLAIN_NUMBER_LINES_RE = re.compile(r"^[ \t]*[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?[ \t]*$", re.M)
+
+
 def _row_stats(cells) -> tuple[int, int, int]:
+    if len(cells) > 64:
+        # a wide row of text cells (a spectrum export): count the plain numbers in one
+        # pass; when every cell is one, the row is all numbers (each match lies inside
+        # one cell and holds a digit, so no cell is counted twice)
+        try:
+            joined = "\n".join(cells)
+        except TypeError:  # not all text: cell by cell below
+            joined = ""
+        if (joined.count("\n") == len(cells) - 1
+                and len(_PLAIN_NUMBER_LINES_RE.findall(joined)) == len(cells)):
+            return len(cells), len(cells), 0
     kinds = [_cell_kind(c) for c in cells]
     width = len(kinds)
     while width and kinds[width - 1] == 0:
@@ -886,17 +908,36 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
     columns: list[np.ndarray] = []
     cell_notes: list[tuple[int, list[tuple[str, np.ndarray]]]] = []
     thousands_seen = False
-    all_numeric = df.shape[1] > 64 and all(
-        pd.api.types.is_numeric_dtype(t) and not pd.api.types.is_bool_dtype(t) for t in df.dtypes)
-    if all_numeric:  # a wide numeric table (a spectrum export): one conversion for all columns
-        matrix = df.to_numpy(dtype=float, na_value=np.nan)
-        df_columns = [matrix[:, i] for i in range(matrix.shape[1])]
+    df_columns: list = [None] * df.shape[1]
+    clean = np.zeros(df.shape[1], bool)
+    if df.shape[1] > 64:  # a wide table (a spectrum export): one conversion for the numeric columns
+        numeric_types = {t for t in set(df.dtypes)  # each distinct column type once
+                         if pd.api.types.is_numeric_dtype(t) and not pd.api.types.is_bool_dtype(t)}
+        numeric = np.array([t in numeric_types for t in df.dtypes], bool)
+        num_idx = np.flatnonzero(numeric)
+        other = np.flatnonzero(~numeric)
+        for i in other:
+            df_columns[i] = df.iloc[:, i]
+        if num_idx.size:
+            if other.size <= 64:  # a few text columns: blank them out rather than copy the rest
+                part = df.copy(deep=False)
+                for i in other:
+                    part.isetitem(int(i), np.full(len(df), np.nan))
+                matrix = np.asfortranarray(part.to_numpy(dtype=float, na_value=np.nan))
+            else:
+                matrix = np.zeros((len(df), df.shape[1]), order="F")
+                matrix[:, num_idx] = df.iloc[:, num_idx].to_numpy(dtype=float, na_value=np.nan)
+            # columns with an empty or infinite cell are checked one by one, the others not
+            clean[num_idx] = np.isfinite(matrix[:, num_idx]).all(axis=0)
+            for i in num_idx:
+                df_columns[i] = matrix[:, i]
     else:
+        numeric = np.zeros(df.shape[1], bool)
         df_columns = [col for _, col in df.items()]
     for i in range(ncols):
         col = df_columns[i] if i < len(df_columns) else None
-        if all_numeric and col is not None:
-            values, problems = _numeric_values(col)
+        if col is not None and numeric[i]:
+            values, problems = (col, []) if clean[i] else _numeric_values(col)
             grouped = False
         else:
             values, problems, grouped = _convert_column(col, len(df), decimal)
@@ -963,6 +1004,9 @@ def _read_body(pd, body: str, sep: str, decimal: str, ncols: int, label: str):
         engine="c",
         quotechar='"',
         dtype=None,
+        # a wide table (a spectrum export): one pass, not chunks that pandas then joins
+        # column by column (several times slower for thousands of columns)
+        low_memory=ncols <= 64,
     )
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")

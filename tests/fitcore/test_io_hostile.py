@@ -64,6 +64,73 @@ def test_wide_csv_with_lines_over_the_csv_field_limit(tmp_path):
     np.testing.assert_array_equal(t.column("ch0"), y[:, 0])
 
 
+def test_wide_spectrum_export_picks_x_and_y_from_thousands_of_columns(tmp_path):
+    # a spectrometer's series export: time, then 12,000 wavelength columns headed
+    # "412.345 nm"; pandas.read_csv of the same file is the independent reader
+    cols, rows = 12000, 40
+    rng = np.random.default_rng(16)
+    wl = np.linspace(200.0, 1100.0, cols)
+    y = np.round(rng.normal(0.5, 0.1, size=(rows, cols)), 6)
+    cells = [[f"{v:.6f}" for v in r] for r in y]
+    cells[7][300] = ""          # an empty cell: that column is checked cell by cell
+    cells[9][301] = "inf"       # not a finite number
+    cells[3][4000] = "n.d."     # text: that column is read as text, the others as numbers
+    header = "Time (s)," + ",".join(f"{w:.3f} nm" for w in wl)
+    p = tmp_path / "series.csv"
+    p.write_text(header + "\n" + "".join(f"{0.5 * r:.1f}," + ",".join(cells[r]) + "\n" for r in range(rows)))
+    t = read_table(p)
+    ref = pd.read_csv(p)
+    assert len(t.columns) == cols + 1 and t.n_rows == rows
+    assert t.units["Time"] == "s" and t.columns[1] == "200.000 nm"
+    for j in (0, 1, 5999, 11999):
+        s = t.choose(x="Time", y=j + 1)
+        np.testing.assert_array_equal(s.x, ref.iloc[:, 0].to_numpy())
+        np.testing.assert_array_equal(s.y, ref.iloc[:, j + 1].to_numpy())
+        assert s.y_name == f"{wl[j]:.3f} nm"
+    assert np.isnan(t.column(301)[7]) and np.isnan(t.column(302)[9])
+    assert any("row 9: no value in column" in n for n in t.notes)
+    assert any("row 11: 'inf' is not a finite number" in n for n in t.notes)
+    s = t.choose(x="Time", y=301)  # the row with the empty cell is left out, and said so
+    assert s.dropped_rows == (9,)
+    assert np.isnan(t.column(4001)[3]) and any("row 5: 'n.d.' is not a number" in n for n in t.notes)
+    np.testing.assert_array_equal(np.delete(t.column(4001), 3), np.delete(y[:, 4000], 3))
+
+
+def test_wide_table_with_many_text_columns(tmp_path):
+    # more than 64 columns holding text: the numeric ones are still read exactly
+    rng = np.random.default_rng(17)
+    y = np.round(rng.normal(size=(6, 300)), 5)
+    cells = [[repr(float(v)) for v in r] for r in y]
+    for j in range(0, 300, 3):
+        cells[2][j] = "sat"
+    p = tmp_path / "many_text.csv"
+    p.write_text("t," + ",".join(f"c{j}" for j in range(300)) + "\n"
+                 + "".join(f"{r}," + ",".join(cells[r]) + "\n" for r in range(6)))
+    t = read_table(p)
+    for j in (0, 1, 2, 299):
+        expect = y[:, j].copy()
+        if j % 3 == 0:
+            expect[2] = np.nan
+        np.testing.assert_array_equal(t.column(f"c{j}"), expect)
+    assert sum("'sat' is not a number" in n for n in t.notes) == 100
+
+
+def test_wide_row_statistics_agree_with_the_cell_by_cell_count():
+    # the one-pass count over a wide row must give what _cell_kind gives cell by cell
+    rng = np.random.default_rng(7)
+    pool = ["1", "-2.5", "+.5", "3e-4", " 7 ", "", "  ", "n.d.", "1,5", "1 234", "nm", "1.2.3", "5\t", "\u2212" + "1"]
+    for _ in range(200):
+        cells = list(rng.choice(pool, size=int(rng.integers(65, 130))))
+        if rng.random() < 0.5:
+            cells = ["%.6f" % v for v in rng.normal(size=len(cells))]
+            cells[int(rng.integers(len(cells)))] = str(rng.choice(pool))
+        kinds = [fio._cell_kind(c) for c in cells]
+        width = len(kinds)
+        while width and kinds[width - 1] == 0:
+            width -= 1
+        assert fio._row_stats(cells) == (width, kinds.count(1), kinds.count(2)), cells
+
+
 def test_quoted_field_longer_than_the_csv_limit(tmp_path):
     p = tmp_path / "notes.csv"
     p.write_text('note;x;y\n"' + "n" * 200_000 + '";1;2\n"b";2;4\n"c";3;6\n')
