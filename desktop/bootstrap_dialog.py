@@ -22,7 +22,8 @@ from fitcore.report import format_interval
 
 from .document import Document
 from .estimates_view import CAUTION, fmt_value
-from .jobs import Job
+from .job_kinds import run_here
+from .jobs import Channel
 
 KINDS = (("case", "case resampling (rows drawn with replacement)"),
          ("residual", "residual resampling (fitted curve + drawn residuals)"))
@@ -52,25 +53,18 @@ class BootstrapRecord:
 
 def run_bootstrap(res, kind: str, B: int, seed: int, level: float, progress=None, cancel=None,
                   use_child: bool | None = None):
-    """``fitcore.bootstrap.bootstrap`` of ``res``, in a child process (see
-    :mod:`desktop.analysis_worker`; fitcore spreads a long run over its own pool there)."""
-    from . import analysis_worker as aw
+    """``fitcore.bootstrap.bootstrap`` of ``res``, here and now (the "bootstrap" job of
+    :mod:`desktop.job_kinds`: in a child process this thread waits for up to
+    ``CHILD_MAX_POINTS`` points; fitcore spreads a long run over its own pool there).
+    The dialog submits the same job to its channel."""
+    where = None if use_child is None else ("process" if use_child else "thread")
+    return run_here("bootstrap", bootstrap_payload(res, kind, B, seed, level), progress, cancel,
+                    where=where)
 
-    if use_child is None:
-        use_child = int(res.n_used) <= aw.CHILD_MAX_POINTS
-    if use_child:
-        desc = aw.model_description(res.model, res.x, res.values)
-        if desc is not None:
-            msg = {"kind": "bootstrap", "model": desc, "result": aw.encode(res), "boot_kind": kind,
-                   "B": int(B), "seed": int(seed), "level": float(level)}
-            try:
-                return aw.run_in_child(msg, progress, cancel, model=res.model)
-            except aw.ChildError:
-                pass  # no child process here: run in this thread instead
-    from fitcore.bootstrap import bootstrap
 
-    return bootstrap(res, kind=kind, B=int(B), seed=int(seed), level=float(level),
-                     progress=progress, cancel=None if cancel is None else aw._Flag(cancel))
+def bootstrap_payload(res, kind: str, B: int, seed: int, level: float) -> dict:
+    """The "bootstrap" job's payload."""
+    return {"result": res, "kind": kind, "B": int(B), "seed": int(seed), "level": float(level)}
 
 
 class BootstrapDialog(QDialog):
@@ -91,7 +85,7 @@ class BootstrapDialog(QDialog):
         self.setModal(False)
         self.document = document
         self.record: BootstrapRecord | None = None
-        self.job = Job(self)
+        self.job = Channel(self)
         self.job.progress.connect(self._on_progress)
         self.job.finished.connect(self._on_finished)
         self.job.failed.connect(self._on_failed)
@@ -176,8 +170,7 @@ class BootstrapDialog(QDialog):
         self.run_button.setEnabled(False)
         self.cancel_button.setEnabled(True)
         self.status.setText(f"Resampling {B} times ({kind})...")
-        self.job.start(lambda progress, cancel: run_bootstrap(res, kind, B, seed, level,
-                                                              progress, cancel))
+        self.job.submit("bootstrap", bootstrap_payload(res, kind, B, seed, level))
         return True
 
     def cancel(self):

@@ -29,13 +29,12 @@ from PySide6.QtWidgets import (
 from fitcore.compare import DEFAULT_LOSSES
 from fitcore.compare import FIT_KWARGS as COMPARE_OPTIONS
 from fitcore.losses import LOSS_NAMES, LOSSES, loss_short_title, loss_title
-from fitcore.models import resolve_model
 from fitcore.work import curve_grid
 
-from . import analysis_worker as aw
 from .document import Document
 from .estimates_view import fmt_value
-from .jobs import Job
+from .job_kinds import run_here
+from .jobs import Channel
 
 #: Qt dash patterns for the registry's dash names (each loss's pen is in its row of
 #: fitcore.losses.LOSSES)
@@ -74,26 +73,16 @@ def comparison_request(document: Document, losses) -> dict:
 
 def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: bool = True,
                    use_child: bool | None = None):
-    """``(cmp, reading or None, reading error or None, leverage note)`` (worker side).
+    """``(cmp, reading or None, reading error or None, leverage note)``, here and now.
 
-    Runs in a child process (:mod:`desktop.analysis_worker`) up to
-    ``CHILD_MAX_POINTS`` points, else in the calling thread.
+    The "compare" job (:mod:`desktop.job_kinds`), run in this thread or, with
+    ``use_child``, in a child process this thread waits for (default: the kind's
+    choice, a child up to ``CHILD_MAX_POINTS`` points). The window submits the same
+    job to its channel instead (:meth:`CompareView.run`).
     """
-    n = int(np.size(request["x"]))
-    if use_child is None:
-        # a model with options travels as a built object, which stays in this process
-        use_child = n <= aw.CHILD_MAX_POINTS and isinstance(request["model"], str)
-    if use_child:
-        model = resolve_model(request["model"])
-        msg = {"kind": "compare", "model": request["model"], "x": aw.encode(request["x"]),
-               "y": aw.encode(request["y"]), "kwargs": aw.encode(request["kwargs"]),
-               "losses": list(request["losses"]), "with_adaptive": bool(with_adaptive)}
-        try:
-            return tuple(aw.run_in_child(msg, progress, cancel, model=model))
-        except aw.ChildError:
-            pass  # no child process here: run in this thread instead
-    return aw.run_comparison_core(request["model"], request["x"], request["y"], request["kwargs"],
-                                  request["losses"], progress, cancel, with_adaptive)
+    where = None if use_child is None else ("process" if use_child else "thread")
+    return tuple(run_here("compare", {**request, "with_adaptive": bool(with_adaptive)}, progress, cancel,
+                          where=where))
 
 
 def progress_text(done: int, total: int, n_losses: int) -> str:
@@ -246,7 +235,7 @@ class CompareView(QWidget):
         super().__init__(parent)
         self.document = document
         self.plot = plot
-        self.job = Job(self)
+        self.job = Channel(self)
         self.job.progress.connect(self._on_progress)
         self.job.finished.connect(self._on_finished)
         self.job.failed.connect(self._on_failed)
@@ -350,7 +339,7 @@ class CompareView(QWidget):
         self.run_button.setEnabled(False)
         self.cancel_button.setEnabled(True)
         self.status.setText(f"Fitting {len(losses)} loss{'' if len(losses) == 1 else 'es'}...")
-        self.job.start(lambda progress, cancel: run_comparison(req, progress, cancel))
+        self.job.submit("compare", req)
         return True
 
     def cancel(self):

@@ -26,7 +26,8 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import QLabel
 
 from .document import Document
-from .jobs import Job
+from .job_kinds import run_here
+from .jobs import Channel
 from .points_model import ExtraColumn
 
 #: our own colour ramp for the plot colouring (pale sand -> amber -> brick -> plum)
@@ -108,29 +109,16 @@ def diagnostic_columns(d, param_names, free=None) -> list[ExtraColumn]:
 
 def run_diagnostics(res, progress=None, cancel=None, exact_limit: int = 500,
                     use_child: bool | None = None):
-    """``fitcore.diagnostics.point_diagnostics(res)``, in a child process when it refits.
+    """``fitcore.diagnostics.point_diagnostics(res)``, here and now (the "diagnostics" job).
 
-    The exact refits (up to ``exact_limit`` used points) run in a child process
-    (:mod:`desktop.analysis_worker`) so the window keeps its GIL; the one-step
-    approximation for larger data is a few vectorised numpy calls and runs here.
+    The exact refits (up to ``exact_limit`` used points) run in a child process this
+    thread waits for, so the window keeps its GIL; the one-step approximation for
+    larger data is a few vectorised numpy calls and runs here (see
+    :mod:`desktop.job_kinds`). The window submits the same job to its channel.
     """
-    from . import analysis_worker as aw
-
-    if use_child is None:
-        use_child = int(res.n_used) <= exact_limit
-    if use_child:
-        desc = aw.model_description(res.model, res.x, res.values)
-        if desc is not None:
-            msg = {"kind": "diagnostics", "model": desc, "result": aw.encode(res),
-                   "exact_limit": int(exact_limit)}
-            try:
-                return aw.run_in_child(msg, progress, cancel, model=res.model)
-            except aw.ChildError:
-                pass  # no child process here: run in this thread instead
-    from fitcore.diagnostics import point_diagnostics
-
-    return point_diagnostics(res, exact_limit=exact_limit, progress=progress,
-                             cancel=None if cancel is None else aw._Flag(cancel))
+    where = None if use_child is None else ("process" if use_child else "thread")
+    return run_here("diagnostics", {"result": res, "exact_limit": int(exact_limit)}, progress, cancel,
+                    where=where)
 
 
 class DiagnosticsController(QObject):
@@ -165,7 +153,7 @@ class DiagnosticsController(QObject):
         self.diagnostics = None
         self.for_result = None
         self.message = ""
-        self.job = Job(self)
+        self.job = Channel(self)
         self.job.finished.connect(self._on_finished)
         self.job.failed.connect(self._on_failed)
         self.job.cancelled.connect(lambda _r: None)
@@ -216,8 +204,7 @@ class DiagnosticsController(QObject):
             return
         self._job_result = res
         self._set_note("Computing point diagnostics...")
-        self.job.start(lambda progress, cancel: run_diagnostics(res, progress, cancel,
-                                                                self.exact_limit))
+        self.job.submit("diagnostics", {"result": res, "exact_limit": self.exact_limit})
 
     def wait(self, timeout_ms: int = 60000) -> bool:
         """Process events until the diagnostics are up to date (tests and scripts)."""

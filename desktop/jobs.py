@@ -1,39 +1,81 @@
-"""Long analysis jobs off the GUI thread: loss comparison, point diagnostics, bootstrap.
+"""The window's one background-job mechanism: fits, analyses, file reading, formula checks.
 
-A :class:`Job` runs one function in a ``QThreadPool`` worker. The function gets two
-callables, ``progress(done, total)`` and ``cancel() -> bool``, which it passes on to
-the fitcore routine (they are called from the worker thread; progress reaches the
-window through a queued signal, at most every ``progress_ms``). The job reports
-exactly one of ``finished(result)``, ``failed(message)`` or ``cancelled()`` back on
-the GUI thread.
+Everything slow that the window does off its GUI thread goes through here::
 
-Each job has its own one-thread pool, so a comparison never waits behind a bootstrap
-and the fit runner's own pool is never blocked.
+    channel = Channel(parent)                   # one line of work
+    channel.finished.connect(show)              # (result)
+    channel.failed.connect(tell)                # (message)
+    job = channel.submit("bootstrap", payload)  # -> Job
+    job.cancel()                                # or channel.cancel()
+
+A **kind** names the work (a row of :data:`desktop.job_kinds.KINDS`: "fit", "compare",
+"diagnostics", "bootstrap", "model_check", "read", "formula"); the payload is a dict
+of plain values. The kind decides **where** the job runs, hidden from the caller: in
+a worker thread (short fits, large analyses whose numpy calls leave the GIL free), or
+in a child process driven from that thread (many short fits, file reading and
+formula checks, which would otherwise hold the GIL away from the window, and which
+a Cancel or a time limit can end at once). ``where="inline"`` runs a job in the
+calling thread, signals included, before :meth:`Channel.submit` returns.
+
+A **channel** is newest-wins: submitting while a job runs cancels that job (its
+answer is dropped) and the new one runs next. Each job reports exactly one of
+``finished(result)``, ``failed(message)`` or ``cancelled(partial)``, on the GUI
+thread, through its own signals and through the channel's. ``progress(done, total)``
+is throttled to one signal per ``progress_ms``. Cancel does not wait for the worker:
+``cancelled`` is emitted at once; a child process is ended within
+:data:`desktop.job_kinds.POLL_S`, a thread job at its next cancel check.
 """
 from __future__ import annotations
 
 import threading
 import time
-import traceback
-from typing import Callable
+from typing import Any
 
-from PySide6.QtCore import QObject, QRunnable, QThreadPool, Signal, Slot
+from PySide6.QtCore import QCoreApplication, QDeadlineTimer, QObject, QRunnable, QThreadPool, Signal, Slot
 
+from . import job_kinds
+from .job_kinds import Cancelled, TimeLimit, internal_error
 
-class Cancelled(Exception):
-    """Raised inside a job function (by its ``cancel`` check) to stop it early."""
+__all__ = ["Cancelled", "Channel", "Job", "TimeLimit"]
 
 
 class _Bridge(QObject):
-    progress = Signal(int, int)
-    done = Signal(int, object, object, bool)  # token, result, error message, cancelled
+    progress = Signal(int, int, int)  # token, done, total
+    done = Signal(int, object, object, bool, float)  # token, result, error message, cancelled, seconds
+
+
+def _emit(signal, *args) -> None:
+    try:
+        signal.emit(*args)
+    except RuntimeError:  # the window closed during a long job: nobody is left to take the answer
+        pass
+
+
+def _outcome(token, kind, payload, where, time_limit, stop: threading.Event, progress):
+    """``(token, result, message, cancelled, seconds)`` of one job, run in this thread."""
+    t0 = time.perf_counter()
+    if stop.is_set():
+        return token, None, None, True, 0.0
+    try:
+        res = job_kinds.run_here(kind, payload, progress, stop.is_set, where=where, time_limit=time_limit)
+        cancelled = stop.is_set() or bool(getattr(res, "cancelled", False))
+        return token, res, None, cancelled, time.perf_counter() - t0
+    except Cancelled:
+        return token, None, None, True, time.perf_counter() - t0
+    except (ValueError, OSError) as err:  # the project's errors (and TimeLimit) say what went wrong
+        if stop.is_set():
+            return token, None, None, True, time.perf_counter() - t0
+        return token, None, str(err) or type(err).__name__, False, time.perf_counter() - t0
+    except Exception as err:  # noqa: BLE001 - a job must never take the window down: reported through 'failed'
+        if stop.is_set():
+            return token, None, None, True, time.perf_counter() - t0
+        return token, None, internal_error(err), False, time.perf_counter() - t0
 
 
 class _Task(QRunnable):
-    def __init__(self, fn, token, bridge, stop: threading.Event, progress_ms: float):
+    def __init__(self, job: "Job", bridge: _Bridge, stop: threading.Event, progress_ms: float):
         super().__init__()
-        self.fn = fn
-        self.token = token
+        self.args = (job.token, job.kind, job.payload, job.where, job.time_limit)
         self.bridge = bridge
         self.stop = stop
         self.progress_ms = progress_ms
@@ -45,42 +87,80 @@ class _Task(QRunnable):
         last = total is not None and int(done) >= int(total)
         if last or (now - self._last) * 1000.0 >= self.progress_ms:
             self._last = now
-            self.bridge.progress.emit(int(done), int(total if total is not None else 0))
-
-    def _cancel(self) -> bool:
-        return self.stop.is_set()
+            _emit(self.bridge.progress, self.args[0], int(done), int(total if total is not None else 0))
 
     def run(self):
-        try:
-            res = self.fn(self._progress, self._cancel)
-            cancelled = self.stop.is_set() or bool(getattr(res, "cancelled", False))
-            self.bridge.done.emit(self.token, res, None, cancelled)
-        except Cancelled:
-            self.bridge.done.emit(self.token, None, None, True)
-        except Exception as err:  # noqa: BLE001 - a job must never take the window down
-            if self.stop.is_set():
-                self.bridge.done.emit(self.token, None, None, True)
-                return
-            msg = str(err) if isinstance(err, ValueError) else \
-                traceback.format_exception_only(type(err), err)[-1].strip()
-            self.bridge.done.emit(self.token, None, msg or type(err).__name__, False)
+        _emit(self.bridge.done, *_outcome(*self.args, self.stop, self._progress))
 
 
 class Job(QObject):
-    """One kind of background job (a newer start supersedes a running one).
+    """One submitted job (see the module). Its signals fire once, on the GUI thread.
 
-    Signals
+    Attributes
+    ----------
+    kind, payload, where
+        What runs, on what, and where ("thread", "process" or "inline").
+    state
+        "running", "finished", "failed" or "cancelled".
+    result, message, seconds
+        The answer, the failure message, and how long the work ran.
+    """
+
+    progress = Signal(int, int)
+    finished = Signal(object)
+    failed = Signal(str)
+    cancelled = Signal(object)
+
+    def __init__(self, channel: "Channel", token: int, kind: str, payload: Any, where: str,
+                 time_limit: float | None):
+        super().__init__()
+        self.channel = channel
+        self.token = token
+        self.kind = kind
+        self.payload = payload
+        self.where = where
+        self.time_limit = time_limit
+        self.state = "running"
+        self.result = None
+        self.message = ""
+        self.seconds = 0.0
+        self.stop = threading.Event()
+
+    @property
+    def running(self) -> bool:
+        return self.state == "running"
+
+    def cancel(self) -> None:
+        """Stop this job (a no-op once it has ended); see :meth:`Channel.cancel`."""
+        if self.running and self.channel.current is self:
+            self.channel.cancel()
+
+    def wait(self, timeout_ms: int = 60000) -> bool:
+        """Process events until this job has ended (tests and scripts). True if it has."""
+        deadline = QDeadlineTimer(timeout_ms)
+        while self.running:
+            self.channel.idle_worker(10)
+            QCoreApplication.processEvents()
+            if deadline.hasExpired():
+                return False
+        return True
+
+
+class Channel(QObject):
+    """One line of background work: the newest submitted job wins.
+
+    Signals (each job's own signals fire too)
     -------
     progress(done, total)
-        Throttled progress from the worker.
+        Throttled progress of the current job.
     finished(result)
-        The function returned (``result`` may carry ``cancelled=True`` when it stopped
-        early with a partial answer; then ``cancelled`` is emitted instead).
+        The current job returned (a result marked ``cancelled=True`` is reported
+        through ``cancelled`` instead).
     failed(message)
-        The function raised; ``message`` is plain language.
+        The current job raised, or ran past its time limit; ``message`` is plain language.
     cancelled(partial)
-        Cancel was asked (``partial`` is None), or the function returned a result
-        marked ``cancelled``.
+        Cancel was asked (``partial`` is None), or the job returned a result marked
+        ``cancelled``.
     busy_changed(bool)
     """
 
@@ -98,71 +178,98 @@ class Job(QObject):
         self._bridge.progress.connect(self._on_progress)
         self._bridge.done.connect(self._on_done)
         self._token = 0
-        self._stop: threading.Event | None = None
-        self._running = False
+        self.current: Job | None = None
+        self.last: Job | None = None  # the job that ended last (its answer was reported)
         self.progress_ms = float(progress_ms)
-        self.seconds = 0.0
+        self.seconds = 0.0  # wall time of the last job, from submit to its answer
         self._t0 = 0.0
 
     @property
     def running(self) -> bool:
-        return self._running
+        return self.current is not None
 
-    def start(self, fn: Callable) -> None:
-        """Run ``fn(progress, cancel)`` in the worker; an older run is cancelled."""
-        if self._stop is not None:
-            self._stop.set()
+    def submit(self, kind: str, payload: Any, where: str | None = None,
+               time_limit: float | None = None) -> Job:
+        """Start a job of ``kind`` on ``payload``; a running job of this channel is cancelled.
+
+        ``where``: "thread", "process" or "inline"; default the kind's own choice.
+        ``time_limit``: seconds (child-process jobs), default the kind's.
+        """
+        k = job_kinds.KINDS[kind]  # KeyError for an unknown kind, before anything starts
+        if where is None:
+            where = k.where(payload)
+        old = self.current
+        if old is not None:  # superseded: its answer is dropped, the channel stays busy
+            old.stop.set()
+            old.state = "cancelled"
+            old.cancelled.emit(None)
         self._token += 1
-        self._stop = threading.Event()
+        job = Job(self, self._token, kind, payload, where, time_limit)
         self._t0 = time.perf_counter()
-        if not self._running:
-            self._running = True
+        was_idle = self.current is None
+        self.current = job
+        if was_idle:
             self.busy_changed.emit(True)
-        self._pool.start(_Task(fn, self._token, self._bridge, self._stop, self.progress_ms))
+        if where == "inline":
+            self._on_done(*_outcome(job.token, kind, payload, where, time_limit, job.stop, None))
+        else:
+            self._pool.start(_Task(job, self._bridge, job.stop, self.progress_ms))
+        return job
 
     def cancel(self) -> None:
         """Stop the running job.
 
-        The worker is asked to stop at its next cancel check; the window does not wait
-        for that: ``cancelled`` is emitted at once and whatever the worker still
-        returns is dropped (a new start queues behind it).
+        The worker is asked to stop (a child process is ended); the window does not
+        wait for that: ``cancelled`` is emitted at once and whatever the worker still
+        returns is dropped (a new submit queues behind it).
         """
-        if self._stop is not None:
-            self._stop.set()
-        if self._running:
-            self._token += 1  # drop the abandoned run's answer
-            self._running = False
-            self._stop = None
-            self.seconds = time.perf_counter() - self._t0
-            self.busy_changed.emit(False)
-            self.cancelled.emit(None)
+        job = self.current
+        if job is None:
+            return
+        job.stop.set()
+        self._token += 1  # drop the abandoned run's answer
+        self.current, self.last = None, job
+        self.seconds = time.perf_counter() - self._t0
+        job.state = "cancelled"
+        job.seconds = self.seconds
+        self.busy_changed.emit(False)
+        job.cancelled.emit(None)
+        self.cancelled.emit(None)
 
-    @Slot(int, int)
-    def _on_progress(self, done, total):
-        if self._running:
+    @Slot(int, int, int)
+    def _on_progress(self, token, done, total):
+        job = self.current
+        if job is not None and token == job.token:
+            job.progress.emit(done, total)
             self.progress.emit(done, total)
 
-    @Slot(int, object, object, bool)
-    def _on_done(self, token, res, msg, cancelled):
-        if token != self._token:
-            return  # superseded
-        self._running = False
-        self._stop = None
+    @Slot(int, object, object, bool, float)
+    def _on_done(self, token, res, msg, cancelled, seconds):
+        job = self.current
+        if job is None or token != job.token:
+            return  # superseded or cancelled
+        self.current, self.last = None, job
         self.seconds = time.perf_counter() - self._t0
+        job.seconds = seconds
+        job.result, job.message = res, msg or ""
         self.busy_changed.emit(False)
         if cancelled:
+            job.state = "cancelled"
+            job.cancelled.emit(res)
             self.cancelled.emit(res)
         elif msg is not None:
+            job.state = "failed"
+            job.failed.emit(msg)
             self.failed.emit(msg)
         else:
+            job.state = "finished"
+            job.finished.emit(res)
             self.finished.emit(res)
 
     def wait(self, timeout_ms: int = 60000) -> bool:
-        """Process events until the job is idle (tests and scripts). True if idle."""
-        from PySide6.QtCore import QCoreApplication, QDeadlineTimer
-
+        """Process events until the channel is idle (tests and scripts). True if idle."""
         deadline = QDeadlineTimer(timeout_ms)
-        while self._running:
+        while self.current is not None:
             self._pool.waitForDone(10)
             QCoreApplication.processEvents()
             if deadline.hasExpired():
@@ -177,3 +284,13 @@ class Job(QObject):
     def idle_worker(self, timeout_ms: int = 30000) -> bool:
         """Wait until the worker thread itself is idle (also after a cancel)."""
         return self._pool.waitForDone(timeout_ms)
+
+
+def warm_up() -> None:
+    """Start an idle child process now, so the next child job starts at once."""
+    job_kinds.warm_up()
+
+
+def shutdown() -> None:
+    """End the idle child processes (the last window closing)."""
+    job_kinds.shutdown()

@@ -17,7 +17,7 @@ from PySide6.QtWidgets import (
 )
 
 from fitcore.report import point_label
-from fitcore.model_choice import choose_model, fit_problem
+from fitcore.model_choice import fit_problem
 
 from . import dialogs
 from .banner import Banner
@@ -29,8 +29,10 @@ from .plot_view import PlotView
 from .points_model import ColumnFitter, PointsModel, make_proxy
 from .report_export import ReportExporter
 from .session_io import SessionManager
-from .jobs import Job
-from .worker import FitRunner
+from . import jobs
+from .fit_runner import FitRunner
+from .job_kinds import run_fit
+from .jobs import Channel
 
 FILE_FILTER = ("Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;Ballast sessions (*.ballast);;"
                "All files (*)")
@@ -91,7 +93,7 @@ class MainWindow(QMainWindow):
         plot_lay.setSpacing(0)
         plot_lay.addWidget(self.banner)
         plot_lay.addWidget(self.plot, 1)
-        self.model_check = Job(self)
+        self.model_check = Channel(self)
         self.model_check.finished.connect(self._model_check_done)
         self._model_check_for = None  # (measurements, settings) the running check is about
         self._model_problem = ""  # why the method kept for new data does not fit them
@@ -460,10 +462,7 @@ class MainWindow(QMainWindow):
         sig = None if m.sigma is None else m.sigma[used]
         current = settings.model
 
-        def work(progress, cancel):
-            return choose_model(x, y, sig, current, progress=progress, cancel=cancel)
-
-        self.model_check.start(work)
+        self.model_check.submit("model_check", {"x": x, "y": y, "sigma": sig, "current": current})
 
     def _model_check_done(self, choice) -> None:
         m, settings = self._model_check_for or (None, None)
@@ -510,8 +509,6 @@ class MainWindow(QMainWindow):
         and the note says why. When not even the line fits, ``ValueError``: the data
         are refused.
         """
-        from .worker import run_fit
-
         doc = self.document
         current = doc.settings
         self._model_problem = ""
@@ -697,9 +694,7 @@ class MainWindow(QMainWindow):
         self.bootstrap_dialog = None
 
         menu = self.menuBar().addMenu("&Analyse")
-        from . import analysis_worker
-
-        menu.aboutToShow.connect(analysis_worker.warm_up)  # a warm child process for the jobs
+        menu.aboutToShow.connect(jobs.warm_up)  # a warm child process for the jobs
         help_menu = next((a for a in self.menuBar().actions() if a.text() == "&Help"), None)
         if help_menu is not None:
             self.menuBar().insertMenu(help_menu, menu)
@@ -772,9 +767,7 @@ class MainWindow(QMainWindow):
             self.diagnostics.shutdown()
         if getattr(self, "bootstrap_dialog", None) is not None:
             self.bootstrap_dialog.job.shutdown()
-        from . import analysis_worker
-
-        analysis_worker.shutdown()
+        jobs.shutdown()
 
 
 def first_sample_set():

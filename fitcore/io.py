@@ -484,6 +484,11 @@ class Table:
         keys[used] = rank[keys[used]]
         return keys, [labels[j] for j in order]
 
+    def texts_by_column(self) -> dict:
+        """Column name -> ``(codes, texts)`` for the cells that held text: ``codes`` (int32
+        per row, -1 where the cell held no text) index ``texts`` (what :meth:`groups` reads)."""
+        return dict(self._texts)
+
     def numeric_columns(self) -> list[str]:
         """Names of the columns with at least one number, in file order."""
         return [c for c in self.columns if np.isfinite(self._data[c]).any()]

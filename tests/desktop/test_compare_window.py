@@ -178,9 +178,9 @@ def test_child_process_answers_equal_fitcore_in_process(loaded):
 
 def test_failed_loss_is_shown_as_failed(loaded, monkeypatch):
     import fitcore.compare as fc
-    from desktop import analysis_worker
+    from desktop import job_kinds
 
-    monkeypatch.setattr(analysis_worker, "CHILD_MAX_POINTS", 0)  # in-thread, so the patch counts
+    monkeypatch.setattr(job_kinds, "CHILD_MAX_POINTS", 0)  # in-thread, so the patch counts
     real = fc.compare_losses
 
     def one_fails(*a, **kw):
@@ -189,7 +189,7 @@ def test_failed_loss_is_shown_as_failed(loaded, monkeypatch):
         out.errors["cauchy"] = "the cauchy fit failed: invented failure for the test"
         return out
 
-    monkeypatch.setattr(analysis_worker, "compare_losses", one_fails)
+    monkeypatch.setattr(job_kinds, "compare_losses", one_fails)
     view = run_and_wait(loaded)
     c = [view.table.horizontalHeaderItem(k).data(VALUE_ROLE) for k in range(view.table.columnCount())]
     item = view.table.item(0, c.index("cauchy"))

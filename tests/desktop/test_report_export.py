@@ -20,7 +20,7 @@ from PySide6.QtGui import QGuiApplication, QImage
 
 import fitcore
 from fitcore import report as fr
-from desktop import report_export, worker
+from desktop import job_kinds, report_export
 from desktop.commands import MaskCommand
 from desktop.document import Settings
 
@@ -228,7 +228,7 @@ def test_signoff_names_are_typed_once_and_remembered(win, tmp_path, monkeypatch)
 
 
 def test_report_refuses_a_stale_result(win, tmp_path, errors, monkeypatch):
-    monkeypatch.setattr(worker, "run_fit", lambda request: (None, "the solver gave up"))
+    monkeypatch.setattr(job_kinds, "run_fit", lambda request: (None, "the solver gave up"))
     doc = win.document
     doc.apply_settings(doc.settings.with_(loss="cauchy"))
     assert win.runner.wait()

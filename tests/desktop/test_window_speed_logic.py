@@ -24,7 +24,7 @@ from PySide6.QtWidgets import QGraphicsScene
 import fitcore
 from desktop.document import Document, Measurements, Settings
 from desktop.plot_view import EXCLUDED, N_LEVELS, USED, GridItem, PointsItem, weight_levels
-from desktop.worker import FitRunner
+from desktop.fit_runner import FitRunner
 
 pytestmark = pytest.mark.filterwarnings("ignore::RuntimeWarning")
 

@@ -42,7 +42,7 @@ def test_the_windows_pure_modules_import_no_qt():
     # analysis child process's module stay free of Qt, like fitcore
     code = (
         "import importlib, sys\n"
-        "for m in ('desktop.document', 'desktop.analysis_worker', 'fitcore.work'):\n"
+        "for m in ('desktop.document', 'desktop.job_kinds', 'fitcore.work'):\n"
         "    importlib.import_module(m)\n"
         "bad = [m for m in sys.modules if m.split('.')[0] in ('PySide6', 'pyqtgraph', 'shiboken6')]\n"
         "print(','.join(bad)); sys.exit(1 if bad else 0)\n"

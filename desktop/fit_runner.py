@@ -1,4 +1,4 @@
-"""Running fits for the window: throttled, superseding, off the GUI thread when large.
+"""When the window fits: throttled, superseding, off the GUI thread when large.
 
 :class:`FitRunner` watches the document. After a change to the fit inputs it fits
 at once when it is the first change for a while (``QUIET_S``) or when the last
@@ -8,63 +8,26 @@ come faster than that (a box drag) are collected and
 the newest inputs are fitted when the gap has passed, so a drag gives a live fit a
 few times a second, never one fit per mouse move, and the window keeps time to
 process events between fits. Small fits run inline; fits over ``thread_threshold``
-points, or any fit once one took longer than ``slow_fit_s``, run in a
-``QThreadPool`` worker so the window keeps processing events. While a worker fit
-runs, the interpreter's thread switch interval is shortened so the GUI thread gets
-the interpreter lock back within about 0.1 ms (the default 5 ms wait, paid on
-each of the many calls a repaint makes into Python, made the window stutter). Each
-request carries the document's generation number; a result for older inputs is
-dropped, and while one fit runs only the newest waiting request is kept.
+points, or any fit once one took longer than ``slow_fit_s``, run as "fit" jobs in a
+worker thread (the window's job mechanism, :mod:`desktop.jobs`) so the window keeps
+processing events. While a worker fit runs, the interpreter's thread switch interval
+is shortened so the GUI thread gets the interpreter lock back within about 0.1 ms
+(the default 5 ms wait, paid on each of the many calls a repaint makes into Python,
+made the window stutter). Each request carries the document's generation number; a
+result for older inputs is dropped, and while one fit runs only the newest waiting
+request is kept (the running fit is not cancelled: its result is shown on the way, so
+a drag over a large data set still gives a live fit).
 """
 from __future__ import annotations
 
 import sys
 import time
-import traceback
 
 import numpy as np
-from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal, Slot
-
-import fitcore
+from PySide6.QtCore import QCoreApplication, QDeadlineTimer, QObject, QTimer, Signal
 
 from .document import Document
-
-
-def run_fit(request: dict):
-    """Fit one request (a dict from :meth:`Document.fit_request`).
-
-    Returns ``(result, None)`` or ``(None, message)`` for input the engine refuses.
-    """
-    kw = dict(request["kwargs"])
-    try:
-        res = fitcore.fit(request["model"], request["x"], request["y"],
-                          sigma=request["sigma"], excluded=request["excluded"], **kw)
-        return res, None
-    except ValueError as err:  # FitError and formula/model errors are ValueErrors
-        return None, str(err)
-    except Exception as err:  # noqa: BLE001 - never let a fit take the window down
-        tail = traceback.format_exception_only(type(err), err)[-1].strip()
-        return None, f"the fit stopped with an internal error ({tail})"
-
-
-class _Signals(QObject):
-    done = Signal(object, object, int, float)  # result, message, generation, seconds
-
-
-class _FitTask(QRunnable):
-    def __init__(self, request: dict, signals: _Signals):
-        super().__init__()
-        self.request = request
-        self.signals = signals
-        self.setAutoDelete(True)
-
-    def run(self):
-        t0 = time.perf_counter()
-        res, msg = run_fit(self.request)
-        try:
-            self.signals.done.emit(res, msg, self.request["generation"], time.perf_counter() - t0)
-        except RuntimeError:  # the window closed during a long fit: nobody is left to take the result
-            pass
+from .jobs import Channel
 
 
 class FitRunner(QObject):
@@ -101,10 +64,9 @@ class FitRunner(QObject):
         self.slow_fit_s = float(slow_fit_s)
         self.enabled = True
         self.last_seconds = 0.0
-        self._pool = QThreadPool(self)
-        self._pool.setMaxThreadCount(1)
-        self._signals = _Signals()
-        self._signals.done.connect(self._on_done)
+        self.channel = Channel(self)
+        self.channel.finished.connect(self._on_done)
+        self._request = None  # the request of the running worker fit
         self._running = False
         self._pending = None
         self._cooldown = QTimer(self)
@@ -172,9 +134,9 @@ class FitRunner(QObject):
             return
         self._last_threaded = threaded
         if not threaded:
-            t0 = time.perf_counter()
-            res, msg = run_fit(request)
-            self._deliver(res, msg, request["generation"], time.perf_counter() - t0)
+            job = self.channel.submit("fit", request, where="inline")
+            res, msg = job.result
+            self._deliver(res, msg, request["generation"], job.seconds)
             return
         self._start(request)
 
@@ -183,16 +145,21 @@ class FitRunner(QObject):
             self._saved_switch = sys.getswitchinterval()
             sys.setswitchinterval(min(self._saved_switch, self.SWITCH_INTERVAL_S))
         self._running = True
+        self._request = request
         self.busy_changed.emit(True)
-        self._pool.start(_FitTask(request, self._signals))
+        self.channel.submit("fit", request, where="thread")
 
     def _restore_switch(self):
         if self._saved_switch is not None:
             sys.setswitchinterval(self._saved_switch)
             self._saved_switch = None
 
-    @Slot(object, object, int, float)
-    def _on_done(self, res, msg, generation, seconds):
+    def _on_done(self, outcome):
+        if not self._running:
+            return  # an inline fit: delivered by fit_now
+        res, msg = outcome
+        generation, seconds = self._request["generation"], self.channel.last.seconds
+        self._request = None
         self._running = False
         pending, self._pending = self._pending, None
         self._deliver(res, msg, generation, seconds)
@@ -216,15 +183,13 @@ class FitRunner(QObject):
 
     def wait(self, timeout_ms: int = 30000) -> bool:
         """Block until no fit runs or waits (for tests and scripts). True if idle."""
-        from PySide6.QtCore import QCoreApplication, QDeadlineTimer
-
         deadline = QDeadlineTimer(timeout_ms)
         while self.busy or self._dirty:
             if self._dirty and not self._running:
                 self._cooldown.stop()
                 self._dirty = False
                 self.fit_now()
-            self._pool.waitForDone(10)
+            self.channel.idle_worker(10)
             QCoreApplication.processEvents()
             if deadline.hasExpired():
                 return False
