@@ -51,6 +51,7 @@ import numpy as np
 import sympy
 
 from .model import Model
+from .units import formula_units
 
 __all__ = [
     "FormulaError",
@@ -953,6 +954,9 @@ def parse_formula(text: str, *, x_name: str = "x", name: str | None = None) -> M
         basis=basis,
         formula=parsed.formula,
         title="User formula",
+        # in data units ("y/x"), by dimensional analysis; blank where the formula
+        # does not fix a parameter's unit (fitcore.units)
+        units=formula_units(parsed.expr, sympy.Symbol(parsed.x_name, real=True), syms),
     )
 
 

@@ -23,6 +23,7 @@ import numpy as np
 
 from .numbers import format_correlation, format_value, held_value_text, interval_limits
 from .numbers import full_precision as _full
+from .units import resolve_unit
 
 __all__ = [
     "CAUTION",
@@ -59,33 +60,6 @@ CAUTION = (
     "Robust weights are not a licence to discard data; follow your laboratory's "
     "documented procedures and the applicable standard for regulated or clinical work."
 )
-
-
-def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
-    """Turn a unit written in data units (``"y/x"``, ``"1/x"``) into real unit text.
-
-    A bare ``"x"`` or ``"y"`` is the data unit as it is (``"mg/L"``, no parentheses);
-    a compound unit brackets a data unit only where it must (``"(mg/L)/s"``). Returns
-    ``""`` when a needed data unit is unknown (blank), so that no half-made unit is
-    printed. A unit that is neither ``x`` nor ``y`` based is kept as given.
-    """
-    expr = (expr or "").strip()
-    if not expr:
-        return ""
-    tokens = set(re.findall(r"\b[xy]\b", expr))
-    if not tokens:
-        return expr
-    subs = {"x": x_unit.strip(), "y": y_unit.strip()}
-    if any(not subs[t] for t in tokens):
-        return ""
-    if expr in ("x", "y"):
-        return subs[expr]
-
-    def rep(m):
-        u = subs[m.group(0)]
-        return f"({u})" if re.search(r"[/\s*]", u) else u
-
-    return re.sub(r"\b[xy]\b", rep, expr)
 
 
 def loss_title(name: str) -> str:

@@ -1,0 +1,143 @@
+"""Units of parameters and derived quantities (fitcore.units).
+
+Every expected unit below was worked out by hand by dimensional analysis of the model's
+formula (common practice: a quantity's unit is the one that makes each term of the
+formula carry y's unit; a data column without a unit is dimensionless, e.g. an
+absorbance).
+"""
+from __future__ import annotations
+
+import pytest
+
+import fitcore
+from fitcore.formula import parse_formula
+from fitcore.models import builtin_models, get_model
+from fitcore.report import estimate_cells
+from fitcore.units import resolve_unit
+
+# (parameter or derived name) -> (unit with x in s and y in mV, unit with x in mg/L and
+# y without a unit); by hand from each catalogue formula
+CATALOGUE = {
+    "line": {"a": ("mV", ""), "b": ("mV/s", "1/(mg/L)"), "x_intercept": ("s", "mg/L")},
+    "line_origin": {"b": ("mV/s", "1/(mg/L)")},
+    "poly2": {"c0": ("mV", ""), "c1": ("mV/s", "1/(mg/L)"), "c2": ("mV/s^2", "1/(mg/L)^2")},
+    "poly3": {"c0": ("mV", ""), "c1": ("mV/s", "1/(mg/L)"), "c2": ("mV/s^2", "1/(mg/L)^2"),
+              "c3": ("mV/s^3", "1/(mg/L)^3")},
+    "poly4": {"c0": ("mV", ""), "c1": ("mV/s", "1/(mg/L)"), "c2": ("mV/s^2", "1/(mg/L)^2"),
+              "c3": ("mV/s^3", "1/(mg/L)^3"), "c4": ("mV/s^4", "1/(mg/L)^4")},
+    "poly5": {"c0": ("mV", ""), "c1": ("mV/s", "1/(mg/L)"), "c2": ("mV/s^2", "1/(mg/L)^2"),
+              "c3": ("mV/s^3", "1/(mg/L)^3"), "c4": ("mV/s^4", "1/(mg/L)^4"),
+              "c5": ("mV/s^5", "1/(mg/L)^5")},
+    "exp_decay": {"A": ("mV", ""), "tau": ("s", "mg/L"), "C": ("mV", ""),
+                  "half_life": ("s", "mg/L"), "rate": ("1/s", "1/(mg/L)")},
+    "exp_decay_rate": {"A": ("mV", ""), "k": ("1/s", "1/(mg/L)"), "C": ("mV", ""),
+                       "half_life": ("s", "mg/L"), "tau": ("s", "mg/L")},
+    "exp_rise": {"ymax": ("mV", ""), "k": ("1/s", "1/(mg/L)"), "half_rise": ("s", "mg/L"),
+                 "initial_slope": ("mV/s", "1/(mg/L)")},
+    # y = a x^b: a in y/x^b
+    "power_law": {"a": ("mV/s^b", "1/(mg/L)^b"), "b": ("", "")},
+    "michaelis_menten": {"Vmax": ("mV", ""), "Km": ("s", "mg/L"),
+                         "initial_slope": ("mV/s", "1/(mg/L)")},
+    "logistic4": {"bottom": ("mV", ""), "top": ("mV", ""), "hill": ("", ""), "EC50": ("s", "mg/L"),
+                  "log10_EC50": ("", ""), "range": ("mV", "")},
+    "logistic5": {"bottom": ("mV", ""), "top": ("mV", ""), "hill": ("", ""), "EC50": ("s", "mg/L"),
+                  "s": ("", ""), "x_mid": ("s", "mg/L")},
+    # x is a temperature in K by the model's definition; Ea's unit is fixed by R
+    "arrhenius": {"lnA": ("", ""), "Ea": ("J/mol", "J/mol"), "A": ("mV", ""),
+                  "Ea_kJ": ("kJ/mol", "kJ/mol")},
+    "gauss_peak": {"A": ("mV", ""), "x0": ("s", "mg/L"), "sigma": ("s", "mg/L"), "base": ("mV", ""),
+                   "FWHM": ("s", "mg/L"), "area": ("s*mV", "mg/L")},
+    "lorentz_peak": {"A": ("mV", ""), "x0": ("s", "mg/L"), "gamma": ("s", "mg/L"),
+                     "base": ("mV", ""), "FWHM": ("s", "mg/L"), "area": ("s*mV", "mg/L")},
+}
+
+
+def _hints(model):
+    return ([(p, model.units.get(p, "")) for p in model.param_names]
+            + [(d.name, d.unit) for d in model.derived])
+
+
+def test_table_covers_every_catalogue_model():
+    assert set(CATALOGUE) == set(builtin_models())
+
+
+@pytest.mark.parametrize("name", sorted(CATALOGUE))
+def test_catalogue_units_with_and_without_data_units(name):
+    m = get_model(name)
+    hints = _hints(m)
+    assert {n for n, _h in hints} == set(CATALOGUE[name])
+    for n, hint in hints:
+        with_units, no_y_unit = CATALOGUE[name][n]
+        assert resolve_unit(hint, "s", "mV") == with_units, (name, n)
+        assert resolve_unit(hint, "mg/L", "") == no_y_unit, (name, n)
+
+
+def test_data_unit_blank_means_dimensionless():
+    # the issue's case: x in mg/L, y an absorbance without a unit -> slope per mg/L
+    assert resolve_unit("y/x", "mg/L", "") == "1/(mg/L)"
+    assert resolve_unit("y/x", "", "mV") == "mV"
+    assert resolve_unit("y/x", "", "") == ""
+    assert resolve_unit("1/x", "", "mg/L") == ""
+    assert resolve_unit("1/x", "min", "") == "1/min"
+    assert resolve_unit("x*y", "", "counts") == "counts"
+    assert resolve_unit("y/x^b", "", "mV") == "mV"
+    # equal units cancel: a slope of mV against mV is a pure number
+    assert resolve_unit("y/x", "mV", "mV") == ""
+    # a bare data unit is written as it is, a compound one bracketed inside a compound
+    assert resolve_unit("y", "s", "mg/L") == "mg/L"
+    assert resolve_unit("y/x", "s", "mg/L") == "(mg/L)/s"
+    assert resolve_unit("y/x^2", "mg/L", "") == "1/(mg/L)^2"
+    # literal units stay; an unreadable expression gives no half-made unit
+    assert resolve_unit("J/mol", "s", "mV") == "J/mol"
+    assert resolve_unit("y/x)", "s", "mV") == ""
+
+
+@pytest.mark.parametrize("name", sorted(CATALOGUE))
+def test_formula_analysis_agrees_with_the_catalogue(name):
+    """The catalogue's hand-written units and the dimensional analysis of the same
+    formula typed by a user are two independent routes: where the analysis fixes a
+    unit, it must be the catalogue's."""
+    m = get_model(name)
+    text = m.formula.split(",")[0]
+    try:
+        user = parse_formula(text)
+    except ValueError:
+        pytest.skip(f"{name}'s formula text is not a plain formula ({text!r})")
+    for p in m.param_names:
+        if p in user.units:
+            assert resolve_unit(user.units[p], "s", "mV") == CATALOGUE[name][p][0], (name, p)
+            assert resolve_unit(user.units[p], "mg/L", "") == CATALOGUE[name][p][1], (name, p)
+
+
+@pytest.mark.parametrize("text,expected", [
+    # by hand: each term of a sum in y; exp's argument dimensionless
+    ("A*exp(-x/tau) + C", {"A": "mV", "tau": "s", "C": "mV"}),
+    ("m*x + b", {"m": "mV/s", "b": "mV"}),
+    ("A*exp(-k*x) + C", {"A": "mV", "k": "1/s", "C": "mV"}),
+    ("a*sin(w*x + phi) + c", {"a": "mV", "w": "1/s", "phi": "", "c": "mV"}),
+    ("Vmax*x/(Km + x)", {"Vmax": "mV", "Km": "s"}),
+    ("a*sqrt(x)", {"a": "mV/s^(1/2)"}),
+    ("bottom + (top - bottom)/(1 + (x/EC50)**hill)",
+     {"bottom": "mV", "top": "mV", "EC50": "s", "hill": ""}),
+    ("A*exp(-(x/tau)**beta)", {"A": "mV", "tau": "s", "beta": ""}),
+    ("a + b*log(x)", {"a": "mV", "b": "mV"}),
+    # not fixed by the formula: left blank, never guessed
+    ("a*x**b", {"a": "", "b": ""}),
+    ("Vmax*x**n/(K**n + x**n)", {"Vmax": "", "K": "", "n": ""}),
+    # contradicts the rules (a dimensionless 20 subtracted from x in s): all blank
+    ("a*(x - 20) + c", {"a": "", "c": ""}),
+])
+def test_formula_parameters_get_units(text, expected):
+    m = parse_formula(text)
+    got = {p: resolve_unit(m.units.get(p, ""), "s", "mV") for p in m.param_names}
+    assert got == expected
+
+
+def test_formula_units_reach_the_estimates():
+    x = [0.0, 1.0, 2.0, 3.0, 4.0, 5.0]
+    y = [3.0, 5.1, 6.9, 9.2, 11.0, 12.9]
+    res = fitcore.fit("m*x + b", x, y)
+    cells = {c["name"]: c["unit"] for c in estimate_cells(res, 0.95, x_unit="s", y_unit="mV")}
+    assert cells == {"m": "mV/s", "b": "mV"}
+    cells = {c["name"]: c["unit"] for c in estimate_cells(res, 0.95, x_unit="mg/L", y_unit="")}
+    assert cells == {"m": "1/(mg/L)", "b": ""}
