@@ -18,7 +18,10 @@ point
 * **influence**: the change of each parameter when that point alone is excluded,
   ``(theta_(-i) - theta) / u(theta)`` in standard uncertainties of the full fit.
   Up to ``exact_limit`` used points every point is refitted exactly (same model, loss,
-  tuning, scale rule, sigma and held parameters, warm-started from the full fit). Above
+  tuning, scale rule, sigma and held parameters, warm-started from the full fit: Newton's
+  method on the estimating equations from the full fit's parameters and scale, run to
+  1e-8 standard errors, with a full ``fit`` wherever that does not settle; see
+  :mod:`fitcore.refits`). Above
   it, one Newton step on the estimating equations without point ``i``, from the full
   fit, approximates the refit (exact for linear least squares; for M-losses with an
   estimated scale the step includes Huber's proposal-2 scale equation; L1 uses a
@@ -44,6 +47,7 @@ from typing import Callable
 import numpy as np
 
 from .losses import DEFAULT_TUNING, get_loss
+from .refits import WarmRefit
 from .result import FitResult
 from .solve import FitError, fit
 from .threads import small_problem
@@ -245,6 +249,7 @@ def _exact_refits(res, idx, settings, p0, base, free, inv_se, infl_free, exact, 
     """
     n = idx.size
     cancelled, done, n_failed = False, 0, 0
+    warm = WarmRefit(res, settings)
     with small_problem(n * int(np.count_nonzero(free))):
         for pos, i in enumerate(idx):
             if cancel is not None and cancel():
@@ -253,9 +258,13 @@ def _exact_refits(res, idx, settings, p0, base, free, inv_se, infl_free, exact, 
             excl = base.copy()
             excl[i] = True
             try:
-                ri = fit(res.model, res.x, res.y, sigma=res.sigma, excluded=excl, p0=p0,
-                         **settings)
-                vals = ri.values[free]
+                # Newton from the full fit where it applies and settles (fitcore.refits),
+                # else the full fit; both solve the same equations to the same root
+                got = warm.values(res.x, res.y, res.sigma, excl)
+                if got is None:
+                    got = fit(res.model, res.x, res.y, sigma=res.sigma, excluded=excl, p0=p0,
+                              **settings).values
+                vals = got[free]
                 if not np.all(np.isfinite(vals)):
                     raise FitError("non-finite estimates")
                 infl_free[pos] = (vals - res.values[free]) * inv_se
