@@ -1772,38 +1772,60 @@ def _ods_value(c: dict, paras: list[list[str]]):
 # --------------------------------------------------------------------------- public
 
 
-def _read_regular_file(p: Path, label: str) -> bytes:
-    """The bytes of ``p`` if it is a regular file of at most MAX_FILE_BYTES.
+def file_kind(mode: int) -> str:
+    """What a file that is not a regular file is, in words ("a folder", "a device", ...)."""
+    return ("a folder" if stat.S_ISDIR(mode) else
+            "a named pipe (FIFO)" if stat.S_ISFIFO(mode) else
+            "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) else
+            "a socket" if stat.S_ISSOCK(mode) else "not a regular file")
+
+
+def read_regular_file(path, limit: int, refuse) -> bytes:
+    """The bytes of ``path`` if it is a regular file of at most ``limit`` bytes.
 
     Opened without blocking (a FIFO or device never blocks or streams forever) and
     checked with fstat on the open descriptor, so the file read is the file checked.
+    ``refuse(kind, size)`` makes the exception raised otherwise: ``kind`` is
+    :func:`file_kind`'s words for a file that is not regular (``size`` None), or None
+    when the file is too large (``size`` its size, or None when it grew while being
+    read). OSError from opening or reading passes through.
     """
-    fd = os.open(p, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
     try:
         st = os.fstat(fd)
-        if stat.S_ISDIR(st.st_mode):
-            raise ReadError(f"{label} is a folder, not a file.")
         if not stat.S_ISREG(st.st_mode):
-            kind = ("a named pipe (FIFO)" if stat.S_ISFIFO(st.st_mode) else
-                    "a device" if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode) else
-                    "a socket" if stat.S_ISSOCK(st.st_mode) else "not a regular file")
-            raise ReadError(f"{label} is {kind}, not a regular file; Ballast reads only regular files.")
-        if st.st_size > MAX_FILE_BYTES:
-            raise ReadError(f"{label} is {st.st_size:,} bytes, larger than the {MAX_FILE_BYTES:,} bytes Ballast "
-                            "reads; split it or save only the columns needed.")
+            raise refuse(file_kind(st.st_mode), None)
+        if st.st_size > limit:
+            raise refuse(None, st.st_size)
         chunks, total = [], 0
         while True:
             chunk = os.read(fd, 1 << 20)
             if not chunk:
                 break
             total += len(chunk)
-            if total > MAX_FILE_BYTES:  # grew while being read
-                raise ReadError(f"{label} is larger than the {MAX_FILE_BYTES:,} bytes Ballast reads; split it or "
-                                "save only the columns needed.")
+            if total > limit:  # grew while being read
+                raise refuse(None, None)
             chunks.append(chunk)
         return b"".join(chunks)
     finally:
         os.close(fd)
+
+
+def _read_regular_file(p: Path, label: str) -> bytes:
+    """The bytes of ``p`` if it is a regular file of at most MAX_FILE_BYTES (ReadError if not)."""
+
+    def refuse(kind, size):
+        if kind == "a folder":
+            return ReadError(f"{label} is a folder, not a file.")
+        if kind is not None:
+            return ReadError(f"{label} is {kind}, not a regular file; Ballast reads only regular files.")
+        if size is not None:
+            return ReadError(f"{label} is {size:,} bytes, larger than the {MAX_FILE_BYTES:,} bytes Ballast "
+                             "reads; split it or save only the columns needed.")
+        return ReadError(f"{label} is larger than the {MAX_FILE_BYTES:,} bytes Ballast reads; split it or "
+                         "save only the columns needed.")
+
+    return read_regular_file(p, MAX_FILE_BYTES, refuse)
 
 
 def read_table(path, sheet=None, *, decimal: str | None = None, encoding: str | None = None) -> Table:

@@ -776,37 +776,25 @@ def read_bounded_file(path, what: str = "session file", max_bytes: int | None = 
 
     A FIFO or device is refused without blocking; every failure is a SessionError.
     """
-    import stat as _stat
+    from .io import read_regular_file
 
     path = Path(path)
     limit = MAX_SESSION_BYTES if max_bytes is None else max_bytes
+
+    def refuse(kind, size):
+        if kind is not None:
+            return SessionError(f"the {what} {path} is {kind}, not a regular file")
+        if size is not None:
+            return SessionError(f"the {what} {path} is {size:,} bytes, more than the {limit:,} "
+                                "a session may have")
+        return SessionError(f"the {what} {path} is more than {limit:,} bytes")
+
     try:
-        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+        return read_regular_file(path, limit, refuse)
     except FileNotFoundError:
         raise SessionError(f"the {what} {path} does not exist") from None
     except OSError as exc:
         raise SessionError(f"could not read the {what} {path}: {exc.strerror or exc}") from None
-    try:
-        st = os.fstat(fd)
-        if not _stat.S_ISREG(st.st_mode):
-            raise SessionError(f"the {what} {path} is not a regular file (a folder, pipe or device)")
-        if st.st_size > limit:
-            raise SessionError(f"the {what} {path} is {st.st_size:,} bytes, more than the {limit:,} "
-                               "a session may have")
-        chunks, total = [], 0
-        while True:
-            chunk = os.read(fd, 1 << 20)
-            if not chunk:
-                break
-            total += len(chunk)
-            if total > limit:
-                raise SessionError(f"the {what} {path} is more than {limit:,} bytes")
-            chunks.append(chunk)
-        return b"".join(chunks)
-    except OSError as exc:
-        raise SessionError(f"could not read the {what} {path}: {exc.strerror or exc}") from None
-    finally:
-        os.close(fd)
 
 
 # ============================================================================ files
