@@ -599,6 +599,9 @@ def _cell_kind(cell) -> int:
 # the plain-number pattern for cells joined by "\n" (no white space across a line end)
 _PLAIN_NUMBER_LINES_RE = re.compile(r"^[ \t]*[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?[ \t]*$", re.M)
 
+# a cell (a line of the joined row) with a character no number has: text
+_TEXT_CELL_LINES_RE = re.compile(r"^[^\n]*?" + _NOT_NUMBER_CHAR_RE.pattern, re.M)
+
 
 def _row_stats(cells) -> tuple[int, int, int]:
     if len(cells) > 64:
@@ -609,9 +612,11 @@ def _row_stats(cells) -> tuple[int, int, int]:
             joined = "\n".join(cells)
         except TypeError:  # not all text: cell by cell below
             joined = ""
-        if (joined.count("\n") == len(cells) - 1
-                and len(_PLAIN_NUMBER_LINES_RE.findall(joined)) == len(cells)):
-            return len(cells), len(cells), 0
+        if joined.count("\n") == len(cells) - 1:
+            if len(_PLAIN_NUMBER_LINES_RE.findall(joined)) == len(cells):
+                return len(cells), len(cells), 0
+            if len(_TEXT_CELL_LINES_RE.findall(joined)) == len(cells):  # a header row: all text
+                return len(cells), 0, len(cells)
     kinds = [_cell_kind(c) for c in cells]
     width = len(kinds)
     while width and kinds[width - 1] == 0:
