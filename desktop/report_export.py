@@ -4,11 +4,13 @@
   formats of :func:`fitcore.report.estimates_text`; the HTML format (and the default
   copy) carries both HTML and plain text, so a rich-text editor pastes a table and a
   plain editor the text.
-* :meth:`ReportExporter.write_html` writes one self-contained HTML report (plots as
-  base64 PNG, estimates with uncertainties and intervals, correlation matrix, method
-  statement in plain words, exclusion record, points table with weights, caution);
-  :meth:`ReportExporter.write_pdf` prints the same report to PDF with Qt's own
-  printing (``QPrinter`` + ``QTextDocument``), no extra program needed.
+* :meth:`ReportExporter.write_html` writes the report document that
+  :func:`fitcore.report_html.report_html` builds (the same function the batch and
+  the library call); the window only gathers its inputs: the result, data set,
+  exclusion record, sign-off names and the analyses done on the fit shown.
+  :meth:`ReportExporter.write_pdf` prints the same document to PDF with Qt's own
+  printing (``QPrinter`` + ``QTextDocument``, the plot painted as vector from its
+  SVG), no extra program needed.
 * :meth:`ReportExporter.write_curve_csv` / :meth:`write_points_csv` write the fitted
   curve and band on a fine grid and the per-point residuals and weights;
   :meth:`write_plot` writes the plot as PNG or SVG at a chosen size.
@@ -19,9 +21,7 @@ measurement file is never written: every export refuses to overwrite it.
 """
 from __future__ import annotations
 
-import datetime as _dt
 import html
-import math
 import os
 from pathlib import Path
 
@@ -37,21 +37,18 @@ from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
-from .estimates_view import fmt_value
-from fitcore.report import DataRecord, format_interval, method_statement
+from fitcore.report import DataRecord
+from fitcore.report_html import REPORT_MAX_ROWS, REPORT_PLOT_SIZE, Unknowns, report_plot
+from fitcore.report_html import report_html as build_report_html
 from fitcore.work import curve_grid
-from fitcore.report_plot import LEGEND_TEXT, plot_svg
-from fitcore.report_text import signoff_html
+from fitcore.report_plot import LEGEND_TEXT
 
 LEVEL = 0.95
 #: points in the curve/band CSV
 CURVE_POINTS = 1001
-#: rows of the points table printed in a report (the CSV export always has all); the
-#: PDF prints fewer (Qt's text layout of long tables takes seconds)
-REPORT_MAX_ROWS = 2000
+#: rows of the points table the PDF prints (Qt's text layout of long tables takes
+#: seconds); the HTML prints fitcore.report_html.REPORT_MAX_ROWS
 PDF_MAX_ROWS = 500
-#: default pixel size of the report's plot images
-REPORT_PLOT_SIZE = (900, 620)
 #: what stands for the plot in the HTML a QTextDocument lays out (replaced by an object
 #: that paints the SVG, so the PDF's plot is vector)
 PLOT_MARK = "[[ballast-report-plot]]"
@@ -162,28 +159,11 @@ def _h(s) -> str:
     return html.escape(str(s), quote=True)
 
 
-def _g(x, digits: int = 6) -> str:
-    x = float(x)
-    if not math.isfinite(x):
-        return ""
-    return f"{x:.{digits}g}"
-
-
-def _plural(n: int, word: str) -> str:
-    return f"{n} {word}" + ("" if n == 1 else "s")
-
-
 def _same_file(a: str, b: str) -> bool:
     try:
         return bool(a) and os.path.exists(a) and os.path.exists(b) and os.path.samefile(a, b)
     except OSError:
         return False
-
-
-def _table_part(estimates_html: str) -> str:
-    """The ``<table>`` of :func:`fitcore.report.estimates_text` html output."""
-    end = estimates_html.find("</table>")
-    return estimates_html[: end + len("</table>")] if end >= 0 else estimates_html
 
 
 def _bordered(table_html: str, cls: str = "") -> str:
@@ -716,221 +696,65 @@ class ReportExporter:
 
     # ------------------------------------------------------------------ report
     def report_html(self, res=None, images: str = "embed", resources: dict | None = None,
-                    max_rows: int = REPORT_MAX_ROWS) -> str:
-        """The report as HTML text.
+                    max_rows: int = REPORT_MAX_ROWS, written: str | None = None) -> str:
+        """The report as HTML text: :func:`fitcore.report_html.report_html` of the
+        window's result, data, exclusion record, sign-off names and the analyses done
+        on the fit shown (the window only gathers them).
 
-        ``images="embed"``: plots as base64 ``data:`` URLs (a self-contained file).
-        ``images="resource"``: plots referenced as ``report:plot.png`` and
-        ``report:residuals.png`` and their images put into ``resources`` (for
-        ``QTextDocument``, which prints the PDF).
+        ``images="embed"``: the plot as inline SVG (a self-contained file).
+        ``images="resource"``: :data:`PLOT_MARK` where the plot goes, its SVG put into
+        ``resources[PLOT_MARK]`` (for ``QTextDocument``, which prints the PDF).
+        ``written``: the time of writing to print (default: now).
         """
-        import fitcore
-        from fitcore.report import CAUTION, correlation_text, method_lines, point_status
-
+        if images not in ("embed", "resource"):
+            raise ValueError(f"images must be 'embed' or 'resource', not {images!r}")
         res = res if res is not None else self.document.result
         doc = self.document
-        m = doc.measurements
-        x_unit, y_unit = self._units()
-        pct = f"{100 * LEVEL:.6g} %"
         sessions = getattr(self.window, "sessions", None)
         sha = getattr(sessions, "source_sha256", "") if sessions is not None else ""
         session_path = getattr(sessions, "path", None) if sessions is not None else None
-        now = _dt.datetime.now().astimezone().isoformat(timespec="seconds")
-        src = m.source or "(not from a file)"
-
-        # the plot is drawn from the data (fitcore.report_plot), never from the window
-        # (no selection halo, no zoom state): vector SVG in the HTML and in the PDF
         plot = getattr(self.window, "plot", None)
-        svg = plot_svg(res, x_label=m.label("x"), y_label=m.label("y"), level=LEVEL,
-                       log_x=bool(getattr(plot, "log_x", False)),
-                       width=REPORT_PLOT_SIZE[0], height=REPORT_PLOT_SIZE[1])
-        if images == "embed":
-            plot_html = svg
-        else:  # QTextDocument: an object that paints the SVG (see PLOT_MARK)
+        log_x = bool(getattr(plot, "log_x", False))
+        placeholder = None
+        if images == "resource":  # QTextDocument: an object paints the SVG (see PLOT_MARK)
+            placeholder = PLOT_MARK
             if resources is not None:
-                resources[PLOT_MARK] = svg
-            plot_html = PLOT_MARK
+                resources[PLOT_MARK] = report_plot(res, doc.measurements, level=LEVEL, log_x=log_x)
+        # the export actions refuse a stale result; a report built directly says so
+        stale = res is not doc.result or doc.stale or doc.result_generation != doc.generation
+        return build_report_html(
+            res, doc.measurements, exclusions=doc.exclusions(), sha256=sha or "", level=LEVEL,
+            log_x=log_x, session_path=session_path or "", signoff=self.signoff(),
+            stale=stale, fit_failure=doc.fit_message if stale and doc.fit_failed else "",
+            written=written, max_rows=max_rows, plot_placeholder=placeholder,
+            **self._analyses(res))
 
-        out = [
-            "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-            f"<title>Ballast report: {_h(os.path.basename(src))}</title>",
-            "<style>",
-            "body{font-family:'DejaVu Sans',Helvetica,Arial,sans-serif;font-size:10pt;"
-            "color:#1a1a1a;max-width:960px;margin:1.5em auto;padding:0 1em}",
-            "h1{font-size:17pt;margin-bottom:0.2em} h2{font-size:12.5pt;margin-top:1.4em;"
-            "border-bottom:1px solid #999;padding-bottom:2px}",
-            "table{border-collapse:collapse;margin:0.4em 0} td,th{border:1px solid #aaa;"
-            "padding:2px 6px;text-align:left} th{background:#eef1f5}",
-            "td.num{text-align:right;font-variant-numeric:tabular-nums}",
-            ".meta td{border:none;padding:1px 8px 1px 0;vertical-align:top}",
-            ".caution{background:#fff6d6;border:1px solid #d9b44a;padding:6px 9px}",
-            ".small{font-size:8.5pt;color:#444} tr.excluded td{background:#ffece6}",
-            "tr.down td{background:#fff8dc}",
-            "</style></head><body>",
-            f"<h1>Fit report: {_h(os.path.basename(src))}</h1>",
-            '<table class="meta" cellpadding="1">',
-            f"<tr><td><b>Data</b></td><td>{_h(src)} ({_plural(m.n, 'point')}; "
-            f"x = {_h(m.label('x'))}, "
-            f"y = {_h(m.label('y'))}"
-            + (f", standard uncertainty of y = {_h(m.sigma_name)}" if m.sigma is not None else "")
-            + ")</td></tr>",
-        ]
-        if sha:
-            out.append(f"<tr><td><b>SHA-256</b></td><td><tt>{_h(sha)}</tt></td></tr>")
-        if session_path:
-            out.append(f"<tr><td><b>Session</b></td><td>{_h(session_path)}</td></tr>")
-        out += [f"<tr><td><b>Written</b></td><td>{_h(now)} by Ballast "
-                f"{_h(fitcore.__version__)}</td></tr>", "</table>"]
-        if res is not doc.result or doc.stale or doc.result_generation != doc.generation:
-            # the export actions refuse such a result; a report built directly says so
-            out.append('<p class="caution"><b>NOT CURRENT (STALE).</b> These estimates do not '
-                       "belong to the data, exclusions and method now in the window"
-                       + (f" (the last fit failed: {_h(doc.fit_message)})" if doc.fit_failed else "")
-                       + ".</p>")
-        out += [
-                f'<p class="caution"><b>Caution.</b> {_h(CAUTION)}</p>']
-
-        out += ["<h2>Plot</h2>", f"<p>{plot_html}</p>",
-                f'<p class="small">{_h(LEGEND_TEXT.format(pct=pct))}</p>']
-
-        est = self.estimates("html", res=res)
-        out += ["<h2>Estimates</h2>",
-                f"<p class=\"small\">Value with its standard uncertainty in parentheses, in units "
-                f"of the last digit (GUM 7.2.2); {pct} confidence intervals.</p>",
-                _bordered(_table_part(est))]
-
-        unknowns = self._unknowns_text(res, "html")
-        if unknowns:  # their own section, the read-back method named in it
-            view = self.window.unknowns
-            out += [f"<h2>{'Unknown samples' if view.samples else 'Calibration checks'}</h2>",
-                    unknowns]
-
-        out += ["<h2>Method</h2>", f"<p>{_h(method_statement(res, LEVEL, y_unit=y_unit, data=self.data_record()))}</p>",
-                '<table border="1" cellspacing="0" cellpadding="3">']
-        out += [f"<tr><th>{_h(k)}</th><td>{_h(v)}</td></tr>" for k, v in method_lines(
-            res, LEVEL, y_unit=y_unit, reasons=self._reasons(), data=self.data_record())]
-        out.append("</table>")
-
-        free = [n for n in res.param_names if n not in res.fixed]
-        out.append("<h2>Correlation of the estimates</h2>")
-        if len(free) > 1:
-            out.append(_bordered(correlation_text(res, "html").replace("<td>", '<td class="num">')))
-        else:
-            out.append("<p>Only one free parameter: no correlations.</p>")
-
-        out += self._analysis_sections(res)
-
-        out.append("<h2>Exclusion record</h2>")
-        record = doc.exclusion_record()
-        if record:
-            out += ['<table border="1" cellspacing="0" cellpadding="3">',
-                    f"<tr><th>point</th><th>file row</th><th>{_h(m.label('x'))}</th>"
-                    f"<th>{_h(m.label('y'))}</th><th>reason</th><th>when</th></tr>"]
-            for i, reason, when in record:
-                fr = m.file_row(i)
-                out.append(f'<tr><td class="num">{i + 1}</td>'
-                           f'<td class="num">{"" if fr is None else fr}</td>'
-                           f'<td class="num">{_g(m.x[i], 10)}</td>'
-                           f'<td class="num">{_g(m.y[i], 10)}</td>'
-                           f"<td>{_h(reason) if reason else '<i>no reason given</i>'}</td>"
-                           f"<td>{_h(when)}</td></tr>")
-            out.append("</table>")
-        else:
-            out.append("<p>No point was excluded.</p>")
-
-        out.append("<h2>Points</h2>")
-        status = point_status(res)
-        n = m.n
-        shown = min(n, int(max_rows))
-        if shown < n:
-            out.append(f"<p class=\"small\">The first {shown} of {n} points; the points CSV "
-                       "export holds all of them.</p>")
-        sig_head = "<th>u(y)</th>" if m.sigma is not None else ""
-        out += ['<table border="1" cellspacing="0" cellpadding="2" class="points">',
-                f"<tr><th>{'row' if m.source_rows is not None else '#'}</th>"
-                f"<th>{_h(m.label('x'))}</th><th>{_h(m.label('y'))}</th>{sig_head}"
-                "<th>fitted</th><th>residual</th><th>std. residual</th><th>weight</th>"
-                "<th>status</th><th>reason</th></tr>"]
-        reasons = doc.reasons
-        for i in range(shown):
-            cls = {"excluded": ' class="excluded" bgcolor="#ffece6"',
-                   "down-weighted": ' class="down" bgcolor="#fff8dc"'}.get(status[i], "")
-            sig = f'<td class="num">{_g(m.sigma[i])}</td>' if m.sigma is not None else ""
-            out.append(
-                f'<tr{cls}><td class="num">{fr if (fr := m.file_row(i)) is not None else i + 1}</td>'
-                f'<td class="num">{_g(m.x[i])}</td>'
-                f'<td class="num">{_g(m.y[i])}</td>{sig}<td class="num">{_g(res.fitted[i])}</td>'
-                f'<td class="num">{_g(res.residuals[i], 4)}</td>'
-                f'<td class="num">{_g(res.std_residuals[i], 3)}</td>'
-                f'<td class="num">{float(res.weights[i]):.3f}</td><td>{status[i]}</td>'
-                f"<td>{_h(reasons[i]) if status[i] == 'excluded' else ''}</td></tr>")
-        out.append("</table>")
-        out += ["<h2>Sign-off</h2>", signoff_html(**self.signoff()),
-                f'<p class="small">Written by Ballast {_h(fitcore.__version__)} on {_h(now)}.</p>',
-                "</body></html>"]
-        return "\n".join(out) + "\n"
-
-    def _analysis_sections(self, res) -> list[str]:
-        """Bootstrap intervals, point-diagnostics note and loss comparison, each only
-        when it was computed for ``res`` as it is on screen (not for an earlier fit)."""
+    def _analyses(self, res) -> dict:
+        """The bootstrap, point-diagnostics note, loss comparison and unknowns of the
+        window, each only when it was computed for ``res`` as it is on screen (not for
+        an earlier fit), as :func:`fitcore.report_html.report_html` takes them."""
         win, doc = self.window, self.document
         current = res is doc.result and not doc.stale
-        out: list[str] = []
+        out: dict = {}
         rec = win.current_bootstrap() if current and hasattr(win, "current_bootstrap") else None
         if rec is not None and rec.result is res:
-            b = rec.bootstrap
-            iv = np.asarray(b.intervals, float)
-            ci = res.intervals(rec.level)
-            pct = f"{100 * rec.level:.6g} %"
-            text = rec.method_text or f"{getattr(b, 'kind', '')} bootstrap, B = {getattr(b, 'B', '')}"
-            seed = "" if "seed" in text else f" (seed {rec.seed})"
-            nf = int(getattr(b, "n_failed", 0) or 0)
-            out += ["<h2>Bootstrap intervals</h2>",
-                    f"<p>{_h(text)}{_h(seed)}."
-                    + (f" {_plural(nf, 'resample')} failed to fit and "
-                       f"{'was' if nf == 1 else 'were'} left out." if nf else "")
-                    + f" Analytic intervals: {_h(str(res.covariance_recipe))}, Student t.</p>",
-                    '<table border="1" cellspacing="0" cellpadding="3">',
-                    f"<tr><th>parameter</th><th>estimate</th><th>analytic {pct} interval</th>"
-                    f"<th>bootstrap {pct} percentile interval</th></tr>"]
-            for k, name in enumerate(res.param_names):
-                held = name in res.fixed
-                v, u = float(res.values[k]), float(res.stderr[k])
-                # both intervals by the one rule: the last decimal of the estimate
-                boot = ("-" if held or not np.all(np.isfinite(iv[k]))
-                        else format_interval(iv[k, 0], iv[k, 1], v, u, rich="html"))
-                ana = ("-" if held or not np.all(np.isfinite(ci[k]))
-                       else format_interval(ci[k, 0], ci[k, 1], v, u, rich="html"))
-                out.append(f"<tr><td>{_h(name)}{' (held)' if held else ''}</td>"
-                           f'<td class="num">{fmt_value(v, u, held=held, rich="html")}</td>'
-                           f'<td class="num">{ana}</td>'
-                           f'<td class="num">{boot}</td></tr>')
-            out.append("</table>")
-            out += [f"<p><b>Warning</b>: {_h(w)}.</p>" for w in getattr(b, "warnings", None) or []]
+            out["bootstrap"] = rec.bootstrap
         diag = getattr(win, "diagnostics", None)
         if current and diag is not None and getattr(diag, "diagnostics", None) is not None \
                 and getattr(diag, "for_result", None) is res:
-            note = diag.note_text()
-            if note:
-                out += ["<h2>Point diagnostics</h2>"]
-                out += [f"<p>{_h(line)}</p>" for line in note.splitlines() if line.strip()]
+            out["diagnostics_note"] = diag.note_text()
         cv = getattr(win, "compare_view", None)
         if (current and cv is not None and getattr(cv, "comparison", None) is not None
                 and not cv.is_stale and doc.result_generation == doc.generation):
-            rows = [r.split("\t") for r in cv.text().splitlines()]
-            if len(rows) > 1:
-                out += ["<h2>Loss comparison</h2>",
-                        '<p class="small">The same data and exclusions fitted with each loss; '
-                        "values with standard uncertainty.</p>",
-                        '<table border="1" cellspacing="0" cellpadding="3">',
-                        "<tr>" + "".join(f"<th>{_h(c)}</th>" for c in rows[0]) + "</tr>"]
-                for r in rows[1:]:
-                    out.append("<tr>" + (f"<th>{_h(r[0])}</th>" if r else "")
-                               + "".join(f'<td class="num">{_h(c)}</td>' for c in r[1:]) + "</tr>")
-                out.append("</table>")
+            out["comparison"] = [r.split("\t") for r in cv.text().splitlines()]
+        view = getattr(win, "unknowns", None)
+        if view is not None and view.for_result is res and (view.samples or view.lof is not None):
+            out["unknowns"] = Unknowns(tuple(view.items()), view.limits, view.lof)
         return out
 
-    def write_html(self, path=None) -> str:
+    def write_html(self, path=None, written: str | None = None) -> str:
+        """The report as one self-contained HTML file (``written``: the time of writing
+        to print, default now)."""
         res = self._result("write a report")
         if res is None:
             return ""
@@ -938,7 +762,7 @@ class ReportExporter:
         if not path:
             return ""
         with _busy():
-            text = self.report_html(res)
+            text = self.report_html(res, written=written)
         return path if self._write_text(path, text, "report") else ""
 
     def text_document(self, res=None) -> QTextDocument:

@@ -721,6 +721,7 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
         if codes is None:
             yield (meta, sel.x, sel.y, sel.sigma, excl, _info(sel, note, spec, sel.source_rows))
             continue
+        empty = ""
         if (codes < 0).any():
             empty = f"{int((codes < 0).sum())} row(s) with an empty {spec.group} cell belong to no curve"
             note = f"{note}; {empty}" if note else empty
@@ -734,7 +735,8 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
                 continue
             yield ((source, sheet, label, ycol), sel.x[idx], sel.y[idx],
                    None if sel.sigma is None else sel.sigma[idx],
-                   None if excl is None else excl[idx], _info(sel, note, spec, sel.source_rows[idx]))
+                   None if excl is None else excl[idx],
+                   _info(sel, note, spec, sel.source_rows[idx], group_note=empty))
 
 
 def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
@@ -757,7 +759,7 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
         warn.append(note)
     report = ""
     if spec.report:
-        report = _report_html(res, curve[0], info)
+        report = _report_html(res, curve, spec)
     return BatchRow(
         source, sheet, group, ycol, n_used=res.n_used, n_excluded=res.n_excluded,
         converged=bool(res.converged), values=tuple(float(v) for v in res.values),
@@ -766,153 +768,36 @@ def _row(spec: BatchSpec, curve: tuple) -> BatchRow:
         warnings="; ".join(w.replace("\n", " ") for w in warn), report=report)
 
 
-def _info(sel, note: str, spec: BatchSpec, rows) -> dict:
+def _info(sel, note: str, spec: BatchSpec, rows, group_note: str = "") -> dict:
     info = {"note": note, "x_name": sel.x_name, "y_name": sel.y_name, "x_unit": sel.x_unit,
             "y_unit": sel.y_unit}
     if spec.report:  # what the report's data record needs
-        info.update(sigma_name=sel.sigma_name or "", sha256=sel.sha256, rows=np.asarray(rows))
+        notes = tuple(sel.notes) + tuple(n for n in (group_note,) if n)
+        info.update(sigma_name=sel.sigma_name or "", sha256=sel.sha256, rows=np.asarray(rows),
+                    notes=notes)
     return info
 
 
-def _method_html(res, meta, info) -> list[str]:
-    """The report's data record and method paragraph, in the words the window's report
-    uses (fitcore.report.data_lines / method_statement)."""
-    import html
+def _report_html(res, curve: tuple, spec: BatchSpec) -> str:
+    """One curve's report: :func:`fitcore.report_html.report_html`, the document the
+    window writes, of this curve's data set (its own file rows and reading notes) and
+    the points its exclude column marks."""
+    from .report_html import report_html
+    from .work import DataSet, Exclusion
 
-    from . import report
-
-    if not (hasattr(report, "DataRecord") and hasattr(report, "method_statement")):
-        return []
-    source, sheet, _, _ = meta
-    rows = info.get("rows")
-    data = report.DataRecord(
-        source=source, sha256=info.get("sha256", ""), sheet=sheet, x_column=info.get("x_name", ""),
-        y_column=info.get("y_name", ""), sigma_column=info.get("sigma_name", ""),
-        x_unit=info.get("x_unit", ""), y_unit=info.get("y_unit", ""), n_points=int(len(res.x)),
-        notes=(info["note"],) if info.get("note") else (),
-        file_rows=None if rows is None else tuple(int(r) for r in rows))
-    out = ["<h2>Data</h2>", "<table>" + "".join(
-        f"<tr><th>{html.escape(k)}</th><td style='text-align:left'>{html.escape(str(v))}</td></tr>"
-        for k, v in report.data_lines(data)) + "</table>"]
-    out += ["<h2>Method</h2>",
-            f"<p>{html.escape(report.method_statement(res, y_unit=info.get('y_unit', ''), data=data))}</p>"]
-    return out
-
-
-def _report_html(res, meta, info) -> str:
+    meta, x, y, sigma, _excluded, info = curve
     source, sheet, group, ycol = meta
     title = " / ".join(t for t in (os.path.basename(source), sheet, group, ycol) if t)
-    return _plain_report_html(res, title, meta, info)
-
-
-def _plain_report_html(res, title: str, meta, info) -> str:
-    """One curve's report page: what was fitted, the estimates with the method block
-    (:func:`fitcore.report.estimates_text`), a plot drawn from the data (SVG: point
-    area grows with the weight, excluded points hollow) and the points table."""
-    import html
-
-    from .report import estimates_text
-
-    esc = html.escape
-    source, sheet, group, ycol = meta
-    x_unit, y_unit = info.get("x_unit", ""), info.get("y_unit", "")
-    what = [("file", source), ("sheet", sheet), ("group", group),
-            ("x", f"{info.get('x_name', 'x')}" + (f" ({x_unit})" if x_unit else "")),
-            ("y", f"{info.get('y_name', ycol)}" + (f" ({y_unit})" if y_unit else "")),
-            ("rows left out", info.get("note", ""))]
-    parts = [
-        "<!DOCTYPE html><html><head><meta charset='utf-8'>",
-        f"<title>{esc(title)}</title>",
-        "<style>body{font-family:sans-serif;max-width:60em;margin:1em auto}"
-        "table{border-collapse:collapse}td,th{border:1px solid #bbb;padding:2px 6px;text-align:right}"
-        "th{background:#eee}</style></head><body>",
-        f"<h1>Ballast report: {esc(title)}</h1>",
-        "<table>" + "".join(f"<tr><th>{esc(k)}</th><td style='text-align:left'>{esc(str(v))}</td></tr>"
-                            for k, v in what if v) + "</table>",
-        *_method_html(res, meta, info),
-        "<h2>Estimates</h2>",
-        estimates_text(res, "html", x_unit=x_unit, y_unit=y_unit),
-        "<h2>Plot</h2>",
-        _svg_plot(res, info),
-        "<h2>Points</h2>",
-        _points_table(res),
-        "</body></html>",
-    ]
-    return "\n".join(parts)
-
-
-def _svg_plot(res, info, width: int = 640, height: int = 380) -> str:
-    x, y = np.asarray(res.x, float), np.asarray(res.y, float)
-    ok = np.isfinite(x) & np.isfinite(y)
-    if not ok.any():
-        return "<p>(no points to draw)</p>"
-    grid = np.linspace(x[ok].min(), x[ok].max(), 200)
-    try:
-        curve = np.asarray(res.predict(grid), float)
-    except Exception:  # noqa: BLE001 - a model that cannot be evaluated there: draw the points only
-        curve = np.full(grid.size, np.nan)
-    ys = np.concatenate([y[ok], curve[np.isfinite(curve)]])
-    x0, x1 = float(x[ok].min()), float(x[ok].max())
-    y0, y1 = float(ys.min()), float(ys.max())
-    x1 = x1 if x1 > x0 else x0 + 1.0
-    y1 = y1 if y1 > y0 else y0 + 1.0
-    pad = 0.05 * (y1 - y0)
-    y0, y1 = y0 - pad, y1 + pad
-    left, right, top, bottom = 70, 15, 15, 45
-
-    def px(v):
-        return left + (v - x0) / (x1 - x0) * (width - left - right)
-
-    def py(v):
-        return height - bottom - (v - y0) / (y1 - y0) * (height - top - bottom)
-
-    out = [f"<svg xmlns='http://www.w3.org/2000/svg' width='{width}' height='{height}' "
-           f"font-family='sans-serif' font-size='11'>",
-           f"<rect x='{left}' y='{top}' width='{width - left - right}' height='{height - top - bottom}' "
-           "fill='none' stroke='#888'/>"]
-    for t in np.linspace(x0, x1, 5):
-        out.append(f"<text x='{px(t):.1f}' y='{height - bottom + 15}' text-anchor='middle'>{t:.4g}</text>")
-    for t in np.linspace(y0, y1, 5):
-        out.append(f"<text x='{left - 5}' y='{py(t) + 4:.1f}' text-anchor='end'>{t:.4g}</text>")
-
-    def label(name, unit):
-        return f"{name} ({unit})" if unit else name
-
-    import html
-
-    out.append(f"<text x='{(left + width - right) / 2}' y='{height - 8}' text-anchor='middle'>"
-               f"{html.escape(label(info.get('x_name', 'x'), info.get('x_unit', '')))}</text>")
-    out.append(f"<text x='14' y='{(top + height - bottom) / 2}' text-anchor='middle' "
-               f"transform='rotate(-90 14 {(top + height - bottom) / 2})'>"
-               f"{html.escape(label(info.get('y_name', 'y'), info.get('y_unit', '')))}</text>")
-    fin = np.isfinite(curve)
-    if fin.any():
-        pts = " ".join(f"{px(a):.1f},{py(b):.1f}" for a, b in zip(grid[fin], curve[fin]))
-        out.append(f"<polyline points='{pts}' fill='none' stroke='#1f5fa8' stroke-width='1.5'/>")
-    w = np.asarray(res.weights, float)
-    excl = np.asarray(res.excluded, bool)
-    for i in np.flatnonzero(ok):
-        if excl[i]:
-            out.append(f"<circle cx='{px(x[i]):.1f}' cy='{py(y[i]):.1f}' r='4' fill='none' stroke='#c0392b'/>")
-        else:
-            r = 2.0 + 3.0 * np.sqrt(max(0.0, min(1.0, w[i])))  # area grows with the weight
-            fill = "#333" if w[i] >= 0.5 else "#e08a00"
-            out.append(f"<circle cx='{px(x[i]):.1f}' cy='{py(y[i]):.1f}' r='{r:.2f}' fill='{fill}'/>")
-    out.append("</svg>")
-    out.append("<p>Line: the fitted curve. Dots: points, area growing with the robust weight; orange: "
-               "weight below 0.5; hollow red: excluded.</p>")
-    return "\n".join(out)
-
-
-def _points_table(res) -> str:
-    head = "<tr><th>#</th><th>x</th><th>y</th><th>fitted</th><th>residual</th><th>weight</th></tr>"
-    rows = []
-    for i, (a, b, f, r, w, e) in enumerate(zip(res.x, res.y, res.fitted, res.residuals, res.weights,
-                                               res.excluded)):
-        state = "excluded" if e else f"{w:.3f}"
-        rows.append(f"<tr><td>{i + 1}</td><td>{a:.6g}</td><td>{b:.6g}</td><td>{f:.6g}</td>"
-                    f"<td>{r:.4g}</td><td>{state}</td></tr>")
-    return "<table>" + head + "".join(rows) + "</table>"
+    data = DataSet(x, y, sigma, x_name=info.get("x_name", "x"),
+                   y_name=info.get("y_name", ycol), sigma_name=info.get("sigma_name", ""),
+                   x_unit=info.get("x_unit", ""), y_unit=info.get("y_unit", ""), source=source,
+                   notes=info.get("notes", ()), source_rows=info.get("rows"),
+                   source_sha256=info.get("sha256", ""),
+                   columns={"x": info.get("x_name", "x"), "y": info.get("y_name", ycol),
+                            "sigma": info.get("sigma_name") or None, "sheet": sheet})
+    marked = f"marked in column {spec.exclude!r} of the file"
+    exclusions = [Exclusion(int(i), marked) for i in np.flatnonzero(np.asarray(res.excluded, bool))]
+    return report_html(res, data, exclusions=exclusions, title=title)
 
 
 @dataclass(frozen=True)

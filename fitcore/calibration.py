@@ -828,3 +828,39 @@ def unknowns_text(items, fmt: str = "plain", *, level: float = 0.95, limits=None
         out.append("<ul>" + "".join(f"<li><b>{_esc_html(a)}</b>: {_esc_html(b)}</li>"
                                     for a, b in extra) + "</ul>")
     return "\n".join(out) + "\n"
+
+
+def read_back(result, samples, level: float = 0.95):
+    """Every unknown sample read off ``result``, with the calibration's limits and
+    lack-of-fit test, as the report takes them.
+
+    ``samples``: ``(name, readings)`` pairs. Returns ``(items, limits, lof)``: items
+    ``(name, InversePrediction)``, or ``(name, text)`` saying why that sample cannot
+    be read back (a reading the curve never or twice meets); ``limits`` a
+    :class:`DetectionLimits` or the text saying why there are none; ``lof`` a
+    :class:`LackOfFit` or None (no replicate standards, or not least squares).
+    """
+    items = []
+    for name, readings in samples:
+        try:
+            items.append((str(name), inverse_predict(result, readings, level)))
+        except (CalibrationError, ValueError, ArithmeticError) as err:
+            items.append((str(name), str(err)))
+    try:
+        limits = detection_limits(result, level)
+    except (CalibrationError, ValueError, ArithmeticError) as err:
+        limits = str(err)
+    return items, limits, lack_of_fit(result)
+
+
+def report_html(result, data=None, samples=(), *, level: float = 0.95, **report) -> str:
+    """The fit report of a calibration with its unknowns read back: the document of
+    :func:`fitcore.report_html.report_html` (the window's and the batch's report) with
+    the section of the samples (``(name, readings)`` pairs), the detection limits and
+    the lack-of-fit test. ``data`` and the keywords in ``report`` go to that function.
+    """
+    from .report_html import Unknowns
+    from .report_html import report_html as build
+
+    items, limits, lof = read_back(result, samples, level)
+    return build(result, data, level=level, unknowns=Unknowns(tuple(items), limits, lof), **report)

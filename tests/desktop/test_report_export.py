@@ -412,3 +412,35 @@ def test_points_can_be_traced_to_their_file_rows(open_window, tmp_path):
     record = html[html.index("Exclusion record"):html.index("<h2>Points</h2>")]
     assert "<th>file row</th>" in record
     assert '<td class="num">58</td><td class="num">62</td>' in record
+
+
+def test_window_report_is_the_library_report_of_the_same_fit(win, tmp_path):
+    """The window's exported HTML is :func:`fitcore.report_html.report_html` of the same
+    work done with fitcore alone (file read by fitcore.read_table, fitted by
+    fitcore.fit, SHA-256 by hashlib): the same document, byte for byte, once the time
+    of writing is the same."""
+    import hashlib
+
+    from fitcore.report_html import report_html
+    from fitcore.work import DataSet, Exclusion
+
+    when = "2026-01-02T03:04:05+00:00"
+    path = win.reports.write_html(tmp_path / "r.html", written=when)
+    assert path
+    text = (tmp_path / "r.html").read_text(encoding="utf-8")
+    src = win.document.measurements.source
+    sel = fitcore.read_table(src).choose(0, 1)
+    data = DataSet(sel.x, sel.y, sel.sigma, x_name=sel.x_name, y_name=sel.y_name,
+                   x_unit=sel.x_unit, y_unit=sel.y_unit, source=sel.source, notes=sel.notes,
+                   source_rows=sel.source_rows)
+    excluded = np.arange(data.n) == 5
+    res = fitcore.fit("line", data.x, data.y, loss="huber", excluded=excluded)
+    record = [Exclusion(5, "pipette bubble", win.document.times[5])]
+    sha = hashlib.sha256(Path(src).read_bytes()).hexdigest()
+    assert text == report_html(res, data, exclusions=record, sha256=sha, written=when)
+    # the PDF prints the same document with the plot painted in its place
+    resources: dict = {}
+    pdf_html = win.reports.report_html(images="resource", resources=resources, written=when)
+    svg = resources[report_export.PLOT_MARK]
+    assert pdf_html.replace(report_export.PLOT_MARK, svg) == report_html(
+        res, data, exclusions=record, sha256=sha, written=when, max_rows=report_export.PDF_MAX_ROWS)
