@@ -43,6 +43,26 @@ class _StepSolver:
             self.G = R.T @ R
             self.g = R.T @ self.qtr
 
+    @classmethod
+    def newton(cls, J: np.ndarray, psi: np.ndarray, dpsi: np.ndarray, s: float,
+               D: np.ndarray) -> "_StepSolver | None":
+        """The step of Newton's method on the robust objective (curvature ``psi'``
+        instead of the reweighting's ``psi(u)/u``), in the same column scaling; None
+        where ``J^T diag(psi') J`` is not safely positive definite (condition number
+        above 1e8 in the scaled variables: then the reweighted step decides)."""
+        Js = J / D
+        G = (Js * dpsi[:, None]).T @ Js
+        try:
+            ev = np.linalg.eigvalsh(G)
+        except np.linalg.LinAlgError:
+            return None
+        if not (ev[0] > 0 and ev[-1] <= cls.FAST_MAX_COND * ev[0]):
+            return None
+        self = cls.__new__(cls)
+        self.D, self.fast, self.G = D, True, G
+        self.g = Js.T @ (psi * s)
+        return self
+
     def solve(self, lam: float) -> np.ndarray:
         k = self.D.size
         if self.fast:
@@ -60,13 +80,14 @@ class _StepSolver:
         return float(z @ self.g - 0.5 * z @ self.G @ z)
 
 
+_NEAR = 1e-6  # relative step below which the robust losses take Newton steps
 _SCALE_MEMORY = 0.25  # the column scaling's memory factor per iteration (squared norms)
 
 
 def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
              linear: bool, max_iter: int = 500, xtol: float = 1e-13,
              ftol: float = 1e-15, polish_steps: bool = True,
-             check: bool = True) -> _Inner:
+             check: bool = True, newton_steps: bool = True, near: bool = False) -> _Inner:
     """Minimise sum rho(r(theta)/s) by reweighted, damped Gauss-Newton steps.
 
     The damping follows Nielsen's gain-ratio rule (Madsen, Nielsen & Tingleff, *Methods
@@ -104,6 +125,10 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     polish = 0
     last_scaled = math.inf
     it = 0
+    # Newton steps near the minimum for the robust losses (least squares: the
+    # reweighted step is already Newton's)
+    newton_ok = newton_steps and loss.name != "l2"
+    near = near and newton_ok  # (a warm start: try Newton steps at once)
     for it in range(1, max_iter + 1):
         J = prob.jac(theta)
         if not np.all(np.isfinite(J)):
@@ -120,12 +145,20 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
         # shrinking column's parameter run away in one step, as in MGH17)
         dmax = np.maximum(d2, dmax * _SCALE_MEMORY)
         D = np.sqrt(np.where(dmax > 0, dmax, 1.0))
-        step_solver = _StepSolver(Jw, rw, D)
+        step_solver = None
+        if near:
+            # close to the minimum: Newton steps (the reweighted ones converge only
+            # linearly, at a rate set by how far psi(u)/u is from psi'(u))
+            psi, dpsi = loss.psi_dpsi(r / s)
+            step_solver = _StepSolver.newton(J, psi, dpsi, s, D)
+        newton = step_solver is not None
+        if not newton:
+            step_solver = _StepSolver(Jw, rw, D)
         if lam is None:
             lam = 1e-3  # relative to diag(J^T W J) through D
         accepted = False
         for _ in range(80):
-            use_lam = 0.0 if (polish or undamped) else lam
+            use_lam = 0.0 if (polish or undamped or newton) else lam
             step = step_solver.solve(use_lam)
             cand = _project(theta + step, lower, upper)
             step = cand - theta
@@ -137,13 +170,19 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             # directions: accept a Gauss-Newton step that does not raise it beyond that
             # (and a reweighted step of a linear model descends in exact arithmetic: near
             # the minimum its objective change drowns in rounding, so the same applies)
-            tol_phi = 1e-12 * phi if (polish or undamped) else 0.0
-            if phi_new <= phi + tol_phi and (gain > 0 or phi_new < phi or polish or undamped):
+            tol_phi = 1e-12 * phi if (polish or undamped or newton) else 0.0
+            if phi_new <= phi + tol_phi and (gain > 0 or phi_new < phi or polish or undamped
+                                             or newton):
                 accepted = True
-                if not undamped and not polish:
+                if not undamped and not polish and not newton:
                     lam *= max(1.0 / 3.0, 1.0 - (2.0 * gain - 1.0) ** 3) if gain > 0 else 1.0
                     nu = 2.0
                 break
+            if newton:
+                # refused: back to reweighted steps for the rest of this solve
+                near, newton = False, False
+                step_solver = _StepSolver(Jw, rw, D)
+                continue
             if polish:
                 break
             if undamped:
@@ -166,6 +205,8 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
         small_step = scaled <= xtol * (np.linalg.norm(D * cand) + xtol)
         small_gain = (phi - phi_new) <= ftol * max(phi, 1e-300)
         theta, r, phi = cand, r_new, phi_new
+        if newton_ok and not near and scaled <= _NEAR * (np.linalg.norm(D * cand) + _NEAR):
+            near = True
         if phi == 0.0:
             converged = True
             message = "converged (exact fit)"

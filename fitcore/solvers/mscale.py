@@ -139,7 +139,7 @@ _HESSIAN_ROWS_FROM = 200000  # from this many points the Newton matrix uses a su
 
 
 def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
-                     with_mad: bool = True, tol: float = 1e-4):
+                     with_mad: bool = True, tol: float = 1e-4, rel: float = 1e-10):
     """Newton's method on the M-estimating equations with the scale tied to the MAD.
 
     Solves ``F(theta) = sum psi(r_i / s(theta)) J_i = 0`` where ``s(theta)`` is the
@@ -156,7 +156,8 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     psi' at the solution are returned in ``stats`` for the covariance. Returns None if
     the iteration does not settle (the caller then falls back to the reweighting loop).
     ``with_mad=False`` keeps the scale ``s`` fixed. ``tol``: the last step's size in
-    standard errors at which the iteration counts as converged.
+    standard errors at which the iteration counts as converged (or ``rel`` relative
+    to each parameter).
 
     From ``_HESSIAN_ROWS_FROM`` points on, the Newton matrix (``J^T D J``, ``J^T D u``
     and the MAD slope) comes from a fixed seeded subset of ``max(10000, n/20)`` points,
@@ -168,6 +169,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     lower, upper = prob.lower, prob.upper
     theta = np.asarray(theta, dtype=float)
     n, k = prob.n, prob.k
+    rel_tol = rel
 
     def _converged(theta, r, s, u, psi, dpsi):
         with np.errstate(all="ignore"):
@@ -251,7 +253,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             se = s / d
         with np.errstate(all="ignore"):
             in_se = np.where(se > 0, np.abs(step) / se, np.inf)
-        rel = np.abs(step) <= 1e-10 * np.abs(theta)
+        rel = np.abs(step) <= rel_tol * np.abs(theta)
         if bool(np.all(rel | (in_se <= 0.1 * tol))):
             # the step to the root is negligible (1e-5 standard errors by default): this
             # iterate is the solution, with its scale and psi exactly its own, and no
@@ -286,7 +288,8 @@ def _is_minimum(prob: _Problem, inner: _Inner) -> bool:
 _SCALE_JUMP = 1.5
 
 
-def _newton_accepted(prob: _Problem, theta, s: float, loss: Loss):
+def _newton_accepted(prob: _Problem, theta, s: float, loss: Loss, tol: float = 1e-4,
+                     rel: float = 1e-10):
     """:func:`_newton_with_mad` from (theta, s), kept only if it settles, and for a
     redescending psi only at a minimum (positive definite curvature), not a saddle,
     whose scale is at most ``_SCALE_JUMP`` times the start's.
@@ -297,7 +300,7 @@ def _newton_accepted(prob: _Problem, theta, s: float, loss: Loss):
     from L1-type fits, whose scale is if anything too large, so a root with a much
     larger scale is the other one and the loop decides instead.
     """
-    got = _newton_with_mad(prob, theta, s, loss)
+    got = _newton_with_mad(prob, theta, s, loss, tol=tol, rel=rel)
     if got is None:
         return None
     if loss.redescending and (got[1] > _SCALE_JUMP * s or not _is_minimum(prob, got[0])):
@@ -390,7 +393,25 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
 
     newton_tries = 3 if prob.n >= 200 else 0
     secant = _ScaleSecant()
-    for _ in range(60):
+    settled = False
+    if prob.n < 200 and not loss.redescending:
+        # Newton on the joint (parameters, MAD) equations from this first fit, to
+        # rounding level: near the root the MAD moves with one point's residual, and
+        # the Gauss-Newton iteration contracts by a factor of ~20 per pass on a 4PL.
+        # The tight phase below confirms the root with full-accuracy solves (and the
+        # verdict); where Newton does not settle, the alternation decides. (Not for a
+        # redescending psi: at small n the MAD equations can have several roots a
+        # few per cent apart, and Newton may settle on another one than the
+        # alternation from the L1-type start, which is the rule.)
+        got = _newton_accepted(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob),
+                               loss, tol=1e-12, rel=1e-14)
+        if got is not None:
+            g, exact = next_scale(got[0], total)
+            if exact is not None:
+                return exact
+            total += got[2]
+            inner, s, settled = got[0], got[1], True
+    for _ in range(0 if settled else 60):
         g, exact = next_scale(inner, total)
         if exact is not None:
             return exact
@@ -409,12 +430,16 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         # tighter than the loose phase's 1e-9)
         moving = dict(loose, xtol=min(1e-4, max(1e-9, 1e-3 * abs(g - s) / s)))
         s = secant.next(s, g)
-        inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter, **moving)
+        # (Newton steps at once only for a monotone psi: with a redescending one the
+        # path through several nearby MAD roots must stay the reweighting's own)
+        inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter,
+                         near=not loss.redescending, **moving)
         total += inner.n_iter
     # tight phase: full-accuracy solves until the MAD fixed point is reproduced exactly
     # enough that the result does not depend on the path (e.g. the order of the points)
     for _ in range(10):
-        inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter)
+        inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter,
+                         near=True)
         total += inner.n_iter
         g, exact = next_scale(inner, total)
         if exact is not None:
