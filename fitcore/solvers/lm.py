@@ -7,7 +7,7 @@ import math
 import numpy as np
 
 from ..losses import Loss
-from .verdict import COSINE_TOL, _first_order
+from .verdict import COSINE_TOL, STEP_REL, _first_order, _step_small
 from .problem import FitError, _Inner, _objective, _Problem, _project, _start_residuals
 
 
@@ -234,6 +234,14 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             message = (f"stopped at a point that is not a minimum (first-order test: the "
                        f"gradient along {name} has cosine {cos:.1e} with the residuals, "
                        f"above {COSINE_TOL:g}); try other start values")
+        else:
+            ok, rel, j = _step_small(prob, theta, r, None if loss.name == "l2" else loss, s)
+            if not ok:
+                name = np.asarray(prob.model.param_names)[prob.free][j]
+                converged = False
+                message = (f"stopped before the estimates settled (per-parameter step test: "
+                           f"a further step would move {name} by {rel:.1e} of its value, "
+                           f"above {STEP_REL:g}); try more iterations or other start values")
     return _Inner(theta, r, phi, it, converged, message)
 
 
