@@ -38,7 +38,7 @@ from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 from . import dialogs
 from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
 from fitcore.report import DataRecord
-from fitcore.report_html import REPORT_MAX_ROWS, REPORT_PLOT_SIZE, Unknowns, report_plot
+from fitcore.report_html import REPORT_MAX_ROWS, REPORT_PLOT_SIZE, Unknowns, estimates_copy, report_plot
 from fitcore.report_html import report_html as build_report_html
 from fitcore.work import curve_grid
 from fitcore.report_plot import LEGEND_TEXT
@@ -164,13 +164,6 @@ def _same_file(a: str, b: str) -> bool:
         return bool(a) and os.path.exists(a) and os.path.exists(b) and os.path.samefile(a, b)
     except OSError:
         return False
-
-
-def _bordered(table_html: str, cls: str = "") -> str:
-    attr = ' border="1" cellspacing="0" cellpadding="4"'
-    if cls:
-        attr += f' class="{cls}"'
-    return table_html.replace("<table>", f"<table{attr}>", 1)
 
 
 # ============================================================================ plot images
@@ -553,24 +546,22 @@ class ReportExporter:
 
     # ------------------------------------------------------------------ copy
     def estimates(self, fmt: str = "plain", full_precision: bool = False, res=None) -> str:
-        from fitcore.report import estimates_text
-
+        """The estimates as copied: :func:`fitcore.report_html.estimates_copy` of the
+        window's result, data set, exclusion record and unknowns."""
         res = res if res is not None else self.document.result
-        x_unit, y_unit = self._units()
-        text = estimates_text(res, fmt, level=LEVEL, full_precision=full_precision,
-                              x_unit=x_unit, y_unit=y_unit, reasons=self._reasons(),
-                              data=self.data_record())
-        if fmt == "html":
-            text = _bordered(text)
-        return text + self._unknowns_text(res, fmt, full_precision)
+        sessions = getattr(self.window, "sessions", None)
+        sha = getattr(sessions, "source_sha256", "") if sessions is not None else ""
+        return estimates_copy(res, fmt, self.document.measurements,
+                              exclusions=self.document.exclusions(), sha256=sha or "",
+                              level=LEVEL, full_precision=full_precision,
+                              unknowns=self._unknowns(res))
 
-    def _unknowns_text(self, res, fmt: str, full_precision: bool = False) -> str:
-        """The unknown samples read back off ``res`` (issue 14), "" when there are none."""
+    def _unknowns(self, res):
+        """The unknown samples read back off ``res`` (issue 14), or None."""
         view = getattr(self.window, "unknowns", None)
-        if view is None or view.for_result is not res:
-            return ""
-        text = view.text(fmt, full_precision)
-        return ("\n" + (_bordered(text) if fmt == "html" else text)) if text else ""
+        if view is None or view.for_result is not res or not (view.samples or view.lof is not None):
+            return None
+        return Unknowns(tuple(view.items()), view.limits, view.lof)
 
     def copy(self, key: str = "default") -> str:
         """Copy the estimates in format ``key`` (see :data:`COPY_FORMATS`).
@@ -747,9 +738,7 @@ class ReportExporter:
         if (current and cv is not None and getattr(cv, "comparison", None) is not None
                 and not cv.is_stale and doc.result_generation == doc.generation):
             out["comparison"] = [r.split("\t") for r in cv.text().splitlines()]
-        view = getattr(win, "unknowns", None)
-        if view is not None and view.for_result is res and (view.samples or view.lof is not None):
-            out["unknowns"] = Unknowns(tuple(view.items()), view.limits, view.lof)
+        out["unknowns"] = self._unknowns(res)
         return out
 
     def write_html(self, path=None, written: str | None = None) -> str:

@@ -44,8 +44,8 @@ from .report_text import (
 )
 from .work import DataSet, Exclusion
 
-__all__ = ["report_html", "report_plot", "Unknowns", "written_now", "REPORT_MAX_ROWS",
-           "REPORT_PLOT_SIZE"]
+__all__ = ["report_html", "estimates_copy", "report_plot", "Unknowns", "written_now",
+           "REPORT_MAX_ROWS", "REPORT_PLOT_SIZE"]
 
 #: rows of the points table printed in a report (a points CSV always has all of them)
 REPORT_MAX_ROWS = 2000
@@ -137,6 +137,37 @@ def report_plot(res, data: DataSet | None = None, *, level: float = 0.95,
     m = _data_set(res, data)
     return plot_svg(res, x_label=m.label("x"), y_label=m.label("y"), level=level,
                     log_x=bool(log_x), width=REPORT_PLOT_SIZE[0], height=REPORT_PLOT_SIZE[1])
+
+
+def _unknowns_text(unknowns: Unknowns | None, fmt: str, level: float, x_unit: str,
+                   full_precision: bool = False) -> str:
+    """The unknowns' section text ("" when there are no samples and no lack-of-fit test)."""
+    if unknowns is None or not (unknowns.items or unknowns.lof is not None):
+        return ""
+    return unknowns_text(list(unknowns.items), fmt, level=level, limits=unknowns.limits,
+                         lof=unknowns.lof, x_unit=x_unit, full_precision=full_precision)
+
+
+def estimates_copy(res, fmt: str = "plain", data: DataSet | None = None, *,
+                   exclusions: Sequence[Exclusion] | None = None, sha256: str = "",
+                   level: float = 0.95, full_precision: bool = False,
+                   unknowns: Unknowns | None = None) -> str:
+    """The estimates as copied from the window, in one of
+    :data:`fitcore.report_text.FORMATS`: :func:`estimates_text` (estimates, method
+    block with the data record and the exclusion reasons, caution), a bordered table
+    in ``"html"``, then the unknowns read back off the calibration when there are any.
+    Arguments as for :func:`report_html`.
+    """
+    m = _data_set(res, data)
+    if exclusions is None:
+        exclusions = [Exclusion(int(i)) for i in np.flatnonzero(np.asarray(res.excluded, bool))]
+    text = estimates_text(res, fmt, level=level, full_precision=full_precision, x_unit=m.x_unit,
+                          y_unit=m.y_unit, reasons={e.index: e.reason for e in exclusions},
+                          data=DataRecord.from_data(m, sha256=sha256))
+    if fmt == "html":
+        text = _bordered(text)
+    extra = _unknowns_text(unknowns, fmt, level, m.x_unit, full_precision)
+    return text + ("\n" + extra if extra else "")
 
 
 def report_html(
@@ -255,12 +286,10 @@ def report_html(
             f"of the last digit (GUM 7.2.2); {pct} confidence intervals.</p>",
             _bordered(_table_part(est))]
 
-    if unknowns is not None and (unknowns.items or unknowns.lof is not None):
-        text = unknowns_text(list(unknowns.items), "html", level=level, limits=unknowns.limits,
-                             lof=unknowns.lof, x_unit=m.x_unit)
-        if text:  # their own section, the read-back method named in it
-            out += [f"<h2>{'Unknown samples' if unknowns.items else 'Calibration checks'}</h2>",
-                    "\n" + text]
+    text = _unknowns_text(unknowns, "html", level, m.x_unit)
+    if text:  # their own section, the read-back method named in it
+        out += [f"<h2>{'Unknown samples' if unknowns.items else 'Calibration checks'}</h2>",
+                "\n" + text]
 
     out += ["<h2>Method</h2>",
             f"<p>{_h(method_statement(res, level, y_unit=y_unit, data=record))}</p>",

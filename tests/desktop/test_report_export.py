@@ -438,6 +438,12 @@ def test_window_report_is_the_library_report_of_the_same_fit(win, tmp_path):
     record = [Exclusion(5, "pipette bubble", win.document.times[5])]
     sha = hashlib.sha256(Path(src).read_bytes()).hexdigest()
     assert text == report_html(res, data, exclusions=record, sha256=sha, written=when)
+    # every copy format is the library's copy text of the same work
+    from fitcore.report_html import estimates_copy
+
+    for key, _t, fmt, full in report_export.COPY_FORMATS:
+        assert win.reports.estimates(fmt, full) == estimates_copy(
+            res, fmt, data, exclusions=record, sha256=sha, full_precision=full), key
     # the PDF prints the same document with the plot painted in its place
     resources: dict = {}
     pdf_html = win.reports.report_html(images="resource", resources=resources, written=when)
