@@ -137,6 +137,25 @@ def _theil_sen(x, y, max_pairs=40000):
     return a, b
 
 
+def _products2(Zt, y):
+    """Elementwise products of two design columns ``Zt`` (G, 2, n) for
+    :func:`_cramer2`: z0 z0, z0 z1, z1 z1, z0 y, z1 y."""
+    Z0, Z1 = Zt[:, 0, :], Zt[:, 1, :]
+    return Z0 * Z0, Z0 * Z1, Z1 * Z1, Z0 * y, Z1 * y
+
+
+def _cramer2(products, w):
+    """Weighted two-column normal equations solved by Cramer's rule for a stack
+    (weights ``w`` (G, n)): ``(coefficients (G, 2), usable (G,))``; not usable where
+    the solution is not finite or the matrix is near singular."""
+    a, b, d, p, q = (np.einsum("gi,gi->g", P, w) for P in products)
+    det = a * d - b * b
+    c = np.empty((a.size, 2))
+    c[:, 0] = (d * p - b * q) / det
+    c[:, 1] = (a * q - b * p) / det
+    return c, np.isfinite(c).all(axis=1) & (np.abs(det) > 1e-10 * (a * d))
+
+
 def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     """Outlier-resistant linear least squares for a small design matrix.
 
@@ -157,9 +176,18 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     As = A[:, good] / norms[good]
     kk = As.shape[1]
 
+    if kk == 2:
+        products = _products2(As.T[None], y)
+
     def wls(w):
         # small, column-scaled normal equations are ample for a start value; fall back
         # to an orthogonal solve when they are singular
+        if kk == 2:  # Cramer's rule, the same arithmetic as the stacked version
+            c, ok = _cramer2(products, w[None])
+            if ok[0]:
+                return c[0]
+            sw = np.sqrt(w)
+            return np.linalg.lstsq(As * sw[:, None], y * sw, rcond=None)[0]
         Aw = As * w[:, None]
         M = Aw.T @ As
         try:
@@ -224,8 +252,17 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
     Zt = np.ascontiguousarray(Z.transpose(0, 2, 1))  # (G, k, n): the products run on rows
     everything = slice(None)
 
+    if k == 2:
+        # two columns (the plateau designs of the logistic scans): the normal
+        # equations by elementwise products and Cramer's rule, not one LAPACK call
+        # per small matrix
+        products = _products2(Zt, y)
+
     def wls(sel, w):
         """Weighted solves for the stack; None where the single version would fall back."""
+        if k == 2:
+            c, ok = _cramer2([P[sel] for P in products], w)
+            return c if ok.all() else None
         Zw = Zt[sel] * w[:, None, :]
         M = np.matmul(Zw, Z[sel])
         rhs = np.matmul(Zw, y)[:, :, None]
@@ -410,9 +447,17 @@ def _running_median(v, width):
     h = width // 2
     if v.size == 0 or h == 0:
         return v.copy()
-    padded = np.concatenate([np.full(h, np.nan), v, np.full(h, np.nan)])
-    windows = np.lib.stride_tricks.sliding_window_view(padded, width)
-    return np.nanmedian(windows, axis=1)
+    if v.size < width or not np.isfinite(v).all():
+        padded = np.concatenate([np.full(h, np.nan), v, np.full(h, np.nan)])
+        windows = np.lib.stride_tricks.sliding_window_view(padded, width)
+        return np.nanmedian(windows, axis=1)
+    # full windows inside, shrinking ones at the ends (nanmedian is slow on small rows)
+    out = np.empty(v.size)
+    out[h:v.size - h] = np.median(np.lib.stride_tricks.sliding_window_view(v, width), axis=1)
+    for i in range(h):
+        out[i] = np.median(v[:i + h + 1])
+        out[v.size - 1 - i] = np.median(v[v.size - 1 - i - h:])
+    return out
 
 
 def _geomgrid(lo, hi, num):
@@ -888,9 +933,9 @@ def _logistic_guess(x, y):
         return b0, t0, h0, e0
     lo, hi = float(np.min(xp)), float(np.max(xp))
     noise = _noise_scale(x, y)
+    ecs = _geomgrid(lo / 2.0, hi * 2.0, 18).tolist()
     cands = [(h0, e0)] + [
-        (s * h, e) for s in (1.0, -1.0) for h in (0.5, 1.0, 2.0, 4.0)
-        for e in _geomgrid(lo / 2.0, hi * 2.0, 18)
+        (s * h, e) for s in (1.0, -1.0) for h in (0.5, 1.0, 2.0, 4.0) for e in ecs
     ]
     def crits(pairs):
         # every candidate at once (one 5 Huber + 3 Tukey robust fit each)
@@ -898,18 +943,20 @@ def _logistic_guess(x, y):
 
     coarse = crits(cands)
     order = sorted(range(len(cands)), key=lambda i: coarse[i])  # stable, as before
-    best_crit, best = np.inf, (h0, e0)
-    for i in order[:3]:  # refine the three best coarse candidates
-        h1, e1 = cands[i]
-        crit0 = coarse[i]
-        for hr, er in ((1.5, 1.6), (1.15, 1.15)):
-            hc, ec = h1, e1
-            local = [(h, e) for h in hc * np.geomspace(1.0 / hr, hr, 5)
-                     for e in ec * np.geomspace(1.0 / er, er, 7)]
-            v = crits(local)
-            j = _first_better(v, crit0)
+    # refine the three best coarse candidates, each on its own local grids (the three
+    # scored in one batch per level; each keeps its own first better value)
+    state = [(cands[i][0], cands[i][1], coarse[i]) for i in order[:3]]
+    for hr, er in ((1.5, 1.6), (1.15, 1.15)):
+        fh, fe = np.geomspace(1.0 / hr, hr, 5), np.geomspace(1.0 / er, er, 7)
+        grids = [[(h, e) for h in hc * fh for e in (ec * fe).tolist()] for hc, ec, _ in state]
+        v = crits([pair for grid in grids for pair in grid])
+        for t, grid in enumerate(grids):
+            vt = v[t * len(grid):(t + 1) * len(grid)]
+            j = _first_better(vt, state[t][2])
             if j is not None:
-                crit0, (h1, e1) = v[j], local[j]
+                state[t] = (grid[j][0], grid[j][1], vt[j])
+    best_crit, best = np.inf, (h0, e0)
+    for h1, e1, crit0 in state:
         if crit0 < best_crit:
             best_crit, best = crit0, (h1, e1)
     h, e = best
