@@ -7,6 +7,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
+from .losses import LOSSES
 from .model import Model
 
 
@@ -98,8 +99,9 @@ class FitResult:
         return r
 
     def _one_sided_pull(self) -> str:
-        """A warning when a monotone loss (Huber, pseudo-Huber, L1) down-weights points
-        that lie mostly on one side of the curve, else "".
+        """A warning when a monotone robust loss (family "monotone" in the loss registry
+        ``fitcore.losses.LOSSES``: Huber, pseudo-Huber, L1) down-weights points that lie
+        mostly on one side of the curve, else "".
 
         Such a loss still pulls the fit toward every outlier with a bounded force, so
         one-sided outliers shift it by about (excess on one side) x tuning x scale / n,
@@ -107,7 +109,8 @@ class FitResult:
         as excess / sqrt(n). The warning is given when the excess is at least sqrt(n)
         and at least 70 % of the down-weighted points (our thresholds).
         """
-        if self.loss not in ("huber", "pseudo_huber", "l1"):
+        entry = LOSSES.get(self.loss)
+        if self.loss == "l2" or entry is None or entry.family != "monotone":
             return ""
         used = ~self.excluded & np.isfinite(self.residuals)
         if self.loss == "l1":
@@ -124,9 +127,10 @@ class FitResult:
         if excess < 0.7 * m or excess < np.sqrt(max(self.n_used, 1)):
             return ""
         return (f"{m} down-weighted points lie {above} above and {below} below the curve: "
-                f"a monotone loss ({self.loss}) still pulls the fit toward one-sided "
+                f"a monotone loss ({entry.title}) still pulls the fit toward one-sided "
                 f"outliers, a bias that grows against the uncertainties with the number of "
-                f"points; a redescending loss (tukey, welsch) gives them no pull")
+                f"points; a redescending loss ({LOSSES['tukey'].title}, {LOSSES['welsch'].title}) "
+                f"gives them no pull")
 
     @property
     def warnings(self) -> tuple[str, ...]:
