@@ -11,6 +11,7 @@ import numpy as np
 from ..losses import LOSS_NAMES, Loss, get_loss
 from ..model import Model
 from .problem import FitError, _Problem
+from .recognise import recognise
 
 
 @dataclass
@@ -208,8 +209,10 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
             # start values need no more than a few thousand points (a seeded subsample)
             pick = np.sort(np.random.default_rng(7).choice(n_used, 300, replace=False))
             start = mdl.start_values(xu[pick], yu[pick], p0)
+            start, like = _catalogue_start(mdl, xu[pick], yu[pick], p0, start)
         else:
             start = mdl.start_values(xu, yu, p0)
+            start, like = _catalogue_start(mdl, xu, yu, p0, start)
     except ValueError as e:
         raise FitError(str(e)) from e
     if not np.all(np.isfinite(start)):
@@ -237,5 +240,34 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         used=used, fixed=fixed, free=free, prob=prob, theta0=start[free],
         fixed_scale=fixed_scale, absolute=absolute, scale_given=scale_given,
         sigma_kind="none" if sigma is None else sigma_mode, max_iter=max_iter,
-        info={"n_missing": int(np.sum(~finite)), "scale_fixed": scale_given},
+        info={"n_missing": int(np.sum(~finite)), "scale_fixed": scale_given,
+              **({"start_like": like} if like else {})},
     )
+
+
+def _catalogue_start(mdl: Model, x, y, p0, start):
+    """``(start, catalogue name)``: a formula that is a catalogue curve written another
+    way (:mod:`.recognise`) starts from that model's robust guess, carried over to the
+    formula's parameters, wherever the analyst gave no start value; else
+    ``(start, None)``."""
+    names = mdl.param_names
+    given = set(p0) if isinstance(p0, dict) else (set(names) if p0 is not None else set())
+    if given >= set(names):
+        return start, None
+    match = recognise(mdl)
+    if match is None:
+        return start, None
+    from ..models import get_model
+
+    try:
+        with np.errstate(all="ignore"):
+            q = match.carry(get_model(match.name).start_values(x, y))
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+        return start, None
+    if not np.all(np.isfinite(q)):
+        return start, None
+    out = np.array(start, dtype=float)
+    for j, n in enumerate(names):
+        if n not in given:
+            out[j] = q[j]
+    return out, match.name

@@ -20,9 +20,11 @@ default), :func:`_improve` tries more starts and keeps the best result that pass
    b1 ~ 1e-2 and b2 ~ 6e3) is nearly straight in log coordinates. The fit found there is
    polished in the original parameters (the covariance is theirs).
 4. The catalogue's guesses apply to a formula that is recognisably a catalogue curve
-   through step 2 (the same searches run on it), and every candidate run uses the
-   analyst's loss; L1 and redescending losses start from a converged robust fit
-   (:mod:`.dispatch`).
+   (renamed, reordered, a rate for a time constant: :mod:`.recognise`); such a formula
+   starts from that model's robust guess (set up in :mod:`.setup`), so its start is
+   not blank and the searches above run only if that start fails the verdict. Every
+   candidate run uses the analyst's loss; L1 and redescending losses start from a
+   converged robust fit (:mod:`.dispatch`).
 
 Candidates are compared by the objective at a common scale; a candidate counts only
 when it passes the verdict (first-order test, every parameter affecting the curve, no
