@@ -118,6 +118,10 @@ class Document:
         self.fit_failed = False
         self.generation = 0
         self.selection = np.zeros(0, np.intp)
+        #: callables that write an edit still in progress (a reason being typed in the
+        #: points table) into the document; :meth:`flush_pending_edits` calls them
+        self._pending_edits: list[Callable] = []
+        self._flushing = False
         if measurements is not None:
             self.apply_measurements(measurements)
 
@@ -134,6 +138,24 @@ class Document:
         for cb in list(self._listeners):
             cb(event, **info)
 
+    # --------------------------------------------------------------- edits in progress
+    def add_pending_edit(self, flush: Callable) -> None:
+        """Register ``flush()``, which writes an edit still open in a widget (a reason
+        typed but not yet confirmed with Return) into the document."""
+        self._pending_edits.append(flush)
+
+    def flush_pending_edits(self) -> None:
+        """Write every edit still in progress into the document (before it is saved,
+        copied or replaced, so that nothing typed is lost)."""
+        if self._flushing:
+            return
+        self._flushing = True
+        try:
+            for flush in list(self._pending_edits):
+                flush()
+        finally:
+            self._flushing = False
+
     # --------------------------------------------------------------- queries
     @property
     def n(self) -> int:
@@ -144,7 +166,9 @@ class Document:
         return self.n > 0
 
     def exclusion_record(self) -> list[tuple[int, str, str]]:
-        """``(point index, reason, time)`` for every excluded point."""
+        """``(point index, reason, time)`` for every excluded point (a reason still
+        being typed included)."""
+        self.flush_pending_edits()
         return [(int(i), self.reasons[i], self.times[i]) for i in np.flatnonzero(self.excluded)]
 
     def exclusions(self) -> list[Exclusion]:

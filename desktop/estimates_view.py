@@ -19,6 +19,7 @@ from PySide6.QtWidgets import (
 from fitcore.report import (
     CAUTION,
     DataRecord,
+    alpha_text,
     convergence_text,
     estimate_cells,
     estimates_text,
@@ -75,7 +76,7 @@ def summary_lines(res) -> list[tuple[str, str]]:
         ("n excluded", str(g("n_excluded", ""))),
         ("n down-weighted (w < 0.5)", str(g("n_downweighted", ""))),
         ("scale", f"{g('scale', float('nan')):.6g} ({g('scale_method', '')})"),
-        ("alpha", "-" if alpha is None else f"{alpha:.4g}"),
+        ("alpha", "-" if alpha is None else alpha_text(res)),
         ("degrees of freedom", str(g("dof", ""))),
         ("converged", convergence_text(res)),
         ("covariance", str(g("covariance_recipe", ""))),

@@ -26,7 +26,7 @@ from .document import Document, Measurements, Settings
 from .estimates_view import CAUTION, EstimatesView
 from .method_panel import MethodPanel
 from .plot_view import PlotView
-from .points_model import ColumnFitter, PointsModel, make_proxy
+from .points_model import COL, ColumnFitter, PointsModel, ReasonDelegate, make_proxy
 from .report_export import ReportExporter
 from .session_io import SessionManager
 from . import jobs
@@ -80,6 +80,10 @@ class MainWindow(QMainWindow):
         self.table.verticalHeader().setDefaultSectionSize(22)
         self.table.setAlternatingRowColors(False)
         self.table.setEditTriggers(QAbstractItemView.DoubleClicked | QAbstractItemView.EditKeyPressed)
+        # a reason typed and not yet confirmed is written before any save, copy or close
+        self.reason_delegate = ReasonDelegate(self.table)
+        self.table.setItemDelegateForColumn(COL["reason"], self.reason_delegate)
+        self.document.add_pending_edit(self.reason_delegate.commit_open)
         self.method_panel = MethodPanel(self.document, self.push)
         self.estimates = EstimatesView(self.document)
         self.runner = FitRunner(self.document, parent=self)

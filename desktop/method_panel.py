@@ -67,6 +67,21 @@ def formula_check(text: str) -> tuple[str, str]:
     return "ok", msg
 
 
+#: losses whose automatic scale gives way to scale 1 when sigma are absolute (fitcore's
+#: rule: L2, L1 and the adaptive loss estimate their scale whatever the sigma)
+_ESTIMATE_SCALE_ANYWAY = ("l2", "l1", "adaptive")
+
+
+def sigma_fixes_scale(settings: Settings, measurements) -> bool:
+    """True when the fit will not estimate the scale although it is set to "auto":
+    the data carry a sigma column taken as absolute standard uncertainties (no
+    weighting rule), so a robust loss uses scale 1, in multiples of sigma (the fit
+    states it as "fixed at 1: sigma taken as absolute")."""
+    return (settings.scale == "auto" and getattr(measurements, "sigma", None) is not None
+            and settings.sigma_mode == "absolute" and not settings.weighting
+            and settings.loss not in _ESTIMATE_SCALE_ANYWAY)
+
+
 class LossPreview(pg.PlotWidget):
     """rho(u) (scaled to 1 at the edge of the range) and weight(u) for one loss."""
 
@@ -126,6 +141,9 @@ class MethodPanel(QWidget):
         self.push = push
         self._updating = False
         self._formula_refused = ""  # message of the last refused formula ("" = none)
+        #: the formula taken out of the box when a built-in model took over; it comes
+        #: back when "formula..." is picked again
+        self._set_aside_formula = ""
 
         lay = QVBoxLayout(self)
         lay.setContentsMargins(4, 4, 4, 4)
@@ -258,6 +276,10 @@ class MethodPanel(QWidget):
         s = self.document.settings
         self._formula_refused = ""
         if name == FORMULA_ITEM:
+            if not self.formula_edit.text() and self._set_aside_formula:
+                self._updating = True
+                self.formula_edit.setText(self._set_aside_formula)
+                self._updating = False
             self._update_formula_box()
             self.formula_edit.setFocus()
             text = self.formula_edit.text().strip()
@@ -499,6 +521,11 @@ class MethodPanel(QWidget):
                 i = self.model_combo.findData(s.model)
                 if i >= 0:
                     self.model_combo.setCurrentIndex(i)
+                # no formula on show under a built-in model (its formula is the line
+                # below); the text comes back when "formula..." is picked again
+                if self.formula_edit.text():
+                    self._set_aside_formula = self.formula_edit.text()
+                    self.formula_edit.setText("")
             self._formula_refused = ""
             self._update_formula_box()
             i = self.loss_combo.findData(s.loss)
@@ -509,6 +536,7 @@ class MethodPanel(QWidget):
             if s.scale == "auto":
                 self.scale_combo.setCurrentIndex(0)
                 self.scale_edit.setEnabled(False)
+                self.scale_edit.setText("")
             else:
                 self.scale_combo.setCurrentIndex(1)
                 self.scale_edit.setEnabled(True)
@@ -539,8 +567,23 @@ class MethodPanel(QWidget):
 
     def _scale_wording(self):
         """Say what unit a fixed scale is in: y units, or multiples of sigma when the
-        data carry a sigma per point (residuals are divided by sigma first)."""
+        data carry a sigma per point (residuals are divided by sigma first). Where the
+        "auto" choice is not what the fit does (absolute sigma: scale 1), the choice
+        says what the fit uses instead."""
         m = self.document.measurements
+        fixed_by_sigma = sigma_fixes_scale(self.document.settings, m)
+        if fixed_by_sigma:
+            self.scale_combo.setItemText(0, "1\u00d7\u03c3")
+            self.scale_combo.setItemData(
+                0, "Fixed at 1: the sigma column is taken as absolute standard uncertainties, "
+                   "so the residuals divided by sigma have scale 1 (least squares, L1 and the "
+                   "adaptive loss still estimate it). Choose fixed to give another multiple "
+                   "of sigma.", Qt.ToolTipRole)
+        else:
+            self.scale_combo.setItemText(0, "auto")
+            self.scale_combo.setItemData(0, "Automatic: a robust estimate (normalised MAD of "
+                                            "the residuals, re-estimated with the fit)",
+                                         Qt.ToolTipRole)
         if getattr(m, "sigma", None) is not None:
             self.scale_edit.setPlaceholderText("multiples of sigma")
             tip = ("Fixed scale in multiples of sigma: the residuals are divided by each "
@@ -550,7 +593,9 @@ class MethodPanel(QWidget):
             self.scale_edit.setPlaceholderText(f"in {unit}")
             tip = f"Fixed scale of the residuals, in {unit}"
         self.scale_edit.setToolTip(tip)
-        self.scale_combo.setToolTip(tip)
+        self.scale_combo.setToolTip(
+            "The scale is 1 because the sigma column is taken as absolute standard "
+            "uncertainties (residuals in multiples of sigma). " + tip if fixed_by_sigma else tip)
 
     @staticmethod
     def _model_text(s: Settings) -> str:

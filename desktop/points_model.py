@@ -15,6 +15,7 @@ from typing import Callable
 import numpy as np
 from PySide6.QtCore import QAbstractProxyModel, QAbstractTableModel, QModelIndex, Qt
 from PySide6.QtGui import QBrush, QColor, QFont
+from PySide6.QtWidgets import QStyledItemDelegate
 
 from .commands import MaskCommand, ReasonCommand
 from .document import Document
@@ -362,6 +363,32 @@ class PointsModel(QAbstractTableModel):
             self.push(ReasonCommand(doc, row, text))
             return True
         return False
+
+
+class ReasonDelegate(QStyledItemDelegate):
+    """The editor of the reason column. Qt writes a reason into the record on Return
+    and when the editor loses focus; :meth:`commit_open` writes it while the editor is
+    still open, for a save, copy or close that comes first (a shortcut or a menu takes
+    no focus from the editor). The window registers it with
+    :meth:`Document.add_pending_edit`."""
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self._editor = None
+
+    def createEditor(self, parent, option, index):  # Qt's name
+        self._editor = super().createEditor(parent, option, index)
+        return self._editor
+
+    def destroyEditor(self, editor, index):  # Qt's name
+        if editor is self._editor:
+            self._editor = None
+        super().destroyEditor(editor, index)
+
+    def commit_open(self) -> None:
+        """Write the text of an open reason editor into the record (as Return would)."""
+        if self._editor is not None:
+            self.commitData.emit(self._editor)
 
 
 def make_proxy(model: PointsModel, parent=None) -> "SortProxy":

@@ -318,7 +318,8 @@ class SessionManager(QObject):
 
     def has_unsaved_work(self) -> bool:
         """True when replacing or closing would lose changes (exclusions, reasons,
-        method) that are not saved in a session."""
+        method) that are not saved in a session; a reason still being typed counts."""
+        self.document.flush_pending_edits()
         return bool(self.modified and self.dirty and self.document.has_data)
 
     def _ask_save(self, question: str) -> bool:

@@ -43,6 +43,7 @@ __all__ = [
     "NO_REASON",
     "HELD_NOTE",
     "loss_label",
+    "alpha_text",
     "convergence_text",
     "excluded_points_text",
     "resolve_unit",
@@ -85,13 +86,26 @@ def loss_label(res) -> str:
             and math.isfinite(float(res.tuning))):
         parts.append(f"tuning constant {float(res.tuning):.6g} × scale")
     if res.alpha is not None:
-        a = f"shape alpha = {float(res.alpha):.6g}"
-        if res.alpha_stderr is not None and math.isfinite(float(res.alpha_stderr)):
-            a = f"shape alpha = {format_value(res.alpha, res.alpha_stderr)}"
-        if name == "adaptive":
-            a += " (fitted)"
-        parts.append(a)
+        parts.append(f"shape alpha = {alpha_text(res)}")
     return "; ".join(parts)
+
+
+def alpha_text(res) -> str:
+    """The shape alpha of a general or adaptive fit in words: ``"1, fixed"``, a fitted
+    ``"0.055(59), fitted"``, or at the end of the adaptive loss's range ``"0, fitted at
+    the end of its range 0 to 2, no standard uncertainty"``; ``""`` for a loss without
+    a shape."""
+    if res.alpha is None:
+        return ""
+    alpha = float(res.alpha)
+    if str(res.loss) != "adaptive":
+        return f"{alpha:.6g}, fixed"
+    se = res.alpha_stderr
+    if se is not None and math.isfinite(float(se)) and float(se) > 0:
+        return f"{format_value(alpha, float(se))}, fitted"
+    if alpha <= 0.0 or alpha >= 2.0:
+        return f"{alpha:.6g}, fitted at the end of its range 0 to 2, no standard uncertainty"
+    return f"{alpha:.6g}, fitted, no standard uncertainty"
 
 
 def _version() -> str:
