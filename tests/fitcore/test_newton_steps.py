@@ -65,3 +65,27 @@ def test_small_fit_scale_is_the_mad_fixed_point_and_matches_the_alternation(loss
     assert alt.converged, alt.message
     assert alt.scale == pytest.approx(res.scale, rel=1e-9)
     assert np.allclose(alt.values, res.values, rtol=1e-8, atol=1e-10)
+
+
+@pytest.mark.parametrize("alpha", [0.0, 0.3, 1.0, 1.7, 2.0])
+def test_adaptive_scale_step_is_the_likelihood_minimum(alpha):
+    # the adaptive loss's best scale c for given residuals and shape: Newton on the
+    # likelihood equation in log c, against scipy's bounded scalar search on the
+    # negative log-likelihood itself, and at alpha = 2 the closed form c^2 = mean r^2
+    import math
+
+    from fitcore.solvers.adaptive import _best_log_c, _nll
+
+    rng = np.random.default_rng(7)
+    r = rng.normal(0, 0.3, 40)
+    r[[3, 17]] += [5.0, -8.0]
+    lo, hi = math.log(1e-6), math.log(100.0)
+    lc = _best_log_c(r, alpha, lo, hi, start=0.0)
+    ref = optimize.minimize_scalar(lambda v: _nll(r, alpha, v), bounds=(lo, hi),
+                                   method="bounded", options={"xatol": 1e-12})
+    assert lc == pytest.approx(float(ref.x), abs=1e-6)
+    assert _nll(r, alpha, lc) <= float(ref.fun) + 1e-10
+    if alpha == 2.0:
+        assert math.exp(lc) == pytest.approx(math.sqrt(np.mean(r * r)), rel=1e-12)
+    # a floor above the minimum holds the scale there
+    assert _best_log_c(r, alpha, lc + 0.5, hi, start=0.0) == lc + 0.5
