@@ -11,9 +11,11 @@ in mg/L is per mg/L.
 formula by dimensional analysis of its expression, and leaves a parameter blank
 whenever the formula does not fix its unit. The rules:
 
-* the formula's value has the unit of y; ``x`` has the unit of x; every number
-  (``2``, ``0.5``, ``pi``) is dimensionless;
-* the terms of a sum share one unit (``m*x + b``: ``b`` in y, ``m`` in y/x);
+* the formula's value has the unit of y; ``x`` has the unit of x;
+* the terms of a sum share one unit (``m*x + b``: ``b`` in y, ``m`` in y/x); a number
+  in a sum is dimensionless (``1 + x/K``: ``K`` in x), except beside a term whose unit
+  is already fixed by the data (``x - 20``, ``1/x - 1/298.15``), where it can only be
+  in that unit; every other number (a factor, ``pi``) is dimensionless;
 * a product multiplies units, a quotient divides them, a power with a number as its
   exponent raises them (``sqrt`` is the power 1/2);
 * the argument of ``exp``, ``sin``, ``cos``, ``tan``, ``arctan``, ``tanh`` and a fitted
@@ -24,12 +26,15 @@ whenever the formula does not fix its unit. The rules:
 * a power with a fitted exponent (``x**n``) is dimensionless when its base is, and
   otherwise of a unit that cannot be named: it fixes nothing, except that where it
   must be dimensionless (``1 + (x/K)**n``) its base must be too (``K`` in x);
-* ``abs`` keeps the unit of its argument.
+* ``abs`` keeps the unit of its argument;
+* a rule that involves no parameter (``exp(-x)`` with x in s: the formula's numbers
+  carry units) fixes nothing and is set aside.
 
 The parameters' units are the unique solution of the resulting linear equations in the
 exponents of x's and y's units; a parameter the equations leave free is blank, and when
-the equations contradict each other (``a*(x - 20)`` with a dimensionless 20, which would
-make x dimensionless) every parameter is blank: a wrong unit is never printed.
+the equations contradict each other (``a*(x + x**2)``: the sum has no single unit, or
+``x/(1 + x/K)`` with y in another unit than x) every parameter is blank: a wrong unit
+is never printed.
 """
 from __future__ import annotations
 
@@ -288,8 +293,14 @@ class _Analysis:
         self.params = {p: i for i, p in enumerate(params)}
         self.equations: list[_Form] = []  # each must be zero
 
-    def equal(self, a, b) -> None:
-        """Record that units ``a`` and ``b`` are the same (where both can be named)."""
+    def equal(self, a, b, *, firm: bool = False) -> None:
+        """Record that units ``a`` and ``b`` are the same (where both can be named).
+
+        An equation that holds no parameter only says that data units must agree (x
+        dimensionless in ``exp(-x)``: its numbers carry a unit, as in ``exp(-x/2)``
+        with 2 in x's unit); it fixes no parameter and is dropped, unless ``firm``:
+        two terms of one sum whose units disagree (``x + x**2``) leave the sum's unit
+        undecided, and then nothing can be derived."""
         if isinstance(a, _Unknown) or isinstance(b, _Unknown):
             return
         if isinstance(a, _FreePower) or isinstance(b, _FreePower):
@@ -297,7 +308,9 @@ class _Analysis:
             if isinstance(other, _Form) and other.is_zero:
                 self.equal(free.base, _ZERO)  # dimensionless only with a dimensionless base
             return
-        self.equations.append(a.minus(b))
+        eq = a.minus(b)
+        if eq.coef or firm:
+            self.equations.append(eq)
 
     def unit(self, e):
         sp = self.sympy
@@ -308,13 +321,22 @@ class _Analysis:
         if e.is_number:
             return _ZERO
         if isinstance(e, sp.Add):
-            parts = [self.unit(a) for a in e.args]
+            numbers = [a for a in e.args if a.is_number]
+            parts = [self.unit(a) for a in e.args if not a.is_number]
             known = next((p for p in parts if isinstance(p, _Form)), None)
-            if known is None:
-                return _UNKNOWN  # only powers with fitted exponents: no nameable unit
             for p in parts:
-                if p is not known:
+                if known is not None and p is not known:
+                    self.equal(known, p, firm=isinstance(p, _Form))
+            if known is None:
+                if not numbers:
+                    return _UNKNOWN  # only powers with fitted exponents: no nameable unit
+                known = _ZERO  # 1 + (x/K)**n: the number is dimensionless, so is the rest
+                for p in parts:
                     self.equal(known, p)
+            elif numbers and known.coef:
+                self.equal(known, _ZERO)  # 1 + x/K: K in x's unit
+            # a number beside a term of a definite unit (x - 20, 1/x - 1/298.15) can
+            # only be in that unit: no equation
             return known
         if isinstance(e, sp.Mul):
             total, others = _ZERO, []

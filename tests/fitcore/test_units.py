@@ -124,8 +124,15 @@ def test_formula_analysis_agrees_with_the_catalogue(name):
     # not fixed by the formula: left blank, never guessed
     ("a*x**b", {"a": "", "b": ""}),
     ("Vmax*x**n/(K**n + x**n)", {"Vmax": "", "K": "", "n": ""}),
-    # contradicts the rules (a dimensionless 20 subtracted from x in s): all blank
-    ("a*(x - 20) + c", {"a": "", "c": ""}),
+    # a number beside x in a sum is in x's unit (the thermistor sample's formula)
+    ("a*(x - 20) + c", {"a": "mV/s", "c": "mV"}),
+    ("R25*exp(B*(1/x - 1/298.15))", {"R25": "mV", "B": "s"}),
+    # a rule without parameters (x dimensionless in exp(-x)) fixes nothing, costs nothing
+    ("a*exp(-x) + c", {"a": "mV", "c": "mV"}),
+    # contradictions leave everything blank: a sum of x and x^2 has no single unit;
+    # x/(1 + x/K) is in x's unit, never in y's mV
+    ("a*(x + x**2) + c", {"a": "", "c": ""}),
+    ("x/(1 + x/K)", {"K": ""}),
 ])
 def test_formula_parameters_get_units(text, expected):
     m = parse_formula(text)
