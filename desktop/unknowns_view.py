@@ -302,13 +302,9 @@ class UnknownsView(QWidget):
             self._fill()  # greyed: the read-backs belong to the previous inputs
 
     def recompute(self) -> None:
-        """Read every unknown back off the current result."""
-        from fitcore.calibration import (
-            CalibrationError,
-            detection_limits,
-            inverse_predict,
-            lack_of_fit,
-        )
+        """Read every unknown back off the current result (``fitcore.calibration.read_back``,
+        what the library's calibration report does)."""
+        from fitcore.calibration import read_back
 
         res = self.document.result
         self.for_result = res
@@ -316,19 +312,8 @@ class UnknownsView(QWidget):
         self.limits = None
         self.lof = None
         if res is not None:
-            for _name, readings in self.samples:
-                try:
-                    self.results.append(inverse_predict(res, readings, LEVEL))
-                except (CalibrationError, ValueError, ArithmeticError) as err:
-                    self.results.append(str(err))
-            try:
-                self.limits = detection_limits(res, LEVEL)
-            except (CalibrationError, ValueError, ArithmeticError) as err:
-                self.limits = str(err)
-            try:
-                self.lof = lack_of_fit(res)
-            except (ValueError, ArithmeticError):
-                self.lof = None
+            items, self.limits, self.lof = read_back(res, self.samples, LEVEL)
+            self.results = [r for _name, r in items]
         self._fill()
         self._draw_marks()
         self.updated.emit()
