@@ -345,6 +345,20 @@ def check_pdf(path) -> None:
         raise ValueError("the PDF file is incomplete (no trailer)")
 
 
+def install_printed_pdf(tmp, path) -> None:
+    """Check the PDF printer's finished file ``tmp`` and write it over ``path``
+    atomically (OSError, the old file kept, when either is incomplete)."""
+    from fitcore.session import write_atomically
+
+    try:
+        check_pdf(tmp)
+    except ValueError as err:
+        raise OSError(f"Qt's PDF printer did not finish the file ({err}); the disk may be full") from None
+    with open(tmp, "rb") as fh:
+        data = fh.read()
+    write_atomically(path, data, verify=check_pdf)
+
+
 def check_svg(path) -> None:
     """A complete SVG: XML that ends with the closing svg tag."""
     with open(path, "rb") as fh:
@@ -679,8 +693,12 @@ class ReportExporter:
                 write_atomically(path, _png_bytes(img), verify=check_png)
             else:
                 raise ValueError(f"plots are exported as .png or .svg, not .{fmt}")
-        except (OSError, ValueError) as err:
+        except ValueError as err:
             dialogs.error_box(self.window, "Cannot export the plot", str(err))
+            return ""
+        except OSError as err:
+            dialogs.error_box(self.window, "Cannot export the plot",
+                              f"{path}: {err.strerror or err}. The previous file, if any, is unchanged.")
             return ""
         self._status(f"Plot ({w} x {h} px) written to {path}.")
         return path
@@ -782,14 +800,10 @@ class ReportExporter:
         path = self._target("Write report (PDF)", "-report.pdf", "PDF (*.pdf)", path)
         if not path:
             return ""
-        import tempfile
+        from fitcore.session import temporary_beside
 
-        from fitcore.session import write_atomically
-
-        folder = os.path.dirname(os.path.abspath(path))
         try:  # the printer's own file, named as write_atomically names its debris
-            fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(path)}.{os.getpid()}.", suffix=".tmp",
-                                       dir=folder)
+            fd, tmp = temporary_beside(os.path.abspath(path))
             os.close(fd)
         except OSError as err:
             dialogs.error_box(self.window, "Cannot write the PDF report", f"{path}: {err}")
@@ -807,13 +821,7 @@ class ReportExporter:
                 self.pages_printed = print_paged(tdoc, printer, os.path.basename(
                     self.document.measurements.source or "Ballast report"))
             del printer
-            try:
-                check_pdf(tmp)
-            except ValueError as err:
-                raise OSError(f"Qt's PDF printer did not finish the file ({err}); the disk may be full") from None
-            with open(tmp, "rb") as fh:
-                data = fh.read()
-            write_atomically(path, data, verify=check_pdf)
+            install_printed_pdf(tmp, path)
         except OSError as err:
             dialogs.error_box(self.window, "Cannot write the PDF report",
                               f"{path}: {err}. The previous file, if any, is unchanged.")

@@ -258,8 +258,15 @@ class SessionManager(QObject):
         self._forget_recovery = False  # the user chose to discard the work on screen
         self.source_sha256 = ""
         self.last_recovery: Path | None = None
-        from fitcore.session import new_recovery_owner, window_recovery_path
+        from fitcore.session import (
+            WRITTEN_FOLDERS_NAME,
+            new_recovery_owner,
+            note_written_folders_in,
+            window_recovery_path,
+        )
 
+        # every folder written to is noted, so the next start removes crashed writers' debris
+        note_written_folders_in(self.recovery_dir / WRITTEN_FOLDERS_NAME)
         #: this window's own recovery file (with a lock naming this process); a window
         #: never deletes another running window's file
         self.own_recovery = window_recovery_path(self.recovery_dir, new_recovery_owner())
@@ -542,11 +549,14 @@ class SessionManager(QObject):
         turn, newest first: Restore loads it into this window (it then lives on as this
         window's own recovery file), Discard deletes that one. An unreadable one is
         reported and set aside as ``<name>.damaged`` so it is not offered again.
-        Leftover temporary files of dead writers are removed first.
+        Leftover temporary files of dead writers are removed first (in the recovery
+        folder and every folder Ballast wrote into, :func:`fitcore.session.clean_written_folders`).
         """
         from fitcore.session import (
+            WRITTEN_FOLDERS_NAME,
             SessionError,
             clean_debris,
+            clean_written_folders,
             load_session,
             orphaned_recovery,
             release_recovery,
@@ -554,6 +564,7 @@ class SessionManager(QObject):
         )
 
         clean_debris(self.recovery_dir)
+        clean_written_folders(self.recovery_dir / WRITTEN_FOLDERS_NAME)
         for orphan in orphaned_recovery(self.recovery_dir):
             try:
                 session = load_session(orphan)

@@ -30,6 +30,8 @@ import hashlib
 import json
 import math
 import os
+import re
+import stat as _stat
 import tempfile
 from datetime import datetime, timezone
 from pathlib import Path
@@ -825,6 +827,15 @@ def _umask() -> int:
     return old
 
 
+def temporary_beside(path) -> tuple[int, str]:
+    """A new temporary file beside ``path``, named as :func:`clean_debris` knows
+    debris (``.<name>.<pid>.<random>.tmp``), its folder noted for the next start's
+    cleaning; returns ``(descriptor, path)`` as :func:`tempfile.mkstemp` does."""
+    path = Path(path)
+    _note_folder(path.parent)
+    return tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".tmp", dir=path.parent)
+
+
 def write_atomically(path, data: bytes, verify=None) -> None:
     """Write ``data`` to ``path`` so that a crash leaves the old file or the new one,
     complete: a temporary file in the same folder, flushed and fsync-ed, checked by
@@ -835,14 +846,15 @@ def write_atomically(path, data: bytes, verify=None) -> None:
     A symbolic link is written through (its target is replaced, the link stays). A new
     file gets the mode the umask allows (0666 & ~umask); a replaced file keeps its mode.
     The temporary file is ``.<name>.<pid>.<random>.tmp``; :func:`clean_debris` removes
-    those of dead processes, and each write first removes its own target's debris.
+    those of dead processes, each write first removes its own target's debris, and the
+    folder is noted for :func:`clean_written_folders` at the next start.
     """
     path = Path(path)
     if path.is_symlink():
         path = Path(os.path.realpath(path))
     folder = path.parent
     clean_debris(folder, path.name)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".tmp", dir=folder)
+    fd, tmp = temporary_beside(path)
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
@@ -1121,19 +1133,26 @@ def set_aside_damaged(recovery_file) -> Path | None:
     return target
 
 
-_DEBRIS_RE = None
+#: Temporary files of :func:`write_atomically`: ``.<target name>.<pid>.<8 random>.tmp``
+#: (the random part is what :func:`tempfile.mkstemp` makes: lower-case letters, digits, _).
+_DEBRIS_RE = re.compile(r"^\.(?P<name>.+)\.(?P<pid>\d+)\.[a-z0-9_]{8}\.tmp$")
+#: Debris younger than this is left alone even when its process id does not run here:
+#: a writer on another machine that shares the folder may still be writing it.
+DEBRIS_MIN_AGE_S = 60.0
 
 
-def clean_debris(folder, name: str | None = None) -> list[Path]:
+def clean_debris(folder, name: str | None = None, min_age: float | None = None) -> list[Path]:
     """Remove temporary files that :func:`write_atomically` left behind in ``folder``
-    when its process died (``.<name>.<pid>.<random>.tmp`` whose pid no longer runs).
-    ``name`` limits the search to debris of one target file. Returns what was removed."""
-    global _DEBRIS_RE
-    import re
+    when its process died: regular files named ``.<name>.<pid>.<random>.tmp`` whose
+    process no longer runs and that are older than ``min_age`` seconds (default
+    DEBRIS_MIN_AGE_S). Nothing else is touched: not other names, not folders or links,
+    not the files of running processes. ``name`` limits the search to the debris of
+    one target file. Returns what was removed."""
+    import time
 
-    if _DEBRIS_RE is None:
-        _DEBRIS_RE = re.compile(r"^\.(?P<name>.+)\.(?P<pid>\d+)\.[^./]+\.tmp$")
     folder = Path(folder)
+    min_age = DEBRIS_MIN_AGE_S if min_age is None else float(min_age)
+    now = time.time()
     removed = []
     try:
         entries = list(os.scandir(folder))
@@ -1147,8 +1166,77 @@ def clean_debris(folder, name: str | None = None) -> list[Path]:
         if pid == os.getpid() or process_alive(pid):
             continue
         try:
+            st = entry.stat(follow_symlinks=False)
+            if not _stat.S_ISREG(st.st_mode) or now - st.st_mtime < min_age:
+                continue
             os.unlink(entry.path)
             removed.append(Path(entry.path))
+        except OSError:
+            pass
+    return removed
+
+
+# Folders written to: write_atomically notes each folder it writes into in a small text
+# file (one absolute folder a line) when the program names one with
+# note_written_folders_in(); at the next start clean_written_folders() removes the debris
+# of crashed writers there (a killed PDF export leaves its printer's temporary file).
+_WRITTEN_FOLDERS: dict = {"file": None, "noted": set()}
+MAX_WRITTEN_FOLDERS = 200
+#: the window's list, in its recovery folder
+WRITTEN_FOLDERS_NAME = "written-folders.txt"
+
+
+def note_written_folders_in(registry) -> None:
+    """Note every folder :func:`write_atomically` writes into in ``registry`` (None: stop)."""
+    _WRITTEN_FOLDERS["file"] = None if registry is None else Path(registry)
+    _WRITTEN_FOLDERS["noted"] = set()
+
+
+def _note_folder(folder: Path) -> None:
+    registry = _WRITTEN_FOLDERS["file"]
+    key = str(Path(folder).absolute())
+    if registry is None or key in _WRITTEN_FOLDERS["noted"] or "\n" in key:
+        return
+    _WRITTEN_FOLDERS["noted"].add(key)
+    try:
+        known = _written_folders(registry)
+        if key in known:
+            return
+        registry.parent.mkdir(parents=True, exist_ok=True)
+        fd = os.open(registry, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o666)
+        try:
+            os.write(fd, (key + "\n").encode("utf-8", "surrogateescape"))
+        finally:
+            os.close(fd)
+    except OSError:
+        pass  # advisory: a write never fails because its folder could not be noted
+
+
+def _written_folders(registry: Path) -> list[str]:
+    try:
+        raw = read_bounded_file(registry, "list of written folders", 1 << 20)
+    except SessionError:
+        return []
+    lines = raw.decode("utf-8", "surrogateescape").splitlines()
+    return list(dict.fromkeys(s for s in lines if s and os.path.isabs(s)))
+
+
+def clean_written_folders(registry, min_age: float | None = None) -> list[Path]:
+    """Remove the debris of dead writers (:func:`clean_debris`) in every folder noted in
+    ``registry``; folders that no longer exist are dropped from it, and it keeps the
+    MAX_WRITTEN_FOLDERS most recent. Returns what was removed."""
+    registry = Path(registry)
+    folders = _written_folders(registry)
+    removed: list[Path] = []
+    keep = []
+    for f in folders:
+        if os.path.isdir(f):
+            removed += clean_debris(f, min_age=min_age)
+            keep.append(f)
+    keep = keep[-MAX_WRITTEN_FOLDERS:]
+    if keep != folders:
+        try:
+            write_atomically(registry, "".join(k + "\n" for k in keep).encode("utf-8", "surrogateescape"))
         except OSError:
             pass
     return removed

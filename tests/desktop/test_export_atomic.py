@@ -9,6 +9,7 @@ import errno
 import os
 import subprocess
 import sys
+import time
 
 import pytest
 
@@ -92,25 +93,48 @@ def test_a_truncated_pdf_or_png_is_not_accepted(tmp_path):
     assert target.read_bytes() == good_pdf
 
 
-def test_umask_symlink_and_debris(win, tmp_path):
+@pytest.mark.parametrize("kind", sorted(WRITERS))
+def test_umask_and_symlink_for_every_writer(win, tmp_path, kind):
+    suffix, write = WRITERS[kind]
     old = os.umask(0o077)
     try:
-        out = tmp_path / "private.png"
-        assert win.reports.write_plot(str(out), (200, 150))
+        out = tmp_path / f"private{suffix}"
+        assert write(win, str(out))
         assert out.stat().st_mode & 0o777 == 0o600  # was 0644 whatever the umask
     finally:
         os.umask(old)
-    real = tmp_path / "real.ballast"
-    link = tmp_path / "link.ballast"
-    assert win.sessions.save_to(str(real))
+    os.chmod(out, 0o640)
+    assert write(win, str(out))
+    assert out.stat().st_mode & 0o777 == 0o640  # a replaced file keeps its mode
+    real = tmp_path / "real" / f"target{suffix}"
+    real.parent.mkdir()
+    link = tmp_path / f"link{suffix}"
+    assert write(win, str(real))
     link.symlink_to(real)
-    assert win.sessions.save_to(str(link))
+    real.write_bytes(b"old")
+    assert write(win, str(link))
     assert link.is_symlink() and os.readlink(link) == str(real)  # the link stays, its target is new
-    assert fs.load_session(link).n_points == win.document.n
-    # debris of a writer that died (its pid no longer runs) goes at the next write
+    assert real.read_bytes() != b"old" and real.stat().st_size > 100
+    assert not [p for p in tmp_path.rglob("*") if p.name.endswith(".tmp")]
+
+
+def test_debris_of_dead_writers_goes_and_nothing_else(win, tmp_path):
+    real = tmp_path / "real.ballast"
+    assert win.sessions.save_to(str(real))
+    # debris of a writer that died (its pid no longer runs) goes at the next write once
+    # it is older than DEBRIS_MIN_AGE_S; young debris, live writers' files and other names stay
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
                           text=True, check=True).stdout.strip()
-    debris = tmp_path / f".real.ballast.{dead}.abc123.tmp"
-    debris.write_bytes(b"half")
+    old_t = time.time() - fs.DEBRIS_MIN_AGE_S - 5
+    debris = tmp_path / f".real.ballast.{dead}.abc12_yz.tmp"
+    young = tmp_path / f".real.ballast.{dead}.young123.tmp"
+    alive = tmp_path / f".real.ballast.{os.getppid()}.alive123.tmp"  # pytest's parent runs
+    other = [tmp_path / n for n in (f".real.ballast.{dead}.ABCDEFGH.tmp", "real.ballast.tmp", ".real.ballast.part",
+                                    f".other.ballast.{dead}.abc12_yz.tmp")]
+    for p in [debris, young, alive, *other]:
+        p.write_bytes(b"half")
+    for p in [debris, alive, *other]:
+        os.utime(p, (old_t, old_t))
     assert win.sessions.save_to(str(real))
     assert not debris.exists()
+    assert young.exists() and alive.exists() and all(p.exists() for p in other)
