@@ -71,7 +71,7 @@ def summary_lines(res) -> list[tuple[str, str]]:
 
     alpha = g("alpha")
     lines = [
-        ("loss", loss_label(res)),
+        ("loss", loss_label(res, shape=False)),  # the shape has its own line below
         ("n used", str(g("n_used", ""))),
         ("n excluded", str(g("n_excluded", ""))),
         ("n down-weighted (w < 0.5)", str(g("n_downweighted", ""))),

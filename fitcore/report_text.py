@@ -76,16 +76,17 @@ def loss_title(name: str) -> str:
     return registry_title(name)
 
 
-def loss_label(res) -> str:
+def loss_label(res, *, shape: bool = True) -> str:
     """The loss in words: its title, tuning constant and shape (``"Huber; tuning
     constant 1.345 × scale"``), never its internal name. The adaptive loss has no
-    tuning constant to state (its width is the fitted scale itself)."""
+    tuning constant to state (its width is the fitted scale itself). ``shape=False``
+    leaves the shape out (for a summary that states it on a line of its own)."""
     name = str(res.loss)
     parts = [loss_title(name)]
     if (name != "adaptive" and res.tuning is not None
             and math.isfinite(float(res.tuning))):
         parts.append(f"tuning constant {float(res.tuning):.6g} × scale")
-    if res.alpha is not None:
+    if shape and res.alpha is not None:
         parts.append(f"shape alpha = {alpha_text(res)}")
     return "; ".join(parts)
 

@@ -168,10 +168,11 @@ def test_loss_summary_is_true_for_every_loss(win, loss):
         assert "tuning constant" not in label and "tuning constant" not in copied
     else:
         assert f"tuning constant {res.tuning:.6g} × scale" in label
+    assert "shape alpha" not in label  # the window states the shape once, on its own line
     if loss == "general":
-        assert lines["alpha"] == "-2, fixed" and "shape alpha = -2, fixed" in label
+        assert lines["alpha"] == "-2, fixed" and "shape alpha = -2, fixed" in copied
     elif loss == "adaptive":
-        assert "fitted" in lines["alpha"] and f"shape alpha = {lines['alpha']}" in label
+        assert "fitted" in lines["alpha"] and f"shape alpha = {lines['alpha']}" in copied
         if res.alpha_stderr is None:  # at an end of [0, 2]: no curvature to give u
             assert res.alpha in (0.0, 2.0)
             assert "no standard uncertainty" in lines["alpha"]
@@ -179,7 +180,7 @@ def test_loss_summary_is_true_for_every_loss(win, loss):
             assert lines["alpha"].startswith(f"{res.alpha:.1f}"[:3])
             assert "(" in lines["alpha"]  # value(u)
     else:
-        assert lines["alpha"] == "-" and "alpha" not in label
+        assert lines["alpha"] == "-" and "shape alpha" not in copied
 
 
 def test_adaptive_alpha_with_its_uncertainty(win):
