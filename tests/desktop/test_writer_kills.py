@@ -48,8 +48,11 @@ pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="us
 
 HERE = Path(__file__).resolve().parent
 DRIVER = HERE / "writer_driver.py"
-KINDS = ("csv", "html", "pdf", "png", "session", "svg")
-SUFFIX = {"session": ".ballast", "html": ".html", "pdf": ".pdf", "png": ".png", "svg": ".svg", "csv": ".csv"}
+sys.path.insert(0, str(HERE))
+import writer_driver  # noqa: E402
+
+SUFFIX = writer_driver.SUFFIX
+KINDS = tuple(sorted(SUFFIX))
 KILLS = 20
 ENV = dict(os.environ, QT_QPA_PLATFORM="offscreen", OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1",
            MKL_NUM_THREADS="1")
@@ -102,16 +105,9 @@ def payloads(open_window, tmp_path, write_demo_csv):
     folder = tmp_path / "payloads"
     folder.mkdir()
     w = open_window(1300, 820, recovery_dir=tmp_path / "make-recovery")
-    assert w.open_path(str(write_demo_csv(tmp_path / "line.csv", n=300)))
+    assert w.open_path(str(write_demo_csv(tmp_path / "line.csv", n=150)))
     assert w.runner.wait()
-    write = {
-        "session": lambda p: w.sessions.save_to(p),
-        "html": lambda p: w.reports.write_html(p),
-        "pdf": lambda p: w.reports.write_pdf(p),
-        "png": lambda p: w.reports.write_plot(p, (1200, 800)),
-        "svg": lambda p: w.reports.write_plot(p, (800, 500)),
-        "csv": lambda p: w.reports.write_points_csv(p),
-    }
+    write = writer_driver.window_writers(w, png=(1200, 800), svg=(800, 500))
     for version in ("a", "b"):
         if version == "b":
             doc = w.document

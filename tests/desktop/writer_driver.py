@@ -39,6 +39,18 @@ def say(**kw) -> None:
     sys.stdout.flush()
 
 
+def window_writers(win, png=(400, 300), svg=(400, 300)) -> dict:
+    """The window's own writer of each kind: ``write[kind](path) -> truthy on success``."""
+    return {
+        "session": lambda p: win.sessions.save_to(p),
+        "html": lambda p: win.reports.write_html(p),
+        "pdf": lambda p: win.reports.write_pdf(p),
+        "png": lambda p: win.reports.write_plot(p, png),
+        "svg": lambda p: win.reports.write_plot(p, svg),
+        "csv": lambda p: win.reports.write_points_csv(p),
+    }
+
+
 def writer(kind: str, target: Path):
     """The project's write call for ``kind`` (what the window runs once the bytes exist)."""
     from types import SimpleNamespace
@@ -151,14 +163,7 @@ def full_disk(folder: Path, mode: str, data: str, recovery: str) -> int:
     win = MainWindow(QSettings(str(Path(recovery) / "full.ini"), QSettings.IniFormat), recovery_dir=recovery)
     assert win.open_path(data)
     win.runner.wait(60000)
-    write = {
-        "session": lambda p: win.sessions.save_to(p),
-        "html": lambda p: win.reports.write_html(p),
-        "pdf": lambda p: win.reports.write_pdf(p),
-        "png": lambda p: win.reports.write_plot(p, (400, 300)),
-        "svg": lambda p: win.reports.write_plot(p, (400, 300)),
-        "csv": lambda p: win.reports.write_points_csv(p),
-    }
+    write = window_writers(win)
     for kind in sorted(SUFFIX):
         out = folder / f"out{SUFFIX[kind]}"
         first = bool(write[kind](str(out)))
