@@ -28,6 +28,7 @@ from fitcore.report import (
     format_value,
     loss_label,
     resolve_unit,
+    scale_text,
 )
 
 from .document import Document
@@ -63,9 +64,9 @@ def unit_of(expr: str, x_unit: str, y_unit: str) -> str:
     return resolve_unit(expr, x_unit, y_unit)
 
 
-def summary_lines(res) -> list[tuple[str, str]]:
-    """(label, text) pairs describing how the fit was made (the loss by its title, as
-    the copied text states it)."""
+def summary_lines(res, y_unit: str = "") -> list[tuple[str, str]]:
+    """(label, text) pairs describing how the fit was made (the loss by its title and
+    the scale with its unit, as the copied text states them)."""
     def g(name, default=None):
         return getattr(res, name, default)
 
@@ -75,7 +76,7 @@ def summary_lines(res) -> list[tuple[str, str]]:
         ("n used", str(g("n_used", ""))),
         ("n excluded", str(g("n_excluded", ""))),
         ("n down-weighted (w < 0.5)", str(g("n_downweighted", ""))),
-        ("scale", f"{g('scale', float('nan')):.6g} ({g('scale_method', '')})"),
+        ("scale", scale_text(res, y_unit)),
         ("alpha", "-" if alpha is None else alpha_text(res)),
         ("degrees of freedom", str(g("dof", ""))),
         ("converged", convergence_text(res)),
@@ -218,7 +219,7 @@ class EstimatesView(QWidget):
                     it.setForeground(Qt.gray)
                 self.table.setItem(r, col, it)
         text = "<br>".join(f"<b>{html.escape(a)}</b>: {html.escape(b)}"
-                           for a, b in summary_lines(res))
+                           for a, b in summary_lines(res, m.y_unit))
         warnings = getattr(res, "warnings", ())
         if warnings:
             # signs that this converged fit should not be trusted as it stands

@@ -44,6 +44,7 @@ __all__ = [
     "HELD_NOTE",
     "loss_label",
     "alpha_text",
+    "scale_text",
     "convergence_text",
     "excluded_points_text",
     "resolve_unit",
@@ -89,6 +90,20 @@ def loss_label(res, *, shape: bool = True) -> str:
     if shape and res.alpha is not None:
         parts.append(f"shape alpha = {alpha_text(res)}")
     return "; ".join(parts)
+
+
+def scale_text(res, y_unit: str = "") -> str:
+    """The scale with its unit and how it was obtained: ``"0.0019 mV, normalised MAD
+    of the residuals, ..."``; in units of sigma when sigma are absolute."""
+    scale_unit = ""
+    if res.sigma is None or res.sigma_mode == "none":
+        scale_unit = f" {y_unit}" if y_unit else ""
+    elif res.sigma_mode == "absolute":
+        scale_unit = " (in units of sigma)"
+    scale = f"{float(res.scale):.6g}{scale_unit}"
+    if res.scale_method:
+        scale += f", {res.scale_method}"
+    return scale
 
 
 def alpha_text(res) -> str:
@@ -410,15 +425,7 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "",
     title = m.title or m.name
     model = f"{title}: {m.formula}" if m.formula and m.formula != title else title
     out += [("model", model), ("loss", loss_label(res))]
-    scale_unit = ""
-    if res.sigma is None or res.sigma_mode == "none":
-        scale_unit = f" {y_unit}" if y_unit else ""
-    elif res.sigma_mode == "absolute":
-        scale_unit = " (in units of sigma)"
-    scale = f"{float(res.scale):.6g}{scale_unit}"
-    if res.scale_method:
-        scale += f", {res.scale_method}"
-    out.append(("scale", scale))
+    out.append(("scale", scale_text(res, y_unit)))
     if res.sigma is not None and res.sigma_mode != "none":
         meaning = {"absolute": "absolute standard uncertainties of y",
                    "relative": "relative weights only (scaled by the fit)"}.get(

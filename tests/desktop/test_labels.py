@@ -68,7 +68,7 @@ def table_units(win) -> dict:
 def summary(win) -> dict:
     from desktop.estimates_view import summary_lines
 
-    return dict(summary_lines(win.document.result))
+    return dict(summary_lines(win.document.result, win.document.measurements.y_unit))
 
 
 # ---------------------------------------------------------------- a. the scale shown
@@ -79,6 +79,9 @@ def test_scale_choice_says_what_the_fit_used(win, loss):
     assert res is not None and res.loss == loss
     panel = win.method_panel
     shown = panel.scale_combo.currentText()
+    scale_line = summary(win)["scale"]
+    assert f"scale               {scale_line}" in win.estimates.plain_text()  # as copied
+    assert scale_line.startswith(f"{res.scale:.6g} (in units of sigma), {res.scale_method}")
     if "fixed at 1" in res.scale_method:  # the fit took sigma as absolute: scale 1
         assert res.scale == 1.0
         assert shown != "auto" and shown.startswith("1") and "\u03c3" in shown
@@ -93,6 +96,7 @@ def test_scale_choice_without_sigma_and_fixed(win):
     panel = win.method_panel
     assert "normalised MAD" in win.document.result.scale_method
     assert panel.scale_combo.currentText() == "auto"
+    assert summary(win)["scale"].startswith(f"{win.document.result.scale:.6g} mV, normalised MAD")
     show(win, decay(sigma=True), Settings(model="exp_decay", loss="huber", scale=2.0))
     assert win.document.result.scale_method == "fixed by the analyst"
     assert panel.scale_combo.currentText() == "fixed" and panel.scale_edit.text() == "2"
