@@ -15,7 +15,12 @@ whenever the formula does not fix its unit. The rules:
 * the terms of a sum share one unit (``m*x + b``: ``b`` in y, ``m`` in y/x); a number
   in a sum is dimensionless (``1 + x/K``: ``K`` in x), except beside a term whose unit
   is already fixed by the data (``x - 20``, ``1/x - 1/298.15``), where it can only be
-  in that unit; every other number (a factor, ``pi``) is dimensionless;
+  in that unit; a factor that is a small integer or simple fraction (``2``, ``1/2``,
+  ``0.5``), or such a multiple of ``pi``, ``e``, ``log(2)``, ``log(10)``, square roots
+  of 2, 3 and pi or a product or quotient of two of them (``2*pi``,
+  ``1/sqrt(2*pi)``), is dimensionless; any other number
+  (``8.314`` in ``exp(-Ea/(8.314*x))``, ``1000`` in ``exp(-1000*x/tau)``) may carry a
+  unit (a constant, a conversion), so what it touches stays blank;
 * a product multiplies units, a quotient divides them, a power with a number as its
   exponent raises them (``sqrt`` is the power 1/2);
 * the argument of ``exp``, ``sin``, ``cos``, ``tan``, ``arctan``, ``tanh`` and a fitted
@@ -38,6 +43,8 @@ is never printed.
 """
 from __future__ import annotations
 
+import functools
+import math
 import re
 from fractions import Fraction
 from typing import Mapping, Sequence
@@ -291,7 +298,13 @@ class _Analysis:
         self.sympy = sympy
         self.x = x
         self.params = {p: i for i, p in enumerate(params)}
+        self.n_columns = len(params)  # parameters, then one per number of open unit
         self.equations: list[_Form] = []  # each must be zero
+
+    def fresh(self) -> _Form:
+        """The unit of a number that may carry one (``8.314``: a gas constant)."""
+        self.n_columns += 1
+        return _Form(coef={self.n_columns - 1: Fraction(1)})
 
     def equal(self, a, b, *, firm: bool = False) -> None:
         """Record that units ``a`` and ``b`` are the same (where both can be named).
@@ -319,9 +332,9 @@ class _Analysis:
         if e in self.params:
             return _Form(coef={self.params[e]: Fraction(1)})
         if e.is_number:
-            return _ZERO
+            return _ZERO if _plain_number(e) else self.fresh()
         if isinstance(e, sp.Add):
-            numbers = [a for a in e.args if a.is_number]
+            numbers = [a for a in e.args if a.is_number and _plain_number(a)]
             parts = [self.unit(a) for a in e.args if not a.is_number]
             known = next((p for p in parts if isinstance(p, _Form)), None)
             for p in parts:
@@ -362,7 +375,7 @@ class _Analysis:
                     return _UNKNOWN
                 return b.scaled(f)
             self.equal(self.unit(expo), _ZERO)
-            b = self.unit(base)
+            b = _ZERO if base.is_number else self.unit(base)  # 10**(h*x): h in 1/x
             if isinstance(b, _Form) and b.is_zero:
                 return _ZERO
             return _FreePower(b) if isinstance(b, _Form) else _UNKNOWN
@@ -382,6 +395,42 @@ class _Analysis:
         return _UNKNOWN
 
 
+#: the largest numerator and denominator of a number taken as dimensionless
+_PLAIN = 12
+
+
+#: constants whose small rational multiples are pure numbers (a formula's constant
+#: parts arrive worked out: 2*pi as 6.283185307179586, log(2) as 0.6931471805599453)
+_BASE = (math.pi, math.sqrt(math.pi), math.log(2.0), math.log(10.0), math.sqrt(2.0),
+         math.sqrt(3.0), math.e)
+#: 1, each base constant and each product or quotient of two (1/sqrt(2*pi), pi**2, ...)
+_PURE = tuple({1.0, *(a ** i for a in _BASE for i in (-1, 1)),
+               *(a ** i * b ** j for a in _BASE for b in _BASE for i in (-1, 1) for j in (-1, 1))})
+
+
+def _plain_number(e) -> bool:
+    """True for a number that is surely a pure number: a small integer or simple
+    fraction (``2``, ``-1``, ``1/2``, ``0.5``), or such a multiple of ``pi``, ``e``,
+    ``log(2)``, ``log(10)``, ``sqrt(2)`` (``2*pi``, ``log(2)``). Any other number
+    (``8.314``, ``1000``) may carry a unit (a gas constant, a conversion factor), so
+    it fixes nothing."""
+    import sympy
+
+    for a in e.atoms(sympy.Number):
+        try:
+            v = float(a)
+        except (TypeError, ValueError):
+            return False
+        if not any(_small_fraction(v / c) for c in _PURE):
+            return False
+    return True
+
+
+def _small_fraction(v: float) -> bool:
+    f = _fraction_of(v)
+    return f is not None and abs(f.numerator) <= _PLAIN and f.denominator <= _PLAIN
+
+
 def _fraction_of(number):
     try:
         v = float(number)
@@ -395,33 +444,54 @@ def _fraction_of(number):
 
 def _solve(equations: list[_Form], k: int):
     """Unique solution per unknown of ``equations`` (each ``== 0``), as a list of
-    ``(ex, ey)`` or None where not fixed; None overall when they contradict."""
-    rows = []
-    for eq in equations:
-        row = [eq.coef.get(j, Fraction(0)) for j in range(k)]
-        rows.append(row + [-eq.const[0], -eq.const[1]])
-    pivots = []
-    r = 0
-    for c in range(k):
-        piv = next((i for i in range(r, len(rows)) if rows[i][c] != 0), None)
-        if piv is None:
+    ``(ex, ey)`` or None where not fixed; None overall when they contradict.
+
+    Gauss-Jordan elimination in exact fractions on sparse rows (each equation holds a
+    few parameters): ``({column: coefficient}, [rhs_x, rhs_y])``."""
+    rows = [({j: v for j, v in eq.coef.items()}, [-eq.const[0], -eq.const[1]])
+            for eq in equations]
+    pivots: dict[int, int] = {}  # column -> row index
+    done: list[tuple[dict, list]] = []
+    for coef, rhs in rows:
+        # reduce by the pivots found so far
+        for c in [c for c in coef if c in pivots]:
+            if c not in coef:
+                continue
+            f = coef[c]
+            pcoef, prhs = done[pivots[c]]
+            for j, v in pcoef.items():
+                nv = coef.get(j, Fraction(0)) - f * v
+                if nv:
+                    coef[j] = nv
+                else:
+                    coef.pop(j, None)
+            rhs = [rhs[0] - f * prhs[0], rhs[1] - f * prhs[1]]
+        if not coef:
+            if rhs[0] or rhs[1]:
+                return None  # 0 = a unit: the formula contradicts the rules
             continue
-        rows[r], rows[piv] = rows[piv], rows[r]
-        lead = rows[r][c]
-        rows[r] = [v / lead for v in rows[r]]
-        for i in range(len(rows)):
-            if i != r and rows[i][c] != 0:
-                f = rows[i][c]
-                rows[i] = [a - f * b for a, b in zip(rows[i], rows[r])]
-        pivots.append(c)
-        r += 1
-    for row in rows[r:]:
-        if row[k] != 0 or row[k + 1] != 0:
-            return None  # 0 = a unit: the formula contradicts the rules
+        c = min(coef)
+        lead = coef[c]
+        coef = {j: v / lead for j, v in coef.items()}
+        rhs = [rhs[0] / lead, rhs[1] / lead]
+        # eliminate the new pivot's column from the rows found before
+        for r, (pc, pr) in enumerate(done):
+            f = pc.get(c)
+            if f:
+                for j, v in coef.items():
+                    nv = pc.get(j, Fraction(0)) - f * v
+                    if nv:
+                        pc[j] = nv
+                    else:
+                        pc.pop(j, None)
+                done[r] = (pc, [pr[0] - f * rhs[0], pr[1] - f * rhs[1]])
+        pivots[c] = len(done)
+        done.append((coef, rhs))
     out: list = [None] * k
-    for i, c in enumerate(pivots):
-        if all(rows[i][j] == 0 for j in range(k) if j != c):
-            out[c] = (rows[i][k], rows[i][k + 1])
+    for c, r in pivots.items():
+        coef, rhs = done[r]
+        if len(coef) == 1:  # only its own column left: fixed by the equations
+            out[c] = (rhs[0], rhs[1])
     return out
 
 
@@ -434,12 +504,18 @@ def formula_units(expr, x, params: Sequence) -> Mapping[str, str]:
     ``params`` the parameters' symbols (:func:`fitcore.formula.analyse_formula` gives
     all three).
     """
+    return dict(_formula_units(expr, x, tuple(params)))
+
+
+@functools.lru_cache(maxsize=256)
+def _formula_units(expr, x, params: tuple) -> tuple:
     an = _Analysis(x, list(params))
     try:
         an.equal(an.unit(expr), _Form((0, 1)))
-        solution = _solve(an.equations, len(params))
+        solution = _solve(an.equations, an.n_columns)
     except RecursionError:
-        return {}
+        return ()
     if solution is None:
-        return {}
-    return {str(p): unit_from_exponents(*s) for p, s in zip(params, solution) if s is not None}
+        return ()
+    return tuple((str(p), unit_from_exponents(*s)) for p, s in zip(params, solution)
+                 if s is not None)

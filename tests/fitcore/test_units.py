@@ -129,6 +129,15 @@ def test_formula_analysis_agrees_with_the_catalogue(name):
     ("R25*exp(B*(1/x - 1/298.15))", {"R25": "mV", "B": "s"}),
     # a rule without parameters (x dimensionless in exp(-x)) fixes nothing, costs nothing
     ("a*exp(-x) + c", {"a": "mV", "c": "mV"}),
+    # pure numbers arrive worked out (2*pi = 6.283..., 1/sqrt(2*pi)): still pure
+    ("a*sin(2*pi*f*x)", {"a": "mV", "f": "1/s"}),
+    ("A*exp(-x/tau)/sqrt(2*pi)", {"A": "mV", "tau": "s"}),
+    ("y0 + A*exp(-log(2)*x/t_half)", {"y0": "mV", "A": "mV", "t_half": "s"}),
+    ("H*exp(-0.5*((x - mu)/w)**2)", {"H": "mV", "mu": "s", "w": "s"}),
+    # another number may carry a unit (the gas constant in J/(mol K), a factor 1000
+    # between ms and s): what it touches stays blank, never Ea in K or tau in s
+    ("A*exp(-Ea/(8.314462618*x))", {"A": "mV", "Ea": ""}),
+    ("A*exp(-1000*x/tau)", {"A": "mV", "tau": ""}),
     # contradictions leave everything blank: a sum of x and x^2 has no single unit;
     # x/(1 + x/K) is in x's unit, never in y's mV
     ("a*(x + x**2) + c", {"a": "", "c": ""}),
