@@ -588,7 +588,7 @@ def _cell_kind(cell) -> int:
     s = str(cell)
     if _PLAIN_NUMBER_RE.match(s):  # fast path: most cells of a wide file
         return 1
-    if _NOT_NUMBER_CHAR_RE.search(s):  # a letter or sign no number has: text (header cells)
+    if len(s) <= 256 and _NOT_NUMBER_CHAR_RE.search(s):  # a letter or sign no number has: text
         return 2
     s = s.strip()
     if not s:
@@ -1154,10 +1154,11 @@ def _assemble(raw_names, columns, cell_notes, source_rows, notes, thousands_seen
         raise ReadError(f"{label} has only one column; at least two (x and y) are needed.")
     names, units, headers = _make_names(raw_names, notes)
     notes_of = dict(cell_notes)
+    all_rows = bool(keep_rows.all())  # no copies of the columns then (a wide table has thousands)
     data = {}
     texts = {}
     for name, i in zip(names, keep_cols):
-        data[name] = columns[i][keep_rows]
+        data[name] = columns[i] if all_rows else columns[i][keep_rows]
         for kind, text, mask in notes_of.get(i, []):
             rows = source_rows[mask & keep_rows]
             if rows.size == 0:

@@ -838,10 +838,10 @@ def temporary_beside(path) -> tuple[int, str]:
 
 def write_atomically(path, data: bytes, verify=None) -> None:
     """Write ``data`` to ``path`` so that a crash leaves the old file or the new one,
-    complete: a temporary file in the same folder, flushed and fsync-ed, checked by
-    ``verify(temporary_path)`` when given (it raises ValueError or OSError when the
-    file is not what it should be), moved over ``path`` with :func:`os.replace`, then
-    the folder fsync-ed. Raises OSError (a failed check as OSError too).
+    complete: a temporary file in the same folder, flushed and fsync-ed, its size
+    checked against ``data`` and, when given, checked by ``verify(temporary_path)``
+    (it raises ValueError or OSError when the file is not what it should be), moved
+    over ``path`` with :func:`os.replace`, then the folder fsync-ed. Raises OSError (a failed check as OSError too).
 
     A symbolic link is written through (its target is replaced, the link stays). A new
     file gets the mode the umask allows (0666 & ~umask); a replaced file keeps its mode.
@@ -860,6 +860,9 @@ def write_atomically(path, data: bytes, verify=None) -> None:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+            size = os.fstat(fh.fileno()).st_size
+        if size != len(data):  # every writer: the whole of it reached the file
+            raise OSError(f"only {size:,} of {len(data):,} bytes were written; the old file is kept")
         if verify is not None:
             try:
                 verify(tmp)

@@ -74,6 +74,26 @@ def test_full_disk_keeps_the_old_file_and_says_so(win, tmp_path, monkeypatch, er
     assert not [p for p in tmp_path.iterdir() if p.name.endswith((".tmp", ".part"))]
 
 
+class _HalfSilently(_HalfThenFull):
+    """A file object that stores half the bytes and reports success (a lying device)."""
+
+    def write(self, data):
+        self.fh.write(data[: len(data) // 2])
+        return len(data)
+
+
+def test_a_short_write_that_reports_success_is_caught(tmp_path, monkeypatch):
+    target = tmp_path / "keep.ballast"
+    target.write_bytes(b"the old, complete file")
+    real_fdopen = os.fdopen
+    monkeypatch.setattr(fs.os, "fdopen", lambda fd, *a, **k: _HalfSilently(real_fdopen(fd, *a, **k)))
+    with pytest.raises(OSError, match="only 50 of 100 bytes were written"):
+        fs.write_atomically(target, b"n" * 100)
+    monkeypatch.undo()
+    assert target.read_bytes() == b"the old, complete file"
+    assert [p.name for p in tmp_path.iterdir()] == ["keep.ballast"]
+
+
 def test_a_truncated_pdf_or_png_is_not_accepted(tmp_path):
     good_pdf = b"%PDF-1.4\n1 0 obj\n<<>>\nendobj\nstartxref\n123\n%%EOF\n"
     p = tmp_path / "a.pdf"
