@@ -784,8 +784,17 @@ def siunitx_unit(unit: str) -> str:
     """A unit as siunitx v3 literal unit input: LaTeX specials escaped, ``µ``/``μ``
     and ``°`` written with siunitx's own ``\\micro``/``\\degree`` (literal units may
     mix in unit macros), ``²``/``³`` as powers."""
+    # powers as groups: s^(1/2) -> s^{1/2}, x^10 -> x^{10} (a bare ^ takes one token)
+    unit = re.sub(r"\^\((-?\d+/\d+)\)|\^(-?\w+)", lambda m: f"\x00{m.group(1) or m.group(2)}\x01",
+                  str(unit))
     out = []
-    for c in str(unit):
+    for c in unit:
+        if c == "\x00":
+            out.append("^{")
+            continue
+        if c == "\x01":
+            out.append("}")
+            continue
         if c in "µμ":
             out.append(r"\micro ")
         elif c == "°":

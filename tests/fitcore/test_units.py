@@ -157,3 +157,15 @@ def test_formula_units_reach_the_estimates():
     assert cells == {"m": "mV/s", "b": "mV"}
     cells = {c["name"]: c["unit"] for c in estimate_cells(res, 0.95, x_unit="mg/L", y_unit="")}
     assert cells == {"m": "1/(mg/L)", "b": ""}
+
+
+def test_derived_units_as_siunitx_literal_units():
+    # siunitx v3 literal units read ^{...} as a power (from memory of its manual; the
+    # compile test in test_report_record.py runs where pdflatex is installed); a bare ^
+    # would take one token only, and a caret escaped as text printed "s^2" literally
+    from fitcore.report_text import siunitx_unit
+
+    assert siunitx_unit(resolve_unit("y/x^2", "mg/L", "")) == "1/(mg/L)^{2}"
+    assert siunitx_unit(resolve_unit("y/x^(1/2)", "s", "mV")) == "mV/s^{1/2}"
+    assert siunitx_unit(resolve_unit("y/x^b", "s", "mV")) == "mV/s^{b}"
+    assert siunitx_unit("m²") == "m^{2}"
