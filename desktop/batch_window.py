@@ -22,8 +22,11 @@ from PySide6.QtWidgets import (
     QProgressBar, QPushButton, QSpinBox, QSplitter, QTableView, QVBoxLayout, QWidget,
 )
 
+from fitcore.losses import loss_title
+
 from . import dialogs
 from .document import Measurements
+from .method_panel import sigma_fixes_scale
 
 NONE = "(none)"
 FAILED_BRUSH = QBrush(QColor(250, 215, 210))
@@ -195,6 +198,7 @@ class BatchWindow(QDialog):
         self.x = self._column_box()
         self.y = self._column_box()
         self.sigma = self._column_box(optional=True)
+        self.sigma.currentTextChanged.connect(lambda _t: self.refresh_method())  # the scale
         self.group = self._column_box(optional=True)
         self.jobs = QSpinBox()
         self.jobs.setRange(1, max(64, default_jobs()))
@@ -286,10 +290,15 @@ class BatchWindow(QDialog):
 
         s = self.main.document.settings
         self.settings = s
-        parts = [model_title(s), f"loss {s.loss}"]
-        parts.append("scale automatic" if s.scale == "auto" else f"scale {s.scale:g}")
+        parts = [model_title(s), f"loss {loss_title(s.loss)}"]
+        if sigma_fixes_scale(s, self._column(self.sigma, True) is not None):
+            parts.append("scale fixed at 1 (sigma taken as absolute)")
+        else:
+            parts.append("scale automatic" if s.scale == "auto" else f"scale {s.scale:g}")
         if s.loss == "general" and s.alpha is not None:
             parts.append(f"alpha {s.alpha:g}")
+        elif s.loss == "adaptive":
+            parts.append("alpha fitted")
         if s.fixed:
             parts.append("held " + ", ".join(f"{k} = {v:g}" for k, v in s.fixed.items()))
         if s.p0:

@@ -72,12 +72,12 @@ def formula_check(text: str) -> tuple[str, str]:
 _ESTIMATE_SCALE_ANYWAY = ("l2", "l1", "adaptive")
 
 
-def sigma_fixes_scale(settings: Settings, measurements) -> bool:
+def sigma_fixes_scale(settings: Settings, has_sigma: bool) -> bool:
     """True when the fit will not estimate the scale although it is set to "auto":
-    the data carry a sigma column taken as absolute standard uncertainties (no
-    weighting rule), so a robust loss uses scale 1, in multiples of sigma (the fit
-    states it as "fixed at 1: sigma taken as absolute")."""
-    return (settings.scale == "auto" and getattr(measurements, "sigma", None) is not None
+    the data carry a sigma column (``has_sigma``) taken as absolute standard
+    uncertainties (no weighting rule), so a robust loss uses scale 1, in multiples of
+    sigma (the fit states it as "fixed at 1: sigma taken as absolute")."""
+    return (settings.scale == "auto" and bool(has_sigma)
             and settings.sigma_mode == "absolute" and not settings.weighting
             and settings.loss not in _ESTIMATE_SCALE_ANYWAY)
 
@@ -571,7 +571,8 @@ class MethodPanel(QWidget):
         "auto" choice is not what the fit does (absolute sigma: scale 1), the choice
         says what the fit uses instead."""
         m = self.document.measurements
-        fixed_by_sigma = sigma_fixes_scale(self.document.settings, m)
+        fixed_by_sigma = sigma_fixes_scale(self.document.settings,
+                                           getattr(m, "sigma", None) is not None)
         if fixed_by_sigma:
             self.scale_combo.setItemText(0, "1\u00d7\u03c3")
             self.scale_combo.setItemData(

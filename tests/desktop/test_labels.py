@@ -240,3 +240,28 @@ def test_reason_typed_is_saved_and_copied_before_return(qtbot, win, tmp_path):
     qtbot.keyClicks(editor, " in the cell")
     assert win.sessions.has_unsaved_work()  # the longer text is new work
     assert win.document.reasons[9] == "air bubble in the cell"
+
+
+# ---------------------------------------------------------------- the batch window's method
+@pytest.mark.parametrize("loss", ["huber", "l2", "adaptive"])
+def test_batch_method_line_says_what_the_fits_use(win, loss):
+    import fitcore
+    from desktop.batch_window import NONE, open_batch_window
+
+    show(win, decay(sigma=True), Settings(model="exp_decay", loss=loss))
+    batch = open_batch_window(win)
+    batch.sigma.clear()
+    batch.sigma.addItems([NONE, "u(V)"])
+    m = win.document.measurements
+    kw = win.document.settings.to_fit_kwargs()
+    for column, sigma in ((NONE, None), ("u(V)", m.sigma)):
+        batch.sigma.setCurrentText(column)
+        text = batch.method_label.text()
+        assert f"loss {fitcore.losses.loss_title(loss)}" in text  # its title, not "huber"
+        res = fitcore.fit("exp_decay", m.x, m.y, sigma=sigma, **kw)
+        if "fixed at 1" in res.scale_method:
+            assert "scale fixed at 1 (sigma taken as absolute)" in text
+        else:
+            assert "scale automatic" in text
+    assert ("alpha fitted" in text) == (loss == "adaptive")
+    batch.close()
