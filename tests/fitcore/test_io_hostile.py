@@ -115,6 +115,27 @@ def test_wide_table_with_many_text_columns(tmp_path):
     assert sum("'sat' is not a number" in n for n in t.notes) == 100
 
 
+def test_wide_reads_leave_the_garbage_collector_as_they_found_it(tmp_path):
+    import gc
+
+    wide = tmp_path / "wide.csv"
+    wide.write_text("x," + ",".join(f"c{i}" for i in range(9000)) + "\n"
+                    + "".join(f"{r}," + ",".join("1.5" for _ in range(9000)) + "\n" for r in range(3)))
+    bad = tmp_path / "bad.csv"
+    bad.write_text(",".join(["text"] * 20000) + "\n")  # long lines, no numbers: an error
+    assert gc.isenabled()
+    assert read_table(wide).n_rows == 3 and gc.isenabled()
+    with pytest.raises(ReadError):
+        read_table(bad)
+    assert gc.isenabled()
+    gc.disable()
+    try:  # switched off by the program: stays off
+        read_table(wide)
+        assert not gc.isenabled()
+    finally:
+        gc.enable()
+
+
 def test_wide_row_statistics_agree_with_the_cell_by_cell_count():
     # the one-pass count over a wide row must give what _cell_kind gives cell by cell
     rng = np.random.default_rng(7)
