@@ -16,7 +16,7 @@ from PySide6.QtWidgets import (
     QTableView, QVBoxLayout, QWidget,
 )
 
-from fitcore.report import point_label
+from fitcore.report import loss_title, point_label
 from fitcore.model_choice import fit_problem
 
 from . import dialogs
@@ -589,7 +589,7 @@ class MainWindow(QMainWindow):
             elif res is not None:
                 note = self.log_axis_note()
                 self.statusBar().showMessage(f"Fitted {dialogs.counted(res.n_used, 'point')} "
-                                             f"({res.loss})." + (f" {note}" if note else ""),
+                                             f"({loss_title(res.loss)})." + (f" {note}" if note else ""),
                                              15000 if note else 4000)
 
     def _select_rows(self, rows):

@@ -265,3 +265,11 @@ def test_batch_method_line_says_what_the_fits_use(win, loss):
             assert "scale automatic" in text
     assert ("alpha fitted" in text) == (loss == "adaptive")
     batch.close()
+
+
+def test_status_bar_names_the_loss_by_its_title(win):
+    from fitcore.losses import loss_title
+
+    show(win, calibration(), Settings(model="line", loss="geman_mcclure"))
+    msg = win.statusBar().currentMessage()
+    assert f"({loss_title('geman_mcclure')})" in msg and "geman_mcclure" not in msg
