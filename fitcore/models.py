@@ -139,16 +139,16 @@ def _theil_sen(x, y, max_pairs=40000):
 
 def _products2(Zt, y):
     """Elementwise products of two design columns ``Zt`` (G, 2, n) for
-    :func:`_cramer2`: z0 z0, z0 z1, z1 z1, z0 y, z1 y."""
+    :func:`_cramer2`, stacked (G, 5, n): z0 z0, z0 z1, z1 z1, z0 y, z1 y."""
     Z0, Z1 = Zt[:, 0, :], Zt[:, 1, :]
-    return Z0 * Z0, Z0 * Z1, Z1 * Z1, Z0 * y, Z1 * y
+    return np.stack([Z0 * Z0, Z0 * Z1, Z1 * Z1, Z0 * y, Z1 * y], axis=1)
 
 
 def _cramer2(products, w):
     """Weighted two-column normal equations solved by Cramer's rule for a stack
     (weights ``w`` (G, n)): ``(coefficients (G, 2), usable (G,))``; not usable where
     the solution is not finite or the matrix is near singular."""
-    a, b, d, p, q = (np.einsum("gi,gi->g", P, w) for P in products)
+    a, b, d, p, q = np.einsum("gjn,gn->jg", products, w)
     det = a * d - b * b
     c = np.empty((a.size, 2))
     c[:, 0] = (d * p - b * q) / det
@@ -261,7 +261,7 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
     def wls(sel, w):
         """Weighted solves for the stack; None where the single version would fall back."""
         if k == 2:
-            c, ok = _cramer2([P[sel] for P in products], w)
+            c, ok = _cramer2(products[sel], w)
             return c if ok.all() else None
         Zw = Zt[sel] * w[:, None, :]
         M = np.matmul(Zw, Z[sel])
@@ -830,6 +830,9 @@ def _michaelis_menten():
 
 def _log_ratio(x, ec50):
     """ln(x/EC50), -inf at x = 0, NaN for x < 0."""
+    x = np.asarray(x, dtype=float)
+    if x.size and x.min() > 0:  # (the usual case: the same numbers, fewer passes)
+        return np.log(x) - math.log(ec50)
     with np.errstate(all="ignore"):
         return np.where(x > 0, np.log(np.where(x > 0, x, 1.0)) - math.log(ec50),
                         np.where(x == 0, -np.inf, np.nan))

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from scipy.linalg import lapack
 
 from ..losses import Loss
 from .verdict import COSINE_TOL, STEP_REL, _first_order, _step_small
@@ -36,12 +37,28 @@ class _StepSolver:
                 self.fast = True
                 self.G = G
                 self.g = Js.T @ rw
+        self.direct = False
         if not self.fast:
-            Q, R = np.linalg.qr(Js, mode="reduced")
-            self.R = R
-            self.qtr = Q.T @ rw
-            self.G = R.T @ R
-            self.g = R.T @ self.qtr
+            n, k = Js.shape
+            if n > k:
+                # one Householder QR of [J | r] (LAPACK directly: numpy's wrappers cost
+                # more than the arithmetic at this size): R, and Q^T r in its last column
+                A = np.empty((n, k + 1), order="F")
+                A[:, :k] = Js
+                A[:, k] = rw
+                qr, _, info = _geqrf(A)
+                R = np.triu(qr[:k, :k])
+                d = np.abs(np.diag(R))
+                # triangular solves where R is safely regular (cond(R) <= 1e12 by
+                # LAPACK's estimate: the same solution as the SVD solve below to
+                # rounding); else the SVD solve, which truncates a rank deficiency
+                self.direct = info == 0 and d.min() > 0 and _trcond(R) >= 1e-12
+                self.R, self.qtr = R, qr[:k, k].copy()
+            else:
+                Q, R = np.linalg.qr(Js, mode="reduced")
+                self.R, self.qtr = R, Q.T @ rw
+            self.G = self.R.T @ self.R
+            self.g = self.R.T @ self.qtr
 
     @classmethod
     def newton(cls, J: np.ndarray, psi: np.ndarray, dpsi: np.ndarray, s: float,
@@ -67,6 +84,17 @@ class _StepSolver:
         k = self.D.size
         if self.fast:
             z = np.linalg.solve(self.G + lam * np.eye(k), self.g)
+        elif self.direct:
+            if lam > 0:
+                # min ||[R; sqrt(lam) I] z - [Q^T r; 0]|| by a QR of the stacked system
+                A = np.zeros((2 * k, k + 1), order="F")
+                A[:k, :k] = self.R
+                A[:k, k] = self.qtr
+                A[k:, :k] = math.sqrt(lam) * np.eye(k)
+                qr, _, _ = _geqrf(A)
+                z = _trsolve(np.triu(qr[:k, :k]), qr[:k, k])
+            else:
+                z = _trsolve(self.R, self.qtr)
         elif lam > 0:
             M = np.vstack([self.R, math.sqrt(lam) * np.eye(k)])
             z = np.linalg.lstsq(M, np.concatenate([self.qtr, np.zeros(k)]), rcond=None)[0]
@@ -78,6 +106,24 @@ class _StepSolver:
         """Decrease of 1/2 ||sqrt(w)(r - J step)||^2 predicted for ``step``."""
         z = step * self.D
         return float(z @ self.g - 0.5 * z @ self.G @ z)
+
+
+def _geqrf(A):
+    """Householder QR of a Fortran-ordered float matrix, overwritten: (qr, tau, info)."""
+    qr, tau, _, info = lapack.dgeqrf(A, overwrite_a=1)
+    return qr, tau, info
+
+
+def _trcond(R) -> float:
+    """LAPACK's estimate of the reciprocal condition number of upper triangular R."""
+    rcond, info = lapack.dtrcon(R)
+    return float(rcond) if info == 0 else 0.0
+
+
+def _trsolve(R, b):
+    """``R^-1 b`` for upper triangular R."""
+    x, info = lapack.dtrtrs(R, b)
+    return x if info == 0 else np.linalg.lstsq(R, b, rcond=None)[0]
 
 
 _NEAR = 1e-6  # relative step below which the robust losses take Newton steps
@@ -226,23 +272,34 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             polish = 1  # a few undamped steps to reach full accuracy
     else:
         message = f"did not converge in {max_iter} iterations"
-    if converged and check and phi > 0.0:
-        ok, cos, j = _first_order(prob, theta, r, None if loss.name == "l2" else loss, s)
-        if not ok:
-            name = np.asarray(prob.model.param_names)[prob.free][j]
-            converged = False
-            message = (f"stopped at a point that is not a minimum (first-order test: the "
-                       f"gradient along {name} has cosine {cos:.1e} with the residuals, "
-                       f"above {COSINE_TOL:g}); try other start values")
-        else:
-            ok, rel, j = _step_small(prob, theta, r, None if loss.name == "l2" else loss, s)
-            if not ok:
-                name = np.asarray(prob.model.param_names)[prob.free][j]
-                converged = False
-                message = (f"stopped before the estimates settled (per-parameter step test: "
-                           f"a further step would move {name} by {rel:.1e} of its value, "
-                           f"above {STEP_REL:g}); try more iterations or other start values")
-    return _Inner(theta, r, phi, it, converged, message)
+    inner = _Inner(theta, r, phi, it, converged, message)
+    return _judged(prob, inner, loss, s) if check else inner
+
+
+def _judged(prob: _Problem, inner: _Inner, loss: Loss, s: float) -> _Inner:
+    """``inner`` with the verdict of :mod:`.verdict` at its point: a solve that stopped
+    (``converged``) keeps that only where the first-order and per-parameter step tests
+    hold. (:func:`_irls_lm` applies it with ``check``; a caller that runs several
+    solves, of which only the last is returned, applies it to that one.)"""
+    theta, r = inner.theta, inner.r
+    if not (inner.converged and inner.objective > 0.0):
+        return inner
+    psi_loss = None if loss.name == "l2" else loss
+    ok, cos, j = _first_order(prob, theta, r, psi_loss, s)
+    if not ok:
+        name = np.asarray(prob.model.param_names)[prob.free][j]
+        message = (f"stopped at a point that is not a minimum (first-order test: the "
+                   f"gradient along {name} has cosine {cos:.1e} with the residuals, "
+                   f"above {COSINE_TOL:g}); try other start values")
+    else:
+        ok, rel, j = _step_small(prob, theta, r, psi_loss, s)
+        if ok:
+            return inner
+        name = np.asarray(prob.model.param_names)[prob.free][j]
+        message = (f"stopped before the estimates settled (per-parameter step test: "
+                   f"a further step would move {name} by {rel:.1e} of its value, "
+                   f"above {STEP_REL:g}); try more iterations or other start values")
+    return _Inner(theta, r, inner.objective, inner.n_iter, False, message, inner.stats)
 
 
 def _refine_linear_ls(prob: _Problem, theta: np.ndarray, steps: int = 8):

@@ -217,6 +217,9 @@ def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
 
 def _project(theta, lower, upper):
     """Keep a parameter vector strictly inside its bounds."""
+    inside = (theta > lower) & (theta < upper)
+    if inside.all():
+        return theta  # (strictly inside, or no bounds: nothing to move)
     if not (np.any(np.isfinite(lower)) or np.any(np.isfinite(upper))):
         return theta
     t = np.clip(theta, lower, upper)
