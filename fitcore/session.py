@@ -841,7 +841,8 @@ def write_atomically(path, data: bytes, verify=None) -> None:
     complete: a temporary file in the same folder, flushed and fsync-ed, its size
     checked against ``data`` and, when given, checked by ``verify(temporary_path)``
     (it raises ValueError or OSError when the file is not what it should be), moved
-    over ``path`` with :func:`os.replace`, then the folder fsync-ed. Raises OSError (a failed check as OSError too).
+    over ``path`` with :func:`os.replace`, then the folder fsync-ed. Raises OSError
+    (a failed check as OSError too).
 
     A symbolic link is written through (its target is replaced, the link stays). A new
     file gets the mode the umask allows (0666 & ~umask); a replaced file keeps its mode.
@@ -861,8 +862,9 @@ def write_atomically(path, data: bytes, verify=None) -> None:
             fh.flush()
             os.fsync(fh.fileno())
             size = os.fstat(fh.fileno()).st_size
-        if size != len(data):  # every writer: the whole of it reached the file
-            raise OSError(f"only {size:,} of {len(data):,} bytes were written; the old file is kept")
+        expected = memoryview(data).nbytes
+        if size != expected:  # every writer: the whole of it reached the file
+            raise OSError(f"only {size:,} of {expected:,} bytes were written; the old file is kept")
         if verify is not None:
             try:
                 verify(tmp)
