@@ -586,12 +586,12 @@ class MethodPanel(QWidget):
                                             "the residuals, re-estimated with the fit)",
                                          Qt.ToolTipRole)
         if getattr(m, "sigma", None) is not None:
-            self.scale_edit.setPlaceholderText("multiples of sigma")
+            self.scale_edit.setPlaceholderText("\u00d7 \u03c3")  # short: the box is narrow
             tip = ("Fixed scale in multiples of sigma: the residuals are divided by each "
                    "point's sigma before the loss sees them")
         else:
             unit = getattr(m, "y_unit", "") or "units of y"
-            self.scale_edit.setPlaceholderText(f"in {unit}")
+            self.scale_edit.setPlaceholderText(getattr(m, "y_unit", "") or "y units")  # narrow box
             tip = f"Fixed scale of the residuals, in {unit}"
         self.scale_edit.setToolTip(tip)
         self.scale_combo.setToolTip(

@@ -179,7 +179,8 @@ def test_scale_placeholder_names_its_unit(make_win):
     demo_line(win)
     assert "mV" in win.method_panel.scale_edit.placeholderText()
     demo_line(win, sigma=True)
-    assert "sigma" in win.method_panel.scale_edit.placeholderText()
+    assert "\u03c3" in win.method_panel.scale_edit.placeholderText()  # × σ: multiples of sigma
+    assert "sigma" in win.method_panel.scale_edit.toolTip()
     assert "y units" not in win.method_panel.scale_edit.placeholderText()
 
 
