@@ -930,7 +930,7 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
             df_columns[i] = df.iloc[:, i]
         if num_idx.size:
             if other.size <= 64:  # a few text columns: blank them out rather than copy the rest
-                part = df.copy(deep=False)
+                part = df.copy(deep=False) if other.size else df
                 for i in other:
                     part.isetitem(int(i), np.full(len(df), np.nan))
                 matrix = np.asfortranarray(part.to_numpy(dtype=float, na_value=np.nan))
