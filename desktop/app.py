@@ -159,6 +159,8 @@ def main(argv=None) -> int:
         create_window(args)
     except Exception as err:  # noqa: BLE001 - the program must start: retry once with fresh settings
         create_window(args, qsettings=_fresh_settings(err))
+    if not any(w.isVisible() for w in app.topLevelWidgets()):
+        return 0  # closed while its first file was read (Ctrl+C): the quit came before the loop
     return app.exec()  # safe: Qt event loop
 
 

@@ -53,9 +53,10 @@ from fitcore.compare import AdaptiveReading, LossComparison, adaptive_reading, c
 from fitcore.diagnostics import PointDiagnostics, point_diagnostics
 from fitcore.formula import validate_formula
 from fitcore.io import Dialect, Table, read_table
-from fitcore.model_choice import choose_model
+from fitcore.model_choice import ModelChoice, ModelScore, choose_model
 from fitcore.models import resolve_model
 from fitcore.result import FitResult
+from fitcore.session import load_session
 
 #: above this many points an analysis runs in a thread instead: such fits are long numpy
 #: calls that leave the GIL free for long stretches (measured: 12 ms longest event gap
@@ -181,14 +182,17 @@ def encode(o):
     if isinstance(o, Table):
         return {"__table__": {
             "columns": o.columns, "units": encode(o.units), "headers": encode(o.headers),
-            "data": encode({c: o.column(c) for c in o.columns}), "notes": o.notes,
+            # one block (a row per column): a wide table travels as one string, which the
+            # parent parses in milliseconds (12,000 separate arrays held the GIL for 0.4 s)
+            "data": encode(np.vstack([o.column(c) for c in o.columns]) if o.columns
+                           else np.zeros((0, o.n_rows))), "notes": o.notes,
             "source": o.source, "sha256": o.sha256, "source_rows": encode(o.source_rows),
             "dialect": encode(o.dialect), "title_lines": o.title_lines,
             "sheet_names": o.sheet_names, "texts": encode(o.texts_by_column())}}
     if dataclasses.is_dataclass(o) and not isinstance(o, type):
         return {"__dc__": type(o).__name__,
                 "fields": {f.name: encode(getattr(o, f.name)) for f in dataclasses.fields(o)
-                           if f.name != "model"}}
+                           if f.name != "model" or isinstance(getattr(o, f.name), str)}}
     if isinstance(o, tuple):
         return {"__tuple__": [encode(v) for v in o]}
     if isinstance(o, list):
@@ -201,7 +205,7 @@ def encode(o):
 
 
 _CLASSES = {c.__name__: c for c in (FitResult, LossComparison, AdaptiveReading,
-                                    PointDiagnostics, BootstrapResult, Dialect)}
+                                    PointDiagnostics, BootstrapResult, Dialect, ModelChoice, ModelScore)}
 
 
 def decode(o, model=None):
@@ -225,7 +229,9 @@ def decode(o, model=None):
         return {_hashable(decode(k, model)): decode(v, model) for k, v in o["__map__"]}
     if "__table__" in o:
         t = o["__table__"]
-        return Table(t["columns"], decode(t["units"]), decode(t["headers"]), decode(t["data"]),
+        block = decode(t["data"])
+        return Table(t["columns"], decode(t["units"]), decode(t["headers"]),
+                     {c: block[i] for i, c in enumerate(t["columns"])},
                      t["notes"], t["source"], t["sha256"], decode(t["source_rows"]),
                      decode(t["dialect"]), t["title_lines"], t["sheet_names"], decode(t["texts"]))
     if "__dc__" in o:
@@ -233,8 +239,8 @@ def decode(o, model=None):
         if cls is None:
             raise ChildError(f"unexpected object {o['__dc__']!r} from the analysis process")
         kw = {k: decode(v, model) for k, v in o["fields"].items()}
-        if "model" in {f.name for f in dataclasses.fields(cls)}:
-            kw["model"] = model
+        if "model" not in kw and "model" in {f.name for f in dataclasses.fields(cls)}:
+            kw["model"] = model  # a FitResult's model (functions) never travels
         return cls(**kw)
     raise ChildError("unexpected data from the analysis process")
 
@@ -293,9 +299,20 @@ def _small(n) -> bool:
     return int(n) <= CHILD_MAX_POINTS
 
 
-# -- fit: the window's own fit (the fit runner decides inline or thread)
+# -- fit: the window's own fit (the fit runner decides inline or thread; the trial fits
+#    of new data run in a child, see MainWindow.method_for)
 def _fit_run(p, progress, cancel):
     return run_fit(p)
+
+
+def _fit_wire(p):
+    if not isinstance(p["model"], str):  # a model with options travels as a built object: stays here
+        return None
+    return {k: (v if k == "model" else encode(v)) for k, v in p.items()}
+
+
+def _fit_unwire(w):
+    return {k: (v if k == "model" else decode(v)) for k, v in w.items()}
 
 
 # -- compare
@@ -341,9 +358,18 @@ def _bootstrap_run(p, progress, cancel):
                      level=float(p["level"]), progress=progress, cancel=flag(cancel))
 
 
-# -- model check of new data
+# -- model check of new data (many short fits: in a thread they starved the window of the
+#    GIL for seconds, measured 6 s on a 12,000-column spectrum export)
 def _model_check_run(p, progress, cancel):
     return choose_model(p["x"], p["y"], p["sigma"], p["current"], progress=progress, cancel=cancel)
+
+
+def _arrays_wire(p):
+    return {k: encode(v) for k, v in p.items()}
+
+
+def _arrays_unwire(w):
+    return {k: decode(v) for k, v in w.items()}
 
 
 # -- reading a file
@@ -355,6 +381,20 @@ def _plain(p):
     return dict(p)
 
 
+# -- checking a session before the window opens it
+def _session_run(p, progress, cancel):
+    """Read the session and check its formula: ``{"points": n, "formula": (ok, message) or
+    None}``. The window opens the session itself only after this check has ended (a
+    damaged file, or a formula whose check runs past the time limit, never reaches it)."""
+    session = load_session(p["path"])
+    method = session.method
+    formula = None
+    if method is not None and method.model_kind == "formula":
+        ok, msg, _names = validate_formula(str(method.model))
+        formula = (ok, msg)
+    return {"points": int(session.n_points), "formula": formula}
+
+
 # -- checking a formula
 def _formula_run(p, progress, cancel):
     return validate_formula(p["text"], x_name=p.get("x_name", "x"))
@@ -362,7 +402,8 @@ def _formula_run(p, progress, cancel):
 
 #: every kind of background job the window runs
 KINDS: dict[str, Kind] = {
-    "fit": Kind(run=_fit_run, title="the fit"),
+    "fit": Kind(run=_fit_run, title="the fit", to_wire=_fit_wire, from_wire=_fit_unwire,
+                model_of=lambda p: resolve_model(p["model"]) if isinstance(p["model"], str) else p["model"]),
     "compare": Kind(
         run=_compare_run, title="the loss comparison",
         where=lambda p: "process" if _small(np.size(p["x"])) and isinstance(p["model"], str) else "thread",
@@ -376,9 +417,12 @@ KINDS: dict[str, Kind] = {
         run=_bootstrap_run, title="the bootstrap",
         where=lambda p: "process" if _small(p["result"].n_used) else "thread",
         to_wire=_result_wire, from_wire=_result_unwire, model_of=lambda p: p["result"].model),
-    "model_check": Kind(run=_model_check_run, title="the model check"),
+    "model_check": Kind(run=_model_check_run, title="the model check", where=lambda p: "process",
+                        to_wire=_arrays_wire, from_wire=_arrays_unwire),
     "read": Kind(run=_read_run, title="reading the file", where=lambda p: "process",
                  to_wire=_plain, from_wire=_plain),
+    "session": Kind(run=_session_run, title="checking the session", where=lambda p: "process",
+                    to_wire=_plain, from_wire=_plain, time_limit=20.0),
     "formula": Kind(run=_formula_run, title="checking the formula", where=lambda p: "process",
                     to_wire=_plain, from_wire=_plain, time_limit=5.0),
 }

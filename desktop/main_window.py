@@ -9,10 +9,12 @@ import os
 
 import numpy as np
 from fitcore import models
-from PySide6.QtCore import QItemSelection, QItemSelectionModel, QSettings, Qt
+from PySide6.QtCore import (
+    QCoreApplication, QEventLoop, QItemSelection, QItemSelectionModel, QSettings, Qt, QTimer,
+)
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence, QUndoStack
 from PySide6.QtWidgets import (
-    QAbstractItemView, QFileDialog, QLabel, QMainWindow, QMessageBox, QScrollArea, QSplitter,
+    QAbstractItemView, QFileDialog, QLabel, QMainWindow, QMessageBox, QProgressDialog, QScrollArea, QSplitter,
     QTableView, QVBoxLayout, QWidget,
 )
 
@@ -31,7 +33,6 @@ from .report_export import ReportExporter
 from .session_io import SessionManager
 from . import jobs
 from .fit_runner import FitRunner
-from .job_kinds import run_fit
 from .jobs import Channel
 
 FILE_FILTER = ("Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;Ballast sessions (*.ballast);;"
@@ -39,6 +40,10 @@ FILE_FILTER = ("Measurements (*.csv *.tsv *.txt *.xlsx *.ods);;Ballast sessions 
 MAX_RECENT = 8
 #: points a new data set's method is tried on before the data replace the work
 TRIAL_POINTS = 2000
+
+
+class OpenCancelled(Exception):
+    """Opening was cancelled (the progress box's Cancel): nothing changes."""
 
 
 def model_title(settings: Settings) -> str:
@@ -98,6 +103,12 @@ class MainWindow(QMainWindow):
         plot_lay.addWidget(self.banner)
         plot_lay.addWidget(self.plot, 1)
         self.model_check = Channel(self)
+        # files are read (and sessions checked) by jobs in a child process: a slow or
+        # hostile file never holds the window, and Cancel ends the read at once
+        self.reader = Channel(self)
+        self.reading = None  # the Job of the read in progress (tests and scripts)
+        self.read_progress: QProgressDialog | None = None
+        jobs.warm_up()  # the first file opens without waiting for a child to start
         self.model_check.finished.connect(self._model_check_done)
         self._model_check_for = None  # (measurements, settings) the running check is about
         self._model_problem = ""  # why the method kept for new data does not fit them
@@ -277,6 +288,7 @@ class MainWindow(QMainWindow):
             return
         self.save_state()
         self.model_check.shutdown(1000)
+        self.reader.shutdown(1000)
         self.runner.enabled = False
         self.runner.wait(5000)
         self._shutdown_analysis()
@@ -329,20 +341,22 @@ class MainWindow(QMainWindow):
         Unsaved changes on screen are offered for saving first (Save / Discard / Cancel;
         see :meth:`SessionManager.confirm_replace`); Cancel changes nothing.
         """
-        import fitcore
-
         name = os.path.basename(str(path))
         if str(path).lower().endswith(".ballast"):
             if not self.sessions.confirm_replace(name):
                 return False
             return self.sessions.open_session(path)
-        try:  # read first: a file that cannot be read never asks about the work on screen
-            table = fitcore.read_table(path)
-        except (ValueError, OSError) as err:
-            text = str(err)
+        # read first: a file that cannot be read never asks about the work on screen
+        job = self.run_job("read", {"path": str(path)}, f"Reading {name}...")
+        if job.state == "cancelled":
+            self.statusBar().showMessage(f"Opening {name} cancelled; nothing changed.", 6000)
+            return False
+        if job.state == "failed":
+            text = job.message
             # the reader's messages usually name the file already: say it once
             dialogs.error_box(self, "Cannot open file", text if name in text else f"{name}: {text}")
             return False
+        table = job.result
         if not self.sessions.confirm_replace(name):
             return False
         suggested = dialogs.sample_method(path)
@@ -358,6 +372,42 @@ class MainWindow(QMainWindow):
                 self.statusBar().showMessage(f"{self.statusBar().currentMessage()} {note}", 15000)
             return True
         return False
+
+    def run_job(self, kind: str, payload: dict, text: str, where: str | None = None):
+        """Run a job on the reader channel and wait for its end while the window keeps
+        serving events; returns the ended :class:`~desktop.jobs.Job` (its ``state`` is
+        "finished", "failed" or "cancelled").
+
+        A progress box with Cancel appears when the job takes longer than 0.4 s (window
+        modal: the work on screen cannot change meanwhile). Cancel ends the job at once
+        and nothing on screen changes.
+        """
+        job = self.reader.submit(kind, payload, where=where)
+        self.reading = job
+        if job.running:
+            box = QProgressDialog(text, "Cancel", 0, 0, self)
+            box.setWindowTitle("Ballast")
+            box.setWindowModality(Qt.WindowModal)
+            box.setMinimumDuration(400)
+            box.setAutoReset(False)
+            box.canceled.connect(job.cancel)
+            job.progress.connect(lambda done, total: (box.setMaximum(total), box.setValue(done)) if total else None)
+            self.read_progress = box
+            loop = QEventLoop()
+            for sig in (job.finished, job.failed, job.cancelled):
+                sig.connect(lambda *_: loop.quit())
+            if job.running:  # the answer may have come while the box was built
+                loop.exec()  # safe: Qt event loop, until the job has ended
+            if job.running:  # the application is quitting (it ends every event loop)
+                job.cancel()
+                QTimer.singleShot(0, QCoreApplication.quit)  # for the main loop, which may not run yet
+            self.read_progress = None
+            box.canceled.disconnect(job.cancel)
+            box.close()
+            box.deleteLater()
+        if self.reading is job:
+            self.reading = None
+        return job
 
     def _set_log(self, log_x=None, log_y=None):
         self.plot.set_log(log_x=log_x, log_y=log_y)
@@ -421,6 +471,9 @@ class MainWindow(QMainWindow):
                              sigma_name=sel.sigma_name or "", x_unit=sel.x_unit, y_unit=sel.y_unit,
                              source=sel.source, notes=sel.notes, source_rows=sel.source_rows)
             settings, method_note = self.method_for(m, settings)
+        except OpenCancelled:
+            self.statusBar().showMessage("Opening cancelled; nothing changed.", 6000)
+            return False
         except (ValueError, KeyError) as err:
             what = f"{name}: " if name else ""
             keep = " The data on screen stay as they were." if self.document.has_data else ""
@@ -485,7 +538,11 @@ class MainWindow(QMainWindow):
         # the loss, scale and weighting stay; held and start values belonged to the old model
         new = settings.with_(model=choice.best.model, model_kind="builtin", model_options={}, p0=None, fixed={})
         cmd = SettingsCommand(doc, new, text=f"Model: {choice.best.title}")
+        was = self.sessions.modified
         self.push(cmd)
+        # the program's own choice for data just opened is not a change the user made: a
+        # file just opened still asks nothing when replaced (the change stays undoable)
+        self.sessions.modified = was
         self.banner.show_message(
             "model", f"Model changed to {choice.best.title}. {choice.reason()} "
             f"Of the catalogue models it is the simplest that fits these data as well as any "
@@ -531,7 +588,15 @@ class MainWindow(QMainWindow):
             req = {"model": s.model_spec(), "x": m.x[idx], "y": m.y[idx],
                    "sigma": None if m.sigma is None else m.sigma[idx],
                    "excluded": np.zeros(m.x[idx].size, bool), "kwargs": s.to_fit_kwargs()}
-            res, msg = run_fit(req)
+            # in a child process, as part of opening: a model that struggles with the new
+            # data (seconds of fitting) never holds the window, and Cancel stops it
+            job = self.run_job("fit", req, f"Trying {model_title(s)} on the new data...", where="process")
+            if job.state != "finished":
+                raise OpenCancelled()
+            res, msg = job.result
+            if s is first and job.seconds > self.runner.slow_fit_s:
+                # the window's own fit of these data will be as slow: in the worker, not inline
+                self.runner.last_seconds = max(self.runner.last_seconds, job.seconds)
             if res is not None and not (res.converged and np.all(np.isfinite(res.values))):
                 msg = res.message if not res.converged else "the estimates are not finite"
             if msg is None:
@@ -771,7 +836,7 @@ class MainWindow(QMainWindow):
             self.diagnostics.shutdown()
         if getattr(self, "bootstrap_dialog", None) is not None:
             self.bootstrap_dialog.job.shutdown()
-        jobs.shutdown()
+        # the idle child processes stay for the next window; they end with the program
 
 
 def first_sample_set():

@@ -430,6 +430,14 @@ class SessionManager(QObject):
         """Open a session file. A bad file: a clear message, the current work stays."""
         from fitcore.session import SessionError, load_session
 
+        run_job = getattr(self.window, "run_job", None)
+        if run_job is not None:  # read and check it in a child process first (desktop.jobs)
+            job = run_job("session", {"path": str(path)}, f"Opening {os.path.basename(str(path))}...")
+            if job.state == "cancelled":
+                return False
+            if job.state == "failed":
+                dialogs.error_box(self.window, "Cannot open the session", job.message)
+                return False
         try:
             session = load_session(path)
         except SessionError as err:

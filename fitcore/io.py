@@ -423,6 +423,7 @@ class Table:
         self.sheet_names = list(sheet_names)
         # column name -> (int32 code per row, -1 where the cell held no text; the texts)
         self._texts = dict(texts or {})
+        self._numeric = None
 
     @property
     def n_rows(self) -> int:
@@ -491,7 +492,9 @@ class Table:
 
     def numeric_columns(self) -> list[str]:
         """Names of the columns with at least one number, in file order."""
-        return [c for c in self.columns if np.isfinite(self._data[c]).any()]
+        if self._numeric is None:  # the columns never change (read-only): counted once
+            self._numeric = [c for c in self.columns if np.isfinite(self._data[c]).any()]
+        return list(self._numeric)
 
     def choose(self, x=None, y=None, sigma=None) -> Selection:
         """Pick the x, y and optional sigma columns.
