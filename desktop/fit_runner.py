@@ -66,6 +66,9 @@ class FitRunner(QObject):
         self.last_seconds = 0.0
         self.channel = Channel(self)
         self.channel.finished.connect(self._on_done)
+        # a job that could not even run (an error outside the engine) is a failed fit
+        self.channel.failed.connect(lambda message: self._on_done((None, message)))
+        self.channel.cancelled.connect(lambda _partial: self._on_done((None, "the fit was stopped")))
         self._request = None  # the request of the running worker fit
         self._running = False
         self._pending = None

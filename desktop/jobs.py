@@ -90,7 +90,11 @@ class _Task(QRunnable):
             _emit(self.bridge.progress, self.args[0], int(done), int(total if total is not None else 0))
 
     def run(self):
-        _emit(self.bridge.done, *_outcome(*self.args, self.stop, self._progress))
+        try:
+            out = _outcome(*self.args, self.stop, self._progress)
+        except BaseException as err:  # noqa: BLE001 - nothing may escape into Qt's thread pool: the job would never end
+            out = (self.args[0], None, internal_error(err), False, 0.0)
+        _emit(self.bridge.done, *out)
 
 
 class Job(QObject):
