@@ -45,6 +45,16 @@ from typing import Any
 
 import numpy as np
 
+from . import __version__
+from .io import ReadError, _rows_text, read_table
+from .losses import LOSS_NAMES
+from .model import Model
+from .models import resolve_model
+from .session import write_atomically
+from .solve import FitError, fit
+from .solvers.setup import _check_alpha
+from .work import DataSet, Exclusion
+
 __all__ = [
     "TABLE_SUFFIXES",
     "BatchError",
@@ -135,8 +145,6 @@ def _model(spec):
         return spec
     m = _MODELS.get(spec)
     if m is None:
-        from .models import resolve_model
-
         m = _MODELS[spec] = resolve_model(spec)
     return m
 
@@ -159,9 +167,6 @@ def _worker_init() -> None:
 
 
 def _problem_text(exc: BaseException) -> tuple[str, str]:
-    from .io import ReadError
-    from .solve import FitError
-
     if isinstance(exc, (FitError, ReadError)):
         return str(exc), type(exc).__name__
     if isinstance(exc, (ValueError, TypeError, ArithmeticError)):
@@ -170,8 +175,6 @@ def _problem_text(exc: BaseException) -> tuple[str, str]:
 
 
 def _fit_one(model_spec, loss, options, x, y, sigma, excluded):
-    from .solve import fit
-
     return fit(_model(model_spec), x, y, loss, sigma=sigma, excluded=excluded, **options)
 
 
@@ -284,8 +287,6 @@ class _DaskPool:
             raise BatchError(f"not a Dask scheduler address: {scheduler!r} ({exc})") from None
         workers = self._client.scheduler_info().get("workers", {})
         self.jobs = max(1, sum(int(w.get("nthreads", 1)) for w in workers.values()) or jobs)
-        from . import __version__
-
         try:
             versions = set(self._client.run(_fitcore_version).values())
             self._client.run(_worker_init)
@@ -314,8 +315,6 @@ class _DaskPool:
 
 
 def _fitcore_version() -> str:
-    from . import __version__
-
     return __version__
 
 
@@ -433,8 +432,6 @@ def _fit_options() -> tuple[str, ...]:
     (read from its signature, so a new option works in a batch at once)."""
     import inspect
 
-    from .solve import fit
-
     per_set = {"model", "x", "y", "loss", "sigma", "excluded"}
     return tuple(n for n, p in inspect.signature(fit).parameters.items()
                  if n not in per_set and p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD))
@@ -442,11 +439,6 @@ def _fit_options() -> tuple[str, ...]:
 
 def _check_method(model, loss, options) -> Any:
     """Fail once, before any work, on what would fail for every data set."""
-    from .losses import LOSS_NAMES
-    from .model import Model
-    from .solve import FitError
-    from .solvers.setup import _check_alpha
-
     allowed = _fit_options()
     unknown = sorted(set(options) - set(allowed))
     if unknown:
@@ -498,8 +490,6 @@ def iter_fit_many(datasets: Iterable, model, loss: str = "l2", *, jobs: int | No
     are ready (the input may be a generator: it is read a few chunks ahead only)."""
     mdl = _check_method(model, loss, fit_options)
     _check_run(engine, jobs, scheduler)
-    from .model import Model
-
     model_spec = model
     if isinstance(model, Model):
         # a Model built in Python holds functions that do not travel to other processes
@@ -665,8 +655,6 @@ def find_files(paths: Iterable) -> tuple[list[Path], list[str]]:
 
 def _read_sheets(path: Path, spec: BatchSpec):
     """Yield ``(sheet_label, table or ReadError)`` for the sheets to fit in ``path``."""
-    from .io import ReadError, read_table
-
     try:
         first = read_table(path, sheet=spec.sheet)
     except ReadError as exc:
@@ -695,8 +683,6 @@ def _curves(table, sheet: str, spec: BatchSpec, source: str | None = None):
     """Yield ``(meta, x, y, sigma, excluded, info)`` per curve of a table (``info``:
     a note on rows left out, the column names and units, for the row and the report), or
     ``(meta, ReadError)`` for a curve that cannot be taken from it."""
-    from .io import ReadError, _rows_text
-
     source = table.source if source is None else source
     for ycol in spec.ys:
         meta = (source, sheet, "", ycol)
@@ -782,8 +768,7 @@ def _report_html(res, curve: tuple, spec: BatchSpec) -> str:
     """One curve's report: :func:`fitcore.report_html.report_html`, the document the
     window writes, of this curve's data set (its own file rows and reading notes) and
     the points its exclude column marks."""
-    from .report_html import report_html
-    from .work import DataSet, Exclusion
+    from .report_html import report_html  # here: only runs with reports load the report modules
 
     meta, x, y, sigma, _excluded, info = curve
     source, sheet, group, ycol = meta
@@ -934,8 +919,6 @@ def write_rows(path, rows: Iterable[BatchRow], param_names, *,
     row). Returns the number of rows written."""
     import csv
     import io as _io
-
-    from .session import write_atomically
 
     path = Path(os.fspath(path))
     count = 0

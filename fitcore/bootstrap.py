@@ -41,8 +41,9 @@ from typing import Callable
 
 import numpy as np
 
-from .diagnostics import hat_values, refit_settings, used_mask, whitened
+from .diagnostics import hat_values, loss_of, refit_settings, used_mask, whitened
 from .model import Model, design_model
+from .models import get_model
 from .result import FitResult
 from .solve import FitError, fit
 from .threads import limit_process, small_problem
@@ -116,10 +117,9 @@ def build_model(spec):
     key = spec
     if key not in _MODEL_CACHE:
         if kind == "builtin":
-            from .models import get_model
             _MODEL_CACHE[key] = get_model(spec[1])
         elif kind == "formula":
-            from .formula import parse_formula
+            from .formula import parse_formula  # here: the formula parser loads sympy
             _MODEL_CACHE[key] = parse_formula(spec[1])
         else:
             raise ValueError(f"unknown model description {kind!r}")
@@ -224,8 +224,6 @@ def modified_residuals(res: FitResult, J: np.ndarray, r: np.ndarray, used: np.nd
     squares, the median for L1). Leverages use the fit's robust weights
     (``sqrt(w) J``), as the point diagnostics do.
     """
-    from .diagnostics import loss_of
-
     if res.loss == "l2":
         w = np.ones(r.size)
     else:

@@ -61,6 +61,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import optimize, special
 
+from .numbers import format_interval, format_uncertainty, format_value
+from .weighting import reading_sigma as _rule_sigma
+
 __all__ = [
     "CalibrationError",
     "DetectionLimits",
@@ -235,8 +238,6 @@ def reading_variance(result, x0: float, reading_sigma: float | None = None) -> f
     s = float(result.scale)
     rule = _weighting(result)
     if rule is not None:
-        from .weighting import reading_sigma as _rule_sigma
-
         sig0 = reading_sigma if reading_sigma is not None else _rule_sigma(
             rule, float(x0), float(_f(result, x0)[0]))
         return (s * float(sig0)) ** 2
@@ -690,8 +691,6 @@ def unknown_rows(items, limits=None, *, full_precision: bool = False):
     dicts with ``name``, ``readings`` (count), ``mean``, ``x``, ``u``, ``interval``
     (texts, GUM-rounded by :func:`fitcore.report.format_value`) and ``flag``.
     """
-    from .report import format_interval, format_uncertainty, format_value
-
     rows = []
     for name, ip in items:
         if isinstance(ip, str) or ip is None:
@@ -859,6 +858,7 @@ def report_html(result, data=None, samples=(), *, level: float = 0.95, **report)
     the section of the samples (``(name, readings)`` pairs), the detection limits and
     the lack-of-fit test. ``data`` and the keywords in ``report`` go to that function.
     """
+    # here, not at the top: fitcore.report_html imports this module (unknowns_text)
     from .report_html import Unknowns
     from .report_html import report_html as build
 

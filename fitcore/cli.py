@@ -12,6 +12,9 @@ import re
 import sys
 from pathlib import Path
 
+from .losses import LOSS_NAMES
+from .weighting import normalise_rule
+
 EXAMPLE = """\
 example:
   ballast-fit plates/ --x "Dose" --y "Signal" --group Well \\
@@ -78,8 +81,6 @@ def _assignment(text: str) -> tuple[str, float]:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from .losses import LOSS_NAMES
-
     p = _Parser(
         prog="ballast-fit",
         description="Fit many curves with one method: every file (and every y column, "
@@ -173,6 +174,7 @@ def main(argv=None) -> int:
     if not out.parent.is_dir():
         return _usage_error(parser, f"the folder of --out ({out.parent}) does not exist")
 
+    # here, not at the top: usage errors above answer before the fitting engine loads
     from .batch import BatchError, BatchSpec, _check_method, find_files, fit_sources, write_rows
     from .session import write_atomically
     from .solve import FitError
@@ -181,8 +183,6 @@ def main(argv=None) -> int:
     if args.alpha is not None:
         options["alpha"] = args.alpha
     if args.weighting:
-        from .weighting import normalise_rule
-
         try:
             options["weighting"] = normalise_rule(args.weighting)
         except ValueError as exc:

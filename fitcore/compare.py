@@ -38,6 +38,7 @@ from typing import Callable, Sequence
 import numpy as np
 
 from .losses import LOSS_NAMES, LOSS_TITLES
+from .models import resolve_model
 from .result import FitResult
 from .solve import FitError, alpha_profile, fit
 from .threads import small_problem
@@ -61,7 +62,6 @@ def _check_kwargs(kwargs: dict, allowed: Sequence[str], where: str) -> None:
 
 
 def _resolve(model):
-    from .models import resolve_model
     try:
         return resolve_model(model)
     except (TypeError, ValueError) as e:

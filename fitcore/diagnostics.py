@@ -49,6 +49,7 @@ import numpy as np
 from .losses import DEFAULT_TUNING, get_loss
 from .refits import WarmRefit
 from .result import FitResult
+from .scale import psi_variance_at_normal
 from .solve import FitError, fit
 from .threads import small_problem
 from .work import scale_was_fixed
@@ -195,8 +196,6 @@ def _one_step(res: FitResult, J: np.ndarray, r: np.ndarray, with_scale: bool):
     F[:, :k] = psi[:, None] * J
     beta = 0.0
     if with_scale:
-        from .scale import psi_variance_at_normal
-
         beta = psi_variance_at_normal(loss)
         C[:, :k, k] = (dpsi * u)[:, None] * J
         C[:, k, :k] = (2.0 * psi * dpsi)[:, None] * J

@@ -36,6 +36,9 @@ from typing import Callable, Sequence
 
 import numpy as np
 
+from .models import resolve_model
+from .solve import fit
+
 #: the catalogue models tried, cheapest and most common first
 CANDIDATES = ("line", "line_origin", "poly2", "poly3", "exp_decay", "exp_rise", "power_law",
               "michaelis_menten", "logistic4", "arrhenius", "gauss_peak", "lorentz_peak")
@@ -150,8 +153,6 @@ def runs_test_p(residuals, x) -> float:
 def fit_problem(model, x, result) -> str:
     """Why ``result`` (a fit of ``model`` to points at ``x``, used points only) does not
     describe the data, or "" when it does (rules in the module text)."""
-    from .models import resolve_model
-
     m = resolve_model(model)
     values = np.asarray(result.values, float)
     stderr = np.asarray(result.stderr, float)
@@ -176,9 +177,6 @@ def fit_problem(model, x, result) -> str:
 
 def assess(model, x, y, sigma=None, *, title: str | None = None) -> ModelScore:
     """Fit ``model`` robustly (Huber, automatic scale) and score it."""
-    from .models import resolve_model
-    from .solve import fit
-
     try:
         m = resolve_model(model)
         title = title or m.title or str(model)

@@ -1474,7 +1474,7 @@ def resolve_model(spec) -> Model:
     if _is_known_name(key):
         return get_model(key)
     try:
-        from .formula import parse_formula  # lazy: written separately
+        from .formula import parse_formula  # here: the formula parser loads sympy
     except ImportError as exc:  # pragma: no cover - only while formula.py is missing
         raise ValueError(
             f"{spec!r} is not a built-in model ({', '.join(_REGISTRY)}), and formulas "

@@ -21,9 +21,12 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from .numbers import format_correlation, format_value, held_value_text, interval_limits
+from . import __version__
+from .numbers import (format_correlation, format_interval, format_uncertainty, format_value,
+                      held_value_text, interval_limits)
 from .numbers import full_precision as _full
 from .units import resolve_unit
+from .weighting import rule_text
 
 __all__ = [
     "CAUTION",
@@ -68,6 +71,7 @@ def loss_title(name: str) -> str:
     """The human title of a loss (``"Huber"``, ``"Tukey biweight"``) from the loss
     registry (``fitcore.losses.LOSSES``); an unknown name is an error, never printed
     as it is."""
+    # here, not at the top: fitcore.report (format_value & co.) loads without scipy
     from .losses import LOSSES
     from .losses import loss_title as registry_title
 
@@ -125,8 +129,6 @@ def alpha_text(res) -> str:
 
 
 def _version() -> str:
-    from . import __version__
-
     return str(__version__)
 
 
@@ -359,7 +361,7 @@ def method_statement(res, level: float = 0.95, *, y_unit: str = "",
     if str(res.loss) == "l2":
         how = "least squares (no robust weighting)"
     else:  # the words of loss_label, as a phrase: "the Huber loss (tuning constant ...)"
-        from .losses import loss_phrase
+        from .losses import loss_phrase  # here: see loss_title
 
         loss_title(res.loss)  # an unknown loss is an error here too
         _title, *rest = loss_label(res).split("; ")
@@ -433,8 +435,6 @@ def method_lines(res, level: float = 0.95, *, y_unit: str = "",
         out.append(("sigma", meaning))
     rule = (getattr(res, "info", None) or {}).get("weighting")
     if rule:  # a weighting rule of fitcore.weighting (issue 14)
-        from .weighting import rule_text
-
         out.append(("weighting", rule_text(rule)))
     out.append((
         "points",
@@ -551,8 +551,6 @@ def estimate_cells(res, level: float = 0.95, *, x_unit: str = "", y_unit: str = 
     ``interval`` (``"[lo, hi]"`` by :func:`format_interval`, or ``""``), ``unit``,
     ``kind`` (``"free"``, ``"held"``, ``"from held"``) and ``derived`` (bool).
     """
-    from .numbers import format_interval, format_uncertainty
-
     out = []
     for r in _rows(res, float(level), units, x_unit, y_unit):
         if r.assumed:

@@ -39,6 +39,10 @@ from typing import Mapping
 
 import numpy as np
 
+from . import __version__
+from .io import read_regular_file
+from .solve import fit
+from .weighting import WeightingError, normalise_rule
 from .work import FIT_OPTIONS, DataSet, Exclusion, Method
 
 __all__ = [
@@ -209,8 +213,6 @@ class Session:
         With the same Ballast version this reproduces the stored estimates bit for
         bit (the data round-trip exactly and the fit is deterministic).
         """
-        from . import fit
-
         m = self.method
         return fit(m.model_spec(), self.x, self.y, sigma=self.sigma, excluded=self.excluded,
                    **m.to_fit_kwargs())
@@ -313,8 +315,6 @@ def session_to_dict(session: Session) -> dict:
 
 def _session_dict(session: Session, floats) -> dict:
     """:func:`session_to_dict` with ``floats(array)`` encoding the per-point arrays."""
-    from . import __version__
-
     m = session.method
     if m.model_kind == "builtin":
         model = {"builtin": str(m.model), "options": _enc_tree(dict(m.model_options))}
@@ -538,8 +538,6 @@ def _method_options(c: "_Check", md: dict) -> dict:
         elif name == "max_iter":
             out[name] = c.int_(v, path)
         elif name == "weighting":  # a rule of fitcore.weighting, or null
-            from .weighting import WeightingError, normalise_rule
-
             try:
                 out[name] = None if v is None else normalise_rule(c.str_(v, path))
             except WeightingError as e:
@@ -778,8 +776,6 @@ def read_bounded_file(path, what: str = "session file", max_bytes: int | None = 
 
     A FIFO or device is refused without blocking; every failure is a SessionError.
     """
-    from .io import read_regular_file
-
     path = Path(path)
     limit = MAX_SESSION_BYTES if max_bytes is None else max_bytes
 

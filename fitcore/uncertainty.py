@@ -41,6 +41,7 @@ import numpy as np
 from scipy import optimize, special
 
 from .losses import Loss
+from .scale import psi_slope_at_normal, psi_variance_at_normal
 
 RECIPE_LS = "least squares: s^2 (J^T J)^-1, s^2 = RSS/(n - p)"
 RECIPE_LS_ABS = "least squares with absolute sigma: (J^T W J)^-1, W = 1/sigma^2"
@@ -109,8 +110,6 @@ def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto", *
     J = np.asarray(J, dtype=float)
     n, p = J.shape
     if absolute:
-        from .scale import psi_slope_at_normal, psi_variance_at_normal
-
         e1 = psi_slope_at_normal(loss)
         if not e1 > 0:
             raise RankDeficient("the loss's mean psi' at the normal model is not positive")

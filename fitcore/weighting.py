@@ -197,6 +197,8 @@ def prepare(weighting, x, y, sigma, sigma_mode: str, excluded=None):
 
 def prepare_for_fit(weighting, x, y, sigma, sigma_mode: str, excluded=None):
     """:func:`prepare` with its refusals as ``fitcore.FitError`` (what fit() raises)."""
+    # here, not at the top: this module stays numpy-only (fitcore.report reads its
+    # rules without loading scipy and the solvers)
     from .solvers.problem import FitError
 
     try:

@@ -1,6 +1,7 @@
 """Large data: seeded subsamples for the warm start and the staged Newton passes."""
 from __future__ import annotations
 
+from .mscale import _m_estimate, _newton_with_mad
 from .problem import _Problem, _sample_rows
 
 
@@ -32,8 +33,6 @@ def _staged_start(prob: _Problem, theta, loss, fixed_scale, *, linear: bool, max
     turn (each costs a fraction of one over all the points, and each stage starts the
     next one closer). Returns ``(theta, scale, n_iter)``.
     """
-    from .mscale import _m_estimate, _newton_with_mad
-
     if prob.n <= _LARGE:
         return None
     auto = fixed_scale is None

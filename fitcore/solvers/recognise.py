@@ -123,6 +123,8 @@ def _assignments(lin_f: np.ndarray, lin_c: np.ndarray, k: int):
 
 @functools.lru_cache(maxsize=1)
 def _catalogue() -> list[tuple[str, Model]]:
+    # here, not at the top: only formulas are matched, so fit() of a Model object does
+    # not load the catalogue (issue 12)
     from ..models import MODELS, get_model
 
     out = []
@@ -138,7 +140,7 @@ def _catalogue() -> list[tuple[str, Model]]:
 
 @functools.lru_cache(maxsize=256)
 def _match_text(formula: str) -> Match | None:
-    from ..formula import parse_formula
+    from ..formula import parse_formula  # here: the formula parser loads sympy
 
     try:
         model = parse_formula(formula)

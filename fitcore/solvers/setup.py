@@ -67,8 +67,8 @@ def _resolve(model) -> Model:
     if isinstance(model, Model):
         return model
     if isinstance(model, str):
-        try:
-            from ..models import builtin_models, resolve_model
+        try:  # here, not at the top: fit() of a Model object loads neither the catalogue
+            from ..models import builtin_models, resolve_model  # nor sympy (issue 12)
         except ImportError:  # catalogue not available: formulas only
             from ..formula import parse_formula as resolve_model
             builtin_models = None
@@ -257,7 +257,7 @@ def _catalogue_start(mdl: Model, x, y, p0, start):
     match = recognise(mdl)
     if match is None:
         return start, None
-    from ..models import get_model
+    from ..models import get_model  # here: see _resolve
 
     try:
         with np.errstate(all="ignore"):
