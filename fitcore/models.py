@@ -322,8 +322,10 @@ def _robust_lstsq_many(As, y, n_huber=12, n_tukey=6):
                     c[j] = coefs[g] * norms[g]
                     r[j] = resid[g]
                 continue
-            c_old = c[sel]
-            small = np.abs(c_new - c_old).max(axis=1) <= 1e-10 * (1.0 + np.abs(c_old).max(axis=1))
+            if it >= n_huber:  # (the step test stops only the Tukey steps)
+                c_old = c[sel]
+                small = (np.abs(c_new - c_old).max(axis=1)
+                         <= 1e-10 * (1.0 + np.abs(c_old).max(axis=1)))
             c[sel] = c_new
             r[sel] = y - np.matmul(Z[sel], c_new[:, :, None])[:, :, 0]
             if it >= n_huber:

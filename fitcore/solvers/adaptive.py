@@ -7,7 +7,7 @@ import math
 import numpy as np
 from scipy import optimize
 
-from ..losses import barron_dpsi, barron_rho, barron_weight, get_loss
+from ..losses import barron_rho, get_loss
 from ..partition import log_partition
 from .lm import _irls_lm
 from .mscale import _robust_with_scale
@@ -34,11 +34,23 @@ def _nll_slope(r2: np.ndarray, alpha: float, log_c: float) -> tuple[float, float
     c2 = math.exp(2.0 * log_c)
     with np.errstate(all="ignore"):
         z = r2 / c2
-        t = np.sqrt(z)
-        zw = z * barron_weight(t, alpha, 1.0)
-        z_dpsi = z * barron_dpsi(t, alpha, 1.0)
+        if alpha == 2.0:
+            s1 = float(np.sum(z))
+            return r2.size - s1, 2.0 * s1
+        if alpha == 0.0:
+            q = 1.0 + 0.5 * z
+            w = 1.0 / q  # (barron_weight's own branch at alpha = 0)
+        else:
+            b = abs(alpha - 2.0)
+            q = 1.0 + z / b
+            w = np.exp((0.5 * alpha - 1.0) * np.log1p(z / b))  # barron_weight
+        zw = z * w
         s1 = float(np.sum(zw))
-        return r2.size - s1, s1 + float(np.sum(z_dpsi))
+        # psi_B' = w (1 + z/b + (alpha - 2) z / b) / (1 + z/b) (barron_dpsi); only the
+        # Newton step uses it, the root is set by the first derivative alone
+        b = 2.0 if alpha == 0.0 else abs(alpha - 2.0)
+        s2 = float(np.sum(zw * (q + (alpha - 2.0) / b * z) / q))
+        return r2.size - s1, s1 + s2
 
 
 def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: float) -> float:
@@ -46,28 +58,30 @@ def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: fl
     root of its increasing first derivative, by Newton steps kept inside a shrinking
     bracket (bisection where a step leaves it), to 1e-13 in ``log c``."""
     r2 = r * r
-    g_lo, _ = _nll_slope(r2, alpha, lo_c)
-    if not g_lo < 0.0:
-        return lo_c  # rising from the floor: the minimum is at the floor
-    g_hi, _ = _nll_slope(r2, alpha, hi_c)
-    if not g_hi > 0.0:
-        return hi_c
+    lo0, hi0 = lo_c, hi_c
     lc = start if lo_c < start < hi_c else 0.5 * (lo_c + hi_c)
     for _ in range(200):
         g, h = _nll_slope(r2, alpha, lc)
-        if g == 0.0 or not math.isfinite(g):
+        if g == 0.0 or math.isnan(g):
             break
         if g < 0.0:
             lo_c = lc
         else:
             hi_c = lc
-        nxt = lc - g / h if h > 0.0 and math.isfinite(h) else math.nan
+        nxt = lc - g / h if h > 0.0 and math.isfinite(h) and math.isfinite(g) else math.nan
         if not lo_c < nxt < hi_c:
             nxt = 0.5 * (lo_c + hi_c)
         if abs(nxt - lc) <= 1e-13 * max(1.0, abs(lc)) or hi_c - lo_c <= 1e-13 * max(1.0, abs(lc)):
             lc = nxt
             break
         lc = nxt
+    # a root outside the interval: the iteration closed in on the end nearest to it
+    # (the slope keeps its sign there), which is then the minimum
+    tol = 1e-12 * max(1.0, abs(lc))
+    if lc - lo0 <= tol and not _nll_slope(r2, alpha, lo0)[0] < 0.0:
+        return lo0
+    if hi0 - lc <= tol and not _nll_slope(r2, alpha, hi0)[0] > 0.0:
+        return hi0
     return lc
 
 
@@ -80,9 +94,12 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
     lo_c = math.log(c_floor)
     hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
 
+    last = [None]  # the previous trial shape's best log c: the next one's Newton start
+
     def best_c(a, start):
         f = lambda lc: _nll(r, a, lc)  # noqa: E731
-        lc = _best_log_c(r, a, lo_c, hi_c, start)
+        lc = _best_log_c(r, a, lo_c, hi_c, start if last[0] is None else last[0])
+        last[0] = lc
         val = f(lc)
         if lo_c <= start <= hi_c and f(start) < val:
             lc, val = start, f(start)
@@ -126,7 +143,8 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         # loose solves while (alpha, c) still move; the solve after the loop is the
         # full-accuracy one (polished) at the final shape and scale
         inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter,
-                         xtol=1e-9, ftol=1e-12, polish_steps=False, check=False)
+                         xtol=1e-9, ftol=1e-12, polish_steps=False, check=False,
+                         near=nll_old < math.inf)
         total += inner.n_iter
         nll = _nll(inner.r, alpha, math.log(c))
         if abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0):
@@ -134,7 +152,7 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         nll_old = nll
     alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor)
     loss = get_loss("general", tuning=1.0, alpha=alpha)
-    inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter)
+    inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter, near=True)
     total += inner.n_iter
     # standard uncertainty of alpha from the curvature of the profile NLL
     alpha_se = None

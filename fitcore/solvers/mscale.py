@@ -57,10 +57,12 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
                         s_next = cand
             prev = (s, g)
             s = s_next
-            inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter, **loose)
+            # (warm starts: Newton steps at once, the reweighted ones where refused)
+            inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter,
+                             near=True, **loose)
             total += inner.n_iter
         theta = inner.theta
-    inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter)
+    inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, near=auto)
     total += inner.n_iter
     return inner, s, total
 
