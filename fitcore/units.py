@@ -33,7 +33,8 @@ whenever the formula does not fix its unit. The rules:
   must be dimensionless (``1 + (x/K)**n``) its base must be too (``K`` in x);
 * ``abs`` keeps the unit of its argument;
 * a rule that involves no parameter (``exp(-x)`` with x in s: the formula's numbers
-  carry units) fixes nothing and is set aside.
+  carry units) fixes nothing and is set aside, except that the formula's value must
+  be in y's unit (``x + k`` or ``exp(-x/tau)`` with y in mV: everything blank).
 
 The parameters' units are the unique solution of the resulting linear equations in the
 exponents of x's and y's units; a parameter the equations leave free is blank, and when
@@ -511,7 +512,9 @@ def formula_units(expr, x, params: Sequence) -> Mapping[str, str]:
 def _formula_units(expr, x, params: tuple) -> tuple:
     an = _Analysis(x, list(params))
     try:
-        an.equal(an.unit(expr), _Form((0, 1)))
+        # firm: a formula whose value has a unit of its own (x + k) other than y's
+        # contradicts the data, and its parameters' units would be a guess
+        an.equal(an.unit(expr), _Form((0, 1)), firm=True)
         solution = _solve(an.equations, an.n_columns)
     except RecursionError:
         return ()
