@@ -95,7 +95,7 @@ def bench_window(reps: int) -> None:
         assert win.open_path(str(_demo_csv(Path(tmp) / "demo.csv")))
         assert win.runner.wait()
         view = win.compare_view
-        win.compare_dock.show()
+        win.compare_pane.open()
         req = comparison_request(win.document, DEFAULT_LOSSES)
         gaps, inline, cancels = [], [], []
         for _ in range(reps):

@@ -2,16 +2,19 @@
 
 The loss comparison fits the document's data and model under several losses in one
 action (``fitcore.compare.compare_losses``) in a background job, overlays one curve
-per loss in the data plot with a legend, and lists the estimates side by side with
-their standard uncertainties, the scale, alpha and the number of down-weighted
-points. Estimates that differ between two losses by more than their combined
-standard uncertainty are highlighted (the pairs come from ``cmp.differences()``).
+per loss in the data plot (named in the key above the plot, never over the points),
+and lists the estimates side by side with their standard uncertainties, the scale,
+alpha and the number of down-weighted points. Estimates that differ between two
+losses by more than twice their combined standard uncertainty are shaded, and the
+rule is stated under the table (``fitcore.compare.DIFFERENCE_RULE``; the pairs come
+from ``cmp.differences()``).
 
 The adaptive suggestion shows the fitted shape alpha of the adaptive loss with its
 uncertainty, the profile negative log-likelihood over alpha in [0, 2] as a small
 plot, and the plain-language reading (``fitcore.compare.adaptive_reading``).
 
-Closing the comparison removes the overlays and brings back the single fit.
+Closing the comparison removes the overlays and brings back the single fit. The view
+is shown as a tab of the window's tab area (``desktop.pane_layout.AnalysisTab``).
 """
 from __future__ import annotations
 
@@ -19,14 +22,14 @@ import html
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import Qt, Signal
-from PySide6.QtGui import QBrush, QColor, QFont
+from PySide6.QtCore import Qt, QTimer, Signal
+from PySide6.QtGui import QAction, QBrush, QColor, QFont
 from PySide6.QtWidgets import (
-    QCheckBox, QDockWidget, QGridLayout, QGroupBox, QHBoxLayout, QHeaderView, QLabel,
-    QProgressBar, QPushButton, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
+    QFrame, QGroupBox, QHBoxLayout, QHeaderView, QLabel, QMenu, QProgressBar, QPushButton,
+    QScrollArea, QSplitter, QTableWidget, QTableWidgetItem, QToolButton, QVBoxLayout, QWidget,
 )
 
-from fitcore.compare import DEFAULT_LOSSES
+from fitcore.compare import DEFAULT_LOSSES, DIFFERENCE_FACTOR, DIFFERENCE_RULE
 from fitcore.compare import FIT_KWARGS as COMPARE_OPTIONS
 from fitcore.losses import LOSS_NAMES, LOSSES, loss_short_title, loss_title
 from fitcore.work import curve_grid
@@ -97,37 +100,12 @@ def progress_text(done: int, total: int, n_losses: int) -> str:
     return f"{n}/{n} losses" + ("; alpha profile" if done < total else " + alpha profile")
 
 
-def shift_note(reading) -> str:
-    """The change from least squares to the adaptive fit in each fit's own standard
-    uncertainty, for the parameter that moves most by the adaptive fit's u.
-
-    ``fitcore.compare``'s reading divides the change by the combined uncertainty
-    ``sqrt(u_LS^2 + u_robust^2)``, which the larger (often the least-squares) u
-    dominates; this note states the other yardsticks beside it. "" when there is
-    nothing to compare (least squares failed, no free parameter)."""
-    fits = getattr(reading, "fits", None) or {}
-    l2, ad = fits.get("l2"), fits.get("adaptive")
-    if l2 is None or ad is None:
-        return ""
-    best = None
-    for j, name in enumerate(ad.param_names):
-        if name in ad.fixed or name not in l2.param_names:
-            continue
-        k = l2.param_names.index(name)
-        d = float(ad.values[j]) - float(l2.values[k])
-        u_ad, u_l2 = float(ad.stderr[j]), float(l2.stderr[k])
-        if not (np.isfinite(d) and np.isfinite(u_ad) and np.isfinite(u_l2)
-                and u_ad > 0 and u_l2 > 0):
-            continue
-        key = abs(d) / u_ad
-        if best is None or key > best[0]:
-            best = (key, name, abs(d) / u_l2, abs(d) / float(np.hypot(u_ad, u_l2)))
-    if best is None:
-        return ""
-    in_ad, name, in_l2, in_both = best
-    return (f"In the adaptive fit's own standard uncertainty {name} moves by {in_ad:.2g} u "
-            f"(by {in_l2:.2g} u of the least-squares fit; {in_both:.2g} of the two combined, "
-            f"the yardstick above).")
+def key_symbol(name: str) -> str:
+    """The loss's line in the key above the plot: its colour and dash as text."""
+    rgb, dash = _pen_of(name)
+    line = {"solid": "&#9472;&#9472;", "dash": "&#8211; &#8211;", "dot": "&middot;&middot;&middot;&middot;",
+            "dashdot": "&#8211;&middot;&#8211;", "dashdotdot": "&#8211;&middot;&middot;&#8211;"}[dash]
+    return f"<span style='color:{QColor(*rgb).name()}'><b>{line}</b></span>"
 
 
 class AdaptivePanel(QGroupBox):
@@ -141,10 +119,11 @@ class AdaptivePanel(QGroupBox):
         f = QFont()
         f.setBold(True)
         self.alpha_label.setFont(f)
+        self.alpha_label.setWordWrap(True)
         lay.addWidget(self.alpha_label)
         self.plot = pg.PlotWidget(background="w")
-        self.plot.setMinimumHeight(120)
-        self.plot.setMaximumHeight(170)
+        self.plot.setMinimumHeight(90)
+        self.plot.setMaximumHeight(150)
         self.plot.setMenuEnabled(False)
         self.plot.setMouseEnabled(False, False)
         self.plot.hideButtons()
@@ -206,9 +185,6 @@ class AdaptivePanel(QGroupBox):
         self.mark.setPos(a)
         self.mark.setVisible(True)
         text = html.escape(str(reading.text))
-        note = shift_note(reading)
-        if note:
-            text += f"<br>{html.escape(note)}"
         if iv is not None and len(iv) == 2:
             text += (f"<br><span style='color:#555'>approx. 95% interval for alpha: "
                      f"[{float(iv[0]):.3g}, {float(iv[1]):.3g}] (profile likelihood)</span>")
@@ -244,36 +220,44 @@ class CompareView(QWidget):
         self.reading = None
         self.generation = -1
         self.curves: dict[str, pg.PlotCurveItem] = {}
-        self.legend = None
 
         lay = QVBoxLayout(self)
         lay.setContentsMargins(4, 4, 4, 4)
-        box = QGroupBox("Losses to compare")
-        grid = QGridLayout(box)
-        grid.setContentsMargins(6, 4, 6, 4)
-        self.checks: dict[str, QCheckBox] = {}
-        for k, name in enumerate(LOSS_NAMES):
-            cb = QCheckBox(loss_short_title(name))
-            cb.setChecked(name in DEFAULT_LOSSES)
-            cb.setToolTip(loss_title(name))
-            self.checks[name] = cb
-            grid.addWidget(cb, k // 5, k % 5)
-        grid.setHorizontalSpacing(14)
-        lay.addWidget(box)
+        # one row of controls (the losses in a drop-down menu): in a short tab the table
+        # and the suggestion keep the height
         row = QHBoxLayout()
+        self.losses_button = QToolButton()
+        self.losses_button.setPopupMode(QToolButton.InstantPopup)
+        self.losses_button.setToolTip("The losses to fit side by side")
+        menu = QMenu(self.losses_button)
+        menu.setToolTipsVisible(True)
+        self.checks: dict[str, QAction] = {}
+        for name in LOSS_NAMES:
+            act = menu.addAction(loss_short_title(name))
+            act.setCheckable(True)
+            act.setChecked(name in DEFAULT_LOSSES)
+            act.setToolTip(loss_title(name))
+            act.toggled.connect(self._losses_changed)
+            self.checks[name] = act
+        self.losses_button.setMenu(menu)
+        self._losses_changed()
         self.run_button = QPushButton("Compare")
         self.run_button.setToolTip("Fit the data under every ticked loss")
         self.cancel_button = QPushButton("Cancel")
         self.cancel_button.setEnabled(False)
         self.close_button = QPushButton("Close comparison")
         self.close_button.setToolTip("Remove the comparison curves and return to the single fit")
+        self.copy_button = QPushButton("Copy table")
+        self.copy_button.setToolTip("Copy the comparison as tab-separated text")
+        self.copy_button.clicked.connect(self.copy)
         self.progress = QProgressBar()
         self.progress.setTextVisible(True)
         self.progress.setRange(0, 1)
         self.progress.setValue(0)
         self.status = QLabel("")
         self.status.setWordWrap(True)
-        for w in (self.run_button, self.cancel_button, self.progress, self.close_button):
+        for w in (self.losses_button, self.run_button, self.cancel_button, self.progress,
+                  self.copy_button, self.close_button):
             row.addWidget(w)
         lay.addLayout(row)
         lay.addWidget(self.status)
@@ -285,6 +269,7 @@ class CompareView(QWidget):
         lay.addWidget(self.leverage_note)
 
         split = QSplitter(Qt.Horizontal)
+        split.setChildrenCollapsible(False)
         left = QWidget()
         left_lay = QVBoxLayout(left)
         left_lay.setContentsMargins(0, 0, 0, 0)
@@ -292,24 +277,25 @@ class CompareView(QWidget):
         self.table.setEditTriggers(QTableWidget.NoEditTriggers)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
         self.table.verticalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+        self.table.setMinimumHeight(60)
         left_lay.addWidget(self.table, 1)
-        foot = QHBoxLayout()
-        self.legend_note = QLabel("<span style='background:#ffddd6'>&nbsp;bold, shaded&nbsp;</span>: "
-                                  "differs from another loss by more than the combined standard "
-                                  "uncertainty (hover for the pairs)")
+        self.legend_note = QLabel(
+            "<span style='background:#ffddd6'>&nbsp;<b>shaded</b>&nbsp;</span>: differs from another "
+            f"loss by {html.escape(DIFFERENCE_RULE)}. Hover for the pairs.")
         self.legend_note.setWordWrap(True)
-        self.copy_button = QPushButton("Copy table")
-        self.copy_button.setToolTip("Copy the comparison as tab-separated text")
-        self.copy_button.clicked.connect(self.copy)
-        foot.addWidget(self.legend_note, 1)
-        foot.addWidget(self.copy_button)
-        left_lay.addLayout(foot)
+        left_lay.addWidget(self.legend_note)
         split.addWidget(left)
         self.adaptive = AdaptivePanel()
-        split.addWidget(self.adaptive)
+        side = QScrollArea()  # the suggestion scrolls in a short tab, never pushes the plot
+        side.setWidgetResizable(True)
+        side.setFrameShape(QFrame.NoFrame)
+        side.setHorizontalScrollBarPolicy(Qt.ScrollBarAlwaysOff)
+        side.setWidget(self.adaptive)
+        split.addWidget(side)
         split.setStretchFactor(0, 3)
         split.setStretchFactor(1, 2)
         lay.addWidget(split, 1)
+        self.split = split
 
         self.run_button.clicked.connect(self.run)
         self.cancel_button.clicked.connect(self.cancel)
@@ -319,6 +305,10 @@ class CompareView(QWidget):
             plot.axes_changed.connect(self._draw_curves)
 
     # ------------------------------------------------------------------ running
+    def _losses_changed(self, *_):
+        n = sum(a.isChecked() for a in self.checks.values())
+        self.losses_button.setText(f"Losses: {n} of {len(self.checks)}")
+
     def chosen_losses(self) -> tuple[str, ...]:
         return tuple(n for n, cb in self.checks.items() if cb.isChecked())
 
@@ -377,6 +367,8 @@ class CompareView(QWidget):
         self.reading = reading
         self.generation = self._pending_generation
         self._fill_table()
+        self._fit_split()
+        QTimer.singleShot(0, self._fit_split)  # again once the columns are laid out
         self._draw_curves()
         self.leverage_note.setText(("Agreement between the losses does not clear these points. "
                                     + lev_note) if lev_note else "")
@@ -458,7 +450,8 @@ class CompareView(QWidget):
                 if pairs:
                     it.setBackground(DIFF_BG)
                     it.setFont(bold)
-                    it.setToolTip("Differs by more than the combined standard uncertainty from:\n" +
+                    it.setToolTip(f"Differs by more than {DIFFERENCE_FACTOR:g} combined standard "
+                                  "uncertainties from:\n" +
                                   "\n".join(f"  {loss_short_title(o)}: {d:+.4g} ({abs(d) / cu:.2g} combined u)"
                                             if cu > 0 else f"  {loss_short_title(o)}: {d:+.4g}"
                                             for o, d, cu in pairs))
@@ -479,6 +472,17 @@ class CompareView(QWidget):
                     it.setToolTip(str(r.message))
                 self.table.setItem(base + j, c, it)
 
+    def _fit_split(self):
+        """Give the table the width its columns need (the suggestion keeps at least 240 px)."""
+        t = self.table
+        t.resizeColumnsToContents()
+        need = (t.verticalHeader().width() + t.horizontalHeader().length() + 2 * t.frameWidth()
+                + t.verticalScrollBar().sizeHint().width() + 4)
+        total = sum(self.split.sizes())
+        if total > 0:
+            left = min(need, max(total - 240, total // 2))
+            self.split.setSizes([left, total - left])
+
     def _draw_curves(self):
         self._remove_curves()
         ok = self._ok_results()
@@ -490,9 +494,7 @@ class CompareView(QWidget):
         if grid.size == 0:
             return
         stale = self.generation != self.document.generation
-        self.legend = pg.LegendItem(offset=(-10, 10), labelTextColor=(30, 30, 30),
-                                    brush=pg.mkBrush(255, 255, 255, 215), pen=pg.mkPen(160, 160, 160))
-        self.legend.setParentItem(plot.data_plot.vb)
+        key = []
         for loss, r in ok.items():
             with np.errstate(all="ignore"):
                 try:
@@ -507,7 +509,9 @@ class CompareView(QWidget):
             curve.setZValue(5)
             plot.data_plot.addItem(curve, ignoreBounds=True)
             self.curves[loss] = curve
-            self.legend.addItem(curve, loss_short_title(loss))
+            key.append((key_symbol(loss), loss_short_title(loss)))
+        if hasattr(plot, "set_key"):
+            plot.set_key(curves=key)
         if hasattr(plot, "set_single_fit_visible"):
             plot.set_single_fit_visible(False)
 
@@ -515,11 +519,8 @@ class CompareView(QWidget):
         for c in self.curves.values():
             self.plot.data_plot.removeItem(c)
         self.curves = {}
-        if self.legend is not None:
-            sc = self.legend.scene()
-            if sc is not None:
-                sc.removeItem(self.legend)
-            self.legend = None
+        if hasattr(self.plot, "set_key"):
+            self.plot.set_key(curves=[])
 
     def close_comparison(self):
         """Remove the comparison and bring back the single fit."""
@@ -562,8 +563,6 @@ class CompareView(QWidget):
         text = self.text()
         if text:
             reading = self.reading.text if self.reading is not None else ""
-            note = shift_note(self.reading) if self.reading is not None else ""
-            reading = f"{reading} {note}" if note else reading
             QGuiApplication.clipboard().setText(text + (f"\n\n{reading}" if reading else ""))
         return text
 
@@ -578,23 +577,3 @@ class CompareView(QWidget):
             cells += [(t.item(r, c).text() if t.item(r, c) else "") for c in range(t.columnCount())]
             rows.append("\t".join(cells))
         return "\n".join(rows)
-
-
-class CompareDock(QDockWidget):
-    """Dock holding the :class:`CompareView`; closing it closes the comparison."""
-
-    def __init__(self, document: Document, plot, parent=None):
-        super().__init__("Loss comparison", parent)
-        self.setObjectName("loss_comparison_dock")
-        self.view = CompareView(document, plot, self)
-        self.setWidget(self.view)
-        self.view.closed.connect(self._closed_by_view)
-
-    def _closed_by_view(self):
-        if self.isVisible():
-            self.hide()
-
-    def closeEvent(self, ev):
-        if self.view.comparison is not None or self.view.curves or self.view.job.running:
-            self.view.close_comparison()
-        super().closeEvent(ev)

@@ -13,7 +13,7 @@ then
   plot with an entry in the key above the plot (never over the data), and a note in the
   estimates area that robust losses do not protect against them;
 * optionally colours the used points in the plot by leverage or by influence, with a
-  colour bar; the key above the plot then says what the colour shows.
+  colour bar under the plots; the key above the plot then says what the colour shows.
 """
 from __future__ import annotations
 
@@ -355,13 +355,16 @@ class DiagnosticsController(QObject):
             self._colour_item.setZValue(8)
             plot.data_plot.addItem(self._colour_item)
             label = ("leverage" if self.colour_mode == "leverage"
-                     else "largest influence (std. unc.)")
-            self._colour_bar = pg.ColorBarItem(values=(0.0, top), colorMap=cmap, width=14,
-                                               label=("leverage" if self.colour_mode == "leverage"
-                                                      else "max |influence| (std. unc.)"),
-                                               interactive=False,
+                     else "influence")
+            # under the plots, horizontal: a bar at the right took ~80 px of a narrow plot
+            # and its tick labels were cut at the view's edge
+            # (no axis title: the key above the plot says what the colour shows; plain
+            # tick numbers, never an SI factor such as "x0.001")
+            self._colour_bar = pg.ColorBarItem(values=(0.0, top), colorMap=cmap, width=12,
+                                               interactive=False, orientation="horizontal",
                                                colorMapMenu=False, rounding=top / 100.0)
-            plot.addItem(self._colour_bar, row=0, col=1)
+            self._colour_bar.axis.enableAutoSIPrefix(False)
+            plot.addItem(self._colour_bar, row=2, col=0)
         hi = self.high_leverage_points()
         if hi.size:
             self._lev_item = pg.ScatterPlotItem(px[hi], py[hi], size=17, symbol="s",

@@ -1,7 +1,8 @@
 """The Ballast main window: layout, menus, shortcuts, opening files, window state.
 
-Layout (left to right): the method panel; the plot over the points table; the
-estimates. The window owns the document, the undo stack and the fit runner.
+Layout: the method panel at the left; at the right the plot beside the estimates,
+over a tab area as wide as both (the points table, and the loss comparison and point
+diagnostics when opened). The window owns the document, the undo stack and the fit runner.
 """
 from __future__ import annotations
 
@@ -15,7 +16,7 @@ from PySide6.QtCore import (
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence, QUndoStack
 from PySide6.QtWidgets import (
     QAbstractItemView, QFileDialog, QLabel, QMainWindow, QMessageBox, QProgressDialog, QScrollArea, QSplitter,
-    QTableView, QVBoxLayout, QWidget,
+    QTableView, QTabWidget, QVBoxLayout, QWidget,
 )
 
 from fitcore.report import loss_title, point_label
@@ -112,11 +113,23 @@ class MainWindow(QMainWindow):
         self.model_check.finished.connect(self._model_check_done)
         self._model_check_for = None  # (measurements, settings) the running check is about
         self._model_problem = ""  # why the method kept for new data does not fit them
+        # the points table and the analyses (loss comparison, point diagnostics) share a
+        # tab area under the plot and the estimates, as wide as both: at 1000 x 650 every
+        # column of the points table fits, and opening an analysis never squeezes the plot
+        self.lower_tabs = QTabWidget()
+        self.lower_tabs.setDocumentMode(True)
+        self.lower_tabs.addTab(self.table, "Points")
+        self.top_split = QSplitter(Qt.Horizontal)
+        self.top_split.addWidget(plot_box)
+        self.top_split.addWidget(self.estimates)
+        self.top_split.setStretchFactor(0, 1)
+        self.top_split.setStretchFactor(1, 0)
         self.centre = QSplitter(Qt.Vertical)
-        self.centre.addWidget(plot_box)
-        self.centre.addWidget(self.table)
+        self.centre.addWidget(self.top_split)
+        self.centre.addWidget(self.lower_tabs)
         self.centre.setStretchFactor(0, 3)
         self.centre.setStretchFactor(1, 2)
+        self.centre.setCollapsible(0, False)
         scroll = QScrollArea()
         scroll.setWidget(self.method_panel)
         scroll.setWidgetResizable(True)
@@ -125,11 +138,9 @@ class MainWindow(QMainWindow):
         self.main_split = QSplitter(Qt.Horizontal)
         self.main_split.addWidget(scroll)
         self.main_split.addWidget(self.centre)
-        self.main_split.addWidget(self.estimates)
         self.main_split.setStretchFactor(0, 0)
-        self.main_split.setStretchFactor(1, 3)
-        self.main_split.setStretchFactor(2, 1)
-        self.main_split.setSizes([300, 756, 424])  # the points table fits beside the plot
+        self.main_split.setStretchFactor(1, 1)
+        self.main_split.setSizes([300, 1180])
         self.setCentralWidget(self.main_split)
 
         self.busy_label = QLabel("")
@@ -254,7 +265,8 @@ class MainWindow(QMainWindow):
         if not restore("window/geometry", self.restoreGeometry):
             self.resize(1480, 900)
         restore("window/state", self.restoreState)
-        for key, split in (("window/main_split", self.main_split), ("window/centre", self.centre)):
+        for key, split in (("window/main_split", self.main_split), ("window/centre", self.centre),
+                           ("window/top_split", self.top_split)):
             restore(key, split.restoreState)
         for key, action, default in (("view/band", self.band_action, True), ("view/log_x", self.logx_action, False),
                                      ("view/log_y", self.logy_action, False),
@@ -275,6 +287,7 @@ class MainWindow(QMainWindow):
         s.setValue("window/state", self.saveState())
         s.setValue("window/main_split", self.main_split.saveState())
         s.setValue("window/centre", self.centre.saveState())
+        s.setValue("window/top_split", self.top_split.saveState())
         s.setValue("view/band", self.band_action.isChecked())
         s.setValue("view/log_x", self.logx_action.isChecked())
         s.setValue("view/log_y", self.logy_action.isChecked())
@@ -745,14 +758,32 @@ class MainWindow(QMainWindow):
         """Loss comparison, point diagnostics and bootstrap (issue 6): menu, dock, note."""
         from PySide6.QtGui import QActionGroup
 
-        from .compare_view import CompareDock
+        from .compare_view import CompareView
         from .diagnostics_view import DiagnosticsController
+        from .pane_layout import AnalysisTab
 
-        self.compare_dock = CompareDock(self.document, self.plot, self)
-        self.compare_dock.setAllowedAreas(Qt.BottomDockWidgetArea | Qt.TopDockWidgetArea)
-        self.addDockWidget(Qt.BottomDockWidgetArea, self.compare_dock)
-        self.compare_dock.hide()
-        self.compare_view = self.compare_dock.view
+        # the analyses open as tabs beside the points table (or in a window of their own),
+        # never as a dock that squeezes the plot
+        self.compare_view = CompareView(self.document, self.plot)
+        self.compare_pane = AnalysisTab("Loss comparison", self.compare_view, self.lower_tabs,
+                                        on_close=self.compare_view.close_comparison)
+        self.compare_view.closed.connect(self.compare_pane.remove)
+        self.diag_table = QTableView()
+        self.diag_table.setModel(self.proxy)
+        self.diag_table.setSelectionModel(self.table.selectionModel())  # one selection
+        self.diag_table.horizontalHeader().setSortIndicator(-1, Qt.AscendingOrder)
+        self.diag_table.setSortingEnabled(True)  # (keeps the shared proxy's order: unsorted)
+        self.diag_table.setSelectionBehavior(QAbstractItemView.SelectRows)
+        self.diag_table.setSelectionMode(QAbstractItemView.ExtendedSelection)
+        self.diag_table.verticalHeader().setVisible(False)
+        self.diag_table.verticalHeader().setDefaultSectionSize(22)
+        self.diag_table.setEditTriggers(QAbstractItemView.NoEditTriggers)
+        self.diag_pane = AnalysisTab("Point diagnostics", self.diag_table, self.lower_tabs,
+                                     on_close=lambda: self.diag_action.setChecked(False))
+        self.proxy.columnsInserted.connect(self._split_columns)
+        self.proxy.columnsRemoved.connect(self._split_columns)
+        self.proxy.modelReset.connect(self._split_columns)
+        self._split_columns()
         self.diag_note = QLabel("")
         self.diag_note.setWordWrap(True)
         self.diag_note.setVisible(False)
@@ -769,7 +800,7 @@ class MainWindow(QMainWindow):
             self.menuBar().insertMenu(help_menu, menu)
         self.compare_action = self._action(menu, "Loss &comparison...", self.show_comparison, "F6",
                                            tip="Fit under several losses side by side")
-        self.diag_action = self._action(menu, "Point &diagnostics", self.diagnostics.set_enabled, "F7",
+        self.diag_action = self._action(menu, "Point &diagnostics", self._set_diagnostics, "F7",
                                         checkable=True,
                                         tip="Leverage, standardised residual and influence columns")
         colour = menu.addMenu("Colour points &by")
@@ -790,18 +821,47 @@ class MainWindow(QMainWindow):
                      tip="Case or residual bootstrap percentile intervals")
 
     def _build_unknowns(self):
-        """The Unknowns table (read-back of unknown samples, issue 14) under the estimates."""
+        """The Unknowns table (read-back of unknown samples, issue 14), a tab beside the points."""
         from .unknowns_view import UnknownsView
 
         self.unknowns = UnknownsView(self.document, self.push, self.plot)
-        lay = self.estimates.layout()
-        lay.insertWidget(lay.count() - 1, self.unknowns, 1)  # above the caution text
+        # a table like the points: in the tab area, so the estimates pane stays short
+        self.lower_tabs.addTab(self.unknowns, "Unknowns")
 
     def show_comparison(self):
-        """Open the loss comparison and run it for the ticked losses."""
-        self.compare_dock.show()
-        self.compare_dock.raise_()
+        """Open the loss comparison (its tab) and run it for the ticked losses."""
+        self.compare_pane.open()
         self.compare_view.run()  # says so when there are no data
+
+    def _set_diagnostics(self, on: bool):
+        """Point diagnostics on (their tab opens) or off (the tab goes)."""
+        self.diagnostics.set_enabled(on)
+        if on:
+            self.diag_pane.open()
+        else:
+            self.diag_pane.remove()
+
+    def _split_columns(self, *_):
+        """The points table shows the data and fit columns, the diagnostics tab the point's
+        row, x, y and the diagnostic columns (one model, one selection)."""
+        from .points_model import COL, COLUMNS
+
+        base = len(COLUMNS)
+        keep = (COL["#"], COL["x"], COL["y"])
+        for c in range(self.proxy.columnCount()):
+            extra = c >= base
+            self.table.setColumnHidden(c, extra)
+            self.diag_table.setColumnHidden(c, not (extra or c in keep))
+        header = self.diag_table.horizontalHeader()
+        for c in keep:  # as wide as in the points table
+            header.resizeSection(c, self.table.horizontalHeader().sectionSize(c))
+        fm = header.fontMetrics()
+        for c in range(base, self.proxy.columnCount()):
+            # the cells' width and the header's text (its size hint keeps room for a sort
+            # arrow on every column: too wide for eight columns beside each other)
+            text = str(self.proxy.headerData(c, Qt.Horizontal) or "")
+            need = max(fm.horizontalAdvance(line) for line in text.split("\n")) + 12
+            header.resizeSection(c, max(need, self.diag_table.sizeHintForColumn(c)))
 
     def set_colour_mode(self, mode: str):
         self.diagnostics.set_colour_mode(mode)

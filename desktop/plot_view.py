@@ -539,6 +539,7 @@ class PlotView(pg.GraphicsLayoutWidget):
         # the key above the data (never over it); it wraps to more lines when narrow
         self._key_colour = ""     # "" or what the used points' colour shows
         self._key_extra = []      # further (symbol, words) entries (high leverage)
+        self._key_curves = []     # (symbol, words) of overlaid curves (a loss comparison)
         self._key_html = None
         self.data_plot.setTitle(SYMBOL_KEY, size="9pt", color="#333333")
 
@@ -571,13 +572,17 @@ class PlotView(pg.GraphicsLayoutWidget):
         self._on_document("data")
 
     # ---------------------------------------------------------------- key
-    def set_key(self, colour: str | None = None, extra=None):
+    def set_key(self, colour: str | None = None, extra=None, curves=None):
         """What the key above the plot explains.
 
         ``colour``: "" (points coloured used / down-weighted) or the words for what
         the colour of the used points shows now (e.g. "leverage"); ``extra``: a list
-        of further ``(html symbol, words)`` entries. None leaves a part as it is.
+        of further ``(html symbol, words)`` entries; ``curves``: the overlaid curves'
+        entries (a loss comparison names its curves here, not in a legend over the
+        points). None leaves a part as it is.
         """
+        if curves is not None:
+            self._key_curves = list(curves)
         if colour is not None:
             self._key_colour = str(colour)
         if extra is not None:
@@ -589,11 +594,11 @@ class PlotView(pg.GraphicsLayoutWidget):
         if self._key_colour:
             lo, hi = (QColor(*c).name() for c in ((250, 240, 205), (100, 10, 70)))
             entries = [(f"<span style='color:{lo}'>&#9679;</span><span style='color:{hi}'>&#9679;</span>",
-                        f"used, colour = {self._key_colour} (scale at the right)"),
+                        f"used, colour = {self._key_colour} (scale below)"),
                        KEY_ENTRIES[2]]
         else:
             entries = list(KEY_ENTRIES)
-        return entries + list(self._key_extra)
+        return entries + list(self._key_extra) + list(self._key_curves)
 
     def key_text(self) -> str:
         """The key as plain text (tests, the report)."""

@@ -8,10 +8,14 @@ alpha = 0 Cauchy-like) into a plain-language suggestion.
 
 Differences between losses
 --------------------------
-Two losses "differ" on a parameter when ``|v_a - v_b| > sqrt(u_a^2 + u_b^2)`` with
-``u`` the standard uncertainties of the two fits. Both fits use the same data, so
-their estimates are positively correlated and the true uncertainty of the difference is
-smaller than this combined value: the flag is conservative (it fires late, not early).
+Two losses "differ" on a parameter when ``|v_a - v_b| > 2 sqrt(u_a^2 + u_b^2)`` with
+``u`` the standard uncertainties of the two fits (:data:`DIFFERENCE_FACTOR` = 2). This
+is the E_n > 1 rule of proficiency testing (ISO 13528; E_n = difference over the root
+sum of squares of expanded uncertainties U = 2u): for two independent estimates of the
+same value it fires about 5 % of the time by chance (a normal tail beyond 1.96). Both
+fits use the same data, so their estimates are positively correlated and the true
+uncertainty of the difference is smaller than this combined value: the flag is
+conservative (it fires late, not early). :data:`DIFFERENCE_RULE` states it for views.
 
 The adaptive reading
 --------------------
@@ -22,11 +26,16 @@ alphas where ``nll - min(nll) <= chi2(0.95, 1)/2 = 1.92`` (Wilks' theorem; at th
 bounds of [0, 2] the interval is cut there). "Close to Gaussian" means alpha = 2 lies
 inside that interval. The change of the answer is the largest
 ``|v_adaptive - v_l2| / sqrt(u_adaptive^2 + u_l2^2)`` over the fitted parameters: the
-shift the robust (adaptive) fit makes, in the same combined standard uncertainty that
-:meth:`LossComparison.differences` uses, so a reading of "more than one standard
-uncertainty" goes with a highlighted difference between l2 and adaptive. (The
-least-squares uncertainty alone is not used: with outliers and sigma taken as
-absolute it can be far too small, which would exaggerate the shift.)
+shift the robust (adaptive) fit makes, in the same combined standard uncertainty and
+against the same rule as :meth:`LossComparison.differences`, so the reading says
+"differ" exactly when the l2/adaptive pair is highlighted. Every number in the text is
+computed from the two fits, and one yardstick is used throughout.
+
+When the two agree by that rule although least squares is much less precise (its
+standard uncertainty at least twice the adaptive fit's) and its value lies outside
+the adaptive fit's own ``+- 2u``, the reading says so with both numbers: the combined
+uncertainty is then mostly that of least squares (outliers inflate its scatter), and
+the agreement says little.
 """
 from __future__ import annotations
 
@@ -47,6 +56,13 @@ DEFAULT_LOSSES = ("l2", "huber", "cauchy", "tukey", "adaptive")
 
 #: keyword arguments passed on to :func:`fitcore.fit` unchanged
 FIT_KWARGS = ("sigma", "excluded", "p0", "fixed", "scale", "sigma_mode", "max_iter")
+
+#: two estimates differ when |delta| > DIFFERENCE_FACTOR * sqrt(u_a^2 + u_b^2) (E_n > 1
+#: with k = 2, the proficiency-testing rule of ISO 13528; see the module text)
+DIFFERENCE_FACTOR = 2.0
+#: the rule in words, for the views that highlight differences
+DIFFERENCE_RULE = ("|\u0394| > 2\u00b7\u221a(u\u2081\u00b2 + u\u2082\u00b2), i.e. E_n > 1 with "
+                   "k = 2 (the proficiency-testing rule of ISO 13528)")
 
 #: chi-square(1) 95 % quantile / 2: the likelihood-ratio cut for a 95 % interval
 LR_CUT_95 = 1.920729410347062
@@ -144,8 +160,9 @@ class LossComparison:
                              int(res.n_downweighted)))
         return rows
 
-    def differences(self, factor: float = 1.0) -> list[tuple[str, str, str, float, float]]:
-        """Estimates that differ by more than ``factor`` times their combined uncertainty.
+    def differences(self, factor: float = DIFFERENCE_FACTOR) -> list[tuple[str, str, str, float, float]]:
+        """Estimates that differ by more than ``factor`` times their combined uncertainty
+        (default 2, :data:`DIFFERENCE_RULE`).
 
         Returns ``(param, loss_a, loss_b, delta, combined_u)`` with ``delta = v_b - v_a``
         and ``combined_u = sqrt(u_a^2 + u_b^2)``, for every pair of successful losses
@@ -171,7 +188,7 @@ class LossComparison:
                         out.append((name, la, lb, delta, cu))
         return out
 
-    def highlighted(self, factor: float = 1.0) -> dict[str, set[str]]:
+    def highlighted(self, factor: float = DIFFERENCE_FACTOR) -> dict[str, set[str]]:
         """``loss -> {params}`` taking part in any difference (for highlighting cells)."""
         marks: dict[str, set[str]] = {lo: set() for lo, _ in self.fitted()}
         for name, la, lb, _, _ in self.differences(factor):
@@ -333,41 +350,95 @@ def _alpha_phrase(alpha, alpha_u, interval) -> str:
             f"95 % interval {_fmt2(lo)} to {_fmt2(hi)}")
 
 
-def reading_text(alpha, alpha_u, interval, shift, shift_param) -> str:
-    """The plain-language reading (see the module docstring for the rules)."""
+def _fmt_against(v: float, limit: float) -> str:
+    """``v`` to one decimal, or more where one decimal would round it across ``limit``
+    (1.96 against 2 is written 1.96, never "2.0")."""
+    for digits in (1, 2, 3):
+        text = f"{v:.{digits}f}"
+        if (float(text) > limit) == (v > limit) and (float(text) == limit) == (v == limit):
+            return text
+    return f"{v:.4g}"
+
+
+def _imprecise_l2(detail, factor: float):
+    """``(param, u_l2, u_ad, in_ad)`` for the parameter where least squares is the
+    least precise (u_l2 >= 2 u_ad) and its value lies beyond ``factor`` of the adaptive
+    fit's own standard uncertainties from the adaptive value; None when there is none."""
+    best = None
+    for name, (delta, u_l2, u_ad) in (detail or {}).items():
+        if not (math.isfinite(delta) and math.isfinite(u_l2) and math.isfinite(u_ad) and u_ad > 0):
+            continue
+        in_ad = abs(delta) / u_ad
+        if u_l2 >= 2.0 * u_ad and in_ad > factor and (best is None or in_ad > best[3]):
+            best = (name, u_l2, u_ad, in_ad)
+    return best
+
+
+def reading_text(alpha, alpha_u, interval, shift, shift_param, detail=None,
+                 factor: float = DIFFERENCE_FACTOR) -> str:
+    """The plain-language reading (see the module docstring for the rules).
+
+    ``shift`` is the largest ``|v_adaptive - v_l2| / sqrt(u_adaptive^2 + u_l2^2)``
+    (at ``shift_param``); the fits "differ" when it exceeds ``factor`` (the rule of
+    :meth:`LossComparison.differences`). ``detail`` (``param -> (delta, u_l2,
+    u_adaptive)``) lets the text say when agreement only reflects an imprecise
+    least-squares fit.
+    """
     phrase = _alpha_phrase(alpha, alpha_u, interval)
     gaussian = interval[1] >= 2.0 - 1e-9
     has_shift = shift_param is not None and math.isfinite(shift)
-    where = f" ({shift_param})" if has_shift else ""
-    where_in = f", for {shift_param}" if has_shift else ""
+    k = f"{factor:g}"
+    differ = has_shift and shift > factor
+    if has_shift:
+        size = _fmt_against(shift, factor)
+        if differ:
+            compared = (f"least squares and the adaptive fit differ by {size} combined standard "
+                        f"uncertainties ({shift_param}), more than the {k} that chance explains")
+        else:
+            compared = (f"least squares and the adaptive fit agree within {k} combined standard "
+                        f"uncertainties (largest difference {size}, for {shift_param})")
+    weak = None if differ or not has_shift else _imprecise_l2(detail, factor)
+    tail = ""
+    if weak is not None:
+        name, u_l2, u_ad, in_ad = weak
+        tail = (f" Least squares is much less precise here: u({name}) = {u_l2:.2g} against "
+                f"{u_ad:.2g} by the adaptive fit, and the least-squares {name} lies "
+                f"{in_ad:.3g} of the adaptive fit's standard uncertainties from the adaptive value.")
     if gaussian:
         head = f"Tails close to Gaussian ({phrase})"
-        if not has_shift or shift <= 1.0:
+        if not has_shift:
             return f"{head}: least squares is adequate."
-        return (f"{head}, yet a robust loss changes the answer by {shift:.1f} standard "
-                f"uncertainties{where}: compare the fits before relying on least squares.")
+        if not differ:
+            return f"{head}; {compared}: least squares is adequate.{tail}"
+        return f"{head}, yet {compared}: compare the fits before relying on least squares."
     head = "Heavy tails" if alpha < 1.0 else "Tails heavier than Gaussian"
     head = f"{head} ({phrase})"
     if not has_shift:
         return f"{head}: a robust loss is advisable (the least-squares fit failed)."
-    if shift <= 1.0:
-        return (f"{head}: a robust loss changes the answer by less than one standard "
-                f"uncertainty (at most {shift:.1f}{where_in}), but its estimates are more "
-                f"reliable with such tails.")
-    return (f"{head}: a robust loss changes the answer by up to {shift:.1f} standard "
-            f"uncertainties{where}.")
+    if not differ:
+        return (f"{head}; {compared}, but the robust estimates are the more reliable with "
+                f"such tails.{tail}")
+    return f"{head}; {compared}: a robust loss changes the answer."
 
 
-def _shifts(l2: FitResult | None, ad: FitResult) -> dict[str, float]:
+def _detail(l2: FitResult | None, ad: FitResult) -> dict[str, tuple[float, float, float]]:
+    """``param -> (v_adaptive - v_l2, u_l2, u_adaptive)`` over the free parameters."""
     if l2 is None:
         return {}
     out = {}
     for j, name in enumerate(ad.param_names):
         if name in ad.fixed:
             continue
-        u = math.hypot(float(l2.stderr[j]), float(ad.stderr[j]))
+        out[name] = (float(ad.values[j] - l2.values[j]), float(l2.stderr[j]), float(ad.stderr[j]))
+    return out
+
+
+def _shifts(l2: FitResult | None, ad: FitResult) -> dict[str, float]:
+    out = {}
+    for name, (delta, u_l2, u_ad) in _detail(l2, ad).items():
+        u = math.hypot(u_l2, u_ad)
         if math.isfinite(u) and u > 0:
-            out[name] = abs(float(ad.values[j] - l2.values[j])) / u
+            out[name] = abs(delta) / u
     return out
 
 
@@ -430,7 +501,7 @@ def adaptive_reading(model, x, y, *, fits: dict | None = None, alphas=None,
         shift = shifts[shift_param]
     else:
         shift_param, shift = None, float("nan")
-    text = reading_text(alpha, ad.alpha_stderr, interval, shift, shift_param)
+    text = reading_text(alpha, ad.alpha_stderr, interval, shift, shift_param, _detail(l2, ad))
     return AdaptiveReading(alpha=alpha, alpha_u=ad.alpha_stderr, interval=interval,
                            profile=(np.asarray(a_grid), np.asarray(nll)),
                            close_to_gaussian=interval[1] >= 2.0 - 1e-9, shift=shift,
@@ -439,4 +510,5 @@ def adaptive_reading(model, x, y, *, fits: dict | None = None, alphas=None,
 
 
 __all__ = ["compare_losses", "adaptive_reading", "LossComparison", "AdaptiveReading",
-           "lr_interval", "reading_text", "DEFAULT_LOSSES", "LOSS_TITLES"]
+           "lr_interval", "reading_text", "DEFAULT_LOSSES", "DIFFERENCE_FACTOR", "DIFFERENCE_RULE",
+           "LOSS_TITLES"]

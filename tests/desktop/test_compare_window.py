@@ -6,6 +6,7 @@ data are invented (a line with two gross outliers).
 """
 from __future__ import annotations
 
+import html
 import time
 
 import numpy as np
@@ -75,12 +76,12 @@ def test_comparison_table_and_curves_equal_fitcore(loaded):
         assert t.item(names.index("n down-weighted"), c).data(VALUE_ROLE) == ref.n_downweighted
         alpha = t.item(names.index("alpha"), c).data(VALUE_ROLE)
         assert (alpha is None) == (ref.alpha is None)
-    # least squares is pulled by the two outliers, the robust losses are not: at least
-    # one highlighted pair (common practice: gross outliers move least squares)
-    assert any(e[1] == "l2" for e in expected.differences())
-    # one curve per loss, each the loss's own fitted curve, plus a legend entry each
+    # one curve per loss, each the loss's own fitted curve, each named in the key above
+    # the plot (a legend inside the plot covered points)
     assert set(view.curves) == set(DEFAULT_LOSSES)
-    assert len(view.legend.items) == len(DEFAULT_LOSSES)
+    key = loaded.plot.key_text()
+    for loss in DEFAULT_LOSSES:
+        assert compare_view.loss_short_title(loss) in key
     pens = {view.curves[lo].opts["pen"].color().name() for lo in DEFAULT_LOSSES}
     assert len(pens) == len(DEFAULT_LOSSES)
     for loss, curve in view.curves.items():
@@ -89,9 +90,40 @@ def test_comparison_table_and_curves_equal_fitcore(loaded):
     assert not loaded.plot.curve.isVisible()
     # closing brings back the single fit
     view.close_button.click()
-    assert view.curves == {} and view.comparison is None and view.legend is None
+    assert view.curves == {} and view.comparison is None
+    assert "Huber" not in loaded.plot.key_text()
     assert loaded.plot.curve.isVisible()
-    assert not loaded.compare_dock.isVisible()
+    assert not loaded.compare_pane.is_open
+
+
+def test_shading_follows_the_stated_rule(win):
+    """Invented decay with a run of four high points early on: least squares follows them
+    and differs from the redescending losses by more than 2 combined standard
+    uncertainties; exactly those cells are shaded, and the rule is written under the table
+    (fitcore.compare.DIFFERENCE_RULE: E_n > 1 with k = 2, ISO 13528, from memory)."""
+    from desktop.document import Measurements, Settings
+    from fitcore.compare import DIFFERENCE_RULE
+
+    rng = np.random.default_rng(21)
+    x = np.linspace(0, 10, 60)
+    y = 3.0 * np.exp(-x / 2.5) + 0.5 + rng.normal(0, 0.05, x.size)
+    y[[5, 6, 7, 8]] += 1.5
+    win.load_measurements(Measurements(x, y, x_name="t", y_name="counts"), Settings(model="exp_decay"))
+    assert win.runner.wait()
+    view = run_and_wait(win)
+    expected = side_by_side(win.document)
+    pairs = expected.differences()
+    assert pairs and all(abs(d) > 2 * cu for _p, _a, _b, d, cu in pairs)
+    t = view.table
+    losses = [t.horizontalHeaderItem(c).data(VALUE_ROLE) for c in range(t.columnCount())]
+    names = [t.verticalHeaderItem(r).text() for r in range(t.rowCount())]
+    marks = expected.highlighted()
+    shaded = {(names[r], losses[c]) for r in range(len(expected.param_names)) for c in range(len(losses))
+              if t.item(r, c).background().color().name() == compare_view.DIFF_BG.color().name()}
+    assert shaded == {(p, lo) for lo, ps in marks.items() for p in ps}
+    assert 0 < len(shaded) < len(expected.param_names) * len(losses)  # a highlight that means something
+    assert DIFFERENCE_RULE in html.unescape(view.legend_note.text())
+    assert "2 combined standard uncertainties" in t.item(names.index("A"), 0).toolTip()
 
 
 def test_ticking_another_loss_adds_its_column_and_curve(loaded):
@@ -129,7 +161,7 @@ def test_cancel_stops_and_keeps_the_single_fit(loaded, qtbot):
     doc = loaded.document
     before = doc.result
     view = loaded.compare_view
-    loaded.compare_dock.show()
+    loaded.compare_pane.open()
     assert view.run()
     assert view.cancel_button.isEnabled() and not view.run_button.isEnabled()
     view.cancel_button.click()
@@ -222,7 +254,7 @@ def test_window_keeps_processing_events_during_comparison(loaded):
     speed figure, machine-dependent) is measured by ``bench/bench_analysis.py``.
     """
     view = loaded.compare_view
-    loaded.compare_dock.show()
+    loaded.compare_pane.open()
     QGuiApplication.processEvents()
     gaps, last = [], [time.perf_counter()]
 
@@ -273,10 +305,12 @@ def test_stars_comparison_warns_that_agreement_does_not_clear_high_leverage(win,
     assert not view.leverage_note.isVisible()
 
 
-def test_closing_the_dock_returns_to_the_single_fit(loaded):
+def test_closing_the_tab_returns_to_the_single_fit(loaded):
     view = run_and_wait(loaded)
     assert view.curves and not loaded.plot.curve.isVisible()
-    loaded.compare_dock.close()
+    tabs = loaded.lower_tabs
+    tabs.tabCloseRequested.emit(tabs.indexOf(loaded.compare_pane))  # the tab's close button
+    assert not loaded.compare_pane.is_open
     assert view.curves == {} and view.comparison is None
     assert loaded.plot.curve.isVisible() and loaded.plot.band.isVisible()
 

@@ -53,11 +53,23 @@ def test_table_rows(comparison):
     assert robust_down[0] >= 3  # the three planted outliers are down-weighted
 
 
+def test_difference_rule_is_en_above_one_with_k_2():
+    """The highlight rule is E_n > 1 with expanded uncertainties U = 2u (ISO 13528's E_n
+    number, from memory): |d| / sqrt(U_a^2 + U_b^2) > 1, i.e. |d| > 2 sqrt(u_a^2 + u_b^2);
+    by chance a normal difference exceeds it with probability 2(1 - Phi(2)) = 4.6 %."""
+    assert cmpmod.DIFFERENCE_FACTOR == 2.0
+    assert "E_n > 1" in cmpmod.DIFFERENCE_RULE and "2" in cmpmod.DIFFERENCE_RULE
+    assert 2 * stats.norm.sf(cmpmod.DIFFERENCE_FACTOR) == pytest.approx(0.0455, abs=1e-3)
+
+
 def test_differences_flag_l2_against_robust(comparison):
     diffs = comparison.differences()
     flagged = {(p, a, b) for p, a, b, _, _ in diffs}
-    for robust in ("huber", "cauchy", "tukey", "adaptive"):
+    # the redescending losses reject the run of high points; least squares follows it
+    for robust in ("cauchy", "tukey", "adaptive"):
         assert ("A", "l2", robust) in flagged
+    # the robust losses agree with each other (no pair among them is flagged)
+    assert all("l2" in (a, b) for _p, a, b, _, _ in diffs)
     # every pair is checked against the rule, both ways
     fits = comparison.fitted()
     for j, name in enumerate(comparison.param_names):
@@ -66,9 +78,9 @@ def test_differences_flag_l2_against_robust(comparison):
                 (la, ra), (lb, rb) = fits[ia], fits[ib]
                 delta = rb.values[j] - ra.values[j]
                 cu = math.hypot(ra.stderr[j], rb.stderr[j])
-                assert ((name, la, lb) in flagged) == (abs(delta) > cu)
+                assert ((name, la, lb) in flagged) == (abs(delta) / math.hypot(2 * ra.stderr[j], 2 * rb.stderr[j]) > 1)
     for _p, _a, _b, delta, cu in diffs:
-        assert abs(delta) > cu > 0
+        assert abs(delta) > 2 * cu > 0
     marks = comparison.highlighted()
     assert "A" in marks["l2"] and "A" in marks["tukey"]
 
@@ -210,16 +222,95 @@ def test_reading_reuses_comparison_fits(comparison, decay_with_outliers):
 
 def test_reading_text_rules():
     t = cmpmod.reading_text(1.93, 0.05, (1.83, 2.0), 0.3, "b")
-    assert t == "Tails close to Gaussian (alpha = 1.93 ± 0.05): least squares is adequate."
+    assert t == ("Tails close to Gaussian (alpha = 1.93 ± 0.05); least squares and the adaptive "
+                 "fit agree within 2 combined standard uncertainties (largest difference 0.3, "
+                 "for b): least squares is adequate.")
     t = cmpmod.reading_text(0.21, 0.12, (0.0, 0.45), 3.4, "tau")
-    assert t == ("Heavy tails (alpha = 0.21 ± 0.12): a robust loss changes the answer by "
-                 "up to 3.4 standard uncertainties (tau).")
+    assert t == ("Heavy tails (alpha = 0.21 ± 0.12); least squares and the adaptive fit differ "
+                 "by 3.4 combined standard uncertainties (tau), more than the 2 that chance "
+                 "explains: a robust loss changes the answer.")
     t = cmpmod.reading_text(2.0, None, (1.6, 2.0), 0.2, "a")
     assert "at the upper end of its range; 95 % interval 1.60 to 2.00" in t
     t = cmpmod.reading_text(1.4, 0.2, (1.0, 1.8), 0.5, "a")
-    assert t.startswith("Tails heavier than Gaussian") and "less than one" in t
+    assert t.startswith("Tails heavier than Gaussian") and "agree within 2" in t
     t = cmpmod.reading_text(2.0, None, (1.5, 2.0), 2.5, "a")
-    assert "yet a robust loss changes the answer by 2.5" in t
+    assert "yet least squares and the adaptive fit differ by 2.5" in t
+    # a shift just below / above the rule is never rounded across it
+    assert "largest difference 1.96" in cmpmod.reading_text(1.4, 0.2, (1.0, 1.8), 1.96, "a")
+    assert "differ by 2.04" in cmpmod.reading_text(1.4, 0.2, (1.0, 1.8), 2.04, "a")
+    assert "differ by" not in cmpmod.reading_text(1.4, 0.2, (1.0, 1.8), 2.0, "a")
+    # agreement although least squares is imprecise: said with both yardsticks named
+    detail = {"a": (5.0, 20.0, 1.0), "b": (0.1, 1.0, 1.0)}
+    t = cmpmod.reading_text(0.0, None, (0.0, 0.2), 5.0 / math.hypot(20.0, 1.0), "a", detail)
+    assert "agree within 2 combined standard uncertainties (largest difference 0.2, for a)" in t
+    assert ("Least squares is much less precise here: u(a) = 20 against 1 by the adaptive "
+            "fit, and the least-squares a lies 5 of the adaptive fit's standard "
+            "uncertainties from the adaptive value.") in t
+    # no such sentence when least squares is about as precise, or when the fits differ
+    assert "less precise" not in cmpmod.reading_text(0.0, None, (0.0, 0.2), 1.0, "b",
+                                                    {"b": (1.5, 1.2, 1.0)})
+    assert "less precise" not in cmpmod.reading_text(0.0, None, (0.0, 0.2), 2.4, "a",
+                                                    {"a": (50.0, 20.0, 1.0)})
+
+
+def _reading_claims_hold(r):
+    """Every number the reading states, recomputed from its two fits (one yardstick for
+    'agree'/'differ': the combined u of the rule; the other sentence names its own)."""
+    l2, ad = r.fits["l2"], r.fits["adaptive"]
+    comb = {}
+    for j, name in enumerate(ad.param_names):
+        comb[name] = abs(ad.values[j] - l2.values[j]) / math.hypot(ad.stderr[j], l2.stderr[j])
+    worst = max(comb, key=comb.get)
+    assert r.shift_param == worst and r.shift == pytest.approx(comb[worst], rel=1e-12)
+    import re
+
+    if comb[worst] > 2:
+        said = re.search(rf"differ by ([0-9.]+) combined standard uncertainties \({worst}\)", r.text)
+        assert said and float(said.group(1)) > 2 and "agree" not in r.text
+    else:
+        said = re.search(rf"largest difference ([0-9.]+), for {worst}\)", r.text)
+        assert said and float(said.group(1)) <= 2 and "differ by" not in r.text
+    assert float(said.group(1)) == pytest.approx(comb[worst], abs=0.051)
+    return l2, ad
+
+
+def test_reading_on_data_where_least_squares_moves_beyond_the_rule():
+    """Invented decay with a run of four high points early on: least squares follows them,
+    l2 and adaptive differ in A by more than twice the combined standard uncertainty,
+    and the reading says so (with the pair highlighted by the same rule)."""
+    rng = np.random.default_rng(21)
+    x = np.linspace(0, 10, 60)
+    y = 3.0 * np.exp(-x / 2.5) + 0.5 + rng.normal(0, 0.05, x.size)
+    y[[5, 6, 7, 8]] += 1.5
+    cmp = compare_losses("exp_decay", x, y, losses=("l2", "adaptive"))
+    r = adaptive_reading("exp_decay", x, y, fits=cmp.results, alphas=np.linspace(0, 2, 9))
+    _reading_claims_hold(r)
+    assert r.shift > 3 and "a robust loss changes the answer" in r.text
+    assert (r.shift_param, "l2", "adaptive") in {(p, a, b) for p, a, b, _, _ in cmp.differences()}
+
+
+def test_reading_on_the_dose_response_sample_agrees_and_names_the_imprecise_least_squares():
+    """Sample set 05 (invented dose-response data with gross outliers): least squares and
+    the adaptive fit agree within the rule only because least squares' uncertainty is
+    inflated; the reading says both, with numbers computed from the fits, never 'less than
+    one standard uncertainty' beside a shift of several."""
+    from pathlib import Path
+
+    from fitcore.io import read_table
+
+    t = read_table(Path(__file__).resolve().parents[2] / "sample_sets" / "05_dose_response.ods")
+    x, y = (np.asarray(t.column(c), float) for c in t.numeric_columns()[:2])
+    cmp = compare_losses("logistic4", x, y, losses=("l2", "adaptive"))
+    r = adaptive_reading("logistic4", x, y, fits=cmp.results, alphas=np.linspace(0, 2, 9))
+    l2, ad = _reading_claims_hold(r)
+    assert r.shift <= 2 and cmp.differences() == []
+    own = {n: abs(ad.values[j] - l2.values[j]) / ad.stderr[j] for j, n in enumerate(ad.param_names)
+           if l2.stderr[j] >= 2 * ad.stderr[j]}
+    name = max(own, key=own.get)
+    assert own[name] > 2
+    j = ad.param_names.index(name)
+    assert (f"u({name}) = {l2.stderr[j]:.2g} against {ad.stderr[j]:.2g} by the adaptive fit, "
+            f"and the least-squares {name} lies {own[name]:.3g} of the adaptive fit's") in r.text
 
 
 def test_reading_progress_and_cancel(decay_with_outliers):
@@ -233,10 +324,10 @@ def test_reading_progress_and_cancel(decay_with_outliers):
 
 
 def test_reading_shift_agrees_with_highlighting(comparison, decay_with_outliers):
-    """A shift above one standard uncertainty goes with a highlighted l2/adaptive pair."""
+    """A shift above the rule (2 combined u) goes with a highlighted l2/adaptive pair."""
     x, y = decay_with_outliers
     r = adaptive_reading("exp_decay", x, y, fits=comparison.results,
                          alphas=np.linspace(0, 2, 11))
     pairs = {p for p, a, b, _, _ in comparison.differences() if (a, b) == ("l2", "adaptive")}
     for name, shift in r.shifts.items():
-        assert (shift > 1.0) == (name in pairs)
+        assert (shift > cmpmod.DIFFERENCE_FACTOR) == (name in pairs)
