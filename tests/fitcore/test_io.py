@@ -17,7 +17,9 @@ from __future__ import annotations
 
 import math
 import os
+import shutil
 import stat
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -518,15 +520,37 @@ def test_missing_file_folder_and_permission(tmp_path, monkeypatch):
     monkeypatch.undo()
 
 
-@pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0, reason="root can read files without permission")
+@pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX file permissions")
 def test_unreadable_file_real_permissions(tmp_path):
-    p = write(tmp_path / "locked.csv", "x,y\n1,2\n3,4\n")
+    # root reads any file, so as root the read runs in a forked child that has dropped to
+    # the unprivileged 'nobody' ids (65534, common practice on Linux)
+    folder = Path(tempfile.mkdtemp(prefix="ballast-perm-"))
+    folder.chmod(0o755)
+    p = write(folder / "locked.csv", "x,y\n1,2\n3,4\n")
     p.chmod(0)
     try:
-        with pytest.raises(ReadError, match="permission denied"):
-            read_table(p)
+        if os.geteuid() != 0:
+            with pytest.raises(ReadError, match="permission denied"):
+                read_table(p)
+            return
+        pid = os.fork()
+        if pid == 0:  # child: never return into pytest
+            code = 3
+            try:
+                os.setgid(65534)
+                os.setuid(65534)
+                try:
+                    read_table(p)
+                    code = 1  # read although unreadable
+                except ReadError as err:
+                    code = 0 if "permission denied" in str(err) else 2
+            finally:
+                os._exit(code)
+        _, status = os.waitpid(pid, 0)
+        assert os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0, status
     finally:
         p.chmod(stat.S_IRUSR | stat.S_IWUSR)
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 def test_bad_arguments(tmp_path):
