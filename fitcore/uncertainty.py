@@ -57,6 +57,10 @@ class RankDeficient(Exception):
     """The Jacobian does not determine all parameters."""
 
 
+class CovarianceUnavailable(Exception):
+    """The recipe could not be computed (the estimates stand; their uncertainties do not)."""
+
+
 def inv_jtj(J: np.ndarray, rcond: float | None = None) -> np.ndarray:
     """``(J^T J)^{-1}`` from the SVD of J; raises RankDeficient when J is singular."""
     J = np.asarray(J, dtype=float)
@@ -154,9 +158,10 @@ def _lad_slope(t: np.ndarray, v: np.ndarray) -> float:
     st = float(np.max(np.abs(t))) or 1.0
     A = np.c_[np.ones_like(t), t / st]
     res = optimize.linprog(-v / sv, A_eq=A.T, b_eq=np.zeros(2), bounds=(-1, 1), method="highs")
-    if res.status != 0 or res.eqlin is None:
-        # a least-squares slope of the sorted values (they are monotone, so close)
-        return float(np.polyfit(t, v, 1)[0])
+    if res.status != 0 or res.eqlin is None:  # no other slope is put in its place
+        raise CovarianceUnavailable(
+            f"the L1 sparsity could not be estimated: the linear program for its slope "
+            f"failed (HiGHS status {res.status}: {str(res.message).rstrip('.')})")
     return float(-res.eqlin.marginals[1] * sv / st)
 
 
@@ -171,7 +176,8 @@ def l1_sparsity(r: np.ndarray, p: int) -> float:
     the residuals nearest zero, not the order statistics at ``0.5 +- h``, keeps outliers
     out: at n <= 12 the Hall-Sheather window spans nearly the whole sample. The window
     is further capped to leave out the two residuals farthest from zero, so one or two
-    gross outliers can never enter it, even at n = 8.
+    gross outliers can never enter it, even at n = 8. Raises CovarianceUnavailable when
+    the linear program for the slope fails.
     """
     r = np.asarray(r, dtype=float)
     n = r.size

@@ -34,6 +34,10 @@ def _covariance(st: _Setup, out: _Outcome, theta, r):
         converged = False
         message = f"{e}; the estimates are not unique (hold a parameter or add points)"
         recipe = recipe or "not available"
+    except unc.CovarianceUnavailable as e:  # the estimates stand, without uncertainties
+        cov_free = np.full((k, k), np.nan)
+        recipe = "not available"
+        message += f"; {e}, so the standard uncertainties are not available"
     if (inner.stats or {}).get("exact"):
         cov_free = np.full((k, k), np.nan)
         message += ("; the robust scale is zero, so the uncertainties cannot be estimated "

@@ -8,10 +8,13 @@ standard errors and a simulation).
 """
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pytest
 import statsmodels.api as sm
 
+import fitcore
 from fitcore import uncertainty as U
 from fitcore.losses import efficiency, get_loss
 
@@ -93,3 +96,42 @@ def test_model_based_covariance_is_least_squares_over_the_efficiency():
     np.testing.assert_allclose(C, np.linalg.inv(J.T @ J) / 0.95, rtol=1e-5)
     np.testing.assert_allclose(C, np.linalg.inv(J.T @ J) / efficiency(huber), rtol=1e-9)
     assert recipe == U.RECIPE_M_ABS
+
+
+# ------------------------------------------------------------------ L1 sparsity: no stand-in
+def _failing_linprog(*args, **kwargs):
+    # what scipy.optimize.linprog returns when HiGHS gives up (status 4: numerical
+    # difficulties; scipy's OptimizeResult fields, eqlin absent)
+    return SimpleNamespace(status=4, message="Numerical difficulties encountered.", eqlin=None)
+
+
+def test_l1_sparsity_refuses_when_its_linear_program_fails(monkeypatch):
+    # house rule, no silent fallbacks: a failed LP for the sparsity slope is an error
+    # naming the solver's status, never a least-squares slope put in its place (it was)
+    rng = np.random.default_rng(7)
+    r = rng.laplace(0.0, 1.0, 41)
+    assert U.l1_sparsity(r, 2) > 0  # the LP answers normally
+    monkeypatch.setattr(U, "optimize", SimpleNamespace(linprog=_failing_linprog))
+    with pytest.raises(U.CovarianceUnavailable, match=r"L1 sparsity.*HiGHS status 4: Numerical difficulties"):
+        U.l1_sparsity(r, 2)
+
+
+def test_l1_fit_keeps_its_estimates_and_says_the_uncertainties_are_missing(monkeypatch):
+    # the fit's estimates do not depend on the covariance recipe: with the sparsity LP
+    # failing they equal statsmodels QuantReg(q=0.5) (IRLS, good to ~1e-7 of the
+    # optimum, as in test_l1.py) and the fit without the failure; the standard
+    # uncertainties are NaN and the message says why
+    rng = np.random.default_rng(11)
+    x = np.linspace(0.0, 10.0, 31)
+    y = 1.0 + 2.0 * x + rng.laplace(0.0, 0.5, x.size)
+    y[[4, 17]] += 25.0
+    good = fitcore.fit("line", x, y, loss="l1")
+    monkeypatch.setattr(U, "optimize", SimpleNamespace(linprog=_failing_linprog))
+    bad = fitcore.fit("line", x, y, loss="l1")
+    qr = sm.QuantReg(y, sm.add_constant(x)).fit(q=0.5, max_iter=5000, p_tol=1e-12)
+    np.testing.assert_allclose(bad.values, qr.params, rtol=0, atol=1e-5 * float(np.max(good.stderr)))
+    np.testing.assert_array_equal(bad.values, good.values)
+    assert np.all(np.isfinite(good.stderr)) and np.all(np.isnan(bad.stderr))
+    assert "L1 sparsity could not be estimated" in bad.message
+    assert "standard uncertainties are not available" in bad.message
+    assert bad.covariance_recipe == "not available"
