@@ -95,14 +95,9 @@ class MainWindow(QMainWindow):
         self.runner = FitRunner(self.document, parent=self)
 
         # messages the analyst must read (read notes, a model kept or changed) stay in a
-        # banner above the plot; the status bar only carries passing news
+        # banner above the plot and the estimates (as wide as both: a few lines, not a
+        # column of them over a narrow plot); the status bar only carries passing news
         self.banner = Banner()
-        plot_box = QWidget()
-        plot_lay = QVBoxLayout(plot_box)
-        plot_lay.setContentsMargins(0, 0, 0, 0)
-        plot_lay.setSpacing(0)
-        plot_lay.addWidget(self.banner)
-        plot_lay.addWidget(self.plot, 1)
         self.model_check = Channel(self)
         # files are read (and sessions checked) by jobs in a child process: a slow or
         # hostile file never holds the window, and Cancel ends the read at once
@@ -120,7 +115,7 @@ class MainWindow(QMainWindow):
         self.lower_tabs.setDocumentMode(True)
         self.lower_tabs.addTab(self.table, "Points")
         self.top_split = QSplitter(Qt.Horizontal)
-        self.top_split.addWidget(plot_box)
+        self.top_split.addWidget(self.plot)
         self.top_split.addWidget(self.estimates)
         self.top_split.setStretchFactor(0, 1)
         self.top_split.setStretchFactor(1, 0)
@@ -137,7 +132,13 @@ class MainWindow(QMainWindow):
         scroll.setMinimumWidth(300)
         self.main_split = QSplitter(Qt.Horizontal)
         self.main_split.addWidget(scroll)
-        self.main_split.addWidget(self.centre)
+        right = QWidget()
+        right_lay = QVBoxLayout(right)
+        right_lay.setContentsMargins(0, 0, 0, 0)
+        right_lay.setSpacing(0)
+        right_lay.addWidget(self.banner)
+        right_lay.addWidget(self.centre, 1)
+        self.main_split.addWidget(right)
         self.main_split.setStretchFactor(0, 0)
         self.main_split.setStretchFactor(1, 1)
         self.main_split.setSizes([300, 1180])
