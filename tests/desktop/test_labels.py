@@ -71,9 +71,20 @@ def summary(win) -> dict:
     return dict(summary_lines(win.document.result, win.document.measurements.y_unit))
 
 
+def _for_loss(loss, check, win):
+    try:
+        check(win, loss)
+    except AssertionError as err:
+        raise AssertionError(f"loss {loss}: {err}") from err
+
+
 # ---------------------------------------------------------------- a. the scale shown
-@pytest.mark.parametrize("loss", LOSS_NAMES)
-def test_scale_choice_says_what_the_fit_used(win, loss):
+def test_scale_choice_says_what_the_fit_used(win):
+    for loss in LOSS_NAMES:  # one window for all losses (a window costs ~0.6 s)
+        _for_loss(loss, _check_scale_choice, win)
+
+
+def _check_scale_choice(win, loss):
     show(win, decay(sigma=True), Settings(model="exp_decay", loss=loss, alpha=1.0))
     res = win.document.result
     assert res is not None and res.loss == loss
@@ -158,8 +169,12 @@ def test_formula_parameters_carry_units(win):
 
 
 # ---------------------------------------------------------------- f. the loss in words
-@pytest.mark.parametrize("loss", LOSS_NAMES)
-def test_loss_summary_is_true_for_every_loss(win, loss):
+def test_loss_summary_is_true_for_every_loss(win):
+    for loss in LOSS_NAMES:  # one window for all losses
+        _for_loss(loss, _check_loss_summary, win)
+
+
+def _check_loss_summary(win, loss):
     show(win, calibration(), Settings(model="line", loss=loss, alpha=-2.0))
     res = win.document.result
     lines = summary(win)
