@@ -756,7 +756,7 @@ class MainWindow(QMainWindow):
 
     # ------------------------------------------------------------------ analysis
     def _build_analysis(self):
-        """Loss comparison, point diagnostics and bootstrap (issue 6): menu, dock, note."""
+        """Loss comparison, point diagnostics and bootstrap (issue 6): menu, tabs, note."""
         from PySide6.QtGui import QActionGroup
 
         from .compare_view import CompareView

@@ -95,7 +95,7 @@ class PaneSizer(QObject):
         margins = self.estimates.layout().contentsMargins()
         scroll = getattr(self.window, "estimates_scroll", None)
         if scroll is not None and scroll.verticalScrollBar().isVisible():
-            # a tall pane (e.g. the Unknowns under the estimates) scrolls: its bar takes width
+            # a pane taller than the window (a long summary) scrolls: its bar takes width
             need += scroll.verticalScrollBar().sizeHint().width()
         return int(need + margins.left() + margins.right() + 6)
 

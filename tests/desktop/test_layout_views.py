@@ -196,11 +196,14 @@ def test_comparison_opens_as_a_tab_and_keeps_the_plot(make_win, size):
 @pytest.mark.parametrize("size", SIZES)
 def test_diagnostics_open_as_a_tab_with_every_column_in_view(make_win, size):
     win = open_dose_response(make_win, size)
+    vb = win.plot.data_plot.vb
+    before = vb.sceneBoundingRect().height()
     win.diag_action.setChecked(True)
     assert win.diagnostics.wait()
     settle(win)
     laid_out(win)
     assert win.lower_tabs.currentWidget() is win.diag_pane
+    assert vb.sceneBoundingRect().height() >= 0.9 * before  # the plot keeps its height
     n_extra = win.proxy.columnCount() - len(COLUMNS)
     assert n_extra >= 7  # leverage, studentised residual, largest and 4 per-parameter influences
     # the diagnostics tab: row, x, y and every diagnostic column, none beyond the edge
