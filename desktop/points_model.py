@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-from PySide6.QtCore import QAbstractProxyModel, QAbstractTableModel, QModelIndex, Qt
+from PySide6.QtCore import QAbstractProxyModel, QAbstractTableModel, QModelIndex, Qt, QThread
 from PySide6.QtGui import QBrush, QColor, QFont
 from PySide6.QtWidgets import QStyledItemDelegate
 
@@ -386,8 +386,9 @@ class ReasonDelegate(QStyledItemDelegate):
         super().destroyEditor(editor, index)
 
     def commit_open(self) -> None:
-        """Write the text of an open reason editor into the record (as Return would)."""
-        if self._editor is not None:
+        """Write the text of an open reason editor into the record (as Return would);
+        only on the thread that owns the editor (the GUI thread)."""
+        if self._editor is not None and QThread.currentThread() is self.thread():
             self.commitData.emit(self._editor)
 
 
