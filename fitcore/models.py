@@ -992,6 +992,29 @@ def _logistic4():
             de = d * gg * hill / ec50
         return np.column_stack([1.0 - g, g, dh, de])
 
+    def f_jac(x, p, out=None):
+        # f and jac above with z and g computed once (the same arithmetic, the same
+        # numbers); ``out`` = (f, J) to fill, J column-major (n, 4)
+        bottom, top, hill, ec50 = p
+        x = np.asarray(x, dtype=float).ravel()
+        z, lr = _logistic_z(x, hill, ec50)
+        g = special.expit(-z)
+        d = top - bottom
+        fx = bottom + d * g
+        gg = g * special.expit(z)
+        with np.errstate(invalid="ignore"):
+            dh = np.where(gg == 0.0, 0.0, -d * gg * lr)
+            de = d * gg * hill / ec50
+        if out is None:
+            return fx, np.column_stack([1.0 - g, g, dh, de])
+        f_out, J = out
+        f_out[...] = fx
+        J[:, 0] = 1.0 - g
+        J[:, 1] = g
+        J[:, 2] = dh
+        J[:, 3] = de
+        return f_out, J
+
     def guess(x, y):
         x, y = _finite_pairs(x, y)
         b, t, h, e = _logistic_guess(x, y)
@@ -1006,7 +1029,7 @@ def _logistic4():
                 "height of the transition, top - bottom", "y"),
     )
     return Model(
-        "logistic4", names, f, jac, guess=guess,
+        "logistic4", names, f, jac, guess=guess, f_jac=f_jac,
         lower=(-np.inf, -np.inf, -np.inf, 0.0),
         formula="y = bottom + (top - bottom)/(1 + (x/EC50)**hill)",
         title="Four-parameter logistic (dose-response, x >= 0)",

@@ -175,6 +175,7 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     # reweighted step is already Newton's)
     newton_ok = newton_steps and loss.name != "l2"
     near = near and newton_ok  # (a warm start: try Newton steps at once)
+    shared = prob.model.f_jac is not None and not prob.model.is_linear
     for it in range(1, max_iter + 1):
         J = prob.jac(theta)
         if not np.all(np.isfinite(J)):
@@ -208,7 +209,9 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             step = step_solver.solve(use_lam)
             cand = _project(theta + step, lower, upper)
             step = cand - theta
-            r_new = prob.resid(cand)
+            # (with the Jacobian in the same pass where the model shares the work: kept
+            # for the next iteration, which starts from this candidate once accepted)
+            r_new = prob.resid(cand, with_jac=shared)
             phi_new = _objective(loss, r_new, s) if np.all(np.isfinite(r_new)) else math.inf
             pred = step_solver.predicted_decrease(step) / (s * s)
             gain = (phi - phi_new) / pred if pred > 0 else (1.0 if phi_new <= phi else -1.0)

@@ -373,7 +373,7 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
     loose = dict(xtol=1e-9, ftol=1e-12, polish_steps=False, check=False)
     # the start scale will move: below 200 points (no Newton step from this solve) the
     # first fit need not be exact either
-    first = loose if prob.n >= 200 else dict(loose, xtol=1e-4)
+    first = loose if prob.n >= 200 else dict(loose, xtol=1e-4 if loss.redescending else 1e-2)
     inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **first)
     total = inner.n_iter
     if prob.n >= 200:
@@ -442,10 +442,11 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         # tighter than the loose phase's 1e-9)
         moving = dict(loose, xtol=min(1e-4, max(1e-9, 1e-3 * abs(g - s) / s)))
         s = secant.next(s, g)
-        # (Newton steps at once only for a monotone psi: with a redescending one the
-        # path through several nearby MAD roots must stay the reweighting's own)
+        # (Newton steps at once for a monotone psi; with a redescending one only once
+        # the scale moves by less than 1e-4: until then the path through several
+        # nearby MAD roots must stay the reweighting's own)
         inner = _irls_lm(prob, inner.theta, loss, s, linear=linear, max_iter=max_iter,
-                         near=not loss.redescending, **moving)
+                         near=not loss.redescending or moving["xtol"] <= 1e-7, **moving)
         total += inner.n_iter
     # tight phase: full-accuracy solves until the MAD fixed point is reproduced exactly
     # enough that the result does not depend on the path (e.g. the order of the points)
