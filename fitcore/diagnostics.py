@@ -248,7 +248,7 @@ def _exact_refits(res, idx, settings, p0, base, free, inv_se, infl_free, exact, 
     """
     n = idx.size
     cancelled, done, n_failed = False, 0, 0
-    warm = WarmRefit(res, settings)
+    warm = WarmRefit.from_fit(res, settings)
     with small_problem(n * int(np.count_nonzero(free))):
         for pos, i in enumerate(idx):
             if cancel is not None and cancel():

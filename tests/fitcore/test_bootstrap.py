@@ -176,15 +176,16 @@ def test_progress_and_cancel():
         return asked["n"] > 2
 
     b = bootstrap(res, B=200, cancel=cancel, processes=1)
-    # cancel is asked before every resample, so it is answered within one refit
-    assert b.cancelled and b.n_done == 1
-    assert "cancelled after 1 resamples" in b.method_text
-    # the first chunks do not depend on B (see above): B = 50 replays them
-    full = bootstrap(res, B=2 * CHUNK, processes=1)
-    np.testing.assert_array_equal(b.samples, full.samples[:1])
-    asked["n"] = -40  # now True at the 43rd question: inside the second chunk
+    # cancel is asked before the run, before each chunk and at every iteration of a
+    # chunk's batched refits (fitcore.refits.BatchRefit), so it is answered within one
+    # iteration; a chunk cancelled while it runs is dropped whole
+    assert b.cancelled and b.n_done == 0 and b.samples.shape == (0, 2)
+    assert "cancelled after 0 resamples" in b.method_text
+    # the first chunks do not depend on B (see above)
+    full = bootstrap(res, B=200, processes=1)
+    asked["n"] = -10  # now True at the 13th question: after the first chunk
     b = bootstrap(res, B=200, cancel=cancel, processes=1)
-    assert b.cancelled and CHUNK < b.n_done < 2 * CHUNK
+    assert b.cancelled and CHUNK <= b.n_done < 200 and b.n_done % CHUNK == 0
     np.testing.assert_array_equal(b.samples, full.samples[:b.n_done])
 
 
@@ -284,3 +285,37 @@ def test_shift_warning_names_parameter_and_bias():
     bias, warns = shift_warnings(("a", "b"), np.array([10.0, 2.0]), samples, sd,
                                  np.array([True, False]))
     assert warns == [] and bias[1] == 0.0
+
+
+@pytest.mark.parametrize("model,kind", [("line", "case"), ("logistic4", "residual")])
+def test_batched_refits_equal_full_refits(model, kind):
+    """The resamples are refitted in batches by Newton's method from the full fit
+    (fitcore.refits.BatchRefit): the same values as ``fitcore.fit`` on each resample
+    with the full fit's values as start values (the refit the bootstrap made before),
+    within 1e-6 standard errors. The draws are replayed from the documented streams:
+    chunk j uses default_rng(SeedSequence(seed).spawn(n_chunks)[j]), one draw of n
+    integers per resample."""
+    rng = np.random.default_rng(12)
+    if model == "line":
+        x = np.linspace(0, 10, 30)
+        y = 1.0 + 0.5 * x + rng.standard_t(3, x.size)
+    else:
+        x = np.geomspace(0.01, 100, 25)
+        y = 2.0 + 96.0 / (1 + (x / 1.3) ** 1.1) + rng.normal(0, 2.0, x.size)
+        y[8] -= 30.0
+    res = fitcore.fit(model, x, y, loss="huber")
+    b = bootstrap(res, kind=kind, B=CHUNK, seed=3, processes=1)
+    assert b.n_failed == 0
+    draw = np.random.default_rng(np.random.SeedSequence(3).spawn(1)[0])
+    if kind == "residual":
+        from fitcore.bootstrap import modified_residuals
+        from fitcore.diagnostics import used_mask, whitened
+
+        _, J, r, _ = whitened(res)
+        e = modified_residuals(res, J, r, used_mask(res))
+    out = np.empty((CHUNK, len(res.values)))
+    for i in range(CHUNK):
+        pick = draw.integers(0, x.size, x.size)
+        xb, yb = (x[pick], y[pick]) if kind == "case" else (x, res.fitted + e[pick])
+        out[i] = fitcore.fit(model, xb, yb, loss="huber", p0=res.as_dict()).values
+    np.testing.assert_allclose((b.samples - out) / res.stderr, 0.0, atol=1e-6)
