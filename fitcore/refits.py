@@ -29,9 +29,12 @@ import numpy as np
 
 from .result import FitResult
 from .scale import MAD_CONSTANT
+from .solvers.assemble import _assemble
+from .solvers.dispatch import _run_once
 from .solvers.mscale import _SCALE_JUMP, _is_minimum, _newton_with_mad
 from .solvers.problem import FitError, _project
 from .solvers.setup import _prepare
+from .solvers.start import _passes
 
 #: last Newton step, in standard errors of the parameters, at which a refit counts as
 #: converged (the result is then within about TOL standard errors of the root)
@@ -127,10 +130,6 @@ def first_attempt(model, x, y, sigma, p0: dict, settings: dict) -> np.ndarray | 
     its parameters, no pole among the points) and the result counts as converged:
     ``fit`` returns exactly that attempt then. None otherwise (``fit`` would go on to
     search other starts for a nonlinear model)."""
-    from .solvers.assemble import _assemble
-    from .solvers.dispatch import _run_once
-    from .solvers.start import _passes
-
     kw = _prepare_kw(settings)
     kw["max_iter"] = int(settings.get("max_iter", kw["max_iter"]))
     with warnings.catch_warnings(), np.errstate(all="ignore"):
