@@ -141,11 +141,12 @@ class AdaptivePanel(QGroupBox):
         self.plot.addItem(self.cut)
         self.plot.addItem(self.mark)
         self.plot.setXRange(0, 2, padding=0.02)
-        lay.addWidget(self.plot)
+        # the reading first (in a short tab it is what shows), then the profile
         self.reading = QLabel("")
         self.reading.setWordWrap(True)
         self.reading.setTextInteractionFlags(Qt.TextSelectableByMouse)
         lay.addWidget(self.reading)
+        lay.addWidget(self.plot)
         self.value = None
         self.clear()
 
@@ -284,6 +285,7 @@ class CompareView(QWidget):
             f"loss by {html.escape(DIFFERENCE_RULE)}. Hover for the pairs.")
         self.legend_note.setWordWrap(True)
         left_lay.addWidget(self.legend_note)
+        left_lay.addStretch(0)
         split.addWidget(left)
         self.adaptive = AdaptivePanel()
         side = QScrollArea()  # the suggestion scrolls in a short tab, never pushes the plot
@@ -478,6 +480,10 @@ class CompareView(QWidget):
         t.resizeColumnsToContents()
         need = (t.verticalHeader().width() + t.horizontalHeader().length() + 2 * t.frameWidth()
                 + t.verticalScrollBar().sizeHint().width() + 4)
+        # no taller than its rows: the rule under it stays in view
+        rows = sum(t.rowHeight(r) for r in range(t.rowCount()))
+        t.setMaximumHeight(max(60, rows + t.horizontalHeader().height() + 2 * t.frameWidth()
+                               + t.horizontalScrollBar().sizeHint().height()))
         total = sum(self.split.sizes())
         if total > 0:
             left = min(need, max(total - 240, total // 2))

@@ -183,10 +183,16 @@ def test_comparison_states_the_change_in_the_robust_fits_own_uncertainty(open_wi
     assert in_ad[k] > 3 * in_l2[k]  # the case the note is for
     text = html.unescape(view.adaptive.reading.text())
     name = ad.param_names[k]
-    assert (f"In the adaptive fit's own standard uncertainty {name} moves by "
-            f"{in_ad[k]:.2g} u (by {in_l2[k]:.2g} u of the least-squares fit") in text
+    # one reading, one yardstick for "agree" (the combined u), and the robust fit's own u
+    # named where it is used (was a second note that contradicted the reading)
+    assert ref.text in text and "agree within 2 combined standard uncertainties" in text
+    said = (f"u({name}) = {l2.stderr[k]:.2g} against {ad.stderr[k]:.2g} by the adaptive fit, "
+            f"and the least-squares {name} lies {in_ad[k]:.3g} of the adaptive fit's standard "
+            "uncertainties")
+    assert said in text
+    assert "moves by" not in text
     copied = view.copy()
-    assert copied and f"moves by {in_ad[k]:.2g} u" in QGuiApplication.clipboard().text()
+    assert copied and said in QGuiApplication.clipboard().text()
 
 
 def test_undo_entries_name_the_loss_by_its_title(win):
