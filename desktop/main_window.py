@@ -303,6 +303,7 @@ class MainWindow(QMainWindow):
         self.save_state()
         self.model_check.shutdown(1000)
         self.reader.shutdown(1000)
+        self.method_panel.formula_checker.shutdown(1000)
         self.runner.enabled = False
         self.runner.wait(5000)
         self._shutdown_analysis()

@@ -27,6 +27,7 @@ from fitcore.models import builtin_models, model_short_title, model_title
 
 from .commands import SettingsCommand
 from .document import Document, Settings
+from .jobs import Channel
 
 FORMULA_ITEM = "formula..."
 
@@ -48,11 +49,14 @@ def model_param_names(settings: Settings) -> tuple[str, ...]:
 
 def formula_check(text: str) -> tuple[str, str]:
     """``(level, message)`` for a formula: level "ok", "warn" (valid but almost surely
-    a mistake: it does not use x) or "bad" (refused)."""
-    try:
-        ok, msg, names = validate_formula(text)
-    except Exception as err:  # noqa: BLE001 - formula module not there
-        return "bad", f"formulas are not available ({err})"
+    a mistake: it does not use x) or "bad" (refused). Checked here and now; the panel
+    checks in a child process instead (:meth:`MethodPanel.formula_level`)."""
+    return formula_level_of(validate_formula(text))
+
+
+def formula_level_of(checked) -> tuple[str, str]:
+    """``(level, message)`` from :func:`fitcore.formula.validate_formula`'s answer."""
+    ok, msg, names = checked
     if not ok:
         return "bad", msg
     if "does not use x" in msg:
@@ -141,6 +145,13 @@ class MethodPanel(QWidget):
         self.push = push
         self._updating = False
         self._formula_refused = ""  # message of the last refused formula ("" = none)
+        # formulas are checked by "formula" jobs in a child process, with a time limit
+        # (desktop.jobs): a formula whose check would take long never holds the window
+        self.formula_checker = Channel(self)
+        self.formula_checker.finished.connect(self._formula_checked)
+        self.formula_checker.failed.connect(self._formula_check_failed)
+        self._checks: dict[str, tuple[str, str]] = {}  # formula text -> (level, message)
+        self._check_next: str | None = None  # the newest text waiting for the running check
         #: the formula taken out of the box when a built-in model took over; it comes
         #: back when "formula..." is picked again
         self._set_aside_formula = ""
@@ -302,7 +313,7 @@ class MethodPanel(QWidget):
         text = self.formula_edit.text().strip()
         if not text:
             return
-        level, msg = formula_check(text)
+        level, msg = self.check_formula_now(text)
         if level == "bad":
             self._formula_refused = msg
             self._update_formula_box()
@@ -312,6 +323,44 @@ class MethodPanel(QWidget):
         self._propose(self._prune(s.with_(model=text, model_kind="formula", model_options={})),
                       f"Model: formula {text[:40]}")
         self._update_formula_box()
+
+    # ------------------------------------------------------------ formula checks
+    def formula_level(self, text: str) -> tuple[str, str] | None:
+        """``(level, message)`` of ``text`` when it has been checked; otherwise None, and
+        a check is started (one at a time: a check is never cut short by typing, the
+        newest text waits for it; the box is updated when the answer comes)."""
+        got = self._checks.get(text)
+        if got is not None:
+            return got
+        if self.formula_checker.running:
+            if self.formula_checker.current.payload["text"] != text:
+                self._check_next = text
+        else:
+            self.formula_checker.submit("formula", {"text": text})
+        return None
+
+    def check_formula_now(self, text: str) -> tuple[str, str]:
+        """``(level, message)`` of ``text``, waiting for its check (the window keeps
+        serving events; the check ends within its time limit)."""
+        while (got := self.formula_level(text)) is None:
+            self.formula_checker.wait()
+        return got
+
+    def _remember(self, text: str, answer: tuple[str, str]) -> None:
+        if len(self._checks) > 256:
+            self._checks.pop(next(iter(self._checks)))
+        self._checks[text] = answer
+        nxt, self._check_next = self._check_next, None
+        if nxt is not None and nxt not in self._checks:
+            self.formula_checker.submit("formula", {"text": nxt})
+        self._update_formula_box()
+
+    def _formula_checked(self, checked):
+        self._remember(self.formula_checker.last.payload["text"], formula_level_of(checked))
+
+    def _formula_check_failed(self, message: str):
+        # past its time limit, or an error in the checker: refused, with the reason
+        self._remember(self.formula_checker.last.payload["text"], ("bad", message))
 
     def fitted_model_text(self) -> str:
         """What the settings' model is, in words (for "the estimates shown are for ...")."""
@@ -342,8 +391,11 @@ class MethodPanel(QWidget):
         elif not text:
             colour = WARN_COLOUR
             msg = f"Type a formula in x. Until then the estimates are for {html.escape(shown)}."
+        elif (got := self.formula_level(text)) is None:
+            colour = "#555555"
+            msg = "Checking the formula..."
         else:
-            level, check = formula_check(text)
+            level, check = got
             colour = {"ok": OK_COLOUR, "warn": WARN_COLOUR, "bad": BAD_COLOUR}[level]
             msg = html.escape(check)
             if not applied:

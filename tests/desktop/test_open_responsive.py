@@ -136,3 +136,22 @@ def test_cancel_of_a_read_leaves_the_work_as_it_was(win, errors, tmp_path, write
     # the next open is served (a new child replaces the one Cancel ended)
     assert win.open_path(str(write_demo_csv(tmp_path / "again.csv", n=24)))
     assert win.runner.wait() and doc.n == 24
+
+
+def test_formula_typed_in_the_panel_is_checked_off_the_window(win):
+    """The issue's power towers typed into the formula box: refused with the bound's
+    message, checked in the child (the window serves events meanwhile), the fit on
+    screen untouched."""
+    panel = win.method_panel
+    doc = win.document
+    before = doc.result
+    i = panel.model_combo.findData("formula...")
+    panel.model_combo.setCurrentIndex(i)
+    panel.model_combo.activated.emit(i)
+    for text in ("(((3*a)**999)**999)**999+x", "(((2*x)**1000)**1000)**1000*a"):
+        panel.formula_edit.setText(text)
+        assert panel.formula_checker.running or panel.formula_level(text) is not None  # not checked inline
+        gap, _ = longest_gap(lambda: panel.formula_edit.editingFinished.emit())
+        assert gap < MAX_GAP_S
+        assert "Not applied" in panel.formula_msg.text() and "exponent" in panel.formula_msg.text()
+        assert doc.settings.model == "line" and doc.result is before

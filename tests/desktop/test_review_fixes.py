@@ -146,6 +146,7 @@ def test_formula_without_x_is_a_warning_naming_the_stray_variable(make_win):
     panel = win.method_panel
     pick(panel.model_combo, "formula...")
     panel.formula_edit.setText("A*exp(-t/tau)+C")
+    assert panel.formula_checker.wait()  # checked in a child process (desktop.jobs)
     msg = panel.formula_msg.text()
     assert "#1a7f37" not in msg  # not green
     assert "#b45309" in msg or "#b42318" in msg

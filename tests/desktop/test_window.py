@@ -306,8 +306,10 @@ def test_formula_field_validates_live_and_sets_the_model(loaded):
     panel.model_combo.activated.emit(i)
     assert panel.formula_edit.isEnabled()
     panel.formula_edit.setText("a*exp(-x/")
+    assert panel.formula_checker.wait()  # checked in a child process (desktop.jobs)
     assert "#b42318" in panel.formula_msg.text()  # refused, shown in red
     panel.formula_edit.setText("a + b*x + c*x**2")
+    assert panel.formula_checker.wait()
     assert "parameters" in panel.formula_msg.text() and "#1a7f37" in panel.formula_msg.text()
     panel.formula_edit.editingFinished.emit()
     assert loaded.runner.wait()
