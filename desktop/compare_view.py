@@ -19,6 +19,7 @@ is shown as a tab of the window's tab area (``desktop.pane_layout.AnalysisTab``)
 from __future__ import annotations
 
 import html
+import logging
 
 import numpy as np
 import pyqtgraph as pg
@@ -38,6 +39,8 @@ from .document import Document
 from .estimates_view import fmt_value
 from .job_kinds import run_here
 from .jobs import Channel
+
+log = logging.getLogger(__name__)
 
 #: Qt dash patterns for the registry's dash names (each loss's pen is in its row of
 #: fitcore.losses.LOSSES)
@@ -505,7 +508,8 @@ class CompareView(QWidget):
             with np.errstate(all="ignore"):
                 try:
                     yhat = np.asarray(r.predict(grid), float)
-                except Exception:  # noqa: BLE001 - a curve that cannot be evaluated
+                except Exception:  # a curve that cannot be evaluated: not drawn, logged
+                    log.debug("comparison curve of %s not drawn", loss, exc_info=True)
                     continue
             good = np.isfinite(yhat)
             pen = loss_pen(loss)

@@ -31,6 +31,7 @@ first request, and the parent keeps one idle child warm, so a job starts at once
 """
 from __future__ import annotations
 
+import logging
 import base64
 import dataclasses
 import inspect
@@ -57,6 +58,8 @@ from fitcore.model_choice import ModelChoice, ModelScore, choose_model
 from fitcore.models import resolve_model
 from fitcore.result import FitResult
 from fitcore.session import load_session
+
+log = logging.getLogger(__name__)
 
 #: above this many points an analysis runs in a thread instead: such fits are long numpy
 #: calls that leave the GIL free for long stretches (measured: 12 ms longest event gap
@@ -126,7 +129,8 @@ def run_fit(request: dict):
         return res, None
     except ValueError as err:  # FitError and formula/model errors are ValueErrors
         return None, str(err)
-    except Exception as err:  # noqa: BLE001 - an engine bug must not take the window down: told in the status bar
+    except Exception as err:  # an engine bug must not take the window down: told in the status bar, logged
+        log.warning("the fit stopped with an internal error", exc_info=True)
         return None, f"the fit stopped with an internal error ({internal_error(err)})"
 
 

@@ -27,6 +27,7 @@ is throttled to one signal per ``progress_ms``. Cancel does not wait for the wor
 """
 from __future__ import annotations
 
+import logging
 import threading
 import time
 from typing import Any
@@ -35,6 +36,8 @@ from PySide6.QtCore import QCoreApplication, QDeadlineTimer, QObject, QRunnable,
 
 from . import job_kinds
 from .job_kinds import Cancelled, TimeLimit, internal_error
+
+log = logging.getLogger(__name__)
 
 __all__ = ["Cancelled", "Channel", "Job", "TimeLimit"]
 
@@ -66,7 +69,8 @@ def _outcome(token, kind, payload, where, time_limit, stop: threading.Event, pro
         if stop.is_set():
             return token, None, None, True, time.perf_counter() - t0
         return token, None, str(err) or type(err).__name__, False, time.perf_counter() - t0
-    except Exception as err:  # noqa: BLE001 - a job must never take the window down: reported through 'failed'
+    except Exception as err:  # a job must never take the window down: reported through 'failed', logged
+        log.warning("%s job stopped with an internal error", kind, exc_info=True)
         if stop.is_set():
             return token, None, None, True, time.perf_counter() - t0
         return token, None, internal_error(err), False, time.perf_counter() - t0

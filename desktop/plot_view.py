@@ -15,6 +15,7 @@ Interaction (the plot only *requests* changes; the document owns the state):
 """
 from __future__ import annotations
 
+import logging
 from typing import Callable
 
 import numpy as np
@@ -28,6 +29,8 @@ from fitcore.work import curve_grid
 
 from .commands import MaskCommand
 from .document import Document
+
+log = logging.getLogger(__name__)
 
 #: number of size levels the weights are quantised to
 N_LEVELS = 8
@@ -377,7 +380,8 @@ class GridItem(pg.GraphicsObject):
             for ax, lo, hi, size in ((axes[0], x0, x1, right - left), (axes[1], y0, y1, bottom - top)):
                 try:
                     levels.append(ax.tickValues(lo, hi, size)[:2])
-                except Exception:  # noqa: BLE001 - an axis that cannot tick: no grid lines
+                except Exception:  # an axis that cannot tick: no grid lines, logged
+                    log.debug("no grid lines for an axis", exc_info=True)
                     levels.append([])
             self._tick_key, self._ticks = key, levels
         levels = self._ticks
@@ -834,7 +838,8 @@ class PlotView(pg.GraphicsLayoutWidget):
         with np.errstate(all="ignore"):
             try:
                 yhat = np.asarray(res.predict(grid), float)
-            except Exception:  # noqa: BLE001 - a model that cannot evaluate: no curve
+            except Exception:  # a model that cannot evaluate: no curve, logged
+                log.debug("fitted curve not drawn", exc_info=True)
                 yhat = np.full(grid.size, np.nan)
             ok = np.isfinite(yhat)
             self.curve.setData(self._tx(grid[ok]), self._ty(yhat[ok]))
@@ -846,7 +851,8 @@ class PlotView(pg.GraphicsLayoutWidget):
                     if self.log_y:  # (``~False`` is -1, which made every band fail here)
                         ok &= (b_lo > 0) & (b_hi > 0)
                     self.band.set_band(self._tx(grid[ok]), self._ty(b_lo[ok]), self._ty(b_hi[ok]))
-                except Exception:  # noqa: BLE001 - no band (e.g. dof = 0)
+                except Exception:  # no band (e.g. dof = 0), logged
+                    log.debug("confidence band not drawn", exc_info=True)
                     self.band.set_band([], [], [])
         self._set_residual_points()
         self._auto_resid_range()
