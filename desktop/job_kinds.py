@@ -53,7 +53,7 @@ from fitcore.bootstrap import build_model as _rebuild_model
 from fitcore.compare import AdaptiveReading, LossComparison, adaptive_reading, compare_losses
 from fitcore.diagnostics import PointDiagnostics, point_diagnostics
 from fitcore.formula import validate_formula
-from fitcore.io import Dialect, Table, read_table
+from fitcore.io import Dialect, Table, read_clipboard_text, read_table
 from fitcore.model_choice import ModelChoice, ModelScore, choose_model
 from fitcore.models import resolve_model
 from fitcore.result import FitResult
@@ -381,6 +381,10 @@ def _read_run(p, progress, cancel):
     return read_table(p["path"], p.get("sheet"))
 
 
+def _paste_run(p, progress, cancel):
+    return read_clipboard_text(p["text"])
+
+
 def _plain(p):
     return dict(p)
 
@@ -425,6 +429,8 @@ KINDS: dict[str, Kind] = {
                         to_wire=_arrays_wire, from_wire=_arrays_unwire),
     "read": Kind(run=_read_run, title="reading the file", where=lambda p: "process",
                  to_wire=_plain, from_wire=_plain),
+    "paste": Kind(run=_paste_run, title="reading the pasted table", where=lambda p: "process",
+                  to_wire=_plain, from_wire=_plain),
     "session": Kind(run=_session_run, title="checking the session", where=lambda p: "process",
                     to_wire=_plain, from_wire=_plain, time_limit=20.0),
     "formula": Kind(run=_formula_run, title="checking the formula", where=lambda p: "process",

@@ -9,8 +9,8 @@ Everything slow that the window does off its GUI thread goes through here::
     job.cancel()                                # or channel.cancel()
 
 A **kind** names the work (a row of :data:`desktop.job_kinds.KINDS`: "fit", "compare",
-"diagnostics", "bootstrap", "model_check", "read", "formula"); the payload is a dict
-of plain values. The kind decides **where** the job runs, hidden from the caller: in
+"diagnostics", "bootstrap", "model_check", "read", "paste", "session", "formula"); the
+payload is a dict of plain values. The kind decides **where** the job runs, hidden from the caller: in
 a worker thread (short fits, large analyses whose numpy calls leave the GIL free), or
 in a child process driven from that thread (many short fits, file reading and
 formula checks, which would otherwise hold the GIL away from the window, and which

@@ -456,14 +456,14 @@ class MainWindow(QMainWindow):
             dialogs.error_box(self, "Nothing to paste", "The clipboard holds no text. Copy a block "
                               "of cells in a spreadsheet first.")
             return False
-        try:
-            from fitcore.io import read_clipboard_text
-
-            table = read_clipboard_text(text)
-        except (ValueError, ImportError) as err:
-            dialogs.error_box(self, "Cannot read the pasted table", str(err))
+        job = self.run_job("paste", {"text": text}, "Reading the pasted table...")
+        if job.state == "cancelled":
+            self.statusBar().showMessage("Pasting cancelled; nothing changed.", 6000)
             return False
-        return self._load_table(table, None)
+        if job.state == "failed":
+            dialogs.error_box(self, "Cannot read the pasted table", job.message)
+            return False
+        return self._load_table(job.result, None)
 
     def _load_table(self, table, columns, settings: Settings | None = None, name: str = "") -> bool:
         """Show a table's columns as the new data, with a method that can fit them.
