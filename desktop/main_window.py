@@ -659,6 +659,8 @@ class MainWindow(QMainWindow):
         self.document.set_selection(self.selected_points(), origin="table")
 
     def _on_document(self, event, **info):
+        if event == "data" and hasattr(self, "diag_table"):
+            self._split_columns()
         if event == "selection" and info.get("origin") != "table":
             self._select_rows(self.document.selection)
         elif event == "result":
@@ -844,15 +846,19 @@ class MainWindow(QMainWindow):
             self.diag_pane.remove()
 
     def _split_columns(self, *_):
-        """The points table shows the data and fit columns, the diagnostics tab the point's
-        row, x, y and the diagnostic columns (one model, one selection)."""
+        """The points table shows the data and fit columns (sigma only when the data have
+        one), the diagnostics tab the point's row, x, y and the diagnostic columns (one
+        model, one selection)."""
         from .points_model import COL, COLUMNS
 
         base = len(COLUMNS)
         keep = (COL["#"], COL["x"], COL["y"])
+        m = self.document.measurements
+        no_sigma = m is None or getattr(m, "sigma", None) is None
         for c in range(self.proxy.columnCount()):
             extra = c >= base
-            self.table.setColumnHidden(c, extra)
+            # (an empty sigma column would only narrow the reason column)
+            self.table.setColumnHidden(c, extra or (c == COL["sigma_y"] and no_sigma))
             self.diag_table.setColumnHidden(c, not (extra or c in keep))
         header = self.diag_table.horizontalHeader()
         for c in keep:  # as wide as in the points table

@@ -11,7 +11,7 @@ tab area of the points table and the analyses.
 * until the analyst drags a pane border (remembered in the settings; from then on the
   saved widths are kept), sizes the panes on every window resize and every new result: the method
   panel about a fifth of the width (236-300 px), the estimates pane as wide as its
-  table needs (within 42 % of the window), the plot the rest; the tab area under the
+  table needs (within 45 % of the window), the plot the rest; the tab area under the
   plot and the estimates takes their whole width.
 """
 from __future__ import annotations
@@ -25,10 +25,10 @@ METHOD_MIN, METHOD_MAX = 236, 300
 #: share of the height the plot and the estimates get over the tab area (points table)
 TOP_SHARE = 0.56
 ESTIMATES_MIN = 250
-#: widest the estimates pane gets, as a share of the window (it needs ~370-415 px for a
-#: table with units and intervals; at 1000 px that is 37-42 %)
-EST_SHARE = 0.42
-CENTRE_MIN = 340
+#: widest the estimates pane gets, as a share of the window (it needs ~370-435 px for a
+#: table with units and intervals on the sample sets; at 1000 px that is 37-44 %)
+EST_SHARE = 0.45
+CENTRE_MIN = 320
 #: QSettings key: the analyst has dragged a pane border (then the saved widths stay)
 BY_HAND_KEY = "window/panes_by_hand"
 
@@ -91,7 +91,9 @@ class PaneSizer(QObject):
             need -= max(header.sectionSize(last), table.sizeHintForColumn(last),
                         header.sectionSizeHint(last))
             need += max(table.sizeHintForColumn(last), header.sectionSizeHint(last))
-        need += 2 * table.frameWidth() + table.verticalScrollBar().sizeHint().width()
+        need += 2 * table.frameWidth()
+        if table.verticalScrollBar().isVisible() or table.verticalScrollBar().maximum() > 0:
+            need += table.verticalScrollBar().sizeHint().width()  # more rows than show
         margins = self.estimates.layout().contentsMargins()
         scroll = getattr(self.window, "estimates_scroll", None)
         if scroll is not None and scroll.verticalScrollBar().isVisible():

@@ -107,6 +107,8 @@ def test_estimates_cells_rebuilt_once_per_result_and_only_greyed_on_exclusion(ma
 SIZES = [(1000, 650), (1400, 900)]
 #: rows of the points table that must show (about a third of a sample set)
 MIN_ROWS = {(1000, 650): 8, (1400, 900): 12}
+#: width of the reason column (px)
+MIN_REASON = {(1000, 650): 100, (1400, 900): 120}
 
 
 def laid_out(win, rounds=6):
@@ -143,7 +145,10 @@ def test_every_estimate_column_and_enough_points_rows_show(make_win, size):
     win = make_win(*size)
     # the widest estimates (long intervals and units: tracer decay) and the most rows
     # (four parameters and two derived values: dose-response), the last one stays open
-    for sample in ("02_tracer_decay.csv", "05_dose_response.ods"):
+    # (two-trends: the longest intervals and units; photometric: long column names,
+    # no sigma column)
+    for sample in ("07_two_trends.csv", "01_photometric_calibration.csv",
+                   "02_tracer_decay.csv", "05_dose_response.ods"):
         assert win.open_path(str(dialogs.SAMPLE_DIR / sample))
         settle(win)
         laid_out(win)
@@ -152,10 +157,13 @@ def test_every_estimate_column_and_enough_points_rows_show(make_win, size):
         assert not est.horizontalScrollBar().isVisible(), sample
         last = est.rowCount() - 1  # every parameter and derived value without scrolling
         assert est.rowViewportPosition(last) + est.rowHeight(last) <= est.viewport().height(), sample
-    table = win.table
-    assert columns_inside(table) == []
-    reason = table.horizontalHeader().sectionSize(COL["reason"])
-    assert reason >= 120, reason  # a reason can be read (was 56 px at 1400 x 900)
+        table = win.table
+        assert columns_inside(table) == [], sample
+        reason = table.horizontalHeader().sectionSize(COL["reason"])
+        # a reason can be read (was 56 px at 1400 x 900, 51 px at 1000 x 650)
+        assert reason >= MIN_REASON[size], (sample, reason)
+        # the sigma column only when the data have one
+        assert table.isColumnHidden(COL["sigma_y"]) == (win.document.measurements.sigma is None)
     rows = table.viewport().height() / table.verticalHeader().defaultSectionSize()
     assert rows >= MIN_ROWS[size], rows
 

@@ -260,6 +260,8 @@ def test_points_table_headers_are_not_cut_at_the_default_size(make_win):
     header = win.table.horizontalHeader()
     fm = header.fontMetrics()
     for c in range(win.proxy.columnCount() - 1):  # (the last column takes the rest)
+        if win.table.isColumnHidden(c):  # (sigma, when the data have none)
+            continue
         text = str(win.proxy.headerData(c, Qt.Horizontal))
         need = max(fm.horizontalAdvance(line) for line in text.split("\n"))
         assert header.sectionSize(c) >= need, text
