@@ -97,13 +97,10 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
     last = [None]  # the previous trial shape's best log c: the next one's Newton start
 
     def best_c(a, start):
-        f = lambda lc: _nll(r, a, lc)  # noqa: E731
+        # (the likelihood equation has one root: no other c to compare with)
         lc = _best_log_c(r, a, lo_c, hi_c, start if last[0] is None else last[0])
         last[0] = lc
-        val = f(lc)
-        if lo_c <= start <= hi_c and f(start) < val:
-            lc, val = start, f(start)
-        return lc, val
+        return lc, _nll(r, a, lc)
 
     cache = {}
 
