@@ -78,6 +78,9 @@ def _same(w, before):
 def test_hostile_files_never_hold_the_window(win, errors, tmp_path, qtbot):
     tables, extra = _corpus(tmp_path / "hostile")
     sessions = [c for c in extra if c["kind"] == "session"]
+    # the catalogue check of a poorly fitting model (a child job of up to 20 s of fits
+    # here, tested in test_file_flow) is not what this test measures: left out
+    win._start_model_check = lambda m, settings, problem: None
     # a session holding a power tower (the issue: opening one froze the window for 15-25 s)
     tower = tmp_path / "tower.ballast"
     x = np.arange(1.0, 9.0)
