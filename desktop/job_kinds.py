@@ -633,6 +633,7 @@ def run_in_child(request: dict, progress=None, cancel=None, model=None, poll_s: 
             _give_back(child)
         else:
             child.end()
+            warm_up()  # the next job (after a Cancel: usually another try) finds a warm child
 
 
 if __name__ == "__main__":
