@@ -2,14 +2,16 @@
 
 Usage (from the project root)::
 
-    python bench/bench_analysis.py [--n 500] [--cold 25] [--reps 3]
+    python bench/bench_analysis.py [--n 500] [--cold 25] [--reps 3] [--check 100] [--no-window]
 
 1. Point diagnostics (fitcore.diagnostics.point_diagnostics) on a robust line through
    ``--n`` points (Student-t noise, 3 dof): the time of all exact leave-one-out refits
    (warm-started from the full fit) against the same refits started cold, i.e.
    ``fitcore.fit`` with one point excluded, timed for ``--cold`` points and scaled to
    ``n``. Printed: seconds for each and their ratio (same run, same machine).
-2. The loss comparison in the window (offscreen): the longest gap between ticks of a
+2. Bootstrap B = 999 of a 25-point 4PL Huber fit: the batched Newton refits against the
+   per-resample full refits they replace (time, and agreement on ``--check`` resamples).
+3. The loss comparison in the window (offscreen): the longest gap between ticks of a
    10 ms timer while the comparison runs in the worker, against the time the same
    comparison takes in this process (the gap it would cause if it ran in the GUI
    thread); and how long a child process takes to answer a cancel asked at once.
@@ -61,6 +63,71 @@ def bench_diagnostics(n: int, n_cold: int) -> None:
             fitcore.fit("line", x, y, loss=loss, excluded=excl)
         cold = (time.perf_counter() - t0) * n / n_cold
         print(f"{loss:8s} {warm:8.2f} {cold:8.2f} {cold / warm:9.1f}")
+
+
+def bench_bootstrap(n_check: int) -> None:
+    """Bootstrap B = 999 of a 25-point 4PL Huber fit (bench_small's data), in this
+    process: the batched Newton refits (fitcore.refits.BatchRefit) against the
+    per-resample full refits they replace (``fitcore.fit`` from the full fit's values,
+    timed on the first ``n_check`` resamples and scaled to B); and how far the batched
+    samples are from those full refits on the same resamples."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_small import logistic_data
+
+    from fitcore.bootstrap import CHUNK, bootstrap, modified_residuals
+    from fitcore.diagnostics import used_mask, whitened
+
+    x, y = logistic_data()
+    res = fitcore.fit("logistic4", x, y, loss="huber")
+    n = x.size
+    B = 999
+    n_check = max(CHUNK, (n_check // CHUNK) * CHUNK)
+    print()
+    print(f"bootstrap B = {B}, 25-point 4PL Huber, one process: batched refits vs full refits "
+          f"(full refits timed on the first {n_check} resamples, scaled to B)")
+    print(f"{'kind':9s} {'batched s':>9s} {'full s':>8s} {'full/batched':>12s}  agreement on "
+          f"the first {n_check} resamples")
+    _, J, r, _ = whitened(res)
+    e = modified_residuals(res, J, r, used_mask(res))
+    seeds = np.random.SeedSequence(1).spawn(-(-B // CHUNK))
+    for kind in ("residual", "case"):
+        t0 = time.perf_counter()
+        b = bootstrap(res, kind, B=B, seed=1, processes=1)
+        t_batch = time.perf_counter() - t0
+        allv = bootstrap(res, kind, B=n_check, seed=1, processes=1)
+        # replay the draws of the first chunks (documented streams) and refit each fully
+        full = np.full((n_check, 4), np.nan)
+        t0 = time.perf_counter()
+        for j in range(n_check // CHUNK):
+            rng = np.random.default_rng(seeds[j])
+            for i in range(CHUNK):
+                pick = rng.integers(0, n, n)
+                xb, yb = (x[pick], y[pick]) if kind == "case" else (x, res.fitted + e[pick])
+                try:
+                    rf = fitcore.fit("logistic4", xb, yb, loss="huber", p0=res.as_dict(),
+                                     max_iter=200)
+                except (fitcore.FitError, ValueError, ArithmeticError):
+                    continue
+                if rf.converged:
+                    full[j * CHUNK + i] = rf.values
+        t_full = (time.perf_counter() - t0) * B / n_check
+        # the bootstrap's samples drop failed rows: rebuild its rows from its chunks
+        from fitcore.bootstrap import _run_chunk
+        from fitcore.diagnostics import refit_settings
+        job = {"kind": kind, "x": x, "y": y, "sigma": None, "p0": res.as_dict(),
+               "settings": refit_settings(res), "model": res.model, "values": res.values,
+               "free": res.free, "scale": res.scale, "converged": True, "resid": e,
+               "fitted": res.fitted}
+        ours = np.vstack([_run_chunk(job, seeds[j], CHUNK) for j in range(n_check // CHUNK)])
+        assert np.allclose(ours[np.all(np.isfinite(ours), axis=1)], allv.samples)
+        both = np.all(np.isfinite(ours), axis=1) & np.all(np.isfinite(full), axis=1)
+        d = np.max(np.abs(ours[both] - full[both]) / res.stderr, axis=1)
+        only_full = int(np.sum(~np.all(np.isfinite(ours), axis=1) & np.all(np.isfinite(full), axis=1)))
+        only_ours = int(np.sum(np.all(np.isfinite(ours), axis=1) & ~np.all(np.isfinite(full), axis=1)))
+        print(f"{kind:9s} {t_batch:9.2f} {t_full:8.1f} {t_full / t_batch:12.1f}  "
+              f"{int(np.sum(d <= 1e-6))} equal within 1e-6 se, {int(np.sum(d > 1e-6))} at "
+              f"another root (max {d.max():.2g} se), failed only here {only_full}, only in "
+              f"the full refit {only_ours}; batched run: {b.n_failed} of {B} failed")
 
 
 def _demo_csv(path: Path, n: int = 30, seed: int = 3) -> Path:
@@ -141,8 +208,12 @@ def main(argv=None) -> int:
     ap.add_argument("--cold", type=int, default=25, help="cold refits timed (scaled to n)")
     ap.add_argument("--reps", type=int, default=3)
     ap.add_argument("--no-window", action="store_true", help="skip the window part")
+    ap.add_argument("--check", type=int, default=100,
+                    help="bootstrap: resamples refitted fully to compare with (0: skip)")
     args = ap.parse_args(argv)
     bench_diagnostics(args.n, args.cold)
+    if args.check:
+        bench_bootstrap(args.check)
     if not args.no_window:
         bench_window(args.reps)
     return 0

@@ -212,12 +212,16 @@ class BatchRefit:
         for j, b in enumerate(rows):
             p = self.p_fixed.copy()
             p[free] = theta[b]
-            if model.f_jac is not None:
-                f, Jf = model.f_jac(X[b], p)
-            else:
-                f, Jf = model.f(X[b], p), model.jac(X[b], p)
-            R[j] = Y[b] - np.asarray(f, float)
-            JJ[j] = np.asarray(Jf, float).reshape(m, k_all)
+            try:
+                if model.f_jac is not None:
+                    f, Jf = model.f_jac(X[b], p)
+                else:
+                    f, Jf = model.f(X[b], p), model.jac(X[b], p)
+                R[j] = Y[b] - np.asarray(f, float)
+                JJ[j] = np.asarray(Jf, float).reshape(m, k_all)
+            except (ValueError, ArithmeticError, TypeError):
+                R[j] = np.nan  # the model cannot be evaluated there: this row fails
+                JJ[j] = np.nan
         J = JJ if free.all() else JJ[:, :, free]
         if SIG is not None:
             R /= SIG[rows]
@@ -262,7 +266,7 @@ class BatchRefit:
             return np.full(R.shape[0], self.s_start)
         return MAD_CONSTANT * np.median(np.abs(R), axis=1)
 
-    def _irls(self, X, Y, SIG, theta, max_iter: int = 100):
+    def _irls(self, X, Y, SIG, theta, max_iter: int = 60):
         """Levenberg-Marquardt steps of the reweighted least-squares problem, one step per
         scale update (the MAD of the current residuals), until the step is below 1e-3
         standard errors and the scale moves by less than 1e-4; returns where that
@@ -290,11 +294,11 @@ class BatchRefit:
             dg = np.diagonal(Gm, axis1=1, axis2=2)
             th = theta[active]
             # the step at the current damping; a step that does not lower the objective
-            # at this scale is retried with more damping (up to 8 times) before moving on
+            # at this scale is retried with more damping (up to 4 times) before moving on
             accepted = np.zeros(active.size, bool)
             step = np.zeros_like(th)
             todo = fine.copy()
-            for _try in range(8):
+            for _try in range(4):
                 if not todo.any():
                     break
                 Md = Gm + lam[active][:, None, None] * np.eye(th.shape[1]) * dg[:, :, None]
