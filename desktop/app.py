@@ -12,6 +12,9 @@ import subprocess
 import sys
 from pathlib import Path
 
+from fitcore import __version__  # the package alone: no numpy (see one_blas_thread)
+from fitcore.threads import limit_process
+
 # The shared libraries Qt's xcb platform plugin needs that a minimal Linux install
 # often lacks, with the Debian/Ubuntu package that provides each (README, "Linux").
 XCB_PACKAGES = {
@@ -48,8 +51,6 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version() -> str:
-    from fitcore import __version__
-
     return __version__
 
 
@@ -135,8 +136,6 @@ def one_blas_thread() -> None:
     for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
         os.environ.setdefault(var, "1")
     if "numpy" in sys.modules:  # loaded already (embedded use): set the libraries directly
-        from fitcore.threads import limit_process
-
         limit_process(1)
 
 

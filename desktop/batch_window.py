@@ -22,10 +22,14 @@ from PySide6.QtWidgets import (
     QProgressBar, QPushButton, QSpinBox, QSplitter, QTableView, QVBoxLayout, QWidget,
 )
 
+import fitcore
+from fitcore.batch import (BatchError, BatchSpec, default_jobs, find_files, fit_sources, result_columns,
+                           row_cells, write_rows)
 from fitcore.losses import loss_title
 
 from . import dialogs
 from .document import Measurements
+from .main_window import FILE_FILTER, model_title
 from .method_panel import sigma_fixes_scale
 
 NONE = "(none)"
@@ -38,16 +42,12 @@ class ResultsModel(QAbstractTableModel):
 
     def __init__(self, param_names=(), parent=None):
         super().__init__(parent)
-        from fitcore.batch import result_columns
-
         self.param_names = list(param_names)
         self.columns = result_columns(self.param_names)
         self.rows: list = []
         self._cells: list[list] = []
 
     def reset(self, param_names):
-        from fitcore.batch import result_columns
-
         self.beginResetModel()
         self.param_names = list(param_names)
         self.columns = result_columns(self.param_names)
@@ -55,15 +55,13 @@ class ResultsModel(QAbstractTableModel):
         self.endResetModel()
 
     def add_rows(self, rows):
-        from fitcore.batch import _cells
-
         if not rows:
             return
         first = len(self.rows)
         self.beginInsertRows(QModelIndex(), first, first + len(rows) - 1)
         for row in rows:
             self.rows.append(row)
-            cells = _cells(row, len(self.param_names))
+            cells = row_cells(row, len(self.param_names))
             cells[0] = os.path.basename(row.source)  # the full path is in the tooltip
             self._cells.append(cells)
         self.endInsertRows()
@@ -139,8 +137,6 @@ class _Runner(QObject):
         self._stop.set()
 
     def _run(self):
-        from fitcore.batch import BatchError, fit_sources
-
         buf, last = [], time.monotonic()
         message = ""
         try:
@@ -170,8 +166,6 @@ class BatchWindow(QDialog):
 
     def __init__(self, main_window, parent=None):
         super().__init__(parent or main_window)
-        from fitcore.batch import default_jobs
-
         self.main = main_window
         self.setWindowTitle("Ballast - Fit many files")
         self.setWindowFlag(Qt.WindowMaximizeButtonHint, True)
@@ -286,8 +280,6 @@ class BatchWindow(QDialog):
 
     def refresh_method(self):
         """Show (and take for the next run) the method on screen in the main window."""
-        from .main_window import model_title
-
         s = self.main.document.settings
         self.settings = s
         parts = [model_title(s), f"loss {loss_title(s.loss)}"]
@@ -308,8 +300,6 @@ class BatchWindow(QDialog):
                                   "main window's method panel)")
 
     def add_paths(self, paths):
-        from fitcore.batch import find_files
-
         have = {self.paths.item(i).text() for i in range(self.paths.count())}
         for p in paths:
             p = str(p)
@@ -323,8 +313,6 @@ class BatchWindow(QDialog):
                     break
 
     def _offer_columns(self, path) -> bool:
-        import fitcore
-
         try:
             table = fitcore.read_table(path)
         except (ValueError, OSError):
@@ -343,8 +331,6 @@ class BatchWindow(QDialog):
         return True
 
     def add_files_dialog(self):
-        from .main_window import FILE_FILTER
-
         paths, _ = QFileDialog.getOpenFileNames(self, "Files to fit", "", FILE_FILTER)
         self.add_paths(paths)
 
@@ -366,8 +352,6 @@ class BatchWindow(QDialog):
 
     # ------------------------------------------------------------------ running
     def make_spec(self):
-        from fitcore.batch import BatchSpec
-
         self.refresh_method()
         s = self.settings
         kw = s.to_fit_kwargs()
@@ -380,8 +364,6 @@ class BatchWindow(QDialog):
 
     def run(self):
         """Fit every curve of the listed files with the method on screen."""
-        import fitcore
-
         if self.runner is not None:
             return
         paths = [self.paths.item(i).text() for i in range(self.paths.count())]
@@ -461,8 +443,6 @@ class BatchWindow(QDialog):
         batch's method; the window fits it as usual. False when refused or cancelled."""
         import numpy as np
 
-        import fitcore
-
         spec = self.spec
         name = " / ".join(t for t in (os.path.basename(row.source), row.sheet, row.group, row.y) if t)
         if not self.main.sessions.confirm_replace(name):
@@ -499,8 +479,6 @@ class BatchWindow(QDialog):
             self.save(path)
 
     def save(self, path) -> bool:
-        from fitcore.batch import write_rows
-
         try:
             write_rows(Path(path), list(self.model.rows), self.model.param_names)
         except OSError as exc:
@@ -512,9 +490,9 @@ class BatchWindow(QDialog):
 
 def open_batch_window(main_window) -> BatchWindow:
     """Show the main window's batch window (one per window, made on first use)."""
-    win = getattr(main_window, "_batch_window", None)
+    win = main_window.findChild(BatchWindow)  # its child: made on first use, then kept
     if win is None:
-        win = main_window._batch_window = BatchWindow(main_window)
+        win = BatchWindow(main_window)
     win.refresh_method()
     win.show()
     win.raise_()

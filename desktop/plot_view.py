@@ -28,7 +28,7 @@ from PySide6.QtGui import QBrush, QColor, QPainter, QPen, QPixmap
 from fitcore.work import curve_grid
 
 from .commands import MaskCommand
-from .document import Document
+from .document import Document, MaskChange
 
 log = logging.getLogger(__name__)
 
@@ -102,7 +102,8 @@ class PointsItem(pg.GraphicsObject):
 
     def __init__(self, scale: float = 1.0):
         super().__init__()
-        self._scale = float(scale)  # symbol size factor (the residual plot uses smaller)
+        #: symbol size factor (the residual plot uses smaller symbols)
+        self.symbol_scale = float(scale)
         self.x = np.zeros(0)
         self.y = np.zeros(0)
         self.level = np.zeros(0, np.int8)
@@ -114,7 +115,7 @@ class PointsItem(pg.GraphicsObject):
         self._frags = pg_internals.PrimitiveArray(QPainter.PixmapFragment, 10)
         self._atlas = None
         self._atlas_dpr = None
-        self._cell = int(np.ceil(MAX_SIZE * self._scale)) + 6
+        self._cell = int(np.ceil(MAX_SIZE * self.symbol_scale)) + 6
         self._pos_version = 0
         self._style_version = 0
         self._dev_key = None   # (transform, position version) of the cached device coordinates
@@ -123,6 +124,11 @@ class PointsItem(pg.GraphicsObject):
         self._n_frags = 0
 
     # ------------------------------------------------------------- data
+    @property
+    def finite(self) -> np.ndarray:
+        """Mask of the points drawn (finite x and y); do not modify it."""
+        return self._finite
+
     def set_points(self, x, y):
         """New positions (plot coordinates; NaN = not drawn)."""
         self.prepareGeometryChange()
@@ -200,7 +206,7 @@ class PointsItem(pg.GraphicsObject):
                 row = st + 3 * sel
                 fill, edge = COLOURS[st]
                 for lev in range(N_LEVELS):
-                    d = level_size(N_LEVELS - 1 if st == EXCLUDED else lev) * self._scale
+                    d = level_size(N_LEVELS - 1 if st == EXCLUDED else lev) * self.symbol_scale
                     cx, cy = (lev + 0.5) * cell, (row + 0.5) * cell
                     if sel:
                         p.setPen(QPen(SELECT_COLOUR, 3.0))
@@ -683,19 +689,26 @@ class PlotView(pg.GraphicsLayoutWidget):
         self.vb_data.box_mode = self.vb_resid.box_mode = bool(on)
 
     # ---------------------------------------------------------------- coordinates
-    def _tx(self, x):
+    def to_view_x(self, x):
+        """Data x as plotted: log10 x on a log axis (NaN where x <= 0), else x itself."""
         if not self.log_x:
             return np.asarray(x, float)
         with np.errstate(all="ignore"):
             x = np.asarray(x, float)
             return np.where(x > 0, np.log10(np.where(x > 0, x, 1.0)), np.nan)
 
-    def _ty(self, y):
+    def to_view_y(self, y):
+        """Data y as plotted: log10 y on a log axis (NaN where y <= 0), else y itself."""
         if not self.log_y:
             return np.asarray(y, float)
         with np.errstate(all="ignore"):
             y = np.asarray(y, float)
             return np.where(y > 0, np.log10(np.where(y > 0, y, 1.0)), np.nan)
+
+    # the old private names, still called by compare_view and diagnostics_view (being
+    # rewritten by a colleague this session); switch them to the public names and drop these
+    _tx = to_view_x
+    _ty = to_view_y
 
     def point_scene_pos(self, index: int, residual: bool = False) -> QPointF:
         """Scene position of one point (for tests and tooltips)."""
@@ -703,6 +716,11 @@ class PlotView(pg.GraphicsLayoutWidget):
         return item.mapToScene(QPointF(item.x[index], item.y[index]))
 
     # ---------------------------------------------------------------- document
+    def detach(self) -> None:
+        """Stop following the document (a copy of the view made for an export, before
+        it is deleted)."""
+        self.document.unsubscribe(self._on_document)
+
     def _on_document(self, event, **info):
         if event == "data":
             m = self.document.measurements
@@ -732,7 +750,7 @@ class PlotView(pg.GraphicsLayoutWidget):
 
     def _set_positions(self):
         m = self.document.measurements
-        self.points.set_points(self._tx(m.x), self._ty(m.y))
+        self.points.set_points(self.to_view_x(m.x), self.to_view_y(m.y))
         self._set_residual_points()
 
     def residual_values(self):
@@ -760,13 +778,13 @@ class PlotView(pg.GraphicsLayoutWidget):
         if standardised:
             shown = np.clip(r, -RESID_CLIP, RESID_CLIP)
             beyond = np.flatnonzero(np.isfinite(r) & (np.abs(r) > RESID_CLIP))
-            tx = self._tx(m.x)
+            tx = self.to_view_x(m.x)
             for i in beyond:
                 up = r[i] > 0
                 arrows_x.append(tx[i])
                 arrows_y.append((RESID_CLIP + 0.7) * (1 if up else -1))
                 arrows_sym.append("t1" if up else "t")
-        self.resid_points.set_points(self._tx(m.x), shown)
+        self.resid_points.set_points(self.to_view_x(m.x), shown)
         self.resid_arrows.setData(arrows_x, arrows_y, symbol=arrows_sym or "t")
         self.resid_arrows.setToolTip(
             f"{len(arrows_x)} residual(s) beyond {RESID_CLIP:g} scales, drawn at the edge" if arrows_x else "")
@@ -842,7 +860,7 @@ class PlotView(pg.GraphicsLayoutWidget):
                 log.debug("fitted curve not drawn", exc_info=True)
                 yhat = np.full(grid.size, np.nan)
             ok = np.isfinite(yhat)
-            self.curve.setData(self._tx(grid[ok]), self._ty(yhat[ok]))
+            self.curve.setData(self.to_view_x(grid[ok]), self.to_view_y(yhat[ok]))
             self.band.setVisible(self.show_band and self.single_fit_visible)
             if self.show_band:
                 try:
@@ -850,7 +868,7 @@ class PlotView(pg.GraphicsLayoutWidget):
                     ok = np.isfinite(b_lo) & np.isfinite(b_hi)
                     if self.log_y:  # (``~False`` is -1, which made every band fail here)
                         ok &= (b_lo > 0) & (b_hi > 0)
-                    self.band.set_band(self._tx(grid[ok]), self._ty(b_lo[ok]), self._ty(b_hi[ok]))
+                    self.band.set_band(self.to_view_x(grid[ok]), self.to_view_y(b_lo[ok]), self.to_view_y(b_hi[ok]))
                 except Exception:  # no band (e.g. dof = 0), logged
                     log.debug("confidence band not drawn", exc_info=True)
                     self.band.set_band([], [], [])
@@ -874,7 +892,7 @@ class PlotView(pg.GraphicsLayoutWidget):
             return
         vb.enableAutoRange(x=True, y=False)
         pts = self.resid_points
-        r = pts.y[pts._finite] if pts._any_finite else np.zeros(0)
+        r = pts.y[pts.finite]
         if r.size == 0:
             return
         lo, hi = float(r.min()), float(r.max())
@@ -956,8 +974,6 @@ class PlotView(pg.GraphicsLayoutWidget):
             return
         if not reason:
             return
-        from .document import MaskChange
-
         now = [doc.times[int(i)] for i in new]
         change = MaskChange(indices=new.astype(np.intp), before=np.ones(new.size, bool),
                             after=np.ones(new.size, bool),

@@ -36,12 +36,13 @@ from PySide6.QtSvg import QSvgRenderer
 from PySide6.QtWidgets import QApplication, QFileDialog, QInputDialog
 
 from . import dialogs
-from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PointsItem, level_size
-from fitcore.report import DataRecord
+from .plot_view import COLOURS, EXCLUDED, N_LEVELS, PlotView, PointsItem, level_size
+from fitcore.report import DataRecord, curve_csv, points_csv
 from fitcore.report_html import REPORT_MAX_ROWS, REPORT_PLOT_SIZE, Unknowns, estimates_copy, report_plot
 from fitcore.report_html import report_html as build_report_html
 from fitcore.work import curve_grid
 from fitcore.report_plot import LEGEND_TEXT
+from fitcore.session import temporary_beside, write_atomically
 
 LEVEL = 0.95
 #: points in the curve/band CSV
@@ -188,7 +189,7 @@ class _VectorPoints(PointsItem):
             st = int(self.style[i])
             fill, edge = COLOURS[st]
             lev = N_LEVELS - 1 if st == EXCLUDED else int(self.level[i])
-            r = level_size(lev) * self._scale / 2
+            r = level_size(lev) * self.symbol_scale / 2
             c = QPointF(float(pts[0, k]), float(pts[1, k]))
             if st == EXCLUDED:
                 p.setPen(QPen(edge, 1.6))
@@ -208,8 +209,6 @@ class _ExportPlot:
     """A hidden copy of the window's plot at an exact pixel size (same view and options)."""
 
     def __init__(self, window, width: int, height: int):
-        from .plot_view import PlotView
-
         src = window.plot
         self.document = window.document
         self.view = PlotView(self.document, lambda _cmd: None)
@@ -232,7 +231,7 @@ class _ExportPlot:
         v = self.view
         for plot, name in ((v.data_plot, "points"), (v.resid_plot, "resid_points")):
             old = getattr(v, name)
-            new = _VectorPoints(old._scale)
+            new = _VectorPoints(old.symbol_scale)
             new.set_points(old.x, old.y)
             new.set_style(old.level, old.style, np.zeros(old.x.size, bool))
             new.setZValue(old.zValue())
@@ -257,7 +256,7 @@ class _ExportPlot:
 
     def close(self):
         try:
-            self.document.unsubscribe(self.view._on_document)
+            self.view.detach()
         finally:
             self.view.hide()
             self.view.deleteLater()
@@ -300,8 +299,6 @@ def write_plot_svg(window, path, width: int, height: int) -> None:
             p.end()
         del gen
         buf.close()
-        from fitcore.session import write_atomically
-
         write_atomically(path, bytes(data), verify=check_svg)
     finally:
         ex.close()
@@ -348,8 +345,6 @@ def check_pdf(path) -> None:
 def install_printed_pdf(tmp, path) -> None:
     """Check the PDF printer's finished file ``tmp`` and write it over ``path``
     atomically (OSError, the old file kept, when either is incomplete)."""
-    from fitcore.session import write_atomically
-
     try:
         check_pdf(tmp)
     except ValueError as err:
@@ -547,8 +542,6 @@ class ReportExporter:
         return path
 
     def _write_text(self, path: str, text: str, what: str) -> bool:
-        from fitcore.session import write_atomically
-
         try:
             write_atomically(path, text.encode("utf-8"))
         except OSError as err:
@@ -635,8 +628,6 @@ class ReportExporter:
 
     def write_curve_csv(self, path=None) -> str:
         """Fitted curve and confidence band on a fine grid over the data's x range."""
-        from fitcore.report import curve_csv
-
         res = self._result("export")
         if res is None:
             return ""
@@ -649,8 +640,6 @@ class ReportExporter:
 
     def write_points_csv(self, path=None) -> str:
         """Per point: x, y, sigma, fitted, residual, std residual, weight, status, reason."""
-        from fitcore.report import points_csv
-
         res = self._result("export")
         if res is None:
             return ""
@@ -688,8 +677,6 @@ class ReportExporter:
                 write_plot_svg(self.window, path, w, h)
             elif fmt == "png":
                 img = plot_image(self.window, w, h)
-                from fitcore.session import write_atomically
-
                 write_atomically(path, _png_bytes(img), verify=check_png)
             else:
                 raise ValueError(f"plots are exported as .png or .svg, not .{fmt}")
@@ -800,8 +787,6 @@ class ReportExporter:
         path = self._target("Write report (PDF)", "-report.pdf", "PDF (*.pdf)", path)
         if not path:
             return ""
-        from fitcore.session import temporary_beside
-
         try:  # the printer's own file, named as write_atomically names its debris
             fd, tmp = temporary_beside(os.path.abspath(path))
             os.close(fd)

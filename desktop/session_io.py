@@ -38,12 +38,34 @@ import os
 from pathlib import Path
 
 import numpy as np
-from fitcore.session import Session
+from fitcore import __version__
+from fitcore.session import (
+    WRITTEN_FOLDERS_NAME,
+    Session,
+    SessionError,
+    claim_recovery,
+    clean_debris,
+    clean_written_folders,
+    file_sha256,
+    load_json_bounded,
+    load_session,
+    new_recovery_owner,
+    note_written_folders_in,
+    orphaned_recovery,
+    read_bounded_file,
+    recovery_path,
+    release_recovery,
+    save_session_text,
+    session_to_json,
+    set_aside_damaged,
+    window_recovery_path,
+)
 from PySide6.QtCore import QObject, QStandardPaths, QTimer
 from PySide6.QtWidgets import QFileDialog, QMessageBox
 
 from . import dialogs
 from .document import MaskChange
+from .unknowns_view import clean_samples
 
 SESSION_FILTER = "Ballast sessions (*.ballast);;All files (*)"
 #: quiet time after the last change before the recovery file is written
@@ -161,8 +183,6 @@ def clean_view(raw) -> dict:
     if out.get("colour_by") not in (None, *COLOUR_MODES):
         out.pop("colour_by")
     if "unknowns" in out:
-        from .unknowns_view import clean_samples
-
         out["unknowns"] = clean_samples(out["unknowns"])
     return out
 
@@ -184,8 +204,6 @@ def apply_view(window, view: dict) -> None:
 def session_json(session, view: dict | None = None) -> str:
     """The session's JSON text (:func:`fitcore.session.session_to_json`) with the
     window's ``"view"`` object added at the top level."""
-    from fitcore.session import session_to_json
-
     text = session_to_json(session)
     if not view:
         return text
@@ -195,16 +213,12 @@ def session_json(session, view: dict | None = None) -> str:
 
 def write_session(path, session, view: dict | None = None) -> Path:
     """Write a session with its view atomically (temporary file, fsync, rename)."""
-    from fitcore.session import save_session_text
-
     return save_session_text(path, session_json(session, view))
 
 
 def write_recovery_with_view(session, folder, for_path=None, view: dict | None = None, target=None) -> Path:
     """:func:`fitcore.session.write_recovery`, keeping the view too (into ``target``
     when given: a window's own recovery file)."""
-    from fitcore.session import SessionError, recovery_path
-
     folder = Path(folder)
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -217,8 +231,6 @@ def write_recovery_with_view(session, folder, for_path=None, view: dict | None =
 
 def read_view(path) -> dict | None:
     """The ``"view"`` stored in a session file, or None when it has none (older files)."""
-    from fitcore.session import SessionError, load_json_bounded, read_bounded_file
-
     try:
         doc = load_json_bounded(read_bounded_file(path).decode("utf-8-sig"))
     except (SessionError, UnicodeDecodeError):
@@ -258,13 +270,6 @@ class SessionManager(QObject):
         self._forget_recovery = False  # the user chose to discard the work on screen
         self.source_sha256 = ""
         self.last_recovery: Path | None = None
-        from fitcore.session import (
-            WRITTEN_FOLDERS_NAME,
-            new_recovery_owner,
-            note_written_folders_in,
-            window_recovery_path,
-        )
-
         # every folder written to is noted, so the next start removes crashed writers' debris
         note_written_folders_in(self.recovery_dir / WRITTEN_FOLDERS_NAME)
         #: this window's own recovery file (with a lock naming this process); a window
@@ -310,8 +315,6 @@ class SessionManager(QObject):
 
     @staticmethod
     def _hash_source(source: str) -> str:
-        from fitcore.session import file_sha256
-
         if source and os.path.isfile(source):
             try:
                 return file_sha256(source)
@@ -386,8 +389,6 @@ class SessionManager(QObject):
 
     def save_to(self, path) -> bool:
         """Write the session to ``path`` atomically; a failure says why, loses nothing."""
-        from fitcore.session import SessionError
-
         if not self.document.has_data:
             dialogs.error_box(self.window, "Nothing to save", "Open measurements first.")
             return False
@@ -428,8 +429,6 @@ class SessionManager(QObject):
 
     def open_session(self, path) -> bool:
         """Open a session file. A bad file: a clear message, the current work stays."""
-        from fitcore.session import SessionError, load_session
-
         run_job = getattr(self.window, "run_job", None)
         if run_job is not None:  # read and check it in a child process first (desktop.jobs)
             job = run_job("session", {"path": str(path)}, f"Opening {os.path.basename(str(path))}...")
@@ -510,8 +509,6 @@ class SessionManager(QObject):
         self.last_check = session.reproduces(doc.result)
         if not self.last_check:
             made = session.ballast_version or "an unknown version"
-            from fitcore import __version__
-
             dialogs.error_box(
                 self.window, "Estimates differ from the saved ones",
                 f"Refitting the saved data and method gives estimates that differ from those "
@@ -521,10 +518,6 @@ class SessionManager(QObject):
     # ------------------------------------------------------------------ recovery
     def autosave(self):
         """Write the recovery file now (normally called by the debounce timer)."""
-        from fitcore.session import SessionError
-
-        from fitcore.session import claim_recovery
-
         if not self.has_unsaved_work():  # nothing a crash could lose: no recovery file
             return None
         try:
@@ -543,8 +536,6 @@ class SessionManager(QObject):
 
     def discard_recovery(self):
         """Delete this window's own recovery file and lock (never another window's)."""
-        from fitcore.session import release_recovery
-
         self._timer.stop()
         release_recovery(self.own_recovery)
         self._claimed = False
@@ -560,17 +551,6 @@ class SessionManager(QObject):
         Leftover temporary files of dead writers are removed first (in the recovery
         folder and every folder Ballast wrote into, :func:`fitcore.session.clean_written_folders`).
         """
-        from fitcore.session import (
-            WRITTEN_FOLDERS_NAME,
-            SessionError,
-            clean_debris,
-            clean_written_folders,
-            load_session,
-            orphaned_recovery,
-            release_recovery,
-            set_aside_damaged,
-        )
-
         clean_debris(self.recovery_dir)
         clean_written_folders(self.recovery_dir / WRITTEN_FOLDERS_NAME)
         for orphan in orphaned_recovery(self.recovery_dir):

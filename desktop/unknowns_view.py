@@ -34,6 +34,10 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
+from fitcore.calibration import DetectionLimits, InversePrediction, flags, limits_lines, read_back, unknowns_text
+
+from .estimates_view import fmt_value, interval_text, unc_text
+
 LEVEL = 0.95
 # models whose detection limits are shown before any unknown is pasted: the usual
 # calibration functions (common practice: ISO 8466-1/-2 straight and quadratic lines)
@@ -304,8 +308,6 @@ class UnknownsView(QWidget):
     def recompute(self) -> None:
         """Read every unknown back off the current result (``fitcore.calibration.read_back``,
         what the library's calibration report does)."""
-        from fitcore.calibration import read_back
-
         res = self.document.result
         self.for_result = res
         self.results = []
@@ -337,8 +339,6 @@ class UnknownsView(QWidget):
 
     def text(self, fmt: str = "plain", full_precision: bool = False) -> str:
         """The unknowns and limits in a copy format ("" when there is nothing to say)."""
-        from fitcore.calibration import unknowns_text
-
         if self.for_result is None or not (self.samples or self.lof is not None):
             return ""  # the lack-of-fit test alone is worth a copy (replicate standards)
         return unknowns_text(self.items(), fmt, level=LEVEL, limits=self.limits, lof=self.lof,
@@ -347,10 +347,6 @@ class UnknownsView(QWidget):
 
     # ------------------------------------------------------------------ showing
     def _fill(self):
-        from fitcore.calibration import InversePrediction, flags, limits_lines
-
-        from .estimates_view import fmt_value, interval_text, unc_text
-
         self._filling = True
         try:
             grey = self.stale
@@ -398,8 +394,6 @@ class UnknownsView(QWidget):
 
     def _short_limits(self, x_unit: str) -> str:
         """One compact line per figure; the full rules are in the tooltip and the copies."""
-        from fitcore.calibration import DetectionLimits
-
         if self.for_result is None:
             return ""
         u = f" {_h(x_unit)}" if x_unit else ""
@@ -424,8 +418,6 @@ class UnknownsView(QWidget):
 
     def mark_segments(self):
         """Read-back marks as x/y arrays of segment pairs (data coordinates)."""
-        from fitcore.calibration import InversePrediction
-
         res = self.for_result
         m = self.document.measurements
         if res is None or m.n == 0:
@@ -445,7 +437,7 @@ class UnknownsView(QWidget):
             return
         xs, ys = self.mark_segments()
         if xs.size and self.plot is not None:
-            tx, ty = self.plot._tx(xs), self.plot._ty(ys)
+            tx, ty = self.plot.to_view_x(xs), self.plot.to_view_y(ys)
             ok = np.isfinite(tx) & np.isfinite(ty)
             ok = ok.reshape(-1, 2).all(axis=1).repeat(2)  # whole segments only
             self.marks.setData(tx[ok], ty[ok])

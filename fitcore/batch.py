@@ -68,6 +68,7 @@ __all__ = [
     "fit_sources",
     "iter_fit_many",
     "result_columns",
+    "row_cells",
     "rows_table",
     "write_rows",
 ]
@@ -882,7 +883,9 @@ def result_columns(param_names: Iterable[str]) -> list[str]:
     return cols + ["scale", "alpha", "warnings", "error"]
 
 
-def _cells(row: BatchRow, k: int) -> list:
+def row_cells(row: BatchRow, k: int) -> list:
+    """One row's cells in the order of :func:`result_columns` for ``k`` parameters (None
+    for an empty cell; a failed curve has None for every value and uncertainty)."""
     cells: list = [row.source, row.sheet, row.group, row.y, row.n_used, row.n_excluded,
                    None if row.converged is None else bool(row.converged)]
     if row.values:
@@ -898,7 +901,7 @@ def rows_table(rows: Iterable[BatchRow], param_names) -> Iterator[list]:
     names = list(param_names)
     yield result_columns(names)
     for row in rows:
-        yield _cells(row, len(names))
+        yield row_cells(row, len(names))
 
 
 def _text_cell(v) -> str:
