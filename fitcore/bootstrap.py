@@ -57,7 +57,12 @@ from .solve import FitError, fit
 from .threads import limit_process, small_problem
 
 CHUNK = 25  # resamples per chunk (fixed: it defines the random streams)
-POOL_MIN_SECONDS = 4.0  # use the pool (processes=None) when the rest would take longer
+#: use the pool (processes=None) when the rest would take longer than this here. A worker
+#: costs 1-1.5 s to start (numpy, scipy and fitcore imported afresh) and the pool gains at
+#: most 2x on 2 cores, nothing when the other core is busy: measured with the batched
+#: refits, B = 999 case resamples of a 25-point 4PL took 5.5 s in this process and 9.1 s
+#: with 2 workers on a loaded 2-core machine (bench/bench_small.py --only analyses)
+POOL_MIN_SECONDS = 12.0
 KINDS = ("case", "residual")
 #: steps per inner solve of a resample's fallback refit (where the batched Newton refit
 #: did not settle): a few case resamples of a 4PL (e.g. one holding too few points of a
