@@ -89,3 +89,30 @@ def test_adaptive_scale_step_is_the_likelihood_minimum(alpha):
         assert math.exp(lc) == pytest.approx(math.sqrt(np.mean(r * r)), rel=1e-12)
     # a floor above the minimum holds the scale there
     assert _best_log_c(r, alpha, lc + 0.5, hi, start=0.0) == lc + 0.5
+
+
+def test_small_qr_steps_equal_numpy_least_squares():
+    # the LM step min ||r - J s||^2 + lam ||D s||^2 from LAPACK's QR of [J | r] (and of
+    # [R; sqrt(lam) I] when damped), against numpy's SVD least squares on the stacked
+    # system; a rank-deficient J falls back to the SVD solve (minimum-norm step)
+    from fitcore.solvers.lm import _StepSolver
+
+    rng = np.random.default_rng(3)
+    for trial in range(40):
+        n, k = int(rng.integers(3, 40)), int(rng.integers(1, 5))
+        if n <= k:
+            continue
+        J = rng.normal(size=(n, k)) * 10.0 ** rng.uniform(-3, 3, k)
+        deficient = trial % 5 == 0 and k > 1
+        if deficient:
+            J[:, -1] = J[:, 0]
+        r = rng.normal(size=n)
+        D = np.sqrt(np.einsum("ij,ij->j", J, J))
+        solver = _StepSolver(J, r, D)
+        for lam in (0.0, 1e-6, 1e-2, 10.0):
+            got = solver.solve(lam)
+            M = np.vstack([J / D, np.sqrt(lam) * np.eye(k)])
+            want = np.linalg.lstsq(M, np.concatenate([r, np.zeros(k)]), rcond=None)[0] / D
+            if deficient:
+                assert not solver.direct
+            assert np.allclose(got * D, want * D, rtol=1e-8, atol=1e-8), (trial, lam)
