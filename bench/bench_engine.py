@@ -16,6 +16,9 @@ it recycles them; a fresh block costs a page fault per 4 KiB on first touch, whi
 this size is as dear as the arithmetic. The two states give different ratios for the
 same code, so both are printed.
 
+Also: a least-squares line at 1e6 points in fresh processes, time and peak memory against
+the data's size, with the extended-precision refinement gated (now) and forced (before).
+
 Run: python bench/bench_engine.py [--quick]
 """
 from __future__ import annotations
@@ -124,6 +127,54 @@ def robust_decay(n, repeat):
     print(f"  target: ratio <= 0.5;  tau: Ballast {res['tau']:.6f}, scipy {sp.x[1]:.6f}")
 
 
+LS_MEMORY_CODE = r"""
+import resource, sys, time, tracemalloc
+import numpy as np
+import fitcore
+from fitcore.solvers import dispatch
+n = int(sys.argv[1])
+rng = np.random.default_rng(0)
+x = rng.uniform(0, 10, n)
+y = 1 + 2 * x + rng.normal(0, 1, n)
+fitcore.fit("line", x[:1000], y[:1000])  # imports and caches before the measurement
+if sys.argv[2] == "always":
+    dispatch._needs_refinement = lambda prob: True
+rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+tracemalloc.start()
+t = time.perf_counter()
+r = fitcore.fit("line", x, y)
+t = time.perf_counter() - t
+peak = tracemalloc.get_traced_memory()[1]
+tracemalloc.stop()
+rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+print(t, peak, (rss - rss0) * 1024, x.nbytes + y.nbytes, repr(r.values[1]))
+"""
+
+
+def ls_line_memory(n):
+    """Least-squares line at n points in fresh processes: time and peak memory (the
+    largest traced allocation, tracemalloc; and the growth of ru_maxrss, in bytes on
+    Linux) against the data's size (x and y), with the extended-precision refinement as
+    it now runs (only when the conditioning needs it: not for this line) and forced."""
+    import subprocess
+
+    rows = {}
+    for mode in ("gated", "always"):
+        out = subprocess.run([sys.executable, "-c", LS_MEMORY_CODE, str(n), mode],
+                             capture_output=True, text=True, check=True).stdout.split()
+        t, peak, rss, data = float(out[0]), int(out[1]), int(out[2]), int(out[3])
+        rows[mode] = (t, peak, rss, data, out[4])
+    print(f"least-squares line, n = {n:.0e} (fresh processes; data = x and y, "
+          f"{rows['gated'][3] / 1e6:.0f} MB)")
+    for mode, label in (("gated", "refinement when needed (now)"),
+                        ("always", "refinement always (before)")):
+        t, peak, rss, data, slope = rows[mode]
+        print(f"  {label:30s} {t * 1e3:8.1f} ms  peak traced {peak / data:5.2f}x data, "
+              f"max RSS growth {rss / data:5.2f}x data  slope {slope}")
+    print(f"  time ratio now/before {rows['gated'][0] / rows['always'][0]:.2f}; "
+          f"target: peak < 3x data ({'met' if rows['gated'][1] < 3 * rows['gated'][3] else 'NOT met'})")
+
+
 def main():
     quick = "--quick" in sys.argv
     try:
@@ -136,6 +187,7 @@ def main():
     print("[fresh process]")
     robust_decay(n_decay, rep)
     robust_line(10**5 if quick else 10**6, 3 if quick else 5)
+    ls_line_memory(10**5 if quick else 10**6)
     print("[after the line fit freed its large arrays]")
     robust_decay(n_decay, rep)
 
