@@ -192,9 +192,10 @@ def create_window(args, qsettings=None, recovery_dir=None):
     then the file named on the command line (measurements or a ``.ballast`` session),
     the sample picker, or the first sample set.
     """
-    from .main_window import MainWindow, first_sample_set
-
+    # here, not at the top: `ballast` sets one BLAS thread before numpy loads and looks
+    # for a display before Qt loads (tests/fitcore/test_boundary.py)
     from . import dialogs
+    from .main_window import MainWindow, first_sample_set
 
     win = MainWindow(qsettings, recovery_dir=recovery_dir)
     win.sessions.interactive = True  # ask before closing with unsaved work

@@ -13,7 +13,7 @@ from fitcore import models
 from PySide6.QtCore import (
     QCoreApplication, QEventLoop, QItemSelection, QItemSelectionModel, QSettings, Qt, QTimer,
 )
-from PySide6.QtGui import QAction, QGuiApplication, QKeySequence, QUndoStack
+from PySide6.QtGui import QAction, QActionGroup, QGuiApplication, QKeySequence, QUndoStack
 from PySide6.QtWidgets import (
     QAbstractItemView, QFileDialog, QLabel, QMainWindow, QMessageBox, QProgressDialog, QScrollArea, QSplitter,
     QTableView, QTabWidget, QVBoxLayout, QWidget,
@@ -22,16 +22,20 @@ from PySide6.QtWidgets import (
 from fitcore.report import loss_title, point_label
 from fitcore.model_choice import fit_problem
 
-from . import dialogs
+from . import dialogs, pane_layout
 from .banner import Banner
 from .commands import MaskCommand, SettingsCommand
+from .compare_view import CompareView
+from .diagnostics_view import DiagnosticsController
 from .document import Document, Measurements, Settings
 from .estimates_view import CAUTION, EstimatesView
 from .method_panel import MethodPanel
+from .pane_layout import AnalysisTab
 from .plot_view import PlotView
-from .points_model import COL, ColumnFitter, PointsModel, ReasonDelegate, make_proxy
+from .points_model import COL, COLUMNS, ColumnFitter, PointsModel, ReasonDelegate, make_proxy
 from .report_export import ReportExporter
 from .session_io import SessionManager
+from .unknowns_view import UnknownsView
 from . import jobs
 from .fit_runner import FitRunner
 from .jobs import Channel
@@ -158,8 +162,6 @@ class MainWindow(QMainWindow):
         self._restore_state()
         self._build_analysis()
         self._build_unknowns()
-        from . import pane_layout
-
         pane_layout.install(self)  # pane minimum widths that fit 1000 px, panes sized to fit
 
     # ------------------------------------------------------------------ menus
@@ -628,7 +630,7 @@ class MainWindow(QMainWindow):
 
     def fit_many_files(self):
         """File > Fit many files...: the batch window (desktop/batch_window.py)."""
-        from .batch_window import open_batch_window
+        from .batch_window import open_batch_window  # here: batch_window imports this module
 
         return open_batch_window(self)
 
@@ -760,12 +762,6 @@ class MainWindow(QMainWindow):
     # ------------------------------------------------------------------ analysis
     def _build_analysis(self):
         """Loss comparison, point diagnostics and bootstrap (issue 6): menu, tabs, note."""
-        from PySide6.QtGui import QActionGroup
-
-        from .compare_view import CompareView
-        from .diagnostics_view import DiagnosticsController
-        from .pane_layout import AnalysisTab
-
         # the analyses open as tabs beside the points table (or in a window of their own),
         # never as a dock that squeezes the plot
         self.compare_view = CompareView(self.document, self.plot)
@@ -826,8 +822,6 @@ class MainWindow(QMainWindow):
 
     def _build_unknowns(self):
         """The Unknowns table (read-back of unknown samples, issue 14), a tab beside the points."""
-        from .unknowns_view import UnknownsView
-
         self.unknowns = UnknownsView(self.document, self.push, self.plot)
         # a table like the points: in the tab area, so the estimates pane stays short
         self.lower_tabs.addTab(self.unknowns, "Unknowns")
@@ -849,8 +843,6 @@ class MainWindow(QMainWindow):
         """The points table shows the data and fit columns (sigma only when the data have
         one), the diagnostics tab the point's row, x, y and the diagnostic columns (one
         model, one selection)."""
-        from .points_model import COL, COLUMNS
-
         base = len(COLUMNS)
         keep = (COL["#"], COL["x"], COL["y"])
         m = self.document.measurements
@@ -880,7 +872,7 @@ class MainWindow(QMainWindow):
     def show_bootstrap(self):
         """Open the (non-modal) bootstrap dialog."""
         if self.bootstrap_dialog is None:
-            from .bootstrap_dialog import BootstrapDialog
+            from .bootstrap_dialog import BootstrapDialog  # here: loaded on first use, not at start
 
             self.bootstrap_dialog = BootstrapDialog(self.document, self)
             self.bootstrap_dialog.done.connect(self._bootstrap_done)
