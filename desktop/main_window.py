@@ -320,7 +320,9 @@ class MainWindow(QMainWindow):
             return []
         return [p for p in v if isinstance(p, str) and p]
 
-    def _add_recent(self, path: str):
+    def add_recent(self, path: str):
+        """Put ``path`` first in File > Open recent (the session manager calls this
+        after a save or an open)."""
         path = os.path.abspath(path)
         items = [p for p in self.recent_files() if p != path]
         self.qsettings.setValue("recent", [path] + items[: MAX_RECENT - 1])
@@ -383,7 +385,7 @@ class MainWindow(QMainWindow):
             if view is not None:  # a sample set opens with the axes it is meant to be seen on
                 self.logx_action.setChecked(view["log_x"])
                 self.logy_action.setChecked(view["log_y"])
-            self._add_recent(str(path))
+            self.add_recent(str(path))
             note = self.log_axis_note()
             if note:
                 self.statusBar().showMessage(f"{self.statusBar().currentMessage()} {note}", 15000)

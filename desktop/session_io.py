@@ -413,9 +413,7 @@ class SessionManager(QObject):
         self.suggested_path = None
         self.discard_recovery()  # this window's own file only; other windows' files stay
         self._title()
-        add = getattr(self.window, "_add_recent", None)
-        if add is not None:
-            add(path)
+        self.window.add_recent(path)
         self._status(f"Session saved to {path}.")
         return True
 
@@ -449,9 +447,7 @@ class SessionManager(QObject):
         self.modified = False
         self._timer.stop()
         self._title()
-        add = getattr(self.window, "_add_recent", None)
-        if add is not None:
-            add(self.path)
+        self.window.add_recent(self.path)
         return True
 
     def _show(self, session, name: str, view: dict | None = None) -> bool:

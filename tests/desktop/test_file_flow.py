@@ -112,7 +112,7 @@ def test_cancel_keeps_everything_for_every_way_of_opening(worked, asked, tmp_pat
     w = worked
     other = write_rows(tmp_path / "other.csv", [(i, 2 * i + 1) for i in range(10)])
     before = snapshot(w)
-    w._add_recent(str(other))
+    w.add_recent(str(other))
     monkeypatch.setattr(dialogs, "SamplePicker", _FakePicker.with_path(str(other)))
     QGuiApplication.clipboard().setText("a\tb\n1\t2\n2\t4\n3\t6.5\n")
     mime = QMimeData()
