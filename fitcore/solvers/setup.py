@@ -234,6 +234,15 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         _check_scale(fixed_scale, prob)
     elif absolute and loss not in ("l2", "l1", "adaptive"):
         fixed_scale = 1.0
+    if fixed_scale is None and loss not in ("l2", "l1", "adaptive") and 2 * k > n_used:
+        # a fit can pass exactly through k of the points, and with k > n/2 that zeroes
+        # the median absolute residual: the MAD scale is then no estimate at all (a
+        # 3-point line 'converged' as an exact fit with scale 5e-13; a 3-point power law
+        # spent 13 s creeping up from that zero)
+        raise FitError(
+            f"an automatic robust scale needs more than twice as many used points as free "
+            f"parameters ({n_used} points, {k} parameters): give a fixed scale, hold "
+            f"parameters, or use least squares")
 
     return _Setup(
         mdl=mdl, loss=loss, loss_obj=loss_obj, x=x, y=y, excl=excl, sig_all=sig_all,

@@ -288,3 +288,21 @@ def test_exact_majority_gives_the_exact_fit_without_uncertainties(loss):
     y2 += np.random.default_rng(0).normal(0, 0.01, 12)
     res2 = fitcore.fit("line", x, y2, loss)
     assert res2.converged and np.all(np.isfinite(res2.stderr))
+
+
+@pytest.mark.parametrize("loss", ["huber", "tukey", "cauchy", "welsch"])
+def test_automatic_robust_scale_refused_when_half_the_points_can_be_fitted_exactly(loss):
+    # A fit through k of n points zeroes the median |residual| once k > n/2, so the MAD
+    # scale says nothing (common practice: the MAD needs n > 2p). Was: a 3-point line
+    # "converged (more than half of the points lie exactly on the curve)" with scale
+    # 5e-13; a 3-point power law took 13 s.
+    x, y = [1.0, 2.0, 3.0], [2.0, 3.0, 5.0]
+    for model in ("line", "power_law"):
+        with pytest.raises(fitcore.FitError, match=r"more than twice as many used points "
+                                                   r"as free parameters \(3 points, 2 par"):
+            fitcore.fit(model, x, y, loss=loss)
+    # least squares, a fixed scale, or a held parameter fit the same points
+    ref = np.polyfit(x, y, 1)  # numpy's least-squares line
+    assert fitcore.fit("line", x, y, loss="l2").values == pytest.approx(ref[::-1], rel=1e-12)
+    assert fitcore.fit("line", x, y, loss=loss, scale=0.5).converged
+    assert fitcore.fit("line", x, y, loss=loss, fixed={"a": 0.0}).converged
