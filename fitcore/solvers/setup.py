@@ -67,13 +67,12 @@ def _resolve(model) -> Model:
     if isinstance(model, Model):
         return model
     if isinstance(model, str):
-        try:  # here, not at the top: fit() of a Model object loads neither the catalogue
-            from ..models import builtin_models, resolve_model  # nor sympy (issue 12)
-        except ImportError:  # catalogue not available: formulas only
-            from ..formula import parse_formula as resolve_model
-            builtin_models = None
+        # here, not at the top: fit() of a Model object loads neither the catalogue nor
+        # sympy (issue 12)
+        from ..models import builtin_models, resolve_model
+
         text = model.strip()
-        if builtin_models is not None and text.isidentifier() and text != "x":
+        if text.isidentifier() and text != "x":
             _refuse_bare_name(text, resolve_model, builtin_models())
         return resolve_model(model)
     raise FitError(f"a model must be a built-in name, a formula or a fitcore.Model, not {type(model).__name__}")

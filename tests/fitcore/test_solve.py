@@ -306,3 +306,14 @@ def test_automatic_robust_scale_refused_when_half_the_points_can_be_fitted_exact
     assert fitcore.fit("line", x, y, loss="l2").values == pytest.approx(ref[::-1], rel=1e-12)
     assert fitcore.fit("line", x, y, loss=loss, scale=0.5).converged
     assert fitcore.fit("line", x, y, loss=loss, fixed={"a": 0.0}).converged
+
+
+def test_a_broken_catalogue_import_is_not_hidden(monkeypatch):
+    # no silent fallbacks (house rule): when fitcore.models cannot be imported, a model
+    # name is that ImportError, not a formula parse of the name (the old fallback fitted
+    # "line" as the formula y = line, one constant: a wrong fit with no word of the cause)
+    import sys
+    monkeypatch.setitem(sys.modules, "fitcore.models", None)
+    x = np.arange(6.0)
+    with pytest.raises(ImportError, match="fitcore.models"):
+        fitcore.fit("line", x, 2 * x + 1)
