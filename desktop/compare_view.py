@@ -515,7 +515,7 @@ class CompareView(QWidget):
             pen = loss_pen(loss)
             if stale:
                 pen.setColor(QColor(150, 150, 150))
-            curve = pg.PlotCurveItem(plot._tx(grid[good]), plot._ty(yhat[good]), pen=pen)
+            curve = pg.PlotCurveItem(plot.to_view_x(grid[good]), plot.to_view_y(yhat[good]), pen=pen)
             curve.setZValue(5)
             plot.data_plot.addItem(curve, ignoreBounds=True)
             self.curves[loss] = curve

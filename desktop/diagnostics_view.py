@@ -338,7 +338,7 @@ class DiagnosticsController(QObject):
         m = self.document.measurements
         if len(np.asarray(d.leverage)) != m.n:
             return
-        px, py = plot._tx(m.x), plot._ty(m.y)
+        px, py = plot.to_view_x(m.x), plot.to_view_y(m.y)
         used = ~self.document.excluded
         vals = self.colour_values()
         if vals is not None:

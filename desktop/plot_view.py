@@ -705,11 +705,6 @@ class PlotView(pg.GraphicsLayoutWidget):
             y = np.asarray(y, float)
             return np.where(y > 0, np.log10(np.where(y > 0, y, 1.0)), np.nan)
 
-    # the old private names, still called by compare_view and diagnostics_view (being
-    # rewritten by a colleague this session); switch them to the public names and drop these
-    _tx = to_view_x
-    _ty = to_view_y
-
     def point_scene_pos(self, index: int, residual: bool = False) -> QPointF:
         """Scene position of one point (for tests and tooltips)."""
         item = self.resid_points if residual else self.points
