@@ -366,6 +366,8 @@ def check_svg(path) -> None:
 #: layout width of the PDF page in CSS-like pixels (the report's plot is 900 wide)
 PDF_LAYOUT_WIDTH = 960
 FOOTER_HEIGHT = 28
+#: the footer's type size in layout pixels (the report's small print is about 11)
+FOOTER_FONT_PX = 11
 
 
 def page_footer(page: int, pages: int) -> str:
@@ -390,7 +392,7 @@ def _plot_rect(tdoc: QTextDocument):
                 r = layout.blockBoundingRect(block)
                 line = block.layout().lineAt(0)
                 w, h = REPORT_PLOT_SIZE
-                top = r.top() + line.y() + line.height()  # under the anchor's line
+                top = r.top() + line.y()  # over the anchor's blank line, its margin below
                 return QRectF(r.left(), top, w, h), QSvgRenderer(QByteArray(svg.encode("utf-8")))
             it += 1
         block = block.next()
@@ -435,6 +437,11 @@ def print_paged(tdoc: QTextDocument, printer, title: str = "") -> int:
             painter.save()
             painter.scale(scale, scale)
             painter.setPen(QPen(Qt.darkGray))
+            # a size in layout pixels (scaled with the page like the text above it); the
+            # printer's default font is in its own points and came out a fifth of a page high
+            font = painter.font()
+            font.setPixelSize(FOOTER_FONT_PX)
+            painter.setFont(font)
             foot = QRectF(0, body_h + 6, PDF_LAYOUT_WIDTH, FOOTER_HEIGHT - 6)
             painter.drawText(foot, int(Qt.AlignLeft | Qt.AlignVCenter), title)
             painter.drawText(foot, int(Qt.AlignRight | Qt.AlignVCenter), page_footer(k + 1, pages))
@@ -768,8 +775,12 @@ class ReportExporter:
         tdoc = QTextDocument()
         tdoc.setDefaultStyleSheet("")
         h = REPORT_PLOT_SIZE[1]
-        text = text.replace(PLOT_MARK, f'</p><p style="margin-bottom:{h}px"><a name="{PLOT_ANCHOR}">'
-                                       f'&nbsp;</a></p><p>')
+        # the anchor's paragraph replaces the plot's (no empty paragraphs around it: each
+        # was a blank line between the heading and the plot); the plot covers its blank
+        # line and the margin under it
+        anchor = (f'<p style="margin-top:0px; margin-bottom:{h}px">'
+                  f'<a name="{PLOT_ANCHOR}">&nbsp;</a></p>')
+        text = text.replace(f"<p>{PLOT_MARK}</p>", anchor).replace(PLOT_MARK, anchor)
         tdoc.setHtml(text)
         # the plot: a line as high as the plot, painted from its SVG by paint_page (Qt's
         # text layout can only hold bitmaps; a vector PDF needs the plot painted)

@@ -202,6 +202,46 @@ def test_pdf_report_prints_through_qt(win, tmp_path):
         assert page.height() > page.width() > 200  # A4 portrait
 
 
+@pytest.mark.skipif(not shutil.which("pdftotext"), reason="needs poppler's pdftotext "
+                    "(Debian poppler-utils) to read the printed pages back")
+def test_pdf_footer_is_readable_on_every_page(win, tmp_path):
+    """Each printed page ends with "page k of N" in small type within the page (the
+    footer's font was taken in printer points and scaled again: letters a fifth of the
+    page high, cut at the paper's edge). Read back with poppler (an outside reader)."""
+    pdf = tmp_path / "r.pdf"
+    assert win.reports.write_pdf(pdf)
+    pages = win.reports.pages_printed
+    for k in range(1, pages + 1):
+        out = subprocess.run(["pdftotext", "-bbox", "-f", str(k), "-l", str(k), str(pdf), "-"],
+                             capture_output=True, text=True, timeout=60)
+        assert out.returncode == 0, out.stderr
+        page_h = float(re.search(r'<page width="[\d.]+" height="([\d.]+)"', out.stdout)[1])
+        words = re.findall(r'yMin="([\d.]+)" xMax="[\d.]+" yMax="([\d.]+)">([^<]*)</word>',
+                           out.stdout)
+        text = " ".join(w for _a, _b, w in words)
+        assert f"page {k} of {pages}" in text, (k, text[-200:])
+        foot = [(float(a), float(b)) for a, b, w in words if w == "page"][-1]
+        assert foot[1] <= page_h and foot[1] - foot[0] < 0.02 * page_h  # small, on the page
+
+
+def test_pdf_plot_starts_under_its_heading(win):
+    """The plot's reserved line sits right under the "Plot" heading (empty paragraphs
+    around the anchor left a ~40 px blank band there); common practice: a figure
+    follows its heading's own spacing, nothing more."""
+    from PySide6.QtCore import QSizeF
+
+    tdoc = win.reports.text_document()
+    tdoc.setPageSize(QSizeF(report_export.PDF_LAYOUT_WIDTH, 1400))
+    rect, _renderer = report_export._plot_rect(tdoc)
+    block = tdoc.begin()
+    while block.isValid() and block.text().strip() != "Plot":
+        block = block.next()
+    assert block.isValid()
+    heading = tdoc.documentLayout().blockBoundingRect(block)
+    margin = block.blockFormat().bottomMargin()  # the heading's own spacing (Qt: 12 px)
+    assert 0 <= rect.top() - heading.bottom() <= margin + 1, (heading.bottom(), margin, rect.top())
+
+
 def test_signoff_names_are_typed_once_and_remembered(win, tmp_path, monkeypatch):
     asked = []
     monkeypatch.setattr(report_export, "ask_signoff", lambda parent, current: (
