@@ -836,6 +836,20 @@ def _sniff(lines: list[str], decimal: str | None):
 _LONE_CR_RE = re.compile(r"\r(?!\n)")
 
 
+#: longest title line quoted whole in a reading note (longer ones end at a space, "…")
+TITLE_NOTE_CHARS = 100
+
+
+def _quoted_title(line: str) -> str:
+    """A title line as a reading note quotes it: whole, or shortened at a word boundary."""
+    t = line.strip()
+    if len(t) <= TITLE_NOTE_CHARS:
+        return t
+    head = t[:TITLE_NOTE_CHARS + 1]
+    cut = head.rsplit(" ", 1)[0].rstrip() if " " in head else ""
+    return (cut or t[:TITLE_NOTE_CHARS]) + " …"
+
+
 def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str | None,
                 encoding_name: str | None, kind: str, utf8_bytes: bytes | None = None) -> Table:
     import pandas as pd
@@ -869,7 +883,7 @@ def _parse_text(text: str, *, label: str, source: str, sha256: str, decimal: str
     if title_lines:
         notes.append(
             f"{'line' if len(title_lines) == 1 else str(len(title_lines)) + ' lines'} above the header "
-            f"taken as title or comment: " + "; ".join(repr(t.strip()[:60]) for t in title_lines[:3])
+            f"taken as title or comment: " + "; ".join(repr(_quoted_title(t)) for t in title_lines[:3])
             + (" ..." if len(title_lines) > 3 else "")
         )
     if layout.header is None:
@@ -1934,6 +1948,8 @@ def read_table(path, sheet=None, *, decimal: str | None = None, encoding: str | 
         table.notes.append(f"sheet={sheet!r} ignored: a text file has no sheets")
     if enc_name in ("CP1252", "Latin-1"):
         table.notes.insert(0, f"text is not UTF-8; read as {enc_name}")
+    elif enc_name.startswith("UTF-16"):  # the decoding belongs in the record too
+        table.notes.insert(0, f"text read as {enc_name}")
     return table
 
 

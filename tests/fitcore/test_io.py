@@ -186,6 +186,23 @@ def test_utf16_tab_separated_unicode_text(tmp_path, codec, bom):
     np.testing.assert_array_equal(t.column("T"), [273.15, 298.15, 323.15])
     np.testing.assert_array_equal(t.column("R"), [32.65, 10.0, 3.6])
     assert t.dialect.separator == "\t" and t.dialect.encoding.startswith("UTF-16")
+    # issue 17 item 1: the decoding reaches the notes (and so the record's Data section)
+    assert any("UTF-16" in n and "read as" in n for n in t.notes), t.notes
+
+
+def test_title_line_notes_keep_whole_words(tmp_path):
+    """The note quoting title lines never cuts a word (issue 17 item 14: "the title
+    lines of a sample are cut mid-word"); a title of ordinary length is quoted whole,
+    a very long one is shortened at a space with an ellipsis (common practice)."""
+    short = "Photometric calibration - nitrate standards (invented demo data)"  # 64 chars
+    long = " ".join(["calibration"] * 30)  # 359 chars
+    text = f"{short}\n{long}\nx,y\n1,2\n3,4\n5,6\n"
+    t = read_table(write(tmp_path / "titles.csv", text))
+    note = next(n for n in t.notes if "above the header" in n)
+    assert repr(short) in note, note
+    quoted = note.split("; ")[-1]
+    assert quoted.endswith(" …'") and len(quoted) < len(long), quoted
+    assert all(w == "calibration" for w in quoted.strip("'").removesuffix(" …").split()), quoted
 
 
 def test_utf16_without_bom_is_recognised(tmp_path):
