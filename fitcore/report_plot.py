@@ -30,7 +30,11 @@ MIN_D, MAX_D = 4.5, 10.0  # symbol diameter (px) at weight 0 and 1
 LEGEND_TEXT = ("Filled circles: points used, their size growing with the robust weight; "
                "orange: down-weighted (weight below 0.5); grey crossed rings: excluded by the "
                "analyst. Line: fitted curve; shaded: {pct} pointwise confidence band. Lower "
-               "panel: residuals y − fitted.")
+               "panel: residuals over the fit's scale (y − fitted when the scale is zero); "
+               "beyond ±6 drawn at the edge with an arrow.")
+#: standardised residuals beyond this many scales are drawn at the panel's edge (as in
+#: the window's residual plot) so one gross outlier does not squash the others to a line
+RESID_CLIP = 6.0
 
 
 def _nice_ticks(lo: float, hi: float, n: int = 6) -> list[float]:
@@ -72,13 +76,18 @@ def _esc(s) -> str:
 
 def plot_svg(res, *, x_label: str = "x", y_label: str = "y", width: int = 900,
              height: int = 620, level: float = 0.95, log_x: bool = False,
-             n_grid: int = 400) -> str:
+             n_grid: int = 400, residuals: str = "standardised") -> str:
     """The data panel and the residual panel of a fit as one SVG document (text).
 
     ``res`` is a :class:`FitResult`; ``x_label``/``y_label`` are the axis titles
     (name and unit). With ``log_x`` (and all x > 0) the x axis is logarithmic. The
     band is the pointwise ``level`` confidence band of :meth:`FitResult.band`.
+    ``residuals="standardised"`` (default): the lower panel shows residual / scale
+    (``res.std_residuals``), values beyond +-:data:`RESID_CLIP` at the edge with an
+    arrow; ``"raw"``, or a fit with no usable scale: y - fitted in units of y.
     """
+    if residuals not in ("standardised", "raw"):
+        raise ValueError(f"residuals must be 'standardised' or 'raw', not {residuals!r}")
     x = np.asarray(res.x, float)
     y = np.asarray(res.y, float)
     ok = np.isfinite(x) & np.isfinite(y)
@@ -95,6 +104,15 @@ def plot_svg(res, *, x_label: str = "x", y_label: str = "y", width: int = 900,
         curve = np.asarray(res.predict(grid), float)
         band_lo, band_hi = (np.asarray(b, float) for b in res.band(grid, level=level))
     resid = np.asarray(res.residuals, float)
+    resid_title = "residual y − fitted"
+    std = np.asarray(getattr(res, "std_residuals", np.full(resid.shape, np.nan)), float)
+    scale = float(getattr(res, "scale", np.nan))
+    beyond = np.zeros(resid.shape, bool)
+    if residuals == "standardised" and math.isfinite(scale) and scale > 0 \
+            and std.shape == resid.shape and np.isfinite(std[ok]).any():
+        beyond = np.isfinite(std) & (np.abs(std) > RESID_CLIP)
+        resid = np.clip(std, -RESID_CLIP, RESID_CLIP)
+        resid_title = "residual / scale"
     weights = np.asarray(res.weights, float)
     excl = np.asarray(res.excluded, bool)
 
@@ -110,6 +128,10 @@ def plot_svg(res, *, x_label: str = "x", y_label: str = "y", width: int = 900,
     tlo, thi = tlo - xpad, thi + xpad
     ya, yb = _range(np.concatenate([y[ok], curve, band_lo, band_hi]))
     ra, rb = _range(np.concatenate([resid[ok], [0.0]]), 0.08)
+    if (beyond & ok & (resid > 0)).any():  # room for the edge arrows
+        rb = max(rb, RESID_CLIP + 1.2)
+    if (beyond & ok & (resid < 0)).any():
+        ra = min(ra, -RESID_CLIP - 1.2)
 
     def px(v):
         return left + (tx(v) - tlo) / (thi - tlo) * plot_w
@@ -146,7 +168,7 @@ def plot_svg(res, *, x_label: str = "x", y_label: str = "y", width: int = 900,
                    f'transform="rotate(-90 16 {cy:.1f})">{_esc(title)}</text>')
 
     panel(y1_top, h1, ya, yb, y_label)
-    panel(y2_top, h2, ra, rb, "residual y − fitted")
+    panel(y2_top, h2, ra, rb, resid_title)
     # no clip paths (SVG Tiny renderers such as Qt's draw them as shapes): every
     # range above already holds what is drawn in it
 
@@ -192,5 +214,12 @@ def plot_svg(res, *, x_label: str = "x", y_label: str = "y", width: int = 900,
 
     symbols(y, P)
     symbols(resid, lambda v: py(v, ra, rb, y2_top, h2))
+    for i in np.flatnonzero(beyond & ok):  # an arrow past the edge value, pointing out
+        up = resid[i] > 0
+        cx = px(x[i])
+        tip = py((RESID_CLIP + 1.0) * (1 if up else -1), ra, rb, y2_top, h2)
+        base = tip + (7.0 if up else -7.0)
+        out.append(f'<path d="M{cx:.2f},{tip:.2f}L{cx - 4.5:.2f},{base:.2f}L{cx + 4.5:.2f},{base:.2f}Z" '
+                   'fill="#3c3c3c" stroke="none"/>')
     out.append("</svg>")
     return "\n".join(out) + "\n"

@@ -132,7 +132,7 @@ def test_html_report_is_self_contained_and_complete(win, tmp_path):
 
     assert QSvgRenderer(QByteArray(svg.encode("utf-8"))).isValid()
     assert svg.count(">Time (s)</text>") == 2  # the x-axis title under both panels
-    assert "residual y − fitted" in svg
+    assert "residual / scale" in svg  # the window's default residual plot (17.12)
     assert "#5a5a6e" in svg and "#ffc800" not in svg  # excluded ring; no selection halo
     # the same data give the same plot, whatever the window shows (zoom, selection)
     win.document.set_selection([0])

@@ -98,6 +98,37 @@ def test_symbols_show_weight_and_exclusion():
     assert max(radii) == pytest.approx(5.0)  # weight 1: the largest symbol
 
 
+def test_residual_panel_in_scales_with_a_gross_outlier_at_the_edge():
+    """Issue 17 item 12 in the report: one gross outlier must not squash the other
+    residuals to a line. The lower panel shows residual / scale (the window's default),
+    values beyond 6 scales at the edge with an arrow; raw residuals on request. The
+    check is geometric: drawn positions against ``res.std_residuals`` (fitcore's own
+    numbers, the window plots the same) and the spread of the ordinary points."""
+    x, y = _line()
+    y[7] += 400.0  # hundreds of scales off the line
+    res = fitcore.fit("line", x, y, loss="huber")
+    n = x.size
+    svg = plot_svg(res)
+    assert "residual / scale" in svg and "residual y − fitted" not in svg
+    drawn = np.array(_circles(svg))[n:]
+    resid = drawn[np.argsort(drawn[:, 0]), 1]  # drawn by weight; x increases with the index
+    z = np.asarray(res.std_residuals, float)
+    inner = np.abs(z) <= 6
+    assert not inner[7] and inner.sum() == n - 1
+    _a, b, err = _affine(z[inner], resid[inner])
+    assert err < 0.01 and b < 0  # the ordinary points on one map of z, upwards
+    assert np.ptp(resid[inner]) > 20  # spread over the panel (was < 1 px raw)
+    assert resid[7] == pytest.approx(_a + b * 6.0, abs=0.01)  # drawn at the edge, +6
+    arrows = [p for p in ET.fromstring(svg).iter(NS + "path") if p.get("fill") == "#3c3c3c"]
+    assert len(arrows) == 1
+    raw = plot_svg(res, residuals="raw")
+    assert "residual y − fitted" in raw
+    drawn = np.array(_circles(raw))[n:]
+    assert _affine(res.residuals, drawn[np.argsort(drawn[:, 0]), 1])[2] < 0.01
+    with pytest.raises(ValueError, match="standardised"):
+        plot_svg(res, residuals="log")
+
+
 def test_nothing_to_draw_is_an_error():
     x, y = _line()
     res = fitcore.fit("line", x, y)
