@@ -326,6 +326,8 @@ def _bootstrap_section(res, b) -> list[str]:
     text = b.method_text or f"{b.kind} bootstrap, B = {b.B}"
     seed = "" if "seed" in text else f" (seed {b.seed})"
     nf = int(b.n_failed or 0)
+    if "failed" in text:  # fitcore's method text counts them already: say it once
+        nf = 0
     out = ["<h2>Bootstrap intervals</h2>",
            f"<p>{_h(text)}{_h(seed)}."
            + (f" {_plural(nf, 'resample')} failed to fit and "

@@ -125,6 +125,29 @@ def test_analyses_and_the_stale_mark_go_into_their_sections():
     assert "R. Lindqvist" in text and text.count(BLANK) == 4
 
 
+def test_failed_resamples_are_counted_once():
+    """A bootstrap whose method text already counts its failed resamples (fitcore's
+    own wording) gets no second sentence saying the same (the 4PL sample's report read
+    "1 resample failed and was dropped. 1 resample failed to fit and was left out.")."""
+    import dataclasses
+
+    from fitcore.bootstrap import bootstrap
+
+    data = _data()
+    res = fitcore.fit("line", data.x, data.y, loss="huber")
+    boot = bootstrap(res, kind="case", B=49, seed=3, level=0.95)
+    failed = dataclasses.replace(boot, n_failed=1,
+                                 method_text=boot.method_text + "; 1 resample failed and was dropped")
+    part = report_html(res, data, bootstrap=failed, written=WHEN).split(
+        "<h2>Bootstrap intervals</h2>")[1].split("<h2>")[0]
+    assert part.count("failed") == 1, part[:300]
+    # a text that does not count them (an older or outside record) still says so, once
+    plain = dataclasses.replace(boot, n_failed=2)
+    part = report_html(res, data, bootstrap=plain, written=WHEN).split(
+        "<h2>Bootstrap intervals</h2>")[1].split("<h2>")[0]
+    assert part.count("failed") == 1 and "2 resamples failed" in part
+
+
 def test_calibration_report_reads_unknowns_back_by_the_iso_8466_formula():
     data = _data()
     keep = np.ones(data.n, bool)
