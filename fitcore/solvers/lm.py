@@ -228,8 +228,10 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
                     nu = 2.0
                 break
             if newton:
-                # refused: back to reweighted steps for the rest of this solve
-                near, newton = False, False
+                # refused: back to reweighted steps for the rest of this solve (not
+                # re-armed when they get small again: they would alternate with refused
+                # Newton tries and creep, 2000 iterations per solve)
+                near, newton, newton_ok = False, False, False
                 step_solver = _StepSolver(Jw, rw, D)
                 continue
             if polish:
