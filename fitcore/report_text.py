@@ -702,8 +702,9 @@ def _tsv_cell(s) -> str:
 def _tsv_numbers(r: _Row, fp: bool) -> tuple[str, str, str]:
     """``(value cell, uncertainty cell, note)``: the two cells are plain numbers (or
     empty), never words, so that a spreadsheet reads them as numbers."""
-    if r.assumed:
-        return _full(r.value), "", "held" if r.held else FROM_HELD
+    if r.assumed:  # rounded as the plain text rounds it (held at 28.77); every digit in fp
+        value = _full(r.value) if fp else held_value_text(r.value)
+        return value, "", "held" if r.held else FROM_HELD
     if not math.isfinite(r.u):
         return _full(r.value), "", "uncertainty unknown"
     if r.u == 0.0:

@@ -135,6 +135,18 @@ def test_tsv_value_and_uncertainty_cells_are_numbers_for_held_and_derived_rows()
         held = {r[0]: r for r in rows}
         assert held["tau"][2] == "" and held["tau"][6].startswith("held")
         assert held["half_life"][6].startswith("from held values")
+        # 17.6 "round it sensibly": the rounded copy rounds assumed values as the plain
+        # text does (held at 28.77; half_life 19.94, not 19.939004...); full precision
+        # keeps every digit (the full held value is in the method block either way)
+        values = dict(zip(res.param_names, res.values))
+        values.update({name: v for name, v, _u, _d in res.derived_values()})
+        for name in ("tau", "half_life"):
+            if full:
+                assert float(held[name][1]) == values[name], name
+            else:
+                assert held[name][1] == held_value_text(values[name]), (name, held[name][1])
+        if not full:
+            assert held["tau"][1] == "28.77"
 
 
 # ------------------------------------------------------------------ 17.7 siunitx
