@@ -29,6 +29,10 @@ ESTIMATES_MIN = 250
 #: table with units and intervals on the sample sets; at 1000 px that is 37-44 %)
 EST_SHARE = 0.45
 CENTRE_MIN = 320
+#: pixels the estimates pane gets beyond what its table needs
+WIDTH_SPARE = 6
+#: the estimates table's standard-uncertainty column (hidden when the pane is too narrow)
+STD_UNC_COLUMN = 2
 #: QSettings key: the analyst has dragged a pane border (then the saved widths stay)
 BY_HAND_KEY = "window/panes_by_hand"
 
@@ -79,12 +83,14 @@ class PaneSizer(QObject):
             self.fit()
         return False
 
-    def estimates_width(self) -> int:
-        """Width the estimates pane needs to show its table without scrolling."""
+    def estimates_width(self, include_hidden: bool = False) -> int:
+        """Width the estimates pane needs to show its table without scrolling (with
+        ``include_hidden``: also its columns hidden for want of room)."""
         table = self.estimates.table
         header = table.horizontalHeader()
         need = sum(max(header.sectionSize(c), table.sizeHintForColumn(c), header.sectionSizeHint(c))
-                   for c in range(header.count()))
+                   for c in range(header.count())
+                   if include_hidden or not header.isSectionHidden(c))
         if header.stretchLastSection() and header.count():
             # the stretched last column: its contents, not the stretched size
             last = header.count() - 1
@@ -99,7 +105,7 @@ class PaneSizer(QObject):
         if scroll is not None and scroll.verticalScrollBar().isVisible():
             # a pane taller than the window (a long summary) scrolls: its bar takes width
             need += scroll.verticalScrollBar().sizeHint().width()
-        return int(need + margins.left() + margins.right() + 6)
+        return int(need + margins.left() + margins.right() + WIDTH_SPARE)
 
     def fit(self) -> None:
         total = self.split.width()
@@ -110,7 +116,8 @@ class PaneSizer(QObject):
             handles += self.top.handleWidth()
         avail = total - handles
         method = max(METHOD_MIN, min(METHOD_MAX, round(0.2 * avail)))
-        est = max(ESTIMATES_MIN, min(self.estimates_width(), round(EST_SHARE * avail)))
+        need = self.estimates_width(include_hidden=True)
+        est = max(ESTIMATES_MIN, min(need, round(EST_SHARE * avail)))
         centre = avail - method - est
         if centre < CENTRE_MIN:  # a small window: the side panes give way, down to their minimum
             short = CENTRE_MIN - centre
@@ -119,6 +126,12 @@ class PaneSizer(QObject):
             short -= take
             method -= min(short, method - METHOD_MIN)
             centre = avail - method - est
+        # too narrow for every column: the standard-uncertainty column goes first (the
+        # estimate shows it already, 1856(13)), so that no unit or interval is cut
+        table = self.estimates.table
+        squeeze = need - WIDTH_SPARE > est  # (the spare pixels are not needed)
+        if table.isColumnHidden(STD_UNC_COLUMN) != squeeze:
+            table.setColumnHidden(STD_UNC_COLUMN, squeeze)
         self._setting = True
         try:
             if self.top is None:

@@ -130,6 +130,18 @@ def columns_inside(view) -> list[str]:
     return out
 
 
+def cells_cut(view):
+    """Texts of the shown cells wider than their column (drawn elided, "cm-1..." for
+    "cm-1*counts"); should be none."""
+    header = view.horizontalHeader()
+    fm = view.fontMetrics()
+    pad = 2 * (view.style().pixelMetric(view.style().PixelMetric.PM_FocusFrameHMargin) + 1)
+    return [view.item(r, c).text() for r in range(view.rowCount())
+            for c in range(view.columnCount())
+            if not header.isSectionHidden(c) and view.item(r, c) is not None
+            and fm.horizontalAdvance(view.item(r, c).text()) + pad > header.sectionSize(c)]
+
+
 def open_dose_response(make_win, size):
     """Sample set 05: a four-parameter model with two derived values (the most rows and
     columns among the sample sets)."""
@@ -147,13 +159,19 @@ def test_every_estimate_column_and_enough_points_rows_show(make_win, size):
     # (four parameters and two derived values: dose-response), the last one stays open
     # (two-trends: the longest intervals and units; photometric: long column names,
     # no sigma column)
+    # (Raman peak: the longest unit, cm-1*counts for the area, was cut to "cm-1..." at
+    # 1000 x 650)
     for sample in ("07_two_trends.csv", "01_photometric_calibration.csv",
-                   "02_tracer_decay.csv", "05_dose_response.ods"):
+                   "02_tracer_decay.csv", "06_raman_peak.txt", "05_dose_response.ods"):
         assert win.open_path(str(dialogs.SAMPLE_DIR / sample))
         settle(win)
         laid_out(win)
         est = win.estimates.table
         assert columns_inside(est) == [], sample
+        assert cells_cut(est) == [], sample
+        # the standard-uncertainty column (also in the estimate's parentheses) gives way
+        # only when the pane is too narrow, never at the default size
+        assert not (size[0] >= 1400 and est.isColumnHidden(2)), sample
         assert not est.horizontalScrollBar().isVisible(), sample
         last = est.rowCount() - 1  # every parameter and derived value without scrolling
         assert est.rowViewportPosition(last) + est.rowHeight(last) <= est.viewport().height(), sample
