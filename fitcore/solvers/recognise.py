@@ -1,7 +1,7 @@
 """Recognise a formula that is a catalogue curve written another way, so that it gets
 the catalogue's robust start values.
 
-``Vmax*x/(Km + x)``, ``A*exp(-x/tau) + C``, ``C + A*exp(-k*t)`` or ``d + (a - d)/(1 +
+``Vmax*x/(Km + x)``, ``A*exp(-x/tau) + C``, ``C + A*exp(-k*x)`` or ``d + (a - d)/(1 +
 (x/c)**b)`` are the catalogue's Michaelis-Menten, exponential decays and 4PL with other
 names, in another order, or with a parameter replaced by its negative or reciprocal
 (a rate for a time constant, a Hill slope of the other sign). A formula starts at 1
@@ -13,7 +13,9 @@ The test is numerical and never executes text: for every nonlinear catalogue mod
 with as many parameters, every assignment of catalogue parameters to formula
 parameters (a parameter that enters linearly from one that does, as itself or its
 negative; a nonlinear one from a nonlinear one, up to four parameters also as its
-reciprocal) is tried by evaluating both curves at fixed x points for two random
+reciprocal; then, where no assignment matches, with a constant factor on each nonlinear
+parameter found by Gauss-Newton, e.g. a half-life ln 2 tau or a FWHM) is tried by
+evaluating both curves at fixed x points for two random
 parameter vectors; a match within 1e-9 relative on both is taken as the same curve
 (two analytic functions that agree at that many generic points of an open set). The
 points and probes do not depend on the data, so the answer is kept per formula text.
@@ -44,12 +46,14 @@ class Match:
     name: str  # the catalogue model
     source: tuple[int, ...]
     transform: tuple[str, ...]
+    factor: tuple[float, ...] = ()  # constant factors (a half-life: ln 2 times tau)
 
     def carry(self, p_catalogue: np.ndarray) -> np.ndarray:
         """The formula's parameters for the catalogue's ``p_catalogue``."""
         p = np.asarray(p_catalogue, dtype=float)[list(self.source)]
         with np.errstate(all="ignore"):
-            return np.array([_apply(t, v) for t, v in zip(self.transform, p)])
+            q = np.array([_apply(t, v) for t, v in zip(self.transform, p)])
+            return q * np.asarray(self.factor, dtype=float) if self.factor else q
 
 
 def _apply(t: str, v: float) -> float:
@@ -94,7 +98,7 @@ def _linear_mask(model: Model, p: np.ndarray) -> np.ndarray | None:
     return out
 
 
-def _assignments(lin_f: np.ndarray, lin_c: np.ndarray, k: int):
+def _assignments(lin_f: np.ndarray, lin_c: np.ndarray, k: int, negative: bool = True):
     """(source, transform) pairs that keep linear parameters linear: a parameter that
     enters linearly comes from one that does (as itself or its negative), a nonlinear
     one from a nonlinear one (also as its reciprocal, up to four parameters)."""
@@ -104,6 +108,8 @@ def _assignments(lin_f: np.ndarray, lin_c: np.ndarray, k: int):
     c_lin, c_non = np.flatnonzero(lin_c), np.flatnonzero(~lin_c)
     lin_kinds = ("same", "negative")
     non_kinds = _TRANSFORMS if k <= _MAX_TRANSFORM_PARAMS else ("same",)
+    if not negative:  # (a factor's sign stands for the negative)
+        non_kinds = tuple(t for t in non_kinds if t != "negative")
     for t_lin in itertools.product(lin_kinds, repeat=f_lin.size):
         for t_non in itertools.product(non_kinds, repeat=f_non.size):
             transform = [""] * k
@@ -151,6 +157,10 @@ def _match_text(formula: str) -> Match | None:
 
 def _match_model(model: Model) -> Match | None:
     k = len(model.param_names)
+    lin_f = _linear_mask(model, np.asarray(_PROBES[0][:k]))
+    if lin_f is None:
+        return None
+    candidates = []
     for name, cat in _catalogue():
         if len(cat.param_names) != k:
             continue
@@ -158,13 +168,83 @@ def _match_model(model: Model) -> Match | None:
         if any(v is None or float(np.ptp(v)) <= 1e-6 * float(np.max(np.abs(v))) for _, v in refs):
             continue  # a probe where the catalogue curve is flat tells nothing
         lin_c = _linear_mask(cat, refs[0][0])
-        lin_f = _linear_mask(model, np.asarray(_PROBES[0][:k]))
-        if lin_c is None or lin_f is None:
+        if lin_c is None:
             continue
         for source, transform in _assignments(lin_f, lin_c, k):
             m = Match(name, source, transform)
             if all(_close(_values(model, m.carry(p)), v) for p, v in refs):
                 return m
+        candidates.append((name, lin_c, refs))
+    if k > _MAX_TRANSFORM_PARAMS:
+        return None
+    for name, lin_c, refs in candidates:  # then up to constant factors
+        for source, transform in _assignments(lin_f, lin_c, k, negative=False):
+            m = _with_factors(model, Match(name, source, transform), ~lin_f, refs)
+            if m is not None:
+                return m
+    return None
+
+
+def _with_factors(model: Model, m: Match, nonlin: np.ndarray, refs) -> Match | None:
+    """``m`` with constant factors on its nonlinear parameters that make the formula
+    the catalogue curve at both probes (Gauss-Newton on the factors from 1, a dozen
+    steps at most), or None. A formula with a numeric constant in place of a
+    parameter's unit (``exp(-0.6931*x/t_half)``, a half-life for a time constant) is
+    the catalogue curve up to such a factor."""
+    idx = np.flatnonzero(nonlin)
+    if idx.size == 0:
+        return None
+    target = np.concatenate([v for _, v in refs])
+    size = max(float(np.max(np.abs(target))), 1e-300)
+
+    def resid(c):
+        f = np.ones(len(m.source))
+        f[idx] = c
+        mm = Match(m.name, m.source, m.transform, tuple(float(v) for v in f))
+        vals = [_values(model, mm.carry(p)) for p, _ in refs]
+        if any(v is None for v in vals):
+            return None, mm
+        with np.errstate(all="ignore"):
+            out = (np.concatenate(vals) - target) / size
+        ok = np.all(np.isfinite(out)) and float(np.max(np.abs(out))) < 1e100
+        return (out, mm) if ok else (None, mm)
+
+    c = np.ones(idx.size)
+    r, mm = resid(c)
+    if r is None:
+        return None
+    norm = float(np.linalg.norm(r))
+    for it in range(12):
+        if norm <= _TOL:
+            return mm
+        if it >= 6 and norm > 1e-6:
+            return None  # a true factor converges fast (the residual is smooth in it)
+        J = np.empty((r.size, idx.size))
+        for j in range(idx.size):
+            h = 1e-7 * max(abs(c[j]), 1e-3)
+            cj = c.copy()
+            cj[j] += h
+            rj, _ = resid(cj)
+            if rj is None:
+                return None
+            J[:, j] = (rj - r) / h
+        try:
+            with np.errstate(all="ignore"):
+                step = np.linalg.lstsq(J, -r, rcond=None)[0]
+        except (np.linalg.LinAlgError, ValueError):
+            return None
+        if not np.all(np.isfinite(step)):
+            return None
+        for t in (1.0, 0.5, 0.25):
+            c_new = c + t * step
+            r_new, mm_new = resid(c_new)
+            if r_new is not None and float(np.linalg.norm(r_new)) < norm:
+                c, r, mm, norm = c_new, r_new, mm_new, float(np.linalg.norm(r_new))
+                break
+        else:
+            return None
+    if norm <= _TOL and all(_close(_values(model, mm.carry(p)), v) for p, v in refs):
+        return mm
     return None
 
 

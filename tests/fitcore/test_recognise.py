@@ -40,12 +40,36 @@ def test_catalogue_curves_written_another_way_are_recognised(formula, name, carr
     assert np.allclose(m.f(x, q), cat.f(x, np.array(p_cat)), rtol=1e-12)
 
 
+@pytest.mark.parametrize("formula,name,param,factor", [
+    # t_half = ln 2 tau; FWHM = 2 sqrt(2 ln 2) sigma (algebra)
+    ("y0 + A*exp(-0.6931471805599453*x/t_half)", "exp_decay", "t_half", np.log(2.0)),
+    ("A*exp(-x*log(2)/T12) + C", "exp_decay", "T12", np.log(2.0)),
+    ("H*exp(-4*log(2)*(x - x0)**2/fwhm**2) + B", "gauss_peak", "fwhm", 2 * np.sqrt(2 * np.log(2.0))),
+])
+def test_a_constant_factor_is_recognised(formula, name, param, factor):
+    m = parse_formula(formula)
+    match = recognise(m)
+    assert match is not None and match.name == name
+    j = m.param_names.index(param)
+    assert match.factor[j] == pytest.approx(factor, rel=1e-9)
+
+
+def test_a_half_life_formula_fits_as_the_decay():
+    x, y = _decay_data()
+    res = fitcore.fit("y0 + A*exp(-0.6931471805599453*x/t_half)", x, y, loss="huber")
+    cat = fitcore.fit("exp_decay", x, y, loss="huber")
+    assert res.info["start_like"] == "exp_decay" and res.converged
+    assert res["t_half"] == pytest.approx(np.log(2.0) * cat["tau"], rel=1e-6)
+
+
 @pytest.mark.parametrize("formula", [
     "A1*exp(-x/t1) + A2*exp(-x/t2)",  # two exponentials: no catalogue curve
     "Bmax*x/(Kd + x) + NS*x",  # binding with a non-specific term
     "Bottom + (Top - Bottom)/(1 + 10**((logEC50 - x)*h))",  # 4PL on a log-dose axis
     "A*exp(-0.5*((x - mu)/s)**2)",  # a peak without a baseline (3 parameters)
     "A*exp(-(x - 60)/tau) + C",  # a decay from x = 60: A means something else
+    "B + (T - B)/(1 + exp(-(x - x50)/s))",  # a logistic in x, not in log x
+    "A*exp(-x/tau) + B*x",  # a decay on a slope
 ])
 def test_other_curves_are_not_taken_for_catalogue_ones(formula):
     assert recognise(parse_formula(formula)) is None
