@@ -36,9 +36,7 @@ import base64
 import dataclasses
 import inspect
 import json
-import os
 import queue
-import subprocess
 import sys
 import threading
 import time
@@ -52,12 +50,13 @@ from fitcore.bootstrap import BootstrapResult, bootstrap, model_spec
 from fitcore.bootstrap import build_model as _rebuild_model
 from fitcore.compare import AdaptiveReading, LossComparison, adaptive_reading, compare_losses
 from fitcore.diagnostics import PointDiagnostics, point_diagnostics
-from fitcore.formula import validate_formula
 from fitcore.io import Dialect, Table, read_clipboard_text, read_table
 from fitcore.model_choice import ModelChoice, ModelScore, choose_model
 from fitcore.models import resolve_model
 from fitcore.result import FitResult
 from fitcore.session import load_session
+
+from . import child_process
 
 log = logging.getLogger(__name__)
 
@@ -398,6 +397,8 @@ def _session_run(p, progress, cancel):
     method = session.method
     formula = None
     if method is not None and method.model_kind == "formula":
+        from fitcore.formula import validate_formula  # lazy: loads sympy (0.4 s), for formulas only
+
         ok, msg, _names = validate_formula(str(method.model))
         formula = (ok, msg)
     return {"points": int(session.n_points), "formula": formula}
@@ -405,6 +406,8 @@ def _session_run(p, progress, cancel):
 
 # -- checking a formula
 def _formula_run(p, progress, cancel):
+    from fitcore.formula import validate_formula  # lazy: loads sympy (0.4 s), for formulas only
+
     return validate_formula(p["text"], x_name=p.get("x_name", "x"))
 
 
@@ -488,46 +491,7 @@ def serve(stdin=None, stdout=None) -> int:
 
 
 # ---------------------------------------------------------------------------- parent side
-class _Child:
-    """One child process and the thread that reads its answers."""
-
-    def __init__(self):
-        env = dict(os.environ)
-        env.setdefault("OPENBLAS_NUM_THREADS", "1")
-        env.pop("QT_QPA_PLATFORM", None)
-        root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-        env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
-        self.proc = subprocess.Popen([sys.executable, "-m", "desktop.job_kinds"], stdin=subprocess.PIPE,
-                                     stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, env=env, cwd=root,
-                                     text=True, encoding="utf-8", bufsize=1)
-        self.lines: queue.Queue = queue.Queue()
-        self.reader = threading.Thread(target=self._read, daemon=True)
-        self.reader.start()
-
-    def _read(self):
-        try:
-            for line in self.proc.stdout:
-                self.lines.put(line)
-        except (OSError, ValueError):
-            pass  # the pipe closed under us: the child was ended
-        self.lines.put(None)
-
-    def alive(self) -> bool:
-        return self.proc.poll() is None
-
-    def end(self):
-        if self.proc.poll() is None:
-            self.proc.kill()
-        try:
-            self.proc.wait(5)
-        except subprocess.TimeoutExpired:
-            pass  # a zombie the OS reaps with this process
-        self.reader.join(1.0)
-        for f in (self.proc.stdin, self.proc.stdout):
-            try:
-                f.close()
-            except OSError:
-                pass
+_Child = child_process.Child
 
 
 _lock = threading.Lock()
@@ -536,18 +500,31 @@ _atexit_set = False
 
 
 def _spawn() -> _Child:
+    _end_at_exit()
+    return _Child()
+
+
+def _end_at_exit() -> None:
     global _atexit_set
     if not _atexit_set:
         import atexit
 
         atexit.register(shutdown)
         _atexit_set = True
-    return _Child()
+
+
+def _adopt_early() -> None:
+    """The child ``ballast`` started before its imports joins the idle pool (``_lock`` held)."""
+    early = child_process.take_early()
+    if early:
+        _end_at_exit()
+        _idle.extend(early)
 
 
 def _take_child() -> _Child:
     """An idle warm child, or a new one."""
     with _lock:
+        _adopt_early()
         while _idle:
             child = _idle.pop()
             if child.alive():
@@ -570,6 +547,7 @@ def _give_back(child: _Child) -> None:
 def warm_up() -> None:
     """Start an idle child now (e.g. when the window opens its analysis menu)."""
     with _lock:
+        _adopt_early()
         if any(c.alive() for c in _idle):
             return
     try:
@@ -637,4 +615,8 @@ def run_in_child(request: dict, progress=None, cancel=None, model=None, poll_s: 
 
 
 if __name__ == "__main__":
+    # the child reads files: pandas (0.4-0.7 s to import, loaded by fitcore.io only when
+    # a table is parsed) is loaded before the first request, while the child waits anyway
+    import pandas  # noqa: F401
+
     sys.exit(serve())

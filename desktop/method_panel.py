@@ -20,7 +20,6 @@ from PySide6.QtWidgets import (
     QLabel, QLineEdit, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
-from fitcore.formula import validate_formula
 from fitcore.losses import LOSS_NAMES, LOSSES, get_loss, loss_title
 from fitcore.weighting import RULES, TITLES
 from fitcore.models import builtin_models, model_short_title, model_title
@@ -40,6 +39,8 @@ def model_param_names(settings: Settings) -> tuple[str, ...]:
     """Parameter names of the settings' model (empty when it cannot be built)."""
     try:
         if settings.model_kind == "formula":
+            from fitcore.formula import validate_formula  # lazy: loads sympy (0.4 s), for formulas only
+
             ok, _msg, names = validate_formula(settings.model)
             return tuple(names) if ok else ()
         return tuple(settings.build_model().param_names)
@@ -51,6 +52,8 @@ def formula_check(text: str) -> tuple[str, str]:
     """``(level, message)`` for a formula: level "ok", "warn" (valid but almost surely
     a mistake: it does not use x) or "bad" (refused). Checked here and now; the panel
     checks in a child process instead (:meth:`MethodPanel.formula_level`)."""
+    from fitcore.formula import validate_formula  # lazy: loads sympy (0.4 s), for formulas only
+
     return formula_level_of(validate_formula(text))
 
 

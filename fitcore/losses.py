@@ -40,7 +40,7 @@ from functools import lru_cache
 from typing import Callable
 
 import numpy as np
-from scipy import integrate, optimize
+from scipy import optimize
 
 def _as_array(u):
     return np.asarray(u, dtype=float)
@@ -344,6 +344,8 @@ def efficiency(loss: Loss) -> float:
     lim = 40.0
     if loss.name == "l1":
         return 2.0 / math.pi
+    from scipy import integrate  # lazy: 0.3 s to import, seldom needed
+
     a = integrate.quad(lambda t: 2 * dpsi(t) * phi(t), 0, lim, points=pts, epsabs=1e-13, epsrel=1e-12, limit=200)[0]
     b = integrate.quad(lambda t: 2 * psi(t) ** 2 * phi(t), 0, lim, points=pts, epsabs=1e-13, epsrel=1e-12, limit=200)[0]
     return a * a / b

@@ -16,7 +16,6 @@ import math
 from functools import lru_cache
 
 import numpy as np
-from scipy import integrate
 
 
 
@@ -55,6 +54,8 @@ def log_partition_quad(alpha: float) -> float:
         return math.log(math.pi * math.sqrt(2.0))
     if alpha == 2.0:
         return 0.5 * math.log(2.0 * math.pi)
+    from scipy import integrate  # lazy: 0.3 s to import, seldom needed
+
     total = 0.0
     for a, b in ((0.0, 1.0), (1.0, 20.0), (20.0, math.inf)):
         total += integrate.quad(_integrand, a, b, args=(alpha,), epsabs=1e-14, epsrel=1e-13, limit=200)[0]

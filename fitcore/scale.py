@@ -6,7 +6,6 @@ import math
 from functools import lru_cache
 
 import numpy as np
-from scipy import integrate
 
 from .losses import Loss
 
@@ -98,6 +97,8 @@ def _beta_cached(key) -> float:
     phi = lambda t: math.exp(-0.5 * t * t) / math.sqrt(2 * math.pi)  # noqa: E731
     f = lambda t: 2.0 * float(loss.psi(np.array([t]))[0]) ** 2 * phi(t)  # noqa: E731
     pts = [loss.tuning] if loss.tuning else None
+    from scipy import integrate  # lazy: 0.3 s to import, seldom needed
+
     return integrate.quad(f, 0.0, 40.0, points=pts, epsabs=1e-14, epsrel=1e-12, limit=200)[0]
 
 
@@ -109,6 +110,8 @@ def _slope_cached(key) -> float:
     # here), which needs no derivative at a Huber corner
     f = lambda t: 2.0 * t * float(loss.psi(np.array([t]))[0]) * phi(t)  # noqa: E731
     pts = [loss.tuning] if loss.tuning else None
+    from scipy import integrate  # lazy: 0.3 s to import, seldom needed
+
     return integrate.quad(f, 0.0, 40.0, points=pts, epsabs=1e-14, epsrel=1e-12, limit=200)[0]
 
 
