@@ -43,6 +43,7 @@ import os
 import statistics
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -230,61 +231,24 @@ def bench_threads(repeat):
     line("5 case bootstraps B=199, 30 points", d[1], o[1], 1.3, "one BLAS thread")
 
 
-WINDOW_CODE = r"""
-import sys, time
-t0 = time.perf_counter()
-from PySide6.QtWidgets import QApplication
-app = QApplication(sys.argv[:1])
-from desktop.app import build_parser, create_window
-import os, tempfile
-from PySide6.QtCore import QSettings
-tmp = tempfile.mkdtemp()
-win = create_window(build_parser().parse_args([sys.argv[1]]),
-                    QSettings(os.path.join(tmp, "s.ini"), QSettings.IniFormat), recovery_dir=tmp)
-deadline = time.perf_counter() + 60
-while win.document.result is None and time.perf_counter() < deadline:
-    app.processEvents()
-    time.sleep(0.001)
-app.processEvents()
-# leave at once: tearing the window down at interpreter exit is not part of the start
-os._exit(0 if win.document.result is not None else 1)
-"""
-
-BARE_CODE = r"""
-import sys
-from PySide6.QtWidgets import QApplication, QMainWindow
-import pyqtgraph as pg
-app = QApplication(sys.argv[:1])
-w = QMainWindow()
-pw = pg.PlotWidget()
-pw.plot([1, 2, 3], [1, 3, 2], pen=None, symbol="o")
-w.setCentralWidget(pw)
-w.resize(1000, 650)
-w.show()
-app.processEvents()
-import os
-os._exit(0)
-"""
-
-
 def bench_window(repeat):
-    env = dict(os.environ, QT_QPA_PLATFORM=os.environ.get("QT_QPA_PLATFORM", "offscreen"))
-    sample = str(ROOT / "sample_sets" / "05_dose_response.ods")
-    reps = max(3, repeat)
+    """The window start, timed as bench/bench_start.py does it (the real ``ballast FILE``
+    path with its exit hook, fresh processes, alternating with the bare window)."""
+    sys.path.insert(0, str(ROOT / "bench"))
+    import bench_start
 
-    def run(code, *args):
-        times = []
-        for _ in range(reps):
-            t = time.perf_counter()
-            subprocess.run([sys.executable, "-c", code, *args], check=True, cwd=ROOT, env=env,
-                           stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-            times.append(time.perf_counter() - t)
-        return statistics.median(times)
-
-    t_bare = run(BARE_CODE)
-    t_ours = run(WINDOW_CODE, sample)
+    sample = str(ROOT / "sample_sets" / "02_tracer_decay.csv")
+    bare, ours = [], []
+    with tempfile.TemporaryDirectory() as tmp:
+        for i in range(max(3, repeat)):
+            env = bench_start._env(os.path.join(tmp, f"{i}a"))
+            bare.append(bench_start.time_to_line([sys.executable, "-c", bench_start.BARE_CODE], env, "bare:"))
+            env = dict(bench_start._env(os.path.join(tmp, f"{i}b")), BALLAST_EXIT_AFTER_FIRST_FIT="1")
+            ours.append(bench_start.time_to_line([sys.executable, "-m", "desktop", sample], env,
+                                                 "ballast: first fit"))
     print("window start (fresh processes, offscreen)")
-    line("ballast 05_dose_response.ods", t_ours, t_bare, 2.0, "bare window + plot")
+    line("ballast 02_tracer_decay.csv", statistics.median(ours), statistics.median(bare), 2.0,
+         "bare window + plot")
 
 
 SECTIONS = {"fit": bench_fit, "line": bench_line, "cold": bench_cold,

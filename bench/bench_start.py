@@ -14,9 +14,10 @@ QT_QPA_PLATFORM says otherwise, each with its own empty settings and recovery fo
 
 Each time runs from just before the process is started to the moment its line arrives
 on stdout (interpreter start and all imports included; closing is not timed). Printed:
-the medians, their ratio and the goal (issue 12: <= 2x). ``--phases`` adds one run of
-the window with ``BALLAST_START_PHASES=1``-style timing taken from a cProfile-free
-in-process driver: imports, window built, file read, first fit.
+the medians, their ratio and the goal (issue 12: <= 2x). ``--phases`` adds one
+in-process run split into imports, window built, file opened and fitted, repaint.
+``--also DIR`` times ``python -m desktop FILE`` from another checkout too, in the same
+alternation (before/after comparisons; that checkout needs the same exit hook).
 Never a pass/fail exit code: read the ratio over a few runs on a quiet machine.
 """
 from __future__ import annotations
@@ -60,6 +61,8 @@ t1 = time.perf_counter()
 from PySide6.QtCore import QSettings
 tmp = sys.argv[2]
 win = MainWindow(QSettings(os.path.join(tmp, "s.ini"), QSettings.IniFormat), recovery_dir=tmp)
+from desktop.dialogs import ColumnDialog
+win.choose_columns = lambda table: ColumnDialog(table, win).choice()  # the dialog's own choice
 win.show()
 qapp.processEvents()
 t2 = time.perf_counter()
@@ -74,10 +77,10 @@ os._exit(0)
 """
 
 
-def _env(tmp: str) -> dict:
+def _env(tmp: str, root: Path = ROOT) -> dict:
     env = dict(os.environ)
     env.setdefault("QT_QPA_PLATFORM", "offscreen")
-    env["PYTHONPATH"] = str(ROOT) + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    env["PYTHONPATH"] = str(root)
     # a fresh user: no settings, no recovery files, no recent files
     for var, sub in (("HOME", "home"), ("XDG_CONFIG_HOME", "cfg"), ("XDG_DATA_HOME", "data"),
                      ("XDG_CACHE_HOME", "cache"), ("XDG_RUNTIME_DIR", "run")):
@@ -87,10 +90,10 @@ def _env(tmp: str) -> dict:
     return env
 
 
-def time_to_line(args: list[str], env: dict, expect: str, timeout: float = 120.0) -> float:
+def time_to_line(args: list[str], env: dict, expect: str, timeout: float = 120.0, cwd: Path = ROOT) -> float:
     """Seconds from starting the process to its line starting with ``expect``."""
     t0 = time.perf_counter()
-    proc = subprocess.Popen(args, cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+    proc = subprocess.Popen(args, cwd=cwd, env=env, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
                             text=True)
     try:
         for line in proc.stdout:
@@ -114,13 +117,15 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=7, help="fresh processes of each kind")
     ap.add_argument("--file", default=str(ROOT / "sample_sets" / "02_tracer_decay.csv"))
     ap.add_argument("--phases", action="store_true", help="also one run split into phases")
+    ap.add_argument("--also", default="", help="another checkout whose ballast is timed too")
     a = ap.parse_args(argv)
+    other = Path(a.also).resolve() if a.also else None
     try:
         load = os.getloadavg()[0]
     except OSError:
         load = float("nan")
     print(f"load average before: {load:.2f}")
-    bare, ours = [], []
+    bare, ours, theirs = [], [], []
     with tempfile.TemporaryDirectory() as tmp:
         for i in range(a.repeat):
             run_dir = os.path.join(tmp, str(i))
@@ -128,11 +133,15 @@ def main(argv=None) -> int:
             bare.append(time_to_line([sys.executable, "-c", BARE_CODE], env, "bare:"))
             env = dict(_env(run_dir + "b"), BALLAST_EXIT_AFTER_FIRST_FIT="1")
             ours.append(time_to_line([sys.executable, "-m", "desktop", a.file], env, "ballast: first fit"))
+            if other is not None:
+                env = dict(_env(run_dir + "c", other), BALLAST_EXIT_AFTER_FIRST_FIT="1")
+                theirs.append(time_to_line([sys.executable, "-m", "desktop", a.file], env, "ballast: first fit",
+                                           cwd=other))
         if a.phases:
             run_dir = os.path.join(tmp, "phases")
             env = _env(run_dir)
             out = subprocess.run([sys.executable, "-c", PHASES_CODE, a.file, run_dir], cwd=ROOT, env=env,
-                                 capture_output=True, text=True, timeout=120)
+                                 capture_output=True, text=True, timeout=60)
             print("phases (one run): " + (out.stdout.strip() or out.stderr.strip()[-500:]))
     try:
         load = os.getloadavg()[0]
@@ -142,6 +151,10 @@ def main(argv=None) -> int:
     print(f"load average after: {load:.2f}")
     print("bare window + plot  " + " ".join(f"{t:.2f}" for t in bare) + f"  median {tb:.2f} s")
     print(f"ballast {Path(a.file).name}  " + " ".join(f"{t:.2f}" for t in ours) + f"  median {to:.2f} s")
+    if other is not None:
+        tt = statistics.median(theirs)
+        print(f"ballast from {other}  " + " ".join(f"{t:.2f}" for t in theirs) + f"  median {tt:.2f} s")
+        print(f"window start of {other}: {tt:.2f} s / bare {tb:.2f} s = {tt / tb:.2f}x")
     print(f"window start: ballast {to:.2f} s / bare {tb:.2f} s = {to / tb:.2f}x (goal <= 2x)")
     return 0
 
