@@ -92,3 +92,19 @@ def _loaded_qt(pid: int) -> bool:
         return "libqoffscreen" in Path(f"/proc/{pid}/maps").read_text()
     except OSError:
         return False
+
+
+def test_exit_after_first_fit_hook_reports_the_fitted_window(tmp_path):
+    """``BALLAST_EXIT_AFTER_FIRST_FIT=1 ballast FILE`` (bench/bench_start.py's hook): the
+    window opens the file through the real start path (the early job child, the read and
+    the trial fit in it, a four-column table's column dialog answered with its own
+    choice), says so once the first fit is on screen, and closes."""
+    env = _env(QT_QPA_PLATFORM="offscreen", HOME=str(tmp_path), XDG_CONFIG_HOME=str(tmp_path / "cfg"),
+               XDG_DATA_HOME=str(tmp_path / "data"), XDG_RUNTIME_DIR=str(tmp_path / "run"),
+               BALLAST_EXIT_AFTER_FIRST_FIT="1")
+    (tmp_path / "run").mkdir(mode=0o700)
+    sample = ROOT / "sample_sets" / "02_tracer_decay.csv"
+    out = subprocess.run([sys.executable, "-m", "desktop", str(sample)], cwd=ROOT, check=False,
+                         capture_output=True, text=True, env=env, timeout=180)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.splitlines() == ["ballast: first fit on screen"]
