@@ -602,8 +602,14 @@ class MainWindow(QMainWindow):
         line = Settings(model="line", loss=first.loss, alpha=first.alpha)
         idx = (np.unique(np.linspace(0, m.n - 1, TRIAL_POINTS).round().astype(np.intp))
                if m.n > TRIAL_POINTS else slice(None))
+        # least squares when the robust line cannot fit either: a handful of points is
+        # too few for an automatic robust scale (fitcore refuses 2p > n)
+        plain = Settings(model="line", loss="l2")
+        tries = [first] if first == line else [first, line]
+        if line.loss != "l2":
+            tries.append(plain)
         problems = []
-        for s in ([first] if first == line else [first, line]):
+        for s in tries:
             req = {"model": s.model_spec(), "x": m.x[idx], "y": m.y[idx],
                    "sigma": None if m.sigma is None else m.sigma[idx],
                    "excluded": np.zeros(m.x[idx].size, bool), "kwargs": s.to_fit_kwargs()}
@@ -625,6 +631,11 @@ class MainWindow(QMainWindow):
                     note = (f"Switched to a straight line: {what}, {model_title(first)}, "
                             f"cannot fit these data ({problems[0].rstrip('.')}). Choose another "
                             "model in Method.")
+                elif s is plain:
+                    note = (f"Switched to a straight line by least squares: {what}, "
+                            f"{model_title(first)} with the {loss_title(first.loss)} loss, "
+                            f"cannot fit these data ({problems[-1].rstrip('.')}). Choose another "
+                            "method in Method.")
                 return s, note
             problems.append(msg)
         raise ValueError(f"{dialogs.counted(m.n, 'point')} that cannot be fitted, not even by a "
