@@ -833,10 +833,13 @@ def _michaelis_menten():
 def _log_ratio(x, ec50):
     """ln(x/EC50), -inf at x = 0, NaN for x < 0."""
     x = np.asarray(x, dtype=float)
+    # EC50 <= 0 (a step onto its bound): NaN, which the solver refuses like any
+    # non-finite curve (math.log raised a raw ValueError out of fit())
+    lec = math.log(ec50) if ec50 > 0 else math.nan
     if x.size and x.min() > 0:  # (the usual case: the same numbers, fewer passes)
-        return np.log(x) - math.log(ec50)
+        return np.log(x) - lec
     with np.errstate(all="ignore"):
-        return np.where(x > 0, np.log(np.where(x > 0, x, 1.0)) - math.log(ec50),
+        return np.where(x > 0, np.log(np.where(x > 0, x, 1.0)) - lec,
                         np.where(x == 0, -np.inf, np.nan))
 
 

@@ -646,3 +646,12 @@ def test_start_value_helpers_are_the_shared_robust_statistics():
     r = np.array([3.0, -1.0, 0.5, 10.0, 2.0, 2.5])
     assert mad_about_median(r) == pytest.approx(MAD_CONSTANT * np.median(np.abs(r - np.median(r))))
     assert mad_about_median([]) == 0.0
+
+
+def test_logistic_curve_at_ec50_zero_is_not_finite_not_an_exception():
+    # a step onto EC50's bound (0) must give a non-finite curve the solver refuses, never a
+    # raw math-domain ValueError out of fit() (seen on bootstrap resamples)
+    m = fitcore.get_model("logistic4")
+    x = np.geomspace(0.01, 100, 5)
+    for ec50 in (0.0, -1.0):
+        assert not np.any(np.isfinite(m.f(x, np.array([2.0, 100.0, 1.1, ec50]))))
