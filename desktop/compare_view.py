@@ -577,13 +577,8 @@ class CompareView(QWidget):
         return text
 
     def text(self) -> str:
-        """The comparison table as tab-separated text (for copying)."""
-        t = self.table
-        if t.columnCount() == 0:
+        """The comparison table as tab-separated text (for copying and the report):
+        :meth:`fitcore.compare.LossComparison.text_rows`, the same cells as the table."""
+        if self.comparison is None or self.table.columnCount() == 0:
             return ""
-        rows = ["\t" + "\t".join(t.horizontalHeaderItem(c).text() for c in range(t.columnCount()))]
-        for r in range(t.rowCount()):
-            cells = [t.verticalHeaderItem(r).text()]
-            cells += [(t.item(r, c).text() if t.item(r, c) else "") for c in range(t.columnCount())]
-            rows.append("\t".join(cells))
-        return "\n".join(rows)
+        return "\n".join("\t".join(row) for row in self.comparison.text_rows())

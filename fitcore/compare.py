@@ -46,8 +46,9 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .losses import LOSS_NAMES, LOSS_TITLES
+from .losses import LOSS_NAMES, LOSS_TITLES, loss_short_title
 from .models import resolve_model
+from .numbers import format_value
 from .result import FitResult
 from .solve import FitError, alpha_profile, fit
 from .threads import small_problem
@@ -187,6 +188,40 @@ class LossComparison:
                     if abs(delta) > factor * cu:
                         out.append((name, la, lb, delta, cu))
         return out
+
+    def text_rows(self) -> list[list[str]]:
+        """The comparison as text cells, as the window's table shows them and the report
+        and copies print them: a header row (blank, then each loss's short title), one
+        row per parameter (``value(u)`` GUM-rounded, " (held)" for a held one), then
+        scale, alpha, n down-weighted and converged; a failed loss reads "failed"."""
+        fits = dict(self.fitted())
+        names: list[str] = []
+        for r in fits.values():
+            for n in r.param_names:
+                if n not in names:
+                    names.append(n)
+        extra = ["scale", "alpha", "n down-weighted", "converged"]
+        rows = [[""] + [loss_short_title(lo) for lo in self.losses]]
+        for i, label in enumerate(names + extra):
+            row = [label]
+            for lo in self.losses:
+                r = fits.get(lo)
+                if r is None:
+                    row.append("failed" if i == 0 else "")
+                elif i < len(names):
+                    if label not in r.param_names:
+                        row.append("")
+                        continue
+                    k = r.param_names.index(label)
+                    row.append(format_value(float(r.values[k]), float(r.stderr[k]), style="paren")
+                               + (" (held)" if label in r.fixed else ""))
+                else:
+                    row.append([f"{r.scale:.4g}",
+                                "-" if r.alpha is None else f"{r.alpha:.3g}",
+                                str(r.n_downweighted),
+                                "yes" if r.converged else "NO"][i - len(names)])
+            rows.append(row)
+        return rows
 
     def highlighted(self, factor: float = DIFFERENCE_FACTOR) -> dict[str, set[str]]:
         """``loss -> {params}`` taking part in any difference (for highlighting cells)."""

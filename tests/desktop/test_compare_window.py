@@ -76,6 +76,13 @@ def test_comparison_table_and_curves_equal_fitcore(loaded):
         assert t.item(names.index("n down-weighted"), c).data(VALUE_ROLE) == ref.n_downweighted
         alpha = t.item(names.index("alpha"), c).data(VALUE_ROLE)
         assert (alpha is None) == (ref.alpha is None)
+    # every cell's text is fitcore's (the report and the copies print text_rows)
+    rows = cmp.text_rows()
+    assert rows[0][1:] == [t.horizontalHeaderItem(c).text() for c in range(t.columnCount())]
+    for r in range(t.rowCount()):
+        assert rows[r + 1] == [t.verticalHeaderItem(r).text()] + [
+            t.item(r, c).text() for c in range(t.columnCount())]
+    assert view.text() == "\n".join("\t".join(row) for row in rows)
     # one curve per loss, each the loss's own fitted curve, each named in the key above
     # the plot (a legend inside the plot covered points)
     assert set(view.curves) == set(DEFAULT_LOSSES)

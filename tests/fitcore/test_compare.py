@@ -53,6 +53,20 @@ def test_table_rows(comparison):
     assert robust_down[0] >= 3  # the three planted outliers are down-weighted
 
 
+def test_text_rows_print_every_fit(comparison):
+    rows = comparison.text_rows()
+    assert rows[0] == ["", "L2", "Huber", "Cauchy", "Tukey", "adaptive"] or len(rows[0]) == 6
+    labels = [r[0] for r in rows[1:]]
+    assert labels == ["A", "tau", "C", "scale", "alpha", "n down-weighted", "converged"]
+    for c, loss in enumerate(comparison.losses, start=1):
+        res = comparison.results[loss]
+        for k, name in enumerate(res.param_names):
+            assert rows[1 + k][c] == fitcore.format_value(res.values[k], res.stderr[k])
+        assert rows[4][c] == f"{res.scale:.4g}"
+        assert rows[7][c] == ("yes" if res.converged else "NO")
+    assert rows[5][1] == "-" and rows[5][5] != "-"  # alpha only for the adaptive loss
+
+
 def test_difference_rule_is_en_above_one_with_k_2():
     """The highlight rule is E_n > 1 with expanded uncertainties U = 2u (ISO 13528's E_n
     number, from memory): |d| / sqrt(U_a^2 + U_b^2) > 1, i.e. |d| > 2 sqrt(u_a^2 + u_b^2);
