@@ -60,7 +60,7 @@ def test_text_rows_print_every_fit(comparison):
     assert labels == ["A", "tau", "C", "scale", "alpha", "n down-weighted", "converged"]
     for c, loss in enumerate(comparison.losses, start=1):
         res = comparison.results[loss]
-        for k, name in enumerate(res.param_names):
+        for k, _name in enumerate(res.param_names):
             assert rows[1 + k][c] == fitcore.format_value(res.values[k], res.stderr[k])
         assert rows[4][c] == f"{res.scale:.4g}"
         assert rows[7][c] == ("yes" if res.converged else "NO")
