@@ -74,7 +74,8 @@ def comparison_request(document: Document, losses) -> dict:
     kw["sigma"] = req["sigma"]
     kw["excluded"] = req["excluded"]
     return {"model": req["model"], "x": req["x"], "y": req["y"], "kwargs": kw,
-            "losses": tuple(losses), "generation": req["generation"]}
+            "losses": tuple(losses), "generation": req["generation"],
+            "rows": document.measurements.source_rows}
 
 
 def run_comparison(request: dict, progress=None, cancel=None, with_adaptive: bool = True,

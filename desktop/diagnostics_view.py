@@ -275,21 +275,12 @@ class DiagnosticsController(QObject):
         return np.flatnonzero(np.asarray(getattr(d, "high_leverage", []), bool))
 
     def note_text(self) -> str:
-        """Plain text for the estimates area and the report."""
+        """Plain text for the estimates area and the report (fitcore's wording; the
+        high-leverage points named by their file rows)."""
         d = self.diagnostics
         if d is None:
             return ""
-        lines = [f"Point diagnostics: influence by {getattr(d, 'method', '') or _method_label(d)}."]
-        hi = self.high_leverage_points()
-        note = str(getattr(d, "note", "") or "")
-        if note:
-            lines.append(note)
-        elif hi.size:
-            shown = ", ".join(f"{i + 1}" for i in hi[:12]) + (" ..." if hi.size > 12 else "")
-            lines.append(f"High leverage: points {shown}. {HIGH_LEVERAGE_NOTE}")
-        else:
-            lines.append("No high-leverage points.")
-        return " ".join(lines)
+        return d.summary(rows=self.document.measurements.source_rows)
 
     def _set_note(self, text: str):
         if self.note_label is None:

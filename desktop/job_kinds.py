@@ -134,12 +134,13 @@ def run_fit(request: dict):
 
 
 def run_comparison_core(model, x, y, kwargs: dict, losses, progress=None, cancel=None,
-                        with_adaptive: bool = True):
+                        with_adaptive: bool = True, rows=None):
     """``(cmp, reading or None, reading error or None, leverage note)``: the comparison job.
 
     The leverage note (``fitcore.diagnostics`` on the least-squares fit, or the first
     fit that worked; "" when no point has high leverage) warns that all the losses can
-    agree because a point far out in x pulls every one of them.
+    agree because a point far out in x pulls every one of them; ``rows`` (the points'
+    file rows) name the points in it.
     """
 
     kw = dict(kwargs)
@@ -166,7 +167,7 @@ def run_comparison_core(model, x, y, kwargs: dict, losses, progress=None, cancel
     if base is not None and not getattr(cmp, "cancelled", False):
 
         try:
-            note = point_diagnostics(base, exact_limit=0).note
+            note = point_diagnostics(base, exact_limit=0).leverage_note(rows)
         except ValueError:
             note = ""
     return cmp, reading, err, note
@@ -321,19 +322,21 @@ def _fit_unwire(w):
 # -- compare
 def _compare_run(p, progress, cancel):
     return run_comparison_core(p["model"], p["x"], p["y"], p["kwargs"], tuple(p["losses"]),
-                               progress, cancel, p.get("with_adaptive", True))
+                               progress, cancel, p.get("with_adaptive", True), p.get("rows"))
 
 
 def _compare_wire(p):
     if not isinstance(p["model"], str):  # a model with options travels as a built object: stays here
         return None
     return {"model": p["model"], "x": encode(p["x"]), "y": encode(p["y"]), "kwargs": encode(p["kwargs"]),
-            "losses": list(p["losses"]), "with_adaptive": bool(p.get("with_adaptive", True))}
+            "losses": list(p["losses"]), "with_adaptive": bool(p.get("with_adaptive", True)),
+            "rows": encode(p.get("rows"))}
 
 
 def _compare_unwire(w):
     return {"model": build_model(w["model"]), "x": decode(w["x"]), "y": decode(w["y"]),
-            "kwargs": decode(w["kwargs"]), "losses": tuple(w["losses"]), "with_adaptive": w["with_adaptive"]}
+            "kwargs": decode(w["kwargs"]), "losses": tuple(w["losses"]), "with_adaptive": w["with_adaptive"],
+            "rows": decode(w.get("rows"))}
 
 
 # -- diagnostics and bootstrap of a FitResult

@@ -48,6 +48,7 @@ import numpy as np
 
 from .losses import DEFAULT_TUNING, get_loss
 from .refits import WarmRefit
+from .report_text import point_label
 from .result import FitResult
 from .scale import psi_variance_at_normal
 from .solve import FitError, fit
@@ -171,6 +172,24 @@ class PointDiagnostics:
     def high_leverage_points(self) -> list[int]:
         """Indices (0-based, into the points table) of the high-leverage points."""
         return [int(i) for i in np.flatnonzero(self.high_leverage)]
+
+    def leverage_note(self, rows=None) -> str:
+        """The warning naming the high-leverage points, each by :func:`point_label`
+        (its file row when ``rows`` holds the points' file rows); "" when none."""
+        flagged = np.flatnonzero(self.high_leverage)
+        if not flagged.size:
+            return ""
+        names = [point_label(int(i), rows) for i in flagged[:10]]
+        more = f" and {flagged.size - 10} more" if flagged.size > 10 else ""
+        return (f"High leverage: {', '.join(names)}{more} (hat value above 2p/n = "
+                f"{self.threshold:.3g} or above {HIGH_LEVERAGE_ABS}). Note: {LEVERAGE_NOTE}. "
+                f"Check these points, and compare the fit with them excluded.")
+
+    def summary(self, rows=None) -> str:
+        """The diagnostics paragraph of the window and the report: how the influence
+        was obtained, then the high-leverage warning (points named by file row)."""
+        hi = self.leverage_note(rows) or "No high-leverage points."
+        return f"Point diagnostics: influence by {self.method}. {hi}"
 
 
 def _one_step(res: FitResult, J: np.ndarray, r: np.ndarray, with_scale: bool):
@@ -375,19 +394,12 @@ def point_diagnostics(res: FitResult, exact_limit: int = 500, *,
     if n_failed:
         method += f"; {n_failed} refit{'s' if n_failed != 1 else ''} failed"
 
-    note = ""
-    flagged = np.flatnonzero(high)
-    if flagged.size:
-        nums = [str(int(i) + 1) for i in flagged[:10]]
-        more = f" and {flagged.size - 10} more" if flagged.size > 10 else ""
-        which = "point" if flagged.size == 1 else "points"
-        note = (f"High leverage: {which} {', '.join(nums)}{more} (hat value above 2p/n = "
-                f"{threshold:.3g} or above {HIGH_LEVERAGE_ABS}). Note: {LEVERAGE_NOTE}. "
-                f"Check these points, and compare the fit with them excluded.")
-    return PointDiagnostics(leverage=leverage, std_residuals=std_res, cooks_distance=cooks,
-                            influence=influence, max_influence=max_infl, exact=exact,
-                            high_leverage=high, threshold=threshold, n_used=n, n_params=k,
-                            method=method, note=note, n_failed=n_failed, cancelled=cancelled)
+    d = PointDiagnostics(leverage=leverage, std_residuals=std_res, cooks_distance=cooks,
+                         influence=influence, max_influence=max_infl, exact=exact,
+                         high_leverage=high, threshold=threshold, n_used=n, n_params=k,
+                         method=method, note="", n_failed=n_failed, cancelled=cancelled)
+    d.note = d.leverage_note()
+    return d
 
 
 __all__ = ["point_diagnostics", "PointDiagnostics", "refit_settings", "hat_values",

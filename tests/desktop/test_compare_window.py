@@ -305,8 +305,8 @@ def test_stars_comparison_warns_that_agreement_does_not_clear_high_leverage(win,
     view = run_and_wait(win)
     note = view.leverage_note.text()
     assert view.leverage_note.isVisible()
-    for obs in ("11", "20", "30", "34"):
-        assert obs in note
+    for obs in (11, 20, 30, 34):  # named by file row (header on row 1), as in the table
+        assert f"row {obs + 1}" in note
     assert "robust loss does not protect" in note
     view.close_button.click()
     assert not view.leverage_note.isVisible()

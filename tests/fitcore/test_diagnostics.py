@@ -95,6 +95,13 @@ def test_high_leverage_flag_and_note():
     assert d.high_leverage[-1]
     assert d.leverage[-1] > 2 * 2 / 30
     assert "point 30" in d.note and "can still pull the fit" in d.note
+    # with the points' file rows (a header and a skipped row above), the same warning
+    # names the file row, the identifier of the window and the report (issue 17 item 3)
+    rows = np.r_[np.arange(2, 20), np.arange(21, 33)]
+    assert "row 32" in d.leverage_note(rows) and "point 30" not in d.leverage_note(rows)
+    summary = d.summary(rows)
+    assert summary.startswith(f"Point diagnostics: influence by {d.method}.")
+    assert d.leverage_note(rows) in summary
     # the rule (common practice): h > 2p/n or h > 0.5
     expect = (d.leverage > d.threshold) | (d.leverage > 0.5)
     np.testing.assert_array_equal(d.high_leverage, expect)
