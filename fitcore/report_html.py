@@ -380,14 +380,16 @@ def _exclusion_section(m: DataSet, exclusions: list) -> list[str]:
     out = ["<h2>Exclusion record</h2>"]
     if not exclusions:
         return out + ["<p>No point was excluded.</p>"]
+    # one identifier, as in the points table and every copy: the file row when the file
+    # rows are known, else the place in the data (1-based)
+    rows_known = m.source_rows is not None
     out += ['<table border="1" cellspacing="0" cellpadding="3">',
-            f"<tr><th>point</th><th>file row</th><th>{_h(m.label('x'))}</th>"
+            f"<tr><th>{'row' if rows_known else 'point'}</th><th>{_h(m.label('x'))}</th>"
             f"<th>{_h(m.label('y'))}</th><th>reason</th><th>when</th></tr>"]
     for e in exclusions:
         i = e.index
-        fr = m.file_row(i)
-        out.append(f'<tr><td class="num">{i + 1}</td>'
-                   f'<td class="num">{"" if fr is None else fr}</td>'
+        fr = m.file_row(i) if rows_known else None
+        out.append(f'<tr><td class="num">{i + 1 if fr is None else fr}</td>'
                    f'<td class="num">{_g(m.x[i], 10)}</td>'
                    f'<td class="num">{_g(m.y[i], 10)}</td>'
                    f"<td>{_h(e.reason) if e.reason else '<i>no reason given</i>'}</td>"

@@ -450,8 +450,10 @@ def test_points_can_be_traced_to_their_file_rows(open_window, tmp_path):
     assert w.runner.wait()
     html = w.reports.report_html()
     record = html[html.index("Exclusion record"):html.index("<h2>Points</h2>")]
-    assert "<th>file row</th>" in record
-    assert '<td class="num">58</td><td class="num">62</td>' in record
+    # one identifier (issue 17 item 3): the file row, as in the table, not the index too
+    assert "<th>row</th>" in record and "<th>point</th>" not in record
+    assert '<tr><td class="num">62</td><td class="num">' in record
+    assert '<td class="num">58</td>' not in record
 
 
 def test_window_report_is_the_library_report_of_the_same_fit(win, tmp_path):

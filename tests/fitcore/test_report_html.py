@@ -72,10 +72,27 @@ def test_least_squares_report_numbers_equal_statsmodels_ols():
     np.testing.assert_allclose(resid, ols.resid, rtol=2e-3, atol=1e-6)  # 4 significant digits
     # the residual standard deviation of the method paragraph (statsmodels' sqrt(scale))
     assert f"residual standard deviation was {np.sqrt(ols.scale):.4g} mV" in text
-    # the exclusion record names the point by number, file row, value and reason
-    assert ('<td class="num">7</td><td class="num">8</td>'
-            f'<td class="num">{data.x[6]:.10g}</td>') in text
+    # the exclusion record names the point by its file row alone (issue 17 item 3: one
+    # identifier everywhere, as the points table and every copy), value and reason
+    record = text[text.index("Exclusion record"):text.index("<h2>Points</h2>")]
+    assert "<th>row</th>" in record and "<th>point</th>" not in record
+    assert "file row" not in record
+    assert ('<tr><td class="num">8</td>'
+            f'<td class="num">{data.x[6]:.10g}</td>') in record
     assert "<td>bubble in the cell</td><td>" + WHEN in text
+
+
+def test_exclusion_record_without_file_rows_numbers_the_points():
+    # data typed or pasted (no file rows): the place in the data, 1-based, under "point"
+    data = _data()
+    data = DataSet(data.x, data.y, x_name="Conc", y_name="Signal")
+    excl = np.zeros(data.n, bool)
+    excl[6] = True
+    res = fitcore.fit("line", data.x, data.y, excluded=excl)
+    text = report_html(res, data, exclusions=[Exclusion(6, "bubble", WHEN)], written=WHEN)
+    record = text[text.index("Exclusion record"):text.index("<h2>Points</h2>")]
+    assert "<th>point</th>" in record and "<th>row</th>" not in record
+    assert f'<tr><td class="num">7</td><td class="num">{data.x[6]:.10g}</td>' in record
 
 
 def test_the_document_has_every_section_one_caution_and_the_plot_drawn_from_the_data():
