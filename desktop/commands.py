@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from PySide6.QtGui import QUndoCommand
 
+from fitcore.report_text import point_label
+
 from .document import Document, MaskChange, Settings
 
 #: command id shared by the steps of one box drag (see :meth:`MaskCommand.mergeWith`)
@@ -78,7 +80,8 @@ class ReasonCommand(QUndoCommand):
     """Change the exclusion reason of one point."""
 
     def __init__(self, document: Document, index: int, reason: str):
-        super().__init__(f"Reason for point {index + 1}")
+        # the point named as everywhere else: its file row when known
+        super().__init__(f"Reason for {point_label(index, document.measurements.source_rows)}")
         self.document = document
         self.index = int(index)
         self.before = document.reasons[self.index]

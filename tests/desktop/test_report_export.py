@@ -448,6 +448,10 @@ def test_points_can_be_traced_to_their_file_rows(open_window, tmp_path):
     assert w.points_model.headerData(COL["#"], Qt.Horizontal) == "row"
     w.push(MaskCommand(doc, doc.make_mask_change([57], True, reason="cosmic ray")))
     assert w.runner.wait()
+    # the undo step of a changed reason names the point the same way
+    from desktop.commands import ReasonCommand
+    w.push(ReasonCommand(doc, 57, "cosmic ray"))
+    assert w.undo_stack.undoText() == "Reason for row 62"
     html = w.reports.report_html()
     record = html[html.index("Exclusion record"):html.index("<h2>Points</h2>")]
     # one identifier (issue 17 item 3): the file row, as in the table, not the index too
