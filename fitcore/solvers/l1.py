@@ -218,10 +218,136 @@ def _l1_nonlinear(prob: _Problem, theta: np.ndarray, max_iter: int = 200) -> _In
     return _Inner(theta, r, obj, it, converged, message)
 
 
+# --------------------------------------------------------------------------- small n
+_LAD_SMALL_MAX = 400  # up to this many points a start's exact L1 fit is found here
+_LAD_CERT_TOL = 1e-11  # relative slack of the optimality certificate (rounding)
+
+
+def _weighted_median_row(r, ad, w):
+    """The row where ``sum w_i |r_i - lam ad_i|`` is least along an edge: the
+    weighted median of the break points ``r_i / ad_i`` with weights ``w_i |ad_i|``
+    (the first at which the cumulative weight reaches half); None when no row moves."""
+    nz = np.flatnonzero(ad)
+    if nz.size == 0:
+        return None
+    q = r[nz] / ad[nz]
+    order = np.argsort(q, kind="stable")
+    c = np.cumsum((w[nz] * np.abs(ad[nz]))[order])
+    return int(nz[order[int(np.searchsorted(c, 0.5 * c[-1]))]])
+
+
+def _lad_small(A: np.ndarray, b: np.ndarray) -> np.ndarray | None:
+    """Exact ``min sum |b - A t|`` for up to a few hundred points and a few columns,
+    by descent from vertex to vertex: the simplex method of the L1 problem in the form
+    Barrodale and Roberts gave it (SIAM J. Numer. Anal. 10, 1973), where each step
+    goes along one edge as far as the objective falls, to a weighted median of the
+    residuals' break points along that edge.
+
+    A vertex is a fit through k of the points (the basis B, rows of the matrix M).
+    Edge j frees basis point j and keeps the others on the fit (direction ``M^-1
+    e_j``); the objective's slope along it is ``w_j - v_j`` (``w_j + v_j`` backwards)
+    with ``v = (w sign r)^T A M^-1`` over the other points, so a vertex is optimal when
+    ``|v_j| <= w_j`` for every j (the LP's dual certificate). The first k steps start
+    from t = 0 and bring in one point each. Points that are exact repeats are merged
+    into one with their count as the weight w, and the rows are put in a canonical
+    order first (the vertex returned does not depend on the order of the points).
+
+    Returns None, and the caller solves the linear programme, where the answer cannot
+    be certified here: a rank-deficient design, a degenerate vertex (more than k
+    points exactly on the fit, e.g. exactly collinear data), a badly conditioned
+    basis, or no certificate within the iteration limit.
+    """
+    n, k = A.shape
+    if k == 0 or n < k or n > _LAD_SMALL_MAX:
+        return None
+    order = np.lexsort(np.vstack([b[None, :], A.T[::-1]]))
+    A, b = A[order], b[order]
+    same = (b[1:] == b[:-1]) & np.all(A[1:] == A[:-1], axis=1)
+    if same.any():
+        first = np.flatnonzero(np.concatenate([[True], ~same]))
+        w = np.diff(np.append(first, n)).astype(float)
+        A, b = A[first], b[first]
+    else:
+        w = np.ones(n)
+    m = b.size
+    if m < k:
+        return None
+    dA = np.array([_pow2(v) for v in np.sqrt(np.einsum("ij,ij->j", A, A) / m)])
+    As = A / dA
+    absA = np.abs(As)
+    basis = np.full(k, -1)
+    M = np.eye(k)
+    Minv = np.eye(k)
+    t = np.zeros(k)
+    r = b.copy()
+    # first k steps: along each still-free unit direction to a point (t moves from 0)
+    for j in range(k):
+        d = Minv[:, j]
+        ad = As @ d
+        ad[basis[:j]] = 0.0
+        i = _weighted_median_row(r, ad, w)
+        if i is None:
+            return None  # no point moves along this direction: rank deficient
+        t = t + (r[i] / ad[i]) * d
+        M[j] = As[i]
+        basis[j] = i
+        try:
+            Minv = np.linalg.inv(M)
+        except np.linalg.LinAlgError:
+            return None
+        r = b - As @ t
+        r[basis[:j + 1]] = 0.0
+    nonbasic = np.ones(m, bool)
+    nonbasic[basis] = False
+    for _ in range(20 * (m + k)):
+        try:
+            t = np.linalg.solve(M, b[basis])
+        except np.linalg.LinAlgError:
+            return None
+        r = b - As @ t
+        r[basis] = 0.0
+        size = np.abs(b) + absA @ np.abs(t)  # the rounding scale of each residual
+        if np.any(nonbasic & (np.abs(r) <= 1e-12 * size)):
+            return None  # degenerate vertex: the certificate below would not be exact
+        v = ((w * np.sign(r)) @ As) @ Minv
+        wb = w[basis]
+        excess = np.abs(v) - wb
+        j = int(np.argmax(excess))
+        if excess[j] <= _LAD_CERT_TOL * float(np.sum(w)):
+            if np.abs(M).max() * np.abs(Minv).max() > 1e10:
+                return None  # the certificate itself is not reliable
+            return t / dA
+        sgn = 1.0 if v[j] > 0 else -1.0
+        d = sgn * Minv[:, j]
+        ad = As @ d
+        ad[basis] = 0.0
+        ad[basis[j]] = sgn
+        i = _weighted_median_row(r, ad, w)
+        if i is None or i == basis[j]:
+            return None  # no descent where the slope says there is one: rounding
+        nonbasic[basis[j]] = True
+        nonbasic[i] = False
+        M[j] = As[i]
+        basis[j] = i
+        try:
+            Minv = np.linalg.inv(M)
+        except np.linalg.LinAlgError:
+            return None
+    return None
+
+
 def _l1_linear_start(prob: _Problem, theta0) -> tuple[np.ndarray, bool]:
-    """The exact L1 fit of a linear model, and whether it was found."""
+    """The exact L1 fit of a linear model, and whether it was found (small problems
+    without bounds by :func:`_lad_small`, else, or where it cannot certify its answer,
+    by the linear programme)."""
     A = prob.jac(theta0)
     b = prob.rhs()
+    if (b.size <= _LAD_SMALL_MAX and not np.any(np.isfinite(prob.lower))
+            and not np.any(np.isfinite(prob.upper))
+            and np.all(np.isfinite(A)) and np.all(np.isfinite(b))):
+        t = _lad_small(A, b)
+        if t is not None:
+            return t, True
     try:
         return _l1_linear(A, b, prob.lower, prob.upper), True
     except FitError:
