@@ -153,11 +153,11 @@ def test_html_report_is_self_contained_and_complete(win, tmp_path):
     assert "was fitted to 29 of the 30 points in line.csv" in text
     assert "the Huber loss (tuning constant 1.345 × scale)" in text
     assert html_escape(fr.CAUTION) in text
-    # exclusion record: point, file row, value, reason, when
+    # exclusion record: file row (the one identifier), value, reason, when
     when = win.document.times[5]
     row = win.document.measurements.file_row(5)
     assert row is not None and row > 6  # (a header and title lines come first)
-    assert re.search(rf"<td class=\"num\">6</td><td class=\"num\">{row}</td>"
+    assert re.search(rf"<tr><td class=\"num\">{row}</td>"
                      rf"<td class=\"num\">{res.x[5]:.10g}</td>"
                      rf"<td class=\"num\">{res.y[5]:.10g}</td><td>pipette bubble</td>"
                      rf"<td>{re.escape(when)}</td>", text)
