@@ -49,6 +49,7 @@ class PaneSizer(QObject):
         self.estimates = estimates
         self.auto = bool(auto)
         self._setting = False
+        self._header_hints: dict[int, int] = {}  # column -> its title's width, measured shown
         main_split.splitterMoved.connect(self._moved_by_hand)
         if top_split is not None:
             top_split.splitterMoved.connect(self._moved_by_hand)
@@ -88,7 +89,7 @@ class PaneSizer(QObject):
         ``include_hidden``: also its columns hidden for want of room)."""
         table = self.estimates.table
         header = table.horizontalHeader()
-        need = sum(max(header.sectionSize(c), table.sizeHintForColumn(c), header.sectionSizeHint(c))
+        need = sum(max(header.sectionSize(c), table.sizeHintForColumn(c), self._header_hint(header, c))
                    for c in range(header.count())
                    if include_hidden or not header.isSectionHidden(c))
         if header.stretchLastSection() and header.count():
@@ -106,6 +107,16 @@ class PaneSizer(QObject):
             # a pane taller than the window (a long summary) scrolls: its bar takes width
             need += scroll.verticalScrollBar().sizeHint().width()
         return int(need + margins.left() + margins.right() + WIDTH_SPARE)
+
+    def _header_hint(self, header, c: int) -> int:
+        """The width column ``c``'s title needs. Qt gives 0 for a hidden section, so
+        the width measured while it was shown is kept (the titles never change): else
+        the hidden std. unc. column counted ~20 px less than the shown one, and each
+        fit() flipped it (hidden: fits, so shown; shown: too wide, so hidden), leaving
+        the Raman area's unit cut or not by the parity of the number of calls."""
+        if not header.isSectionHidden(c):
+            self._header_hints[c] = header.sectionSizeHint(c)
+        return self._header_hints.get(c, 0)
 
     def fit(self) -> None:
         total = self.split.width()
