@@ -171,7 +171,7 @@ def _neg(e):
 
 def _atom_text(unit: str) -> str:
     """A data unit as one factor: bracketed when it is itself compound."""
-    return f"({unit})" if re.search(r"[/\s*^·]", unit) else unit
+    return f"({unit})" if re.search(r"[/\s*^·]", unit) or _WRITTEN_POWER.match(unit) else unit
 
 
 def _power_text(atom: str, e) -> str:
@@ -184,20 +184,46 @@ def _power_text(atom: str, e) -> str:
     return f"{atom}^{e}"
 
 
-def _format(factors: Sequence[tuple[str, object]]) -> str:
-    """``[(atom, exponent)]`` as unit text: ``"(mg/L)/s"``, ``"1/(mg/L)"``, ``"s*mV"``."""
+#: the product of two units in every unit text shown (window, copies, report): the
+#: half-high dot (SI brochure, 9th ed., 5.4.6), ``"s·mV"``; a quotient is written with
+#: ``/`` and a power as ``^n``. Unit expressions in data units (hints) keep ``*``.
+PRODUCT = "\u00b7"
+
+_SUPERSCRIPT = str.maketrans("\u207b\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079",
+                             "-0123456789")
+#: a data unit written with its own power: "cm-1" (instrument exports), "cm^-1",
+#: "cm^(-1)", "cm⁻¹", "m²" (a plain "m2" stays a name: it may be one)
+_WRITTEN_POWER = re.compile(
+    r"^(?P<base>[^\W\d_]+)(?:\^\(?(?P<caret>-?\d+)\)?|(?P<minus>-\d+)"
+    r"|(?P<sup>\u207b?[\u2070\u00b9\u00b2\u00b3\u2074-\u2079]+))$")
+
+
+def _data_factors(unit: str) -> list[tuple[str, Fraction]]:
+    """A data column's unit as factors: ``"cm-1"`` is ``[("cm", -1)]``, ``"mg/L"``
+    (compound: one atom, bracketed where needed) ``[("mg/L", 1)]``."""
+    m = _WRITTEN_POWER.match(unit)
+    if m is None:
+        return [(unit, Fraction(1))]
+    power = m.group("caret") or m.group("minus") or m.group("sup").translate(_SUPERSCRIPT)
+    p = Fraction(int(power))
+    return [(m.group("base"), p)] if p != 0 else []
+
+
+def _format(factors: Sequence[tuple[str, object]], product: str = "*") -> str:
+    """``[(atom, exponent)]`` as unit text: ``"(mg/L)/s"``, ``"1/(mg/L)"``, ``"s*mV"``
+    (``"s·mV"`` with ``product`` :data:`PRODUCT`)."""
     num = [_power_text(_atom_text(a), e) for a, e in factors
            if (isinstance(e, Fraction) and e > 0) or (isinstance(e, str) and not e.startswith("-"))]
     den = [_power_text(_atom_text(a), _neg(e)) for a, e in factors
            if (isinstance(e, Fraction) and e < 0) or (isinstance(e, str) and e.startswith("-"))]
     if not num and not den:
         return ""
-    top = "*".join(num) if num else "1"
+    top = product.join(num) if num else "1"
     if not den:
         return top
     if len(den) == 1:
         return f"{top}/{den[0]}"
-    return f"{top}/({'*'.join(den)})"
+    return f"{top}/({product.join(den)})"
 
 
 def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
@@ -221,6 +247,8 @@ def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
     except (_HintError, ValueError, ZeroDivisionError):
         return ""
     subs = {"x": (x_unit or "").strip(), "y": (y_unit or "").strip()}
+    if len(factors) == 1 and factors[0][1] == 1 and factors[0][0] in subs:
+        return subs[factors[0][0]]  # a bare data unit, written as the file wrote it
     merged: dict[str, Fraction] = {}
     symbolic: list[tuple[str, str]] = []
     for atom, e in factors:
@@ -228,13 +256,15 @@ def resolve_unit(expr: str, x_unit: str, y_unit: str) -> str:
         if not unit:
             continue  # dimensionless: x^b of a unitless x is unitless too
         if isinstance(e, Fraction):
-            merged[unit] = merged.get(unit, Fraction(0)) + e
+            parts = _data_factors(unit) if atom in subs else [(unit, Fraction(1))]
+            for base, p in parts:
+                merged[base] = merged.get(base, Fraction(0)) + e * p
         else:
             symbolic.append((unit, e))
     out = [(u, e) for u, e in merged.items() if e != 0] + symbolic
     if len(out) == 1 and out[0][1] == 1 and not symbolic:
         return out[0][0]  # a bare data unit, written as it is
-    return _format(out)
+    return _format(out, PRODUCT)
 
 
 def unit_from_exponents(ex, ey) -> str:

@@ -46,9 +46,9 @@ CATALOGUE = {
     "arrhenius": {"lnA": ("", ""), "Ea": ("J/mol", "J/mol"), "A": ("mV", ""),
                   "Ea_kJ": ("kJ/mol", "kJ/mol")},
     "gauss_peak": {"A": ("mV", ""), "x0": ("s", "mg/L"), "sigma": ("s", "mg/L"), "base": ("mV", ""),
-                   "FWHM": ("s", "mg/L"), "area": ("s*mV", "mg/L")},
+                   "FWHM": ("s", "mg/L"), "area": ("s·mV", "mg/L")},
     "lorentz_peak": {"A": ("mV", ""), "x0": ("s", "mg/L"), "gamma": ("s", "mg/L"),
-                     "base": ("mV", ""), "FWHM": ("s", "mg/L"), "area": ("s*mV", "mg/L")},
+                     "base": ("mV", ""), "FWHM": ("s", "mg/L"), "area": ("s·mV", "mg/L")},
 }
 
 
@@ -90,6 +90,31 @@ def test_data_unit_blank_means_dimensionless():
     # literal units stay; an unreadable expression gives no half-made unit
     assert resolve_unit("J/mol", "s", "mV") == "J/mol"
     assert resolve_unit("y/x)", "s", "mV") == ""
+
+
+def test_unit_products_and_written_powers():
+    # one convention for every text (window, copies, report): a product of units with
+    # the half-high dot, a quotient with '/', a power as '^n' (SI brochure, 9th ed.,
+    # 5.4.6: products of units by a half-high dot or a space; common practice in plain
+    # text for the rest). A data unit written with its own power ('cm-1' in a Raman
+    # export's header, 'cm^-1', 'cm⁻¹', 'm²') is that power: the Raman band's area
+    # (x*y) in cm-1 times counts is counts/cm, never 'cm-1*counts'
+    assert resolve_unit("x*y", "s", "mV") == "s·mV"
+    for cm in ("cm-1", "cm^-1", "cm^(-1)", "cm⁻¹"):
+        assert resolve_unit("x*y", cm, "counts") == "counts/cm", cm
+        assert resolve_unit("1/x", cm, "") == "cm", cm
+        assert resolve_unit("y/x", cm, "counts") == "counts·cm", cm
+        # a bare data unit is written as the file wrote it
+        assert resolve_unit("x", cm, "counts") == cm
+    assert resolve_unit("x*y", "m²", "N") == "m^2·N"
+    assert resolve_unit("y/x^2", "s-1", "mV") == "mV·s^2"
+    # a hyphen inside a name is no power ('mg-N', a trailing letter): kept whole
+    assert resolve_unit("x*y", "mg-N", "mV") == "mg-N·mV"
+    # no product sign other than the dot in any catalogue unit
+    for name in builtin_models():
+        for _n, hint in _hints(get_model(name)):
+            for xu, yu in (("s", "mV"), ("cm-1", "counts"), ("mg/L", "")):
+                assert "*" not in resolve_unit(hint, xu, yu), (name, hint)
 
 
 @pytest.mark.parametrize("name", sorted(CATALOGUE))
@@ -169,6 +194,8 @@ def test_derived_units_as_siunitx_literal_units():
     assert siunitx_unit(resolve_unit("y/x^(1/2)", "s", "mV")) == "mV/s^{1/2}"
     assert siunitx_unit(resolve_unit("y/x^b", "s", "mV")) == "mV/s^{b}"
     assert siunitx_unit("m²") == "m^{2}"
+    # the product dot is siunitx's own product separator '.'
+    assert siunitx_unit(resolve_unit("x*y", "s", "mV")) == "s.mV"
 
 
 def _exponents(hint: str) -> tuple[float, float]:
