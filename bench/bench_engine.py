@@ -19,7 +19,18 @@ same code, so both are printed.
 Also: a least-squares line at 1e6 points in fresh processes, time and peak memory against
 the data's size, with the extended-precision refinement gated (now) and forced (before).
 
-Run: python bench/bench_engine.py [--quick]
+Large data (``--only large``; each figure a fresh process, one fit after a warm-up
+on 1000 points, wall clock; run it on a quiet machine):
+
+* L1 (exact least absolute deviations) of a line and of an exponential decay at 1e5
+  and 1e6 points: growth against n log n (the time ratio 1e6 / 1e5 divided by
+  10 log(1e6) / log(1e5) = 12; goal <= 1), and the L1 decay against the Huber decay
+  at 1e6 (goal <= 10x);
+* the adaptive loss (shape and scale by maximum likelihood) against Huber at 1e6, for
+  the line and the decay (goal <= 10x).
+
+Run: python bench/bench_engine.py [--quick] [--only decay,line,memory,large]
+(default: every section but ``large``; ``--quick`` runs smaller sizes)
 """
 from __future__ import annotations
 
@@ -175,8 +186,93 @@ def ls_line_memory(n):
           f"target: peak < 3x data ({'met' if rows['gated'][1] < 3 * rows['gated'][3] else 'NOT met'})")
 
 
+LARGE_FIT_CODE = r"""
+import sys, time
+import numpy as np
+import fitcore
+model, loss, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
+rng = np.random.default_rng(int(sys.argv[4]))
+if model == "line":
+    x = rng.uniform(0, 10, n)
+    y = 1 + 2 * x + rng.normal(0, 1, n)
+    out = rng.random(n) < 0.05
+    y[out] += rng.uniform(5, 30, out.sum())
+else:
+    x = np.linspace(0, 10, n)
+    y = 3 * np.exp(-x / 2) + 0.5 + rng.normal(0, 0.05, n)
+    out = rng.random(n) < 0.05
+    y[out] += rng.uniform(0.5, 3, out.sum())
+fitcore.fit(model, x[::max(1, n // 1000)], y[::max(1, n // 1000)], loss=loss)  # imports, caches
+t = time.perf_counter()
+r = fitcore.fit(model, x, y, loss=loss)
+t = time.perf_counter() - t
+print(t, r.n_iter, int(r.converged), " ".join(repr(float(v)) for v in r.values))
+"""
+
+
+def fresh_fit(model, loss, n, seed=0):
+    """One fit in a fresh process: (seconds, n_iter, converged, values)."""
+    import subprocess
+
+    out = subprocess.run([sys.executable, "-c", LARGE_FIT_CODE, model, loss, str(n), str(seed)],
+                         capture_output=True, text=True, check=True).stdout.split()
+    return float(out[0]), int(out[1]), out[2] == "1", [float(v) for v in out[3:]]
+
+
+def large_data(n_big):
+    """L1 growth and L1 / adaptive against Huber at ``n_big`` points (fresh processes)."""
+    import math
+    import os
+
+    n_small = n_big // 10
+    nlogn = 10 * math.log(n_big) / math.log(n_small)
+    print(f"large data (fresh process per fit, wall clock; load average "
+          f"{' '.join(f'{v:.1f}' for v in os.getloadavg())})")
+    times = {}
+    for model in ("line", "exp_decay"):
+        for loss, sizes in (("l1", (n_small, n_big)), ("huber", (n_big,)),
+                            ("adaptive", (n_big,))):
+            for n in sizes:
+                t, it, ok, vals = fresh_fit(model, loss, n)
+                times[model, loss, n] = t
+                print(f"  {model:9s} {loss:8s} n = {n:.0e}  {t:8.2f} s  iterations {it:4d}"
+                      f"  {'converged' if ok else 'NOT converged'}  "
+                      f"{', '.join(f'{v:.6g}' for v in vals)}")
+    for model in ("line", "exp_decay"):
+        g = times[model, "l1", n_big] / times[model, "l1", n_small]
+        print(f"  {model}: L1 time {n_big:.0e} / {n_small:.0e} = {g:.1f} (n log n: {nlogn:.1f})"
+              f" -> {g / nlogn:.2f} of n log n growth (goal <= 1)")
+    for model in ("line", "exp_decay"):
+        for loss in ("l1", "adaptive"):
+            if model == "line" and loss == "l1":
+                continue
+            q = times[model, loss, n_big] / times[model, "huber", n_big]
+            print(f"  {model}: {loss} / Huber at {n_big:.0e} = {q:.1f}x (goal <= 10)")
+
+
 def main():
     quick = "--quick" in sys.argv
+    only = None
+    if "--only" in sys.argv:
+        only = set(sys.argv[sys.argv.index("--only") + 1].split(","))
+    if only is not None:
+        try:
+            from threadpoolctl import threadpool_info
+
+            print("BLAS:", ", ".join(f"{i['internal_api']} {i.get('num_threads')} threads"
+                                     for i in threadpool_info()))
+        except ImportError:
+            pass
+        n_decay, rep = (10**4, 3) if quick else (10**5, 7)
+        if "decay" in only:
+            robust_decay(n_decay, rep)
+        if "line" in only:
+            robust_line(10**5 if quick else 10**6, 3 if quick else 5)
+        if "memory" in only:
+            ls_line_memory(10**5 if quick else 10**6)
+        if "large" in only:
+            large_data(10**5 if quick else 10**6)
+        return
     try:
         from threadpoolctl import threadpool_info
 

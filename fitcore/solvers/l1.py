@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import optimize, sparse
+from scipy import linalg, optimize, sparse
 
 from .problem import FitError, _Inner, _Problem, _project, _start_residuals
 
@@ -22,7 +22,7 @@ def _pow2(v: float) -> float:
     return math.ldexp(1.0, math.frexp(v)[1] - 1)
 
 
-def _lad_dual(A, b, lo, hi, g=None):
+def _lad_dual(A, b, lo, hi, g=None, method="highs"):
     """Solve ``min sum |b - A t| (+ g^T t)`` over ``lo <= t <= hi`` through its dual.
 
     The dual, ``max b^T d + lo^T mu - hi^T nu`` subject to ``A^T d + mu - nu = g``,
@@ -45,7 +45,7 @@ def _lad_dual(A, b, lo, hi, g=None):
     bounds[:n] = (-1.0, 1.0)
     bounds[n:] = (0.0, np.inf)
     beq = np.zeros(k) if g is None else g
-    res = optimize.linprog(c, A_eq=Aeq, b_eq=beq, bounds=bounds, method="highs")
+    res = optimize.linprog(c, A_eq=Aeq, b_eq=beq, bounds=bounds, method=method)
     if res.status != 0 or res.eqlin is None:
         return None
     t = -np.asarray(res.eqlin.marginals, dtype=float)
@@ -66,57 +66,115 @@ def _lad_primal(A, b, lo, hi):
     return res.x[:k]
 
 
+#: Portnoy-Koenker band: the subsample has about ``_PK_SUB (k n)^(2/3)`` points, and the
+#: band keeps the points whose residual from the subsample fit is within ``_PK_Z`` of its
+#: prediction standard errors (widened by ``_PK_WIDEN`` where that missed a sign)
+_PK_SUB = 2.0
+_PK_Z = 4.0
+_PK_WIDEN = 2.0
+_PK_METHOD = "highs-ipm"
+_PK_MIN = 500  # the fewest points in a band
+
+
+def _row_hash(A: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """A pseudo-random 64-bit key per row computed from the row's values alone (the bits
+    of b and of A's entries, mixed by splitmix64's finaliser): the subsample and the
+    order of the rows given to the LPs follow it, so the answer does not depend on the
+    order of the points (equal rows get equal keys, and are interchangeable)."""
+    h = np.full(b.size, 0x9E3779B97F4A7C15, dtype=np.uint64)
+    for col in (b, *A.T):
+        v = np.ascontiguousarray(col, dtype=float) + 0.0  # (-0.0 and 0.0 alike)
+        h ^= v.view(np.uint64)
+        h ^= h >> np.uint64(30)
+        h *= np.uint64(0xBF58476D1CE4E5B9)
+        h ^= h >> np.uint64(27)
+        h *= np.uint64(0x94D049BB133111EB)
+        h ^= h >> np.uint64(31)
+    return h
+
+
 def _lad_globbed(A, b, lo, hi):
     """Exact L1 fit of many points by Portnoy and Koenker's preprocessing (*Statistical
-    Science* 12, 1997, section 4): an L1 fit of a seeded subsample of about
-    ``(k n)^(2/3)`` points predicts the sign of most residuals; the points confidently
-    above (below) the fit are merged into one linear term ``g^T t`` of the objective
-    (their residuals' sum, whose sign is then fixed), and only the band of uncertain
-    points goes into the LP. The answer is checked on every point: where a merged
-    point's residual has the wrong sign it goes back into the band and the LP is
-    solved again, so the result is the exact L1 solution of all the points."""
+    Science* 12, 1997, section 4).
+
+    An L1 fit of a seeded subsample of about ``(k n)^(2/3)`` points predicts the sign of
+    most residuals. Its error at point i has the standard deviation
+    ``se_i = (sparsity / 2) |R^-T a_i|`` (the L1 estimate's covariance
+    ``(sparsity / 2)^2 (A_s^T A_s)^-1``, ``A_s = Q R`` the subsample's design; the
+    sparsity ``1 / f(0)`` from the density of all n residuals near zero). The points
+    whose residual is more than ``z se_i`` above (below) the subsample fit are merged
+    into one linear term ``g^T t`` of the objective (their residuals' sum, whose sign is
+    then taken as fixed), and only the band of the others goes into the LP: a few per
+    cent of the points, the ones whose sign the subsample cannot tell. The answer is
+    checked on every point: where a merged point's residual has the wrong sign it goes
+    back into the band and the LP is solved again (the band widened when many did), so
+    the result is the exact L1 solution of all the points.
+    """
     n, k = A.shape
-    m = min(n, max(2000, int(2.0 * (k * n) ** (2.0 / 3.0))))
-    pick = np.sort(np.random.default_rng(20240611).choice(n, m, replace=False))
-    t = _lad_dual(A[pick], b[pick], lo, hi)
-    if t is None:
-        return None
-    band = min(n, 2 * m)
-    for _ in range(8):
-        r = b - A @ t
-        order = np.argsort(r, kind="stable")
-        mid = n // 2
-        # the points nearest the median of the residuals go into the LP (the L1 fit has
-        # about as many residuals above as below it)
-        a = max(0, mid - band // 2)
-        z = min(n, a + band)
-        a = max(0, z - band)
-        keep = np.zeros(n, bool)
-        keep[order[a:z]] = True
-        hi_set = np.zeros(n, bool)
-        hi_set[order[z:]] = True
-        low_set = ~(keep | hi_set)
-        for _ in range(8):
-            g = -(A[hi_set].sum(axis=0) - A[low_set].sum(axis=0))
-            t_new = _lad_dual(A[keep], b[keep], lo, hi, g=g)
+    key = _row_hash(A, b)
+
+    def in_key_order(rows):
+        return rows[np.argsort(key[rows], kind="stable")]
+
+    def full():  # the LP over all the points (in the order of their keys)
+        rows = np.argsort(key, kind="stable")
+        return _lad_dual(A[rows], b[rows], lo, hi)
+
+    m = min(n, max(2000, int(_PK_SUB * (k * n) ** (2.0 / 3.0))))
+    if m >= n:
+        return full()
+    pick = in_key_order(np.argpartition(key, m - 1)[:m])
+    As = A[pick]
+    t = _lad_dual(As, b[pick], lo, hi, method=_PK_METHOD)
+    R = np.linalg.qr(As, mode="r")
+    if t is None or not (np.all(np.isfinite(R)) and np.min(np.abs(np.diag(R))) > 0):
+        return full()
+    r = b - A @ t
+    ar = np.abs(r)
+    # sparsity 1/f(0): the fraction of residuals within +-h of the fit over 2h, with h
+    # the 2 % quantile of the nonzero |r| (the subsample fit's own error widens that
+    # window a little, which only makes the band wider)
+    nonzero = ar[ar > 0]
+    if nonzero.size == 0:
+        return t  # every point on the subsample's fit: sum |r| = 0, the minimum
+    j = max(k + 1, nonzero.size // 50)
+    if j >= nonzero.size:
+        return full()
+    h = float(np.partition(nonzero, j)[j])
+    sparsity = 2.0 * h * n / (j + n - nonzero.size)
+    with np.errstate(all="ignore"):
+        AR = A @ linalg.solve_triangular(R, np.eye(k))  # rows a_i^T R^-1
+        se = (0.5 * sparsity) * np.sqrt(np.einsum("ij,ij->i", AR, AR))
+    if not np.all(np.isfinite(se)):
+        return full()
+    tol = 1e-10 * (1.0 + np.abs(b))
+    z = _PK_Z
+    for _ in range(6):
+        keep = ar <= z * se
+        if keep.sum() < min(n, _PK_MIN):
+            keep[np.argpartition(ar, min(n, _PK_MIN) - 1)[:_PK_MIN]] = True
+        if keep.sum() > n // 2:
+            break
+        hi_set = ~keep & (r > 0)
+        low_set = ~keep & (r < 0)
+        for _ in range(4):
+            g = -(A.T @ (hi_set.astype(float) - low_set))
+            band = in_key_order(np.flatnonzero(keep))
+            t_new = _lad_dual(A[band], b[band], lo, hi, g=g, method=_PK_METHOD)
             if t_new is None:
-                return None
-            r = b - A @ t_new
-            tol = 1e-10 * (1.0 + np.abs(b))
-            wrong = (hi_set & (r < -tol)) | (low_set & (r > tol))
+                break  # infeasible: the band cannot balance the merged points' pull
+            r_new = b - A @ t_new
+            wrong = (hi_set & (r_new < -tol)) | (low_set & (r_new > tol))
             n_wrong = int(wrong.sum())
-            t = t_new
             if n_wrong == 0:
-                return t
-            if n_wrong > 0.1 * band:
-                break  # the band was too narrow: widen it and start again
+                return t_new
+            if n_wrong > 0.02 * keep.sum():
+                break  # the band was too narrow: widen it
             keep |= wrong
             hi_set &= ~wrong
             low_set &= ~wrong
-        band = min(n, 2 * band)
-        if band >= n:
-            return _lad_dual(A, b, lo, hi)
-    return None
+        z *= _PK_WIDEN
+    return full()
 
 
 def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
@@ -139,8 +197,9 @@ def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
     if not (np.all(np.isfinite(A)) and np.all(np.isfinite(b))):
         raise FitError("the L1 linear programme got non-finite model values or "
                        "derivatives; check that x lies where the model is defined")
-    order = np.lexsort(np.vstack([b[None, :], A.T[::-1]]))
-    A, b = A[order], b[order]
+    if A.shape[0] <= _L1_DIRECT_MAX:  # (the band path orders its own LPs' rows)
+        order = np.lexsort(np.vstack([b[None, :], A.T[::-1]]))
+        A, b = A[order], b[order]
     n, k = A.shape
     dA = np.array([_pow2(v) for v in np.sqrt(np.einsum("ij,ij->j", A, A) / max(n, 1))])
     As = A / dA
