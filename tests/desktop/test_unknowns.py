@@ -35,8 +35,10 @@ def calib(open_window):
     return win
 
 
-def _values(win):
-    return [(ip.x, ip.u) for ip in win.unknowns.results]
+def _values(win) -> np.ndarray:
+    """Rows (x0, u(x0)) of the read-back unknowns (an array: pytest.approx compares it
+    element by element; a list of tuples is a nested structure that pytest 9.2 refuses)."""
+    return np.array([(ip.x, ip.u) for ip in win.unknowns.results], dtype=float)
 
 
 def test_paste_three_unknowns_exclude_a_standard_and_undo(calib, qtbot):
