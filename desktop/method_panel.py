@@ -20,7 +20,7 @@ from PySide6.QtWidgets import (
     QLabel, QLineEdit, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
-from fitcore.losses import LOSS_NAMES, LOSSES, get_loss, loss_title
+from fitcore.losses import LOSS_NAMES, LOSSES, OWN_SCALE, get_loss, loss_title
 from fitcore.weighting import RULES, TITLES
 from fitcore.models import builtin_models, model_short_title, model_title
 
@@ -74,11 +74,6 @@ def formula_level_of(checked) -> tuple[str, str]:
     return "ok", msg
 
 
-#: losses whose automatic scale gives way to scale 1 when sigma are absolute (fitcore's
-#: rule: L2, L1 and the adaptive loss estimate their scale whatever the sigma)
-_ESTIMATE_SCALE_ANYWAY = ("l2", "l1", "adaptive")
-
-
 def sigma_fixes_scale(settings: Settings, has_sigma: bool) -> bool:
     """True when the fit will not estimate the scale although it is set to "auto":
     the data carry a sigma column (``has_sigma``) taken as absolute standard
@@ -86,7 +81,7 @@ def sigma_fixes_scale(settings: Settings, has_sigma: bool) -> bool:
     sigma (the fit states it as "fixed at 1: sigma taken as absolute")."""
     return (settings.scale == "auto" and bool(has_sigma)
             and settings.sigma_mode == "absolute" and not settings.weighting
-            and settings.loss not in _ESTIMATE_SCALE_ANYWAY)
+            and settings.loss not in OWN_SCALE)  # these estimate it whatever the sigma
 
 
 class LossPreview(pg.PlotWidget):
@@ -652,6 +647,15 @@ class MethodPanel(QWidget):
         self.scale_combo.setToolTip(
             "The scale is 1 because the sigma column is taken as absolute standard "
             "uncertainties (residuals in multiples of sigma). " + tip if fixed_by_sigma else tip)
+        # least squares, L1 and the adaptive loss take no fixed scale (fit() refuses one;
+        # a scale typed for another loss stays in the method for it): no box that does nothing
+        loss = self.document.settings.loss
+        own = loss in OWN_SCALE
+        self.scale_combo.setEnabled(not own)
+        if own:
+            self.scale_edit.setEnabled(False)
+            self.scale_combo.setToolTip(f"{loss_title(loss)[0].upper()}{loss_title(loss)[1:]} estimates "
+                                        "its own scale; a fixed scale applies to the other losses")
 
     @staticmethod
     def _model_text(s: Settings) -> str:

@@ -52,7 +52,7 @@ from .model import Model
 from .models import resolve_model
 from .session import write_atomically
 from .solve import FitError, fit
-from .solvers.setup import _check_alpha
+from .solvers.setup import _check_alpha, _check_scale_tuning
 from .work import DataSet, Exclusion
 
 __all__ = [
@@ -448,6 +448,7 @@ def _check_method(model, loss, options) -> Any:
     if loss not in LOSS_NAMES:
         raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
     _check_alpha(loss, options.get("alpha"))
+    _check_scale_tuning(loss, options.get("scale", "auto"), options.get("tuning"))
     if isinstance(model, Model):
         return model
     if not isinstance(model, str):

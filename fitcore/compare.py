@@ -46,7 +46,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .losses import LOSS_NAMES, LOSS_TITLES, loss_short_title
+from .losses import LOSS_NAMES, LOSS_TITLES, OWN_SCALE, loss_short_title
 from .models import resolve_model
 from .numbers import format_value
 from .result import FitResult
@@ -108,10 +108,16 @@ def _shared_guess(mdl):
     return dataclasses.replace(mdl, guess=guess)
 
 
+def _for_loss(loss, kwargs) -> dict:
+    """The shared fit options for one loss: a fixed scale goes to the losses that take
+    one (least squares, L1 and the adaptive loss estimate their own; fit() refuses it)."""
+    return {k: v for k, v in kwargs.items() if not (k == "scale" and loss in OWN_SCALE)}
+
+
 def _safe_fit(model, x, y, loss, kwargs):
     """One fit; returns (result, None) or (None, message). Never raises for bad data."""
     try:
-        return fit(model, x, y, loss=loss, **kwargs), None
+        return fit(model, x, y, loss=loss, **_for_loss(loss, kwargs)), None
     except FitError as e:
         return None, str(e)
     except (ValueError, ArithmeticError, np.linalg.LinAlgError) as e:
@@ -517,7 +523,7 @@ def adaptive_reading(model, x, y, *, fits: dict | None = None, alphas=None,
     stage(0)
     ad = fits.get("adaptive")
     if ad is None:
-        ad = fit(mdl, x, y, loss="adaptive", **fit_kwargs)
+        ad = fit(mdl, x, y, loss="adaptive", **_for_loss("adaptive", fit_kwargs))
     stage(1)
     l2 = fits.get("l2")
     if l2 is None:

@@ -392,6 +392,11 @@ class LossEntry:
         The loss's pen in plots: RGB and dash pattern (``"solid"``, ``"dash"``,
         ``"dot"``, ``"dashdot"``, ``"dashdotdot"``); dash as well as hue, for readers
         who do not tell the colours apart. Our own choice of pens.
+    own_scale
+        True where no scale or tuning constant the analyst gives changes the estimate:
+        least squares and L1 (scale-free) and the adaptive loss (it fits its own scale,
+        Barron's c). ``fit()`` refuses a fixed scale or a tuning constant for them, and
+        their scale stays estimated when sigma are absolute.
     """
 
     name: str
@@ -403,6 +408,7 @@ class LossEntry:
     family: str
     colour: tuple[int, int, int]
     dash: str
+    own_scale: bool = False
 
     @property
     def redescending(self) -> bool:
@@ -429,9 +435,9 @@ def _shaped(alpha_fixed: float | None):
 #: Default tunings: 95 % Gaussian efficiency (check-values.md sections 1.7 and 2).
 LOSSES: dict[str, LossEntry] = {e.name: e for e in (
     LossEntry("l2", _plain(L2), "least squares (L2)", "least squares", "least squares (L2)",
-              None, "monotone", (70, 70, 70), "dash"),
+              None, "monotone", (70, 70, 70), "dash", own_scale=True),
     LossEntry("l1", _plain(L1), "least absolute deviations (L1)", "L1", "least absolute (L1)",
-              None, "monotone", (130, 85, 30), "dashdot"),
+              None, "monotone", (130, 85, 30), "dashdot", own_scale=True),
     LossEntry("huber", _tuned(Huber), "Huber", "Huber", "Huber",
               1.345, "monotone", (31, 92, 170), "solid"),
     LossEntry("pseudo_huber", _shaped(1.0), "pseudo-Huber", "pseudo-Huber", "pseudo-Huber",
@@ -448,13 +454,16 @@ LOSSES: dict[str, LossEntry] = {e.name: e for e in (
               "general (Barron)", None, "shape", (105, 60, 175), "dashdotdot"),
     LossEntry("adaptive", _shaped(None),
               "adaptive robust loss (Barron, alpha and scale by maximum likelihood)",
-              "adaptive", "adaptive (Barron)", None, "shape", (165, 35, 140), "solid"),
+              "adaptive", "adaptive (Barron)", None, "shape", (165, 35, 140), "solid",
+              own_scale=True),
 )}
 
 LOSS_NAMES = tuple(LOSSES)
 LOSS_TITLES = {n: e.title for n, e in LOSSES.items()}
 DEFAULT_TUNING = {n: e.default_tuning for n, e in LOSSES.items() if e.default_tuning is not None}
 REDESCENDING = {n for n, e in LOSSES.items() if e.family == "redescending"}
+#: the losses that take no fixed scale or tuning constant (``LossEntry.own_scale``)
+OWN_SCALE = tuple(n for n, e in LOSSES.items() if e.own_scale)
 
 
 def loss_entry(name: str) -> LossEntry:

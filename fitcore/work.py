@@ -22,6 +22,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from .losses import OWN_SCALE
 from .models import get_model, resolve_model
 
 __all__ = ["DataSet", "Method", "Exclusion", "FIT_OPTIONS", "DATA_ARGUMENTS",
@@ -288,10 +289,14 @@ class Method:
 
         ``alpha`` is kept in the method as the analyst's preference for the general loss
         (switching back to it restores the shape), but it is passed only with
-        ``loss="general"``: ``fit()`` refuses a shape for a loss that has none."""
+        ``loss="general"``: ``fit()`` refuses a shape for a loss that has none. Likewise
+        a fixed scale and a tuning constant are passed only with a loss that takes them
+        (not least squares, L1 or the adaptive loss: ``fitcore.losses.OWN_SCALE``)."""
         kw = {name: getattr(self, name) for name in FIT_OPTIONS}
         if self.loss != "general":
             del kw["alpha"]
+        if self.loss in OWN_SCALE:
+            del kw["scale"], kw["tuning"]
         kw["fixed"] = dict(self.fixed) or None
         if isinstance(self.p0, Mapping):
             kw["p0"] = dict(self.p0)

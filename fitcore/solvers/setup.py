@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..losses import LOSS_NAMES, Loss, get_loss
+from ..losses import LOSS_NAMES, OWN_SCALE, Loss, get_loss, loss_entry, loss_phrase
 from ..model import Model
 from .problem import FitError, _Problem
 from .recognise import recognise
@@ -137,6 +137,22 @@ def _check_alpha(loss: str, alpha) -> None:
     raise FitError(f"alpha is the shape of the general loss; the {loss} loss {what}")
 
 
+def _check_scale_tuning(loss: str, scale, tuning) -> None:
+    """A fixed scale or a tuning constant with a loss that takes neither (least squares
+    and L1 are scale-free, the adaptive loss fits its own scale) would be ignored while
+    the result recorded the scale as fixed: refused rather than dropped."""
+    if loss not in OWN_SCALE:
+        return
+    own = loss_entry(loss).family == "shape"
+    why = ("which fits its own scale: leave it out, or use loss='general' to hold a scale"
+           if own else "whose estimate does not depend on a scale: leave it out (standard "
+           "uncertainties of y go in sigma)")
+    if not (isinstance(scale, str) and scale == "auto"):
+        raise FitError(f"a fixed scale has no effect on {loss_phrase(loss)}, {why}")
+    if tuning is not None:
+        raise FitError(f"a tuning constant has no effect on {loss_phrase(loss)}, {why}")
+
+
 def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tuning,
              sigma_mode, max_iter) -> _Setup:
     """Check the input and build the problem; every refusal is a FitError."""
@@ -151,6 +167,7 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
     except ValueError as e:  # formula and catalogue errors are ValueErrors with messages
         raise FitError(str(e)) from e
     _check_alpha(loss, alpha)
+    _check_scale_tuning(loss, scale, tuning)
     try:
         loss_obj = get_loss(loss, tuning=tuning, alpha=alpha if loss != "adaptive" else None)
     except ValueError as e:
@@ -231,9 +248,9 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         if not (fixed_scale > 0 and math.isfinite(fixed_scale)):
             raise FitError(f"scale must be a positive number, not {scale!r}")
         _check_scale(fixed_scale, prob)
-    elif absolute and loss not in ("l2", "l1", "adaptive"):
+    elif absolute and loss not in OWN_SCALE:
         fixed_scale = 1.0
-    if fixed_scale is None and loss not in ("l2", "l1", "adaptive") and 2 * k > n_used:
+    if fixed_scale is None and loss not in OWN_SCALE and 2 * k > n_used:
         # a fit can pass exactly through k of the points, and with k > n/2 that zeroes
         # the median absolute residual: the MAD scale is then no estimate at all (a
         # 3-point line 'converged' as an exact fit with scale 5e-13; a 3-point power law

@@ -118,6 +118,25 @@ def test_scale_choice_without_sigma_and_fixed(win):
     assert panel.scale_combo.currentText().startswith("1") and panel.scale_edit.text() == ""
 
 
+def test_fixed_scale_is_not_offered_to_a_loss_that_estimates_its_own(win):
+    # least squares, L1 and the adaptive loss take no fixed scale (fit() refuses one):
+    # a fixed scale kept from Huber stays in the method for Huber, is not passed to
+    # least squares, and the panel says why instead of offering a box that does nothing
+    show(win, decay(sigma=False), Settings(model="exp_decay", loss="huber", scale=2.0))
+    panel = win.method_panel
+    assert panel.scale_combo.isEnabled() and panel.scale_edit.isEnabled()
+    pick(panel.loss_combo, "l2")
+    assert win.runner.wait()
+    res = win.document.result
+    assert res.loss == "l2" and res.converged and not res.info["scale_fixed"]
+    assert win.document.settings.scale == 2.0  # kept for the losses that take it
+    assert not panel.scale_combo.isEnabled() and not panel.scale_edit.isEnabled()
+    assert "estimates its own scale" in panel.scale_combo.toolTip()
+    pick(panel.loss_combo, "huber")
+    assert win.runner.wait()
+    assert win.document.result.scale == 2.0 and panel.scale_combo.isEnabled()
+
+
 # ---------------------------------------------------------------- b. the formula box
 def test_formula_box_follows_the_model_after_new_data(win):
     show(win, calibration(), Settings(model="line", loss="huber"))

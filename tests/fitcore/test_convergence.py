@@ -170,6 +170,31 @@ def test_alpha_with_a_loss_that_has_no_fixed_alpha_is_refused(loss):
     assert fitcore.fit("line", X, Y, loss=loss, alpha=None).converged
 
 
+@pytest.mark.parametrize("loss", ["l2", "l1", "adaptive"])
+def test_scale_or_tuning_with_a_loss_that_takes_neither_is_refused(loss):
+    # least squares and L1 do not depend on a scale, the adaptive loss fits its own:
+    # a fixed scale or a tuning constant was silently ignored, while the result still
+    # recorded the scale as "fixed by the analyst" (common practice: refuse it)
+    with pytest.raises(fitcore.FitError, match="^a fixed scale has no effect on the "):
+        fitcore.fit("line", X, Y, loss=loss, scale=0.5)
+    with pytest.raises(fitcore.FitError, match="^a tuning constant has no effect on the "):
+        fitcore.fit("line", X, Y, loss=loss, tuning=2.0)
+    res = fitcore.fit("line", X, Y, loss=loss)
+    assert res.converged and not res.info["scale_fixed"]
+
+
+def test_the_losses_that_take_no_scale_are_read_from_the_registry():
+    from fitcore.losses import LOSSES, OWN_SCALE
+
+    assert set(OWN_SCALE) == {"l2", "l1", "adaptive"}
+    for name in LOSSES:
+        if name in OWN_SCALE:
+            continue
+        kw = {"alpha": 0.5} if name == "general" else {}
+        res = fitcore.fit("line", X, Y + 0.01 * np.sin(5 * X), loss=name, scale=0.3, tuning=2.0, **kw)
+        assert res.scale == 0.3 and res.tuning == 2.0 and res.info["scale_fixed"], name
+
+
 def test_alpha_is_taken_by_the_general_loss():
     res = fitcore.fit("line", X, Y, loss="general", alpha=0.5)
     assert res.alpha == 0.5

@@ -17,6 +17,7 @@ from hypothesis import strategies as st
 
 import fitcore
 from fitcore.diagnostics import refit_settings
+from fitcore.losses import OWN_SCALE
 from fitcore.session import Session, session_from_json, session_to_json
 from fitcore.work import DATA_ARGUMENTS, FIT_OPTIONS, DataSet, Exclusion, Method
 
@@ -80,11 +81,15 @@ def test_every_option_survives_a_save_and_a_reopen(work_strategies, data):
 def test_fit_kwargs_round_trip(work_strategies, data):
     m = data.draw(work_strategies.methods)
     kw = m.to_fit_kwargs()
-    # alpha is passed only with the general loss (fit() refuses it with any other)
-    assert set(kw) == set(FIT_OPTIONS) - ({"alpha"} if m.loss != "general" else set())
+    # alpha is passed only with the general loss, a fixed scale and a tuning constant
+    # only with the losses that take them (fit() refuses them with any other)
+    own = m.loss in OWN_SCALE
+    assert set(kw) == (set(FIT_OPTIONS) - ({"alpha"} if m.loss != "general" else set())
+                       - ({"scale", "tuning"} if own else set()))
     back = Method.from_fit_kwargs(m.model, model_kind=m.model_kind,
                                   model_options=m.model_options, **kw)
-    assert back == (m if m.loss == "general" else m.with_(alpha=None))
+    expected = m if m.loss == "general" else m.with_(alpha=None)
+    assert back == (expected.with_(scale="auto", tuning=None) if own else expected)
 
 
 def test_fit_through_the_method_equals_the_direct_call():
