@@ -200,7 +200,9 @@ class MethodPanel(QWidget):
 
         self.weight_combo = QComboBox()  # weighting rules of calibrations (issue 14)
         for name in RULES:
-            self.weight_combo.addItem(TITLES[name], name)
+            # the power rule's title is long (242 px): a short text, the title as its tip
+            self.weight_combo.addItem("power of the mean" if name == "power" else TITLES[name], name)
+            self.weight_combo.setItemData(self.weight_combo.count() - 1, TITLES[name], Qt.ToolTipRole)
         self.weight_combo.setToolTip("How the variance of y grows along the curve: weights "
                                      "1/x, 1/x\u00b2, 1/y, 1/y\u00b2, or a power of the mean "
                                      "estimated from replicate standards (relative sigma; "
@@ -217,8 +219,15 @@ class MethodPanel(QWidget):
                          (self.weight_combo, 4)):
             combo.setSizeAdjustPolicy(QComboBox.AdjustToMinimumContentsLengthWithIcon)
             combo.setMinimumContentsLength(n)
-        self.model_combo.view().setMinimumWidth(self.model_combo.fontMetrics().horizontalAdvance(
-            "Exp. decay (rate const.)") + 30)
+        # a box never cuts its items: at least as wide as its longest item; where the
+        # panel is too narrow for that beside its label (1000 px windows) the row wraps,
+        # the label above its box (six model names and 'least squares (L2)' were cut)
+        form.setRowWrapPolicy(QFormLayout.WrapLongRows)
+        for combo in (self.model_combo, self.loss_combo, self.weight_combo):
+            fm = combo.fontMetrics()
+            longest = max(fm.horizontalAdvance(combo.itemText(k)) for k in range(combo.count()))
+            combo.setMinimumWidth(longest + 32)  # the arrow and the frame
+            combo.view().setMinimumWidth(longest + 32)
         #: rejected input (a scale of 0, a start value "abc"): said here, in red
         self.input_msg = QLabel("")
         self.input_msg.setWordWrap(True)

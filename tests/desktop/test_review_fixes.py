@@ -268,15 +268,22 @@ def test_points_table_headers_are_not_cut_at_the_default_size(make_win):
     assert not win.table.horizontalScrollBar().isVisible()
 
 
-def test_combo_items_fit_their_boxes_at_the_default_size(make_win):
-    win = make_win()
+@pytest.mark.parametrize("size", [(1000, 650), (1400, 900), (1480, 900)])
+def test_combo_items_fit_their_boxes(make_win, size):
+    # at the smallest supported size too: 'Exp. decay (time const.)', '4-parameter
+    # logistic' and four more model names were cut in a 133 px box at 1000 x 650
+    win = make_win(*size)
     demo_line(win)
+    settle(win)
     panel = win.method_panel
-    for combo in (panel.loss_combo, panel.scale_combo, panel.model_combo):
+    for combo in (panel.loss_combo, panel.scale_combo, panel.model_combo, panel.weight_combo):
         fm = combo.fontMetrics()
         room = combo.width() - 30  # the arrow and the frame
+        # the open list is as wide as its longest item too
+        list_room = max(combo.view().width(), combo.view().minimumWidth()) - 20
         for k in range(combo.count()):
-            assert fm.horizontalAdvance(combo.itemText(k)) <= room, combo.itemText(k)
+            assert fm.horizontalAdvance(combo.itemText(k)) <= room, (size, combo.itemText(k))
+            assert fm.horizontalAdvance(combo.itemText(k)) <= list_room, (size, combo.itemText(k))
 
 
 # ------------------------------------------------------------------- 5./6. keys and wording
