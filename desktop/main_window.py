@@ -19,6 +19,7 @@ from PySide6.QtWidgets import (
     QTableView, QTabWidget, QVBoxLayout, QWidget,
 )
 
+from fitcore.losses import loss_phrase
 from fitcore.report import loss_title, point_label
 from fitcore.model_choice import fit_problem
 
@@ -633,7 +634,7 @@ class MainWindow(QMainWindow):
                             "model in Method.")
                 elif s is plain:
                     note = (f"Switched to a straight line by least squares: {what}, "
-                            f"{model_title(first)} with the {loss_title(first.loss)} loss, "
+                            f"{model_title(first)} with {loss_phrase(first.loss)}, "
                             f"cannot fit these data ({problems[-1].rstrip('.')}). Choose another "
                             "method in Method.")
                 return s, note

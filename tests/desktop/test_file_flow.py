@@ -236,6 +236,20 @@ def test_model_that_cannot_fit_the_new_data_falls_back_to_a_line(worked, asked, 
     np.testing.assert_allclose(doc.result.values, ref.values, rtol=1e-12)
 
 
+def test_fallback_note_names_a_loss_whose_title_says_loss_once(worked, asked, tmp_path):
+    # the general loss's title already holds the word ("general robust loss (Barron)"):
+    # the note read "with the general robust loss (Barron) loss" (issue 13's example)
+    w = worked
+    asked.answer = "discard"
+    w.document.apply_settings(w.document.settings.with_(loss="general", alpha=1.0))
+    assert w.runner.wait()
+    assert w.open_path(str(write_rows(tmp_path / "two.csv", [(1.0, 2.0), (3.0, 7.0)])))
+    assert w.runner.wait()
+    msg = w.banner.text("model")
+    assert msg.startswith("Switched to a straight line by least squares"), msg
+    assert "with the general robust loss (Barron), cannot fit" in msg, msg
+
+
 def test_sample_sets_still_open_with_their_own_model(worked, asked):
     w = worked
     asked.answer = "discard"
