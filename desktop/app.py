@@ -5,6 +5,7 @@ With no file the first sample set is opened; File > Open sample set... lists the
 from __future__ import annotations
 
 import argparse
+import logging
 import os
 import shutil
 import signal
@@ -14,6 +15,8 @@ from pathlib import Path
 
 from fitcore import __version__  # the package alone: no numpy (see one_blas_thread)
 from fitcore.threads import limit_process
+
+log = logging.getLogger(__name__)
 
 # The shared libraries Qt's xcb platform plugin needs that a minimal Linux install
 # often lacks, with the Debian/Ubuntu package that provides each (README, "Linux").
@@ -169,7 +172,8 @@ def main(argv=None) -> int:
         _accept_column_choice(app)
     try:
         create_window(args)
-    except Exception as err:  # noqa: BLE001 - the program must start: retry once with fresh settings
+    except Exception as err:  # the program must start: logged, then once more with fresh settings
+        log.warning("the window could not be built; retrying with fresh settings", exc_info=True)
         create_window(args, qsettings=_fresh_settings(err))
     if not any(w.isVisible() for w in app.topLevelWidgets()):
         return 0  # closed while its first file was read (Ctrl+C): the quit came before the loop
@@ -278,7 +282,8 @@ def create_window(args, qsettings=None, recovery_dir=None):
     try:
         if win.sessions.offer_recovery():
             return win
-    except Exception as err:  # noqa: BLE001 - a start-up step that fails must not stop the program
+    except Exception as err:  # a start-up step that fails must not stop the program: told, logged
+        log.warning("recovery could not be offered", exc_info=True)
         dialogs.error_box(win, "Recovery failed", f"Autosaved work could not be offered ({type(err).__name__}: "
                           f"{err}). Ballast starts without it; the recovery files are left in "
                           f"{win.sessions.recovery_dir}.")
@@ -291,7 +296,8 @@ def create_window(args, qsettings=None, recovery_dir=None):
             first = first_sample_set()
             if first:
                 win.open_path(first)
-    except Exception as err:  # noqa: BLE001 - as above: report, keep the (empty) window
+    except Exception as err:  # as above: told, logged, the (empty) window kept
+        log.warning("the first file could not be opened", exc_info=True)
         dialogs.error_box(win, "Cannot open the file", f"{args.file or 'The first sample set'} could not be "
                           f"opened ({type(err).__name__}: {err}).")
     return win

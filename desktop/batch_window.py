@@ -9,6 +9,7 @@ batch's method), where its points can be looked at, excluded and refitted.
 """
 from __future__ import annotations
 
+import logging
 import math
 import os
 import threading
@@ -31,6 +32,8 @@ from . import dialogs
 from .document import Measurements
 from .main_window import FILE_FILTER, model_title
 from .method_panel import sigma_fixes_scale
+
+log = logging.getLogger(__name__)
 
 NONE = "(none)"
 FAILED_BRUSH = QBrush(QColor(250, 215, 210))
@@ -154,7 +157,8 @@ class _Runner(QObject):
                 rows.close()  # a stop ends the worker processes too
         except BatchError as exc:
             message = str(exc)
-        except Exception as exc:  # noqa: BLE001 - shown in the window, never lost in a thread
+        except Exception as exc:  # shown in the window, the traceback logged: never lost in a thread
+            log.warning("the batch stopped with an internal error", exc_info=True)
             message = f"unexpected {type(exc).__name__}: {exc}"
         if buf:
             self.rows.emit(buf)

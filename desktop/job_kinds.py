@@ -110,6 +110,14 @@ def _accepts(fn, name: str) -> bool:
     return name in sig.parameters or any(p.kind == p.VAR_KEYWORD for p in sig.parameters.values())
 
 
+def raise_child_error(msg: dict):
+    """Raise the child's refusal as the ValueError the job reports; an internal error's
+    traceback (sent along, since the child's stderr goes nowhere) goes to the log."""
+    if msg.get("traceback"):
+        log.warning("a job failed in the child process:\n%s", msg["traceback"])
+    raise ValueError(msg["error"])
+
+
 def internal_error(err: BaseException) -> str:
     """The last line of a traceback, for a message about an unexpected error."""
     return traceback.format_exception_only(type(err), err)[-1].strip()
@@ -489,7 +497,9 @@ def serve(stdin=None, stdout=None) -> int:
         except RecursionError:
             send({"error": "the input is nested too deeply to process"})
         except Exception as err:  # noqa: BLE001 - reported to the parent as the job's failure, never hang it
-            send({"error": f"an internal error ({internal_error(err)})"})
+            # the child's stderr goes nowhere: the traceback travels to the parent's log
+            send({"error": f"an internal error ({internal_error(err)})",
+                  "traceback": traceback.format_exc()})
     return 0
 
 
@@ -605,7 +615,7 @@ def run_in_child(request: dict, progress=None, cancel=None, model=None, poll_s: 
                     progress(*msg["progress"])
             elif "error" in msg:
                 clean = True
-                raise ValueError(msg["error"])
+                raise_child_error(msg)
             else:
                 clean = True
                 return decode(msg["result"], model)

@@ -71,3 +71,23 @@ def test_batch_window_table_sorts_marks_failures_and_opens_a_row(open_window, qt
     assert np.allclose(win.document.result.values, bw.row_at(b2).values, rtol=1e-9)
     assert "B2" in win.windowTitle()
     assert errors == []
+
+
+def test_unexpected_error_in_the_batch_thread_is_shown_and_logged(qtbot, monkeypatch, caplog):
+    # an engine bug in the batch thread: one line in the window, the traceback in the
+    # log (common practice: a broad except keeps the cause somewhere it can be read)
+    import logging
+
+    from desktop import batch_window
+
+    def boom(*_a, **_k):
+        raise RuntimeError("disk on fire")
+
+    monkeypatch.setattr(batch_window, "fit_sources", boom)
+    runner = batch_window._Runner(["a.csv"], None, 1)
+    said = []
+    runner.done.connect(said.append)
+    with caplog.at_level(logging.WARNING, logger="desktop.batch_window"):
+        runner._run()
+    assert said == ["unexpected RuntimeError: disk on fire"]
+    assert any(r.exc_info and str(r.exc_info[1]) == "disk on fire" for r in caplog.records)

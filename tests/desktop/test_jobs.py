@@ -88,3 +88,21 @@ def test_a_child_job_past_its_time_limit_is_ended_with_a_message():
 def test_hostile_formula_is_checked_in_the_child_with_a_clear_message():
     ok, msg, names = job_kinds.run_here("formula", {"text": "(((3*a)**999)**999)**999+x"})
     assert not ok and "total exponent" in msg and names == ()
+
+
+def test_an_internal_error_in_the_child_reaches_the_parent_log_with_its_traceback(caplog):
+    # the child's stderr goes nowhere: an engine bug there is answered in one line and
+    # its traceback travels with the answer, for the parent's log (common practice)
+    import io
+    import json
+    import logging
+
+    out = io.StringIO()
+    job_kinds.serve(io.StringIO(json.dumps({"kind": "fit", "payload": {}}) + "\n"), out)
+    answer = json.loads(out.getvalue().splitlines()[-1])
+    assert answer["error"].startswith("an internal error (KeyError")
+    assert answer["traceback"].startswith("Traceback") and "KeyError" in answer["traceback"]
+    with caplog.at_level(logging.WARNING, logger="desktop.job_kinds"):
+        with pytest.raises(ValueError, match="^an internal error"):
+            job_kinds.raise_child_error(answer)
+    assert any("KeyError" in r.getMessage() for r in caplog.records)

@@ -93,3 +93,24 @@ def test_steady_changes_do_not_postpone_autosave(qtbot, tmp_path, errors):
         qtbot.wait(100)
         written.append(sm.last_recovery is not None)
     assert any(written), "a restarting timer never wrote the recovery file while the user kept working"
+
+
+def test_a_start_up_step_that_fails_is_told_and_logged(qtbot, tmp_path, monkeypatch, errors, caplog):
+    # an unexpected error while the first file opens: the window stays, the message box
+    # names it, and its traceback is in the log (common practice for a broad except)
+    import logging
+
+    from desktop.main_window import MainWindow
+
+    def boom(self, *_a, **_k):
+        raise RuntimeError("reader on fire")
+
+    monkeypatch.setattr(MainWindow, "open_path", boom)
+    args = app_module.build_parser().parse_args([])
+    with caplog.at_level(logging.WARNING, logger="desktop.app"):
+        w = app_module.create_window(args, QSettings(str(tmp_path / "c.ini"), QSettings.IniFormat),
+                                     recovery_dir=tmp_path / "rec")
+    qtbot.addWidget(w)
+    assert w.isVisible()
+    assert errors and errors[-1][0] == "Cannot open the file" and "reader on fire" in errors[-1][1]
+    assert any(r.exc_info and str(r.exc_info[1]) == "reader on fire" for r in caplog.records)
