@@ -11,7 +11,7 @@ from ..losses import barron_rho, get_loss
 from ..partition import log_partition
 from .lm import _irls_lm
 from .mscale import _robust_with_scale
-from .problem import _Problem
+from .problem import _Problem, _sample_rows
 
 
 # --------------------------------------------------------------------------- adaptive
@@ -53,11 +53,13 @@ def _nll_slope(r2: np.ndarray, alpha: float, log_c: float) -> tuple[float, float
         return r2.size - s1, s1 + s2
 
 
-def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: float) -> float:
+def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: float,
+                r2: np.ndarray | None = None) -> float:
     """The ``log c`` in ``[lo_c, hi_c]`` minimising :func:`_nll` at shape ``alpha``: the
     root of its increasing first derivative, by Newton steps kept inside a shrinking
-    bracket (bisection where a step leaves it), to 1e-13 in ``log c``."""
-    r2 = r * r
+    bracket (bisection where a step leaves it), to 1e-13 in ``log c``. (``r2``: r**2,
+    where the caller has it.)"""
+    r2 = r * r if r2 is None else r2
     lo0, hi0 = lo_c, hi_c
     lc = start if lo_c < start < hi_c else 0.5 * (lo_c + hi_c)
     for _ in range(200):
@@ -69,6 +71,11 @@ def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: fl
         else:
             hi_c = lc
         nxt = lc - g / h if h > 0.0 and math.isfinite(h) and math.isfinite(g) else math.nan
+        if abs(nxt - lc) <= 1e-13 * max(1.0, abs(lc)):
+            # a Newton step below rounding: the root (such a step may land on the end of
+            # the bracket it just set, which is no reason to bisect it from afar)
+            lc = nxt
+            break
         if not lo_c < nxt < hi_c:
             nxt = 0.5 * (lo_c + hi_c)
         if abs(nxt - lc) <= 1e-13 * max(1.0, abs(lc)) or hi_c - lo_c <= 1e-13 * max(1.0, abs(lc)):
@@ -85,12 +92,29 @@ def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: fl
     return lc
 
 
+#: above this many residuals the shape is first located on a seeded subsample of
+#: ``_ML_SUB`` of them, then refined on all (a few profile evaluations, not ~20)
+_ML_LARGE = 100000
+_ML_SUB = 20000
+
+
 def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
     """Maximum-likelihood (alpha, c) for fixed residuals; alpha in [0, 2], c >= c_floor.
 
     The profile over alpha is minimised by a bounded scalar search; for each alpha the
     best c solves the likelihood equation in ``log c`` (:func:`_best_log_c`), which
-    has one root (was a second bounded search, some 40 evaluations per alpha)."""
+    has one root (was a second bounded search, some 40 evaluations per alpha).
+
+    Many residuals (more than ``_ML_LARGE``): the same search on a seeded subsample
+    locates the shape; on all the residuals Brent's method then starts from a bracket
+    around it (two of the subsample's standard errors of alpha each side, widened while
+    it does not bracket the minimum), which takes a handful of evaluations. Where no
+    interior bracket is found (a minimum at 0 or 2) the full search runs on all of them.
+    """
+    if r.size > _ML_LARGE:
+        got = _ml_polished(r, alpha, c, c_floor)
+        if got is not None:
+            return got
     lo_c = math.log(c_floor)
     hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
 
@@ -118,6 +142,52 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
     return float(a_best), math.exp(lc), val, prof
 
 
+def _ml_polished(r: np.ndarray, alpha: float, c: float, c_floor: float):
+    """:func:`_ml_shape_scale` of many residuals from a subsample's answer, or None."""
+    sub = r[_sample_rows(r.size, _ML_SUB, 20240612)]
+    a_s, c_s, _, prof_s = _ml_shape_scale(sub, alpha, c, c_floor)
+    h = 1e-3
+    if not h < a_s < 2.0 - h:
+        return None
+    d2 = (prof_s(a_s + h) - 2 * prof_s(a_s) + prof_s(a_s - h)) / (h * h)
+    if not (d2 > 0 and math.isfinite(d2)):
+        return None
+    lo_c = math.log(c_floor)
+    hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
+    last = [math.log(max(c_s, c_floor))]
+    cache = {}
+    r2 = r * r
+
+    def prof(a):
+        a = float(min(max(a, 0.0), 2.0))
+        if a not in cache:
+            lc = _best_log_c(r, a, lo_c, hi_c, last[0], r2)
+            last[0] = lc
+            cache[a] = (lc, _nll(r, a, lc))
+        return cache[a][1]
+
+    d = 2.0 / math.sqrt(d2)
+    for _ in range(4):
+        lo, hi = max(a_s - d, 0.0), min(a_s + d, 2.0)
+        p_mid = prof(a_s)
+        if prof(lo) > p_mid < prof(hi):
+            break
+        if lo == 0.0 and hi == 2.0:
+            return None
+        d *= 4.0
+    else:
+        return None
+    # (Brent's tolerance is relative: about 1e-7 absolute, as the full search's)
+    res = optimize.minimize_scalar(prof, bracket=(lo, a_s, hi), method="brent",
+                                   options={"xtol": 1e-7 / max(a_s, 1e-2)})
+    a_best = float(res.x)
+    if not lo <= a_best <= hi:
+        return None
+    prof(a_best)
+    lc, val = cache[float(min(max(a_best, 0.0), 2.0))]
+    return a_best, math.exp(lc), val, prof
+
+
 def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: int,
                   warm: tuple[float, float] | None = None):
     if warm is None:
@@ -128,9 +198,11 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
     else:
         alpha, c = warm
         s, total = c, 0
+        # (from a subsample's fit: close enough for Newton steps at once, which the
+        # solve refuses and replaces by reweighted ones where they do not descend)
         inner = _irls_lm(prob, theta, get_loss("general", tuning=1.0, alpha=alpha), c,
                          linear=linear, max_iter=max_iter, xtol=1e-9, polish_steps=False,
-                         check=False)
+                         check=False, near=True)
     c_floor = max(1e-6 * s, 1e-300)
     nll_old = math.inf
     prof = None
@@ -141,7 +213,7 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         # full-accuracy one (polished) at the final shape and scale
         inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter,
                          xtol=1e-9, ftol=1e-12, polish_steps=False, check=False,
-                         near=nll_old < math.inf)
+                         near=nll_old < math.inf or warm is not None)
         total += inner.n_iter
         nll = _nll(inner.r, alpha, math.log(c))
         if abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0):
