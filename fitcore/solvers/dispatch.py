@@ -12,6 +12,7 @@ from ..scale import mad
 from . import large
 from .adaptive import _fit_adaptive
 from .l1 import _l1_linear, _l1_nonlinear
+from .linear import _linear_mad_small
 from .lm import _irls_lm, _refine_linear_ls
 from .mscale import SCALE_METHOD, _m_estimate, _robust_with_scale, _newton_with_mad
 from .problem import _Inner, _safe_scale, _start_scale
@@ -145,6 +146,12 @@ def _run_m(st: _Setup) -> _Outcome:
         method = "fixed by the analyst"
     else:
         method = "fixed at 1: sigma taken as absolute"
+    # a small linear model with the MAD scale: the same fixed point by direct steps
+    got = _linear_mad_small(prob, st.theta0, loss_obj) if auto and linear else None
+    if got is not None:
+        inner, s, n_iter = got
+        return _Outcome(inner, s, method, n_iter, loss_obj,
+                        loss_obj.alpha if st.loss == "general" else None)
     staged = large._staged_start(prob, st.theta0, loss_obj, fixed_scale, linear=linear,
                                  max_iter=max_iter)
     if staged is None:

@@ -7,7 +7,7 @@ import math
 import numpy as np
 from scipy import linalg, optimize, sparse
 
-from .problem import FitError, _Inner, _Problem, _project, _start_residuals
+from .problem import FitError, _Inner, _inv_small, _Problem, _project, _start_residuals
 
 
 # --------------------------------------------------------------------------- L1
@@ -350,19 +350,15 @@ def _lad_small(A: np.ndarray, b: np.ndarray) -> np.ndarray | None:
         t = t + (r[i] / ad[i]) * d
         M[j] = As[i]
         basis[j] = i
-        try:
-            Minv = np.linalg.inv(M)
-        except np.linalg.LinAlgError:
+        Minv = _inv_small(M)
+        if Minv is None:
             return None
         r = b - As @ t
         r[basis[:j + 1]] = 0.0
     nonbasic = np.ones(m, bool)
     nonbasic[basis] = False
     for _ in range(20 * (m + k)):
-        try:
-            t = np.linalg.solve(M, b[basis])
-        except np.linalg.LinAlgError:
-            return None
+        t = Minv @ b[basis]
         r = b - As @ t
         r[basis] = 0.0
         size = np.abs(b) + absA @ np.abs(t)  # the rounding scale of each residual
@@ -388,9 +384,8 @@ def _lad_small(A: np.ndarray, b: np.ndarray) -> np.ndarray | None:
         nonbasic[i] = False
         M[j] = As[i]
         basis[j] = i
-        try:
-            Minv = np.linalg.inv(M)
-        except np.linalg.LinAlgError:
+        Minv = _inv_small(M)
+        if Minv is None:
             return None
     return None
 

@@ -281,3 +281,25 @@ def _sample_rows(n: int, m: int, seed: int) -> np.ndarray:
     """``m`` of ``range(n)`` drawn without replacement by a seeded generator, sorted
     (the same draw for the same arguments; cached, as drawing costs a permutation)."""
     return _sampled_rows(int(n), int(m), int(seed))
+
+
+def _inv_small(M: np.ndarray) -> np.ndarray | None:
+    """The inverse of a small square matrix, None when it is singular or not finite:
+    1 x 1 and 2 x 2 in closed form (a call of numpy.linalg costs some 10 us of
+    overhead, more than the arithmetic of a small fit's step), larger ones by LAPACK."""
+    k = M.shape[0]
+    if k == 1:
+        a = float(M[0, 0])
+        return np.array([[1.0 / a]]) if a != 0.0 and math.isfinite(a) else None
+    if k == 2:
+        a, b, c, d = M.ravel().tolist()
+        det = a * d - b * c
+        if det == 0.0 or not math.isfinite(det):
+            return None
+        q = (d / det, -b / det, -c / det, a / det)  # (float division: inf, never raises)
+        return np.array(q).reshape(2, 2) if all(map(math.isfinite, q)) else None
+    try:
+        inv = np.linalg.inv(M)
+    except np.linalg.LinAlgError:
+        return None
+    return inv if np.isfinite(inv).all() else None

@@ -1,0 +1,145 @@
+"""Small linear models under a monotone robust loss with the automatic (MAD) scale.
+
+The general route (:func:`.mscale._m_estimate`) reaches the same fixed point through
+Levenberg-Marquardt solves that are built for nonlinear models: an exact L1 start, a
+loose reweighted solve, Newton's method on the joint (parameters, MAD) equations, then
+full-accuracy solves at that scale to confirm it and the solver's verdict. For a model
+linear in its parameters the design is a constant matrix and each of those steps is a
+few small matrix products, so this module runs them directly: the L1 start
+(:func:`.l1._l1_linear_start`), one reweighted least-squares pass at its MAD, and the
+joint Newton iteration to rounding level, whose last step is itself the convergence
+test (the remaining step to the root, in standard errors).
+
+Anything unusual goes back to the general route (the function returns None): bounds
+on the parameters, a zero MAD (exact data), a design with fewer than k points inside
+the loss's quadratic part, a Newton iteration that does not settle.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..losses import Loss
+from ..scale import MAD_CONSTANT
+from .l1 import _l1_linear_start
+from .problem import _exact_floor, _Inner, _inv_small, _Problem
+
+#: the joint Newton route of the general code runs below this many points too
+_SMALL_MAX = 200
+
+
+def _mad_slope_rows(a: np.ndarray, order: np.ndarray, smooth: bool) -> np.ndarray:
+    """The points whose slope makes the MAD's gradient (as
+    :func:`.mscale._mad_and_gradient`): while the steps are long, every point whose
+    ``|r|`` lies within ``ceil(n^(2/3))`` ranks of the median; near the root the
+    point(s) at the median (a tie takes the first in point order)."""
+    n = a.size
+    h = n // 2
+    if smooth:
+        w = int(math.ceil(n ** (2.0 / 3.0)))
+        lo, hi = a[order[h - w]], a[order[h + w]]
+        return np.flatnonzero((a >= lo) & (a <= hi))
+    vals = (a[order[h]],) if n % 2 else (a[order[h - 1]], a[order[h]])
+    return np.array([int(np.argmax(a == v)) for v in vals])
+
+
+def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
+    """M-estimate of a small linear model with the MAD scale re-estimated to its fixed
+    point: ``(inner, s, n_iter)`` with psi and psi' at the solution in ``inner.stats``,
+    or None where the general route should decide (see the module's docstring).
+
+    The fixed point is the one the general route finds: the same L1 start, the same
+    joint equations ``sum psi(r_i / s(theta)) A_i = 0`` with ``s(theta)`` the
+    normalised MAD, the same smoothed MAD slope while steps are long, and the same
+    stopping rule as its last phase (a step below 1e-12 standard errors, or 1e-14
+    relative).
+    """
+    n, k = prob.n, prob.k
+    if (not prob.model.is_linear or loss.redescending or n >= _SMALL_MAX or 2 * k >= n
+            or np.any(np.isfinite(prob.lower)) or np.any(np.isfinite(prob.upper))):
+        return None
+    theta, exact = _l1_linear_start(prob, theta0)
+    if not exact:
+        return None
+    A = prob.jac(None)
+    b = prob.rhs()
+    floor = _exact_floor(prob)
+    h = n // 2
+    odd = n % 2
+
+    def mad_of(r):
+        a = np.abs(r)
+        order = np.argsort(a, kind="stable")
+        med = a[order[h]] if odd else 0.5 * (a[order[h - 1]] + a[order[h]])
+        return MAD_CONSTANT * float(med), a, order
+
+    # one reweighted least-squares pass at the L1 fit's MAD (the general route's loose
+    # first solve): the joint iteration then starts nearer the majority's fit
+    r = b - A @ theta
+    s = mad_of(r)[0]
+    if not (s > floor and math.isfinite(s)):
+        return None
+    sw = np.sqrt(loss.weight(r / s))
+    try:
+        theta = np.linalg.lstsq(A * sw[:, None], b * sw, rcond=None)[0]
+    except np.linalg.LinAlgError:
+        return None
+    if not np.all(np.isfinite(theta)):
+        return None
+
+    n_w = int(math.ceil(n ** (2.0 / 3.0)))
+    smooth = n >= 20 and h - n_w >= 0 and h + n_w < n
+    norm_prev = math.inf
+    done = False
+    passes = 0
+    while True:
+        passes += 1
+        if passes > max_iter:
+            return None  # not settled: the general route decides
+        r = b - A @ theta
+        s, a, order = mad_of(r)
+        if not (s > floor and math.isfinite(s)):
+            return None  # exact data: the general route's exact fit decides
+        u = r / s
+        psi, dpsi = loss.psi_dpsi(u)
+        if done:
+            break
+        idx = _mad_slope_rows(a, order, smooth)
+        g = (-MAD_CONSTANT / idx.size) * (np.sign(r[idx]) @ A[idx])
+        F = psi @ A
+        Ad = A * dpsi[:, None]
+        G = Ad.T @ A
+        # (Newton on F itself, as the general route: on s(theta) F(theta), linear in
+        # theta on each piece for Huber's psi, one step fewer, but at n < 16 it picked
+        # another of several MAD roots in 4 of 2400 seeded fits)
+        M = G + np.outer(u @ Ad, g)
+        d = np.sqrt(np.abs(M.diagonal())) + 1e-300
+        Fd = F / d
+        norm = math.sqrt(float(Fd @ Fd))
+        if not math.isfinite(norm) or norm > 4.0 * norm_prev:
+            return None
+        norm_prev = norm
+        dd = d[:, None] * d
+        Mi, Gi = _inv_small(M / dd), _inv_small(G / dd)
+        if Mi is None or Gi is None:
+            return None  # fewer than k points inside the quadratic part, say
+        step = s * (Mi @ Fd) / d
+        se = s * np.sqrt(np.abs(Gi.diagonal())) / d
+        if not np.isfinite(step).all():
+            return None
+        with np.errstate(all="ignore"):
+            in_se = np.abs(step) / se  # (inf where se is 0)
+        rel = np.abs(step) <= 1e-14 * np.abs(theta)
+        if (rel | (in_se <= 1e-13)).all():
+            break  # the step to the root is negligible: this iterate is the solution
+        # one more pass after a step below 1e-12 standard errors gives the scale and
+        # psi there (the iteration contracts by far more than that per step here)
+        done = bool((rel | (in_se <= 1e-12)).all())
+        smooth = smooth and not bool((rel | (in_se <= 1e-2)).all())
+        theta = theta + step
+    with np.errstate(all="ignore"):
+        obj = loss.sum_rho(u, psi)
+    obj = obj if math.isfinite(obj) else math.inf
+    stats = {"psi": psi, "dpsi": dpsi, "u": u, "s": s}
+    return _Inner(theta, r, obj, passes, True, "converged", stats), s, passes
