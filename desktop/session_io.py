@@ -53,12 +53,12 @@ from fitcore.session import (
     note_written_folders_in,
     orphaned_recovery,
     read_bounded_file,
-    recovery_path,
     release_recovery,
     save_session_text,
     session_to_json,
     set_aside_damaged,
     window_recovery_path,
+    write_recovery,
 )
 from PySide6.QtCore import QObject, QStandardPaths, QTimer
 from PySide6.QtWidgets import QFileDialog, QMessageBox
@@ -219,14 +219,8 @@ def write_session(path, session, view: dict | None = None) -> Path:
 def write_recovery_with_view(session, folder, for_path=None, view: dict | None = None, target=None) -> Path:
     """:func:`fitcore.session.write_recovery`, keeping the view too (into ``target``
     when given: a window's own recovery file)."""
-    folder = Path(folder)
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise SessionError(f"could not create the recovery folder {folder}: "
-                           f"{exc.strerror or exc}") from None
-    session.saved_as = "" if for_path is None else str(Path(for_path).expanduser().absolute())
-    return write_session(target or recovery_path(for_path, folder), session, view)
+    return write_recovery(session, folder, for_path, target=target,
+                          write=lambda path, s: write_session(path, s, view))
 
 
 def read_view(path) -> dict | None:

@@ -956,11 +956,13 @@ def recovery_path(for_path, folder) -> Path:
     return folder / f"{stem}-{tag}{RECOVERY_SUFFIX}"
 
 
-def write_recovery(session: Session, folder, for_path=None) -> Path:
+def write_recovery(session: Session, folder, for_path=None, *, target=None, write=None) -> Path:
     """Autosave ``session`` (atomically) into ``folder``; returns the recovery file.
 
     The recovery file records ``for_path`` in ``saved_as`` so the window can offer
-    "recover unsaved work for <file>".
+    "recover unsaved work for <file>"; the session object is left as it was.
+    ``target`` is the file to write (default :func:`recovery_path`), ``write(path,
+    session)`` the writer (default :func:`save_session`; the window's keeps its view).
     """
     folder = Path(folder)
     try:
@@ -968,11 +970,11 @@ def write_recovery(session: Session, folder, for_path=None) -> Path:
     except OSError as exc:
         raise SessionError(f"could not create the recovery folder {folder}: "
                            f"{exc.strerror or exc}") from None
-    target = recovery_path(for_path, folder)
+    target = target or recovery_path(for_path, folder)
     before = session.saved_as
     session.saved_as = "" if for_path is None else str(Path(for_path).expanduser().absolute())
     try:
-        return save_session(target, session)
+        return (write or save_session)(target, session)
     finally:
         session.saved_as = before
 

@@ -365,6 +365,25 @@ def test_recovery_files(tmp_path):
     assert not ra.exists()
 
 
+def test_recovery_folder_that_cannot_be_made_and_a_writer_of_ones_own(tmp_path):
+    blocked = tmp_path / "taken"
+    blocked.write_text("a file where the folder should be")
+    with pytest.raises(S.SessionError, match="^could not create the recovery folder"):
+        S.write_recovery(demo_session(), blocked / "recovery")
+    # the window writes its recovery file with its own writer and target (its view kept)
+    seen = []
+
+    def writer(path, session):
+        seen.append((path, session.saved_as))
+        return save_session(path, session)
+
+    s = demo_session()
+    own = tmp_path / "rec" / "mine.ballast.recovery"
+    got = S.write_recovery(s, tmp_path / "rec", tmp_path / "doc.ballast", target=own, write=writer)
+    assert got == own and seen == [(own, str((tmp_path / "doc.ballast").absolute()))]
+    assert s.saved_as == ""  # the session object is left as it was
+
+
 # ============================================================================ refit
 def test_refit_reproduces_bit_for_bit(tmp_path):
     fit = _fit()
