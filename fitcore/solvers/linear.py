@@ -29,19 +29,23 @@ from .problem import _exact_floor, _Inner, _inv_small, _Problem
 _SMALL_MAX = 200
 
 
-def _mad_slope_rows(a: np.ndarray, order: np.ndarray, smooth: bool) -> np.ndarray:
-    """The points whose slope makes the MAD's gradient (as
-    :func:`.mscale._mad_and_gradient`): while the steps are long, every point whose
-    ``|r|`` lies within ``ceil(n^(2/3))`` ranks of the median; near the root the
-    point(s) at the median (a tie takes the first in point order)."""
+def _mad_slope(r: np.ndarray, a: np.ndarray, order: np.ndarray, smooth: bool,
+               A: np.ndarray) -> np.ndarray:
+    """The gradient of the normalised MAD ``1.4826 median |r|`` w.r.t. the parameters
+    (r = b - A theta), as :func:`.mscale._mad_and_gradient` takes it: while the steps
+    are long, the slope averaged over every point whose ``|r|`` lies within
+    ``ceil(n^(2/3))`` ranks of the median; near the root the slope of the point(s) at
+    the median (a tie takes the first in point order). ``a = |r|``, ``order`` its
+    stable argsort."""
     n = a.size
     h = n // 2
     if smooth:
         w = int(math.ceil(n ** (2.0 / 3.0)))
-        lo, hi = a[order[h - w]], a[order[h + w]]
-        return np.flatnonzero((a >= lo) & (a <= hi))
+        sel = (a >= a[order[h - w]]) & (a <= a[order[h + w]])
+        return (-MAD_CONSTANT / np.count_nonzero(sel)) * ((np.sign(r) * sel) @ A)
     vals = (a[order[h]],) if n % 2 else (a[order[h - 1]], a[order[h]])
-    return np.array([int(np.argmax(a == v)) for v in vals])
+    idx = [int(np.argmax(a == v)) for v in vals]
+    return (-MAD_CONSTANT / len(idx)) * (np.sign(r[idx]) @ A[idx])
 
 
 def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
@@ -105,8 +109,7 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
         psi, dpsi = loss.psi_dpsi(u)
         if done:
             break
-        idx = _mad_slope_rows(a, order, smooth)
-        g = (-MAD_CONSTANT / idx.size) * (np.sign(r[idx]) @ A[idx])
+        g = _mad_slope(r, a, order, smooth, A)
         F = psi @ A
         Ad = A * dpsi[:, None]
         G = Ad.T @ A
@@ -126,17 +129,20 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
             return None  # fewer than k points inside the quadratic part, say
         step = s * (Mi @ Fd) / d
         se = s * np.sqrt(np.abs(Gi.diagonal())) / d
-        if not np.isfinite(step).all():
-            return None
-        with np.errstate(all="ignore"):
-            in_se = np.abs(step) / se  # (inf where se is 0)
-        rel = np.abs(step) <= 1e-14 * np.abs(theta)
-        if (rel | (in_se <= 1e-13)).all():
+        # the step in standard errors, s sqrt(diag G^-1), where it is not below 1e-14
+        # relative (a loop over the k values: cheaper than array calls at this size)
+        worst = 0.0
+        for dj, ej, tj in zip(step.tolist(), se.tolist(), theta.tolist()):
+            if not math.isfinite(dj):
+                return None
+            if abs(dj) > 1e-14 * abs(tj):
+                worst = max(worst, abs(dj) / ej if ej > 0 else math.inf)
+        if worst <= 1e-13:
             break  # the step to the root is negligible: this iterate is the solution
         # one more pass after a step below 1e-12 standard errors gives the scale and
         # psi there (the iteration contracts by far more than that per step here)
-        done = bool((rel | (in_se <= 1e-12)).all())
-        smooth = smooth and not bool((rel | (in_se <= 1e-2)).all())
+        done = worst <= 1e-12
+        smooth = smooth and worst > 1e-2
         theta = theta + step
     with np.errstate(all="ignore"):
         obj = loss.sum_rho(u, psi)
