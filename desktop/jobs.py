@@ -1,6 +1,9 @@
 """The window's one background-job mechanism: fits, analyses, file reading, formula checks.
 
-Everything slow that the window does off its GUI thread goes through here::
+Everything slow that the window does off its GUI thread goes through here, with one
+exception: File > Fit many files streams its rows from fitcore.batch's own process
+pool through a thread of its own (``desktop.batch_window._Runner``); a job here answers
+once, and rows that arrive while the batch runs would need a partial-result signal::
 
     channel = Channel(parent)                   # one line of work
     channel.finished.connect(show)              # (result)
