@@ -52,7 +52,7 @@ from .model import Model
 from .models import resolve_model
 from .session import write_atomically
 from .solve import FitError, fit
-from .solvers.setup import _check_alpha, _check_scale_tuning
+from .solvers.setup import _check_alpha, _check_scale_tuning, _held_values, _iteration_limit
 from .work import DataSet, Exclusion
 
 __all__ = [
@@ -449,6 +449,8 @@ def _check_method(model, loss, options) -> Any:
         raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
     _check_alpha(loss, options.get("alpha"))
     _check_scale_tuning(loss, options.get("scale", "auto"), options.get("tuning"))
+    _iteration_limit(options.get("max_iter", 2000))
+    _held_values(dict(options.get("fixed") or {}))
     if isinstance(model, Model):
         return model
     if not isinstance(model, str):

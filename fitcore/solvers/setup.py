@@ -137,6 +137,31 @@ def _check_alpha(loss: str, alpha) -> None:
     raise FitError(f"alpha is the shape of the general loss; the {loss} loss {what}")
 
 
+def _iteration_limit(max_iter) -> int:
+    """``max_iter`` as a count of at least 1 (a whole float is taken)."""
+    try:
+        ok = not isinstance(max_iter, bool) and float(max_iter).is_integer() and max_iter >= 1
+    except (TypeError, ValueError, OverflowError):
+        ok = False
+    if not ok:
+        raise FitError(f"max_iter must be a whole number of at least 1, not {max_iter!r}")
+    return int(max_iter)
+
+
+def _held_values(fixed: dict) -> dict:
+    """The held parameters' values as floats; each must be a finite number."""
+    out = {}
+    for name, v in fixed.items():
+        try:
+            f = float(v)
+        except (TypeError, ValueError):
+            f = math.nan
+        if not math.isfinite(f):
+            raise FitError(f"the held value of {name} must be a finite number, not {v!r}")
+        out[name] = f
+    return out
+
+
 def _check_scale_tuning(loss: str, scale, tuning) -> None:
     """A fixed scale or a tuning constant with a loss that takes neither (least squares
     and L1 are scale-free, the adaptive loss fits its own scale) would be ignored while
@@ -147,6 +172,8 @@ def _check_scale_tuning(loss: str, scale, tuning) -> None:
     why = ("which fits its own scale: leave it out, or use loss='general' to hold a scale"
            if own else "whose estimate does not depend on a scale: leave it out (standard "
            "uncertainties of y go in sigma)")
+    if isinstance(scale, str) and scale != "auto":
+        raise FitError(f"scale must be 'auto' or a positive number, not {scale!r}")
     if not (isinstance(scale, str) and scale == "auto"):
         raise FitError(f"a fixed scale has no effect on {loss_phrase(loss)}, {why}")
     if tuning is not None:
@@ -160,6 +187,7 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         raise FitError(f"unknown loss {loss!r}; choose one of {', '.join(LOSS_NAMES)}")
     if sigma_mode not in ("relative", "absolute"):
         raise FitError("sigma_mode must be 'relative' or 'absolute'")
+    max_iter = _iteration_limit(max_iter)
     try:
         mdl = _resolve(model)
     except FitError:
@@ -205,6 +233,7 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
     if unknown:
         raise FitError(f"cannot hold unknown parameter(s) {sorted(unknown)}; the model has "
                        f"{', '.join(mdl.param_names)}")
+    fixed = _held_values(fixed)
     free = np.array([n not in fixed for n in mdl.param_names])
     k = int(free.sum())
     if k == 0:

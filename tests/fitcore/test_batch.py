@@ -98,6 +98,12 @@ def test_fit_many_options_progress_and_errors():
         fitcore.fit_many(data, "line", "lsq")
     with pytest.raises(fitcore.FitError, match="alpha is the shape of the general loss"):
         fitcore.fit_many(data, "line", "huber", alpha=0.5)  # refused once, not per curve
+    for kw, message in ((dict(scale=0.5), "a fixed scale has no effect"),
+                        (dict(tuning=2.0), "a tuning constant has no effect"),
+                        (dict(max_iter=0), "max_iter must be a whole number"),
+                        (dict(fixed={"b": float("nan")}), "the held value of b")):
+        with pytest.raises(fitcore.FitError, match=message):  # once, not per curve
+            fitcore.fit_many(data, "line", "l2", **kw)
     with pytest.raises(fitcore.FitError):
         fitcore.fit_many(data, "a*exp(-x/", "l2")
     with pytest.raises(fitcore.BatchError, match="jobs"):

@@ -183,6 +183,31 @@ def test_scale_or_tuning_with_a_loss_that_takes_neither_is_refused(loss):
     assert res.converged and not res.info["scale_fixed"]
 
 
+@pytest.mark.parametrize("kw,message", [
+    # a held value that is not a finite number (inf was fitted as rank-deficient, NaN
+    # was blamed on the model's start values)
+    (dict(fixed={"tau": float("inf")}), "^the held value of tau must be a finite number"),
+    (dict(fixed={"tau": float("nan")}), "^the held value of tau must be a finite number"),
+    (dict(fixed={"tau": "abc"}), "^the held value of tau must be a finite number"),
+    # an iteration limit that is no count ('did not converge in -1 iterations'; 2.5 was
+    # a raw TypeError)
+    (dict(max_iter=0), "^max_iter must be a whole number of at least 1"),
+    (dict(max_iter=-1), "^max_iter must be a whole number of at least 1"),
+    (dict(max_iter=2.5), "^max_iter must be a whole number of at least 1"),
+    (dict(max_iter="many"), "^max_iter must be a whole number of at least 1"),
+    # a scale that is no number is named as such, whatever the loss
+    (dict(scale="fixed"), "^scale must be 'auto' or a positive number, not 'fixed'"),
+    (dict(scale="fixed", loss="huber"), "^scale must be 'auto' or a positive number, not 'fixed'"),
+])
+def test_meaningless_option_values_are_refused_in_one_sentence(kw, message):
+    with pytest.raises(fitcore.FitError, match=message):
+        fitcore.fit("exp_decay", X, Y, **kw)
+
+
+def test_an_iteration_limit_given_as_a_whole_float_is_taken():
+    assert fitcore.fit("exp_decay", X, Y, max_iter=500.0).converged
+
+
 def test_the_losses_that_take_no_scale_are_read_from_the_registry():
     from fitcore.losses import LOSSES, OWN_SCALE
 
