@@ -11,6 +11,54 @@ from .losses import LOSSES
 from .model import Model
 
 
+class _PerPoint:
+    """A per-point array field of :class:`FitResult` that the fit may leave out (given
+    as None) because the others determine it: it is then computed on first read from
+    them, exactly as the fit would have, and kept. A fit of a million points so holds
+    fewer arrays as large as the data (issue 12: a least-squares line's peak memory)."""
+
+    def __init__(self, derive):
+        self._derive = derive
+
+    def __set_name__(self, owner, name):
+        # (kept under the field's own name: a data descriptor takes precedence over the
+        # instance dict, and ``FitResult(**res.__dict__)`` still rebuilds a result)
+        self._key = name
+
+    def __get__(self, obj, objtype=None):
+        if obj is None:
+            raise AttributeError(self._key)  # (the dataclass field has no default)
+        value = obj.__dict__.get(self._key)
+        if value is None:
+            value = self._derive(obj)
+            obj.__dict__[self._key] = value
+        return value
+
+    def __set__(self, obj, value):
+        obj.__dict__[self._key] = value
+
+
+def _residuals(res: "FitResult") -> np.ndarray:
+    with np.errstate(all="ignore"):
+        return res.y - res.fitted
+
+
+def _std_residuals(res: "FitResult") -> np.ndarray:
+    residuals, s = res.residuals, res.scale
+    with np.errstate(all="ignore"):
+        if not s > 0:
+            return residuals * np.nan
+        if res.sigma is None:
+            return residuals / s
+        return residuals / res.sigma / s
+
+
+def _unit_weights(res: "FitResult") -> np.ndarray:
+    """Least squares: 1 for every used point (finite x and y, not excluded), else 0."""
+    used = ~res.excluded & np.isfinite(res.x) & np.isfinite(res.y)
+    return used.astype(float)
+
+
 @dataclass(frozen=True)
 class FitResult:
     """Everything one fit produced. Arrays are in parameter order / point order.
@@ -43,6 +91,11 @@ class FitResult:
     n_used, n_excluded, n_downweighted, dof
         Points used, excluded by the analyst, used with weight < 0.5; degrees of
         freedom ``n_used - n_free_params``.
+
+    ``residuals``, ``std_residuals`` and (least squares) ``weights`` may be given as None:
+    they are then computed from ``y``, ``fitted``, ``scale``, ``sigma`` and
+    ``excluded`` on first read (the same numbers; a fit of many points holds fewer
+    arrays as large as the data until they are asked for).
     """
 
     model: Model
@@ -51,9 +104,9 @@ class FitResult:
     values: np.ndarray
     stderr: np.ndarray
     covariance: np.ndarray
-    weights: np.ndarray
-    residuals: np.ndarray
-    std_residuals: np.ndarray
+    weights: np.ndarray = _PerPoint(_unit_weights)
+    residuals: np.ndarray = _PerPoint(_residuals)
+    std_residuals: np.ndarray = _PerPoint(_std_residuals)
     fitted: np.ndarray
     x: np.ndarray
     y: np.ndarray

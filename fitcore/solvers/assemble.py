@@ -112,36 +112,35 @@ def _assemble(st: _Setup, out: _Outcome) -> FitResult:
             fitted = kept_f.copy()  # the solver's last pass computed exactly these
         else:
             fitted = np.asarray(mdl.f(x, p_full), dtype=float)
-    residuals = y - fitted
-    with np.errstate(all="ignore"):
-        if not s > 0:
-            std_res = residuals * np.nan
-        elif sig_all is None:
-            std_res = residuals / s
-        else:
-            std_res = residuals / sig_all / s
+    # the residuals, standardised residuals and least-squares weights are left to the
+    # result, which computes them from these on first read (FitResult._PerPoint): a fit
+    # of a million points then holds three fewer arrays as large as the data; and the
+    # cached design matrix of a linear model goes now, before the copies of x and y
+    prob.release()
+    n_down = 0
     if st.loss == "l2":
-        w_used = np.ones(st.n_used)
+        weights = None
     else:
         stats = inner.stats or {}
         u_kept = stats.get("u") if stats.get("s") == s else None  # r / s, when kept
         w_used = np.asarray(out.loss_obj.weight(r / s if u_kept is None else u_kept),
                             dtype=float)
         np.clip(w_used, 0.0, 1.0, out=w_used)
-    if all_used:
-        weights = w_used
-    else:
-        weights = np.zeros(st.n_all)
-        weights[st.used] = w_used
+        n_down = int(np.count_nonzero(w_used < 0.5))
+        if all_used:
+            weights = w_used
+        else:
+            weights = np.zeros(st.n_all)
+            weights[st.used] = w_used
     return FitResult(
         model=mdl, loss=st.loss, param_names=mdl.param_names, values=p_full, stderr=stderr,
-        covariance=cov, weights=weights, residuals=residuals, std_residuals=std_res,
+        covariance=cov, weights=weights, residuals=None, std_residuals=None,
         fitted=fitted, x=x.copy(), y=y.copy(),
         sigma=None if sig_all is None else sig_all.copy(), excluded=st.excl.copy(),
         scale=float(s), scale_method=out.scale_method, alpha=out.alpha,
         tuning=out.loss_obj.tuning, covariance_recipe=recipe, converged=bool(converged),
         message=message, n_used=st.n_used, n_excluded=int(st.excl.sum()),
-        n_downweighted=int(np.count_nonzero(w_used < 0.5)),
+        n_downweighted=n_down,
         dof=st.dof, fixed={kk: float(v) for kk, v in st.fixed.items()},
         n_iter=int(out.n_iter), objective=float(inner.objective), sigma_mode=st.sigma_kind,
         rss=float(r @ r), alpha_stderr=out.alpha_se, info=st.info,

@@ -28,17 +28,19 @@ class _StepSolver:
 
     def __init__(self, Jw: np.ndarray, rw: np.ndarray, D: np.ndarray):
         self.D = D
-        Js = Jw / D
         self.fast = False
         if Jw.shape[0] >= self.FAST_MIN_ROWS:
-            G = Js.T @ Js
+            # (the scaled Gram matrix from J's own: no scaled copy of J, which at a
+            # million points is as large as the data)
+            G = (Jw.T @ Jw) / np.outer(D, D)
             ev = np.linalg.eigvalsh(G)
             if ev[0] > 0 and ev[-1] <= self.FAST_MAX_COND * ev[0]:
                 self.fast = True
                 self.G = G
-                self.g = Js.T @ rw
+                self.g = (Jw.T @ rw) / D
         self.direct = False
         if not self.fast:
+            Js = Jw / D
             n, k = Js.shape
             if n > k:
                 # one Householder QR of [J | r] (LAPACK directly: numpy's wrappers cost
@@ -181,10 +183,13 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
         if not np.all(np.isfinite(J)):
             return _Inner(theta, r, phi, it, False,
                           "the model's derivatives are not finite at the current parameters")
-        w = loss.weight(r / s)
-        sw = np.sqrt(np.maximum(w, 0.0))
-        Jw = J * sw[:, None]
-        rw = r * sw
+        if loss.name == "l2":  # unit weights: no weighted copies of J and r
+            Jw, rw = J, r
+        else:
+            w = loss.weight(r / s)
+            sw = np.sqrt(np.maximum(w, 0.0))
+            Jw = J * sw[:, None]
+            rw = r * sw
         d2 = np.einsum("ij,ij->j", Jw, Jw)
         # column scaling from the current column norms, with a memory that fades by
         # half per iteration (a plain running maximum goes stale once a column shrinks

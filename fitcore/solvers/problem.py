@@ -80,6 +80,12 @@ class _Problem:
             r = np.subtract(self.y, f, out=out)
             return r if self.unit else np.divide(r, self.sig, out=r)
 
+    def release(self) -> None:
+        """Drop the cached design matrix (a linear model's; as large as the data at two
+        parameters) and kept Jacobian: the fit is done with them. (Rebuilt on demand.)"""
+        for name in ("_design", "_offset", "_b", "_jac_at"):
+            self.__dict__.pop(name, None)
+
     def kept_f(self, theta: np.ndarray) -> np.ndarray | None:
         """The model values at theta from the last pass that wrote them into a
         scratch array, while it still holds them; else None."""
@@ -211,6 +217,9 @@ def _release_scratch() -> None:
 
 def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
     with np.errstate(all="ignore"):
+        if loss.name == "l2" and r.size >= 4000:  # (no temporaries as large as r)
+            v = 0.5 * float(r @ r) / (s * s)
+            return v if math.isfinite(v) else math.inf
         v = float(np.sum(loss.rho(r / s)))
     return v if math.isfinite(v) else math.inf
 

@@ -75,6 +75,23 @@ def _first_order(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | 
     return bool(worst <= COSINE_TOL + rounding), worst, j
 
 
+_GRAM_MIN_ROWS = 4000
+
+
+def _gram_r(Jw: np.ndarray, d: np.ndarray) -> np.ndarray | None:
+    """R with ``R^T R = (Jw/d)^T (Jw/d)`` by a Cholesky factor of the scaled Gram matrix
+    (no copy of Jw, which at a million points is as large as the data), or None where
+    its condition number exceeds 1e8 (then a QR factorisation keeps the digits)."""
+    G = (Jw.T @ Jw) / np.outer(d, d)
+    try:
+        ev = np.linalg.eigvalsh(G)
+        if not (ev[0] > 0 and ev[-1] <= 1e8 * ev[0]):
+            return None
+        return np.linalg.cholesky(G).T
+    except np.linalg.LinAlgError:
+        return None
+
+
 def _step_small(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | None,
                 s: float, J: np.ndarray | None = None) -> tuple[bool, float, int]:
     """``(passes, largest relative step, index of that parameter)`` at ``theta``.
@@ -91,18 +108,20 @@ def _step_small(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | N
         J = prob.jac(theta)
     with np.errstate(all="ignore"):
         if loss is None:
-            w, g = np.ones(r.size), r @ J
+            Jw, g = J, r @ J  # (W = I: no weighted copy of J)
         else:  # where psi' exceeds psi(u)/u (the general loss beyond alpha = 2) it is the
             # curvature, and the reweighted step would overstate the distance to the minimum
             u = r / s
             w = np.maximum(np.maximum(loss.weight(u), loss.dpsi(u)), 0.0)
             g = s * (loss.psi(u) @ J)
-        Jw = J * np.sqrt(w)[:, None]
+            Jw = J * np.sqrt(w)[:, None]
         if not (np.all(np.isfinite(Jw)) and np.all(np.isfinite(g))):
             return True, 0.0, 0
         d = np.sqrt(np.einsum("ij,ij->j", Jw, Jw))
         d = np.where(d > 0, d, 1.0)
-        R = np.linalg.qr(Jw / d, mode="r")
+        R = _gram_r(Jw, d) if Jw.shape[0] >= _GRAM_MIN_ROWS else None
+        if R is None:
+            R = np.linalg.qr(Jw / d, mode="r")
         diag = np.abs(np.diag(R))
         if diag.size == 0 or diag.min() <= 1e-14 * diag.max():
             return True, 0.0, 0
