@@ -535,6 +535,8 @@ def get_loss(name: str, tuning: float | None = None, alpha: float | None = None)
     if not isinstance(name, str) or name not in LOSS_NAMES:
         raise ValueError(f"unknown loss {name!r}; choose one of {', '.join(LOSS_NAMES)}")
     if tuning is not None:
+        if isinstance(tuning, bool):  # True is no constant, though float() reads it as 1
+            raise ValueError(f"the tuning constant must be a positive number, not {tuning!r}")
         tuning = float(tuning)
         if not (tuning > 0 and math.isfinite(tuning)):
             raise ValueError(f"the tuning constant must be a positive number, not {tuning!r}")

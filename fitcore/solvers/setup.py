@@ -270,6 +270,8 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
     fixed_scale = None
     scale_given = not (isinstance(scale, str) and scale == "auto")
     if scale_given:
+        if isinstance(scale, bool):  # True is no scale, though float() reads it as 1
+            raise FitError(f"scale must be 'auto' or a positive number, not {scale!r}")
         try:
             fixed_scale = float(scale)
         except (TypeError, ValueError):

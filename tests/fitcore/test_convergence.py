@@ -198,6 +198,8 @@ def test_scale_or_tuning_with_a_loss_that_takes_neither_is_refused(loss):
     # a scale that is no number is named as such, whatever the loss
     (dict(scale="fixed"), "^scale must be 'auto' or a positive number, not 'fixed'"),
     (dict(scale="fixed", loss="huber"), "^scale must be 'auto' or a positive number, not 'fixed'"),
+    (dict(scale=True, loss="huber"), "^scale must be 'auto' or a positive number, not True"),
+    (dict(tuning=True, loss="huber"), "^the tuning constant must be a positive number, not True"),
 ])
 def test_meaningless_option_values_are_refused_in_one_sentence(kw, message):
     with pytest.raises(fitcore.FitError, match=message):
