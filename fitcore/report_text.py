@@ -779,13 +779,21 @@ def _latex(rows, meth, caution, pct, fp):
     return _latex_table(rows, meth, caution, pct, fp, cell, lambda t: f"${t}$", "latex")
 
 
+_SUPERSCRIPTS = str.maketrans("\u207b\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079",
+                               "-0123456789")
+
+
 def siunitx_unit(unit: str) -> str:
     """A unit as siunitx v3 literal unit input: LaTeX specials escaped, ``µ``/``μ``
     and ``°`` written with siunitx's own ``\\micro``/``\\degree`` (literal units may
     mix in unit macros), ``²``/``³`` as powers."""
+    # written powers as powers: "cm-1" (an instrument export's header) and "cm⁻¹" -> cm^-1
+    unit = re.sub(r"(?<![\w-])([^\W\d_]+)-(\d+)(?![\w.])", r"\1^-\2", str(unit))
+    unit = re.sub("[\u207b\u2070\u00b9\u00b2\u00b3\u2074-\u2079]+",
+                  lambda m: "^" + m.group(0).translate(_SUPERSCRIPTS), unit)
     # powers as groups: s^(1/2) -> s^{1/2}, x^10 -> x^{10} (a bare ^ takes one token)
     unit = re.sub(r"\^\((-?\d+/\d+)\)|\^(-?\w+)", lambda m: f"\x00{m.group(1) or m.group(2)}\x01",
-                  str(unit))
+                  unit)
     out = []
     for c in unit:
         if c == "\x00":

@@ -196,6 +196,12 @@ def test_derived_units_as_siunitx_literal_units():
     assert siunitx_unit("m²") == "m^{2}"
     # the product dot is siunitx's own product separator '.'
     assert siunitx_unit(resolve_unit("x*y", "s", "mV")) == "s.mV"
+    # a data unit with a written power is a power in siunitx too (else "cm-1" printed
+    # with a hyphen); a hyphen between names stays
+    assert siunitx_unit("cm-1") == "cm^{-1}"
+    assert siunitx_unit("cm⁻¹") == "cm^{-1}"
+    assert siunitx_unit("counts/cm-2") == "counts/cm^{-2}"
+    assert siunitx_unit("mg-N") == "mg-N"
 
 
 def _exponents(hint: str) -> tuple[float, float]:
