@@ -754,6 +754,8 @@ def load_json_bounded(text: str, where: str = "session", *, max_bytes: int | Non
     except RecursionError:
         raise SessionError(f"{where}: not a Ballast session - the JSON is nested too deeply") \
             from None
+    except SessionError:
+        raise  # a bound's own message (from parse_int, parse_constant): already names the file
     except (ValueError, OverflowError) as exc:  # e.g. a float literal too long to convert
         raise SessionError(f"{where}: not a Ballast session - {exc}") from None
 
