@@ -30,6 +30,7 @@ from fitcore.report import (
     resolve_unit,
     scale_text,
 )
+from fitcore.report_text import HELD_NOTE
 
 from .document import Document
 
@@ -83,7 +84,7 @@ def summary_lines(res, y_unit: str = "") -> list[tuple[str, str]]:
         ("covariance", str(g("covariance_recipe", ""))),
     ]
     if g("fixed"):
-        lines.append(("held", "uncertainties are conditional on the held values"))
+        lines.append(("held", HELD_NOTE.removeprefix("; ")))  # the report's words
     return lines
 
 

@@ -225,3 +225,14 @@ def test_fit_warnings_show_in_the_summary_and_the_copied_text(open_window, tmp_p
     assert "warning" in summary and "almost interchangeable" in html.unescape(summary)
     text = estimates_view.estimates_plain_text(res)
     assert "almost interchangeable" in text
+
+
+def test_window_summary_states_held_values_in_the_reports_words():
+    # one caution about held values: the window's summary line is fitcore's HELD_NOTE
+    # (it had its own, shorter wording)
+    from fitcore.report_text import HELD_NOTE
+
+    x = np.linspace(0.0, 10.0, 20)
+    res = fitcore.fit("exp_decay", x, 3 * np.exp(-x / 2) + 0.5 + 0.01 * np.sin(3 * x), fixed={"C": 0.5})
+    held = dict(estimates_view.summary_lines(res))["held"]
+    assert held == HELD_NOTE.removeprefix("; ")
