@@ -6,7 +6,7 @@ loose reweighted solve, Newton's method on the joint (parameters, MAD) equations
 full-accuracy solves at that scale to confirm it and the solver's verdict. For a model
 linear in its parameters the design is a constant matrix and each of those steps is a
 few small matrix products, so this module runs them directly: the L1 start
-(:func:`.l1._l1_linear_start`), one reweighted least-squares pass at its MAD, and the
+(:func:`.l1._l1_linear_start`), the same loose reweighted solve at its MAD, and the
 joint Newton iteration to rounding level, whose last step is itself the convergence
 test (the remaining step to the root, in standard errors).
 
@@ -78,24 +78,36 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
         med = a[order[h]] if odd else 0.5 * (a[order[h - 1]] + a[order[h]])
         return MAD_CONSTANT * float(med), a, order
 
-    # one reweighted least-squares pass at the L1 fit's MAD (the general route's loose
-    # first solve): the joint iteration then starts nearer the majority's fit
+    # the general route's loose first solve: reweighted least-squares steps at the L1
+    # fit's MAD until a step is below 1e-2 of the parameters (in its column scaling);
+    # where the joint iteration starts decides between MAD roots at small n
     r = b - A @ theta
     s = mad_of(r)[0]
     if not (s > floor and math.isfinite(s)):
         return None
-    sw = np.sqrt(loss.weight(r / s))
-    try:
-        theta = np.linalg.lstsq(A * sw[:, None], b * sw, rcond=None)[0]
-    except np.linalg.LinAlgError:
-        return None
-    if not np.all(np.isfinite(theta)):
+    dmax = np.zeros(k)
+    for _ in range(100):
+        sw = np.sqrt(loss.weight(r / s))
+        Aw = A * sw[:, None]
+        dmax = np.maximum(np.einsum("ij,ij->j", Aw, Aw), 0.25 * dmax)
+        D = np.sqrt(np.where(dmax > 0, dmax, 1.0))
+        try:
+            new = np.linalg.lstsq(Aw, b * sw, rcond=None)[0]
+        except np.linalg.LinAlgError:
+            return None
+        if not np.isfinite(new).all():
+            return None
+        step, theta = new - theta, new
+        r = b - A @ theta
+        if np.linalg.norm(D * step) <= 1e-2 * (np.linalg.norm(D * theta) + 1e-2):
+            break
+    else:
         return None
 
     n_w = int(math.ceil(n ** (2.0 / 3.0)))
     smooth = n >= 20 and h - n_w >= 0 and h + n_w < n
     norm_prev = math.inf
-    done = False
+    done = near = False
     passes = 0
     while True:
         passes += 1
@@ -113,10 +125,12 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
         F = psi @ A
         Ad = A * dpsi[:, None]
         G = Ad.T @ A
-        # (Newton on F itself, as the general route: on s(theta) F(theta), linear in
-        # theta on each piece for Huber's psi, one step fewer, but at n < 16 it picked
-        # another of several MAD roots in 4 of 2400 seeded fits)
-        M = G + np.outer(u @ Ad, g)
+        # Newton on F, as the general route, until a step is below 1e-2 standard errors
+        # (the path into the basin decides between several MAD roots at small n); then
+        # on s(theta) F(theta), which has the same roots and is linear in theta on each
+        # piece for Huber's psi (the same clipped points and median point): one step
+        # lands on the root where F's own iteration takes two or three
+        M = G + np.outer(u @ Ad - F, g) if near else G + np.outer(u @ Ad, g)
         d = np.sqrt(np.abs(M.diagonal())) + 1e-300
         Fd = F / d
         norm = math.sqrt(float(Fd @ Fd))
@@ -142,7 +156,8 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
         # one more pass after a step below 1e-12 standard errors gives the scale and
         # psi there (the iteration contracts by far more than that per step here)
         done = worst <= 1e-12
-        smooth = smooth and worst > 1e-2
+        near = worst <= 1e-2
+        smooth = smooth and not near
         theta = theta + step
     with np.errstate(all="ignore"):
         obj = loss.sum_rho(u, psi)

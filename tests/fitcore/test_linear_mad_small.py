@@ -82,3 +82,26 @@ def test_exact_data_still_reports_the_exact_fit():
     res = fitcore.fit("line", x, y, loss="huber")
     assert np.allclose(res.values, [2.0, 0.5], rtol=0, atol=1e-12)  # the exact majority
     assert "exactly on the curve" in res.message
+
+
+def test_two_mad_roots_the_one_statsmodels_finds(monkeypatch):
+    # 12 invented points, the last two far off with high leverage: the joint (line,
+    # MAD) equations have two roots here (scale about 0.95 and 2.41). statsmodels RLM
+    # (HuberT, MAD scale, tol 1e-14) reaches the 2.41 one from its least-squares
+    # start; so does the general route from the L1 start after its loose reweighted
+    # solve, and so must the direct route (a single reweighted pass instead of that
+    # loose solve led it to the other root)
+    x = np.linspace(0.0, 10.0, 12)
+    y = np.array([1.65, 1.19, 1.96, 2.81, 3.43, 3.64, 5.44, 5.92, 6.25, 6.69, 17.22, 18.08])
+    sig = np.array([1.91, 1.13, 1.57, 1.85, 1.21, 1.59, 1.45, 0.58, 1.94, 1.72, 1.56, 0.88])
+    called = []
+    route = dispatch._linear_mad_small
+    monkeypatch.setattr(dispatch, "_linear_mad_small",
+                        lambda *a, **k: called.append(route(*a, **k)) or called[-1])
+    res = fitcore.fit("line", x, y, loss="huber", sigma=sig, sigma_mode="relative")
+    assert called and called[-1] is not None
+    X = np.c_[np.ones_like(x), x] / sig[:, None]
+    rlm = sm.RLM(y / sig, X, M=sm.robust.norms.HuberT()).fit(tol=1e-14, maxiter=5000)
+    assert res.converged
+    assert np.allclose(res.values, rlm.params, rtol=1e-7)
+    assert res.scale == pytest.approx(float(rlm.scale), rel=1e-7)
