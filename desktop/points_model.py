@@ -573,6 +573,10 @@ class ColumnFitter:
         header.setResizeContentsPrecision(self.SAMPLE_ROWS)
         header.setStretchLastSection(True)
         header.setMinimumSectionSize(28)
+        # no bold titles for a selected row (Qt's highlighted sections): the widths are
+        # measured for the plain titles, and a bold 'std. residual' was clipped at 1000 px
+        # (the selected rows show the selection)
+        header.setHighlightSections(False)
         document.subscribe(self._on_document)
 
     def _on_document(self, event, **info):

@@ -194,6 +194,34 @@ def test_every_estimate_column_and_enough_points_rows_show(make_win, size):
 
 
 @pytest.mark.parametrize("size", SIZES)
+def test_points_headers_are_not_cut_with_a_row_selected(make_win, size):
+    # with Qt's highlighted sections a selected row drew every column's title in bold,
+    # wider than the widths were measured for ('std. residual' was clipped to 'std.
+    # residua' at 1000 x 650 once a point was clicked): the titles must fit as drawn
+    from PySide6.QtCore import Qt
+    from PySide6.QtGui import QFont, QFontMetrics
+
+    win = make_win(*size)
+    for sample in ("05_dose_response.ods", "06_raman_peak.txt", "02_tracer_decay.csv"):
+        assert win.open_path(str(dialogs.SAMPLE_DIR / sample))
+        settle(win)
+        win.table.selectRow(3)
+        laid_out(win)
+        header = win.table.horizontalHeader()
+        assert header.selectionModel().hasSelection()
+        font = QFont(header.font())
+        font.setBold(header.highlightSections())
+        fm = QFontMetrics(font)
+        margin = 2 * header.style().pixelMetric(header.style().PixelMetric.PM_HeaderMargin, None, header)
+        for c in range(win.proxy.columnCount() - 1):  # (the last column takes the rest)
+            if header.isSectionHidden(c):
+                continue
+            text = str(win.proxy.headerData(c, Qt.Horizontal))
+            need = max(fm.horizontalAdvance(line) for line in text.split("\n")) + margin
+            assert header.sectionSize(c) >= need, (sample, text, header.sectionSize(c), need)
+
+
+@pytest.mark.parametrize("size", SIZES)
 def test_comparison_opens_as_a_tab_and_keeps_the_plot(make_win, size):
     import pyqtgraph as pg
 
