@@ -23,6 +23,27 @@ def _nll(r: np.ndarray, alpha: float, log_c: float) -> float:
     return v if math.isfinite(v) else math.inf
 
 
+def _nll_r2(r2: np.ndarray, alpha: float, log_c: float) -> float:
+    """:func:`_nll` from ``r2 = r**2`` (in place in one work array: fewer passes over
+    many residuals; equal to rounding)."""
+    n = r2.size
+    with np.errstate(all="ignore"):
+        z = np.divide(r2, math.exp(2.0 * log_c))
+        if alpha == 2.0:
+            s = 0.5 * float(np.sum(z))
+        elif alpha == 0.0:
+            np.multiply(z, 0.5, out=z)
+            s = float(np.sum(np.log1p(z, out=z)))
+        else:
+            b = abs(alpha - 2.0)
+            np.divide(z, b, out=z)
+            np.log1p(z, out=z)
+            np.multiply(z, 0.5 * alpha, out=z)
+            s = (b / alpha) * float(np.sum(np.expm1(z, out=z)))
+        v = s + n * log_c + n * log_partition(alpha)
+    return v if math.isfinite(v) else math.inf
+
+
 def _nll_slope(r2: np.ndarray, alpha: float, log_c: float) -> tuple[float, float]:
     """First and second derivative of :func:`_nll` in ``log c`` (``r2 = r**2``).
 
@@ -98,7 +119,8 @@ _ML_LARGE = 100000
 _ML_SUB = 20000
 
 
-def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
+def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float,
+                    near: bool = False):
     """Maximum-likelihood (alpha, c) for fixed residuals; alpha in [0, 2], c >= c_floor.
 
     The profile over alpha is minimised by a bounded scalar search; for each alpha the
@@ -110,9 +132,11 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
     around it (two of the subsample's standard errors of alpha each side, widened while
     it does not bracket the minimum), which takes a handful of evaluations. Where no
     interior bracket is found (a minimum at 0 or 2) the full search runs on all of them.
+    ``near``: alpha and c are the previous step's answer on the same points (refitted
+    since): the bracket starts around alpha (many residuals only).
     """
     if r.size > _ML_LARGE:
-        got = _ml_polished(r, alpha, c, c_floor)
+        got = _ml_polished(r, alpha, c, c_floor, near)
         if got is not None:
             return got
     lo_c = math.log(c_floor)
@@ -142,8 +166,15 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float):
     return float(a_best), math.exp(lc), val, prof
 
 
-def _ml_polished(r: np.ndarray, alpha: float, c: float, c_floor: float):
-    """:func:`_ml_shape_scale` of many residuals from a subsample's answer, or None."""
+def _ml_polished(r: np.ndarray, alpha: float, c: float, c_floor: float, near: bool = False):
+    """:func:`_ml_shape_scale` of many residuals from a subsample's answer, or None.
+    ``near``: (alpha, c) are the previous step's on these points, which moved them only
+    a little: the bracket starts at alpha, +-0.001 (the subsample is searched only where
+    that does not hold the minimum)."""
+    if near and _NEAR_D < alpha < 2.0 - _NEAR_D:
+        got = _ml_polished_from(r, c, c_floor, alpha, _NEAR_D, tries=2)
+        if got is not None:
+            return got
     sub = r[_sample_rows(r.size, _ML_SUB, 20240612)]
     a_s, c_s, _, prof_s = _ml_shape_scale(sub, alpha, c, c_floor)
     h = 1e-3
@@ -152,6 +183,16 @@ def _ml_polished(r: np.ndarray, alpha: float, c: float, c_floor: float):
     d2 = (prof_s(a_s + h) - 2 * prof_s(a_s) + prof_s(a_s - h)) / (h * h)
     if not (d2 > 0 and math.isfinite(d2)):
         return None
+    return _ml_polished_from(r, c_s, c_floor, a_s, 2.0 / math.sqrt(d2), tries=4)
+
+
+_NEAR_D = 1e-3
+
+
+def _ml_polished_from(r, c_s, c_floor, a_s, d, tries):
+    """Brent's method on all of ``r`` from the bracket ``a_s +- d`` (widened fourfold
+    while it does not hold the minimum, up to ``tries`` brackets), or None."""
+    c = c_s
     lo_c = math.log(c_floor)
     hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
     last = [math.log(max(c_s, c_floor))]
@@ -163,11 +204,10 @@ def _ml_polished(r: np.ndarray, alpha: float, c: float, c_floor: float):
         if a not in cache:
             lc = _best_log_c(r, a, lo_c, hi_c, last[0], r2)
             last[0] = lc
-            cache[a] = (lc, _nll(r, a, lc))
+            cache[a] = (lc, _nll_r2(r2, a, lc))
         return cache[a][1]
 
-    d = 2.0 / math.sqrt(d2)
-    for _ in range(4):
+    for _ in range(tries):
         lo, hi = max(a_s - d, 0.0), min(a_s + d, 2.0)
         p_mid = prof(a_s)
         if prof(lo) > p_mid < prof(hi):
@@ -177,15 +217,49 @@ def _ml_polished(r: np.ndarray, alpha: float, c: float, c_floor: float):
         d *= 4.0
     else:
         return None
-    # (Brent's tolerance is relative: about 1e-7 absolute, as the full search's)
-    res = optimize.minimize_scalar(prof, bracket=(lo, a_s, hi), method="brent",
-                                   options={"xtol": 1e-7 / max(a_s, 1e-2)})
-    a_best = float(res.x)
+    a_best = _parabolic_min(prof, lo, a_s, hi)
+    if a_best is None:
+        # (Brent's tolerance is relative: about 1e-7 absolute, as the full search's)
+        res = optimize.minimize_scalar(prof, bracket=(lo, a_s, hi), method="brent",
+                                       options={"xtol": 1e-7 / max(a_s, 1e-2)})
+        a_best = float(res.x)
     if not lo <= a_best <= hi:
         return None
     prof(a_best)
     lc, val = cache[float(min(max(a_best, 0.0), 2.0))]
     return a_best, math.exp(lc), val, prof
+
+
+def _parabolic_min(f, a: float, b: float, c: float, xatol: float = 1e-7,
+                   max_iter: int = 30) -> float | None:
+    """Minimum of ``f`` bracketed by ``a < b < c`` (``f(b)`` below both ends) by
+    successive parabolic interpolation: each step goes to the vertex of the parabola
+    through the bracket's three points (a golden-section step where the vertex falls
+    outside or too near an end) and keeps the best point inside the new bracket; it
+    stops when the next step would be below ``xatol``. A smooth profile from a narrow
+    bracket needs one or two steps (Brent's method starts with golden-section steps).
+    None when it does not settle in ``max_iter`` steps."""
+    fa, fb, fc = f(a), f(b), f(c)
+    for _ in range(max_iter):
+        den = (b - a) * (fb - fc) - (b - c) * (fb - fa)
+        num = (b - a) ** 2 * (fb - fc) - (b - c) ** 2 * (fb - fa)
+        x = b - 0.5 * num / den if den != 0.0 else math.nan
+        if not (a + 0.01 * (b - a) < x < c - 0.01 * (c - b)):
+            x = b + 0.381966 * (c - b) if c - b > b - a else b - 0.381966 * (b - a)
+        if abs(x - b) <= xatol or c - a <= 2.0 * xatol:
+            return b
+        fx = f(x)
+        if fx < fb:
+            if x > b:
+                a, fa = b, fb
+            else:
+                c, fc = b, fb
+            b, fb = x, fx
+        elif x > b:
+            c, fc = x, fx
+        else:
+            a, fa = x, fx
+    return None
 
 
 def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: int,
@@ -207,7 +281,8 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
     nll_old = math.inf
     prof = None
     for _ in range(60):
-        alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor)
+        alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor,
+                                              near=nll_old < math.inf)
         loss = get_loss("general", tuning=1.0, alpha=alpha)
         # loose solves while (alpha, c) still move; the solve after the loop is the
         # full-accuracy one (polished) at the final shape and scale
@@ -219,7 +294,7 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         if abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0):
             break
         nll_old = nll
-    alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor)
+    alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor, near=True)
     loss = get_loss("general", tuning=1.0, alpha=alpha)
     inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter, near=True)
     total += inner.n_iter

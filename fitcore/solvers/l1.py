@@ -69,8 +69,8 @@ def _lad_primal(A, b, lo, hi):
 #: Portnoy-Koenker band: the subsample has about ``_PK_SUB (k n)^(2/3)`` points, and the
 #: band keeps the points whose residual from the subsample fit is within ``_PK_Z`` of its
 #: prediction standard errors (widened by ``_PK_WIDEN`` where that missed a sign)
-_PK_SUB = 2.0
-_PK_Z = 4.0
+_PK_SUB = 1.0
+_PK_Z = 3.0
 _PK_WIDEN = 2.0
 _PK_METHOD = "highs-ipm"
 _PK_MIN = 500  # the fewest points in a band

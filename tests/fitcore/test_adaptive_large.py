@@ -76,3 +76,17 @@ def test_a_shape_at_the_end_of_its_range_falls_back_to_the_full_search(polished,
     monkeypatch.setattr(adaptive, "_ML_LARGE", 10**9)
     full = adaptive._ml_shape_scale(r, 1.0, 2.0, 2e-6)
     assert got[:3] == full[:3]
+
+
+@pytest.mark.parametrize("f, x_min", [
+    (lambda x: (x - 0.3) ** 2 + 0.5 * (x - 0.3) ** 4 + 0.1 * math.exp(-x), None),  # smooth
+    (lambda x: abs(x - 0.3) + 0.01 * x, 0.3),  # a kink: parabolas fit badly, golden steps
+])
+def test_parabolic_bracket_search_finds_the_minimum(f, x_min):
+    # reference: scipy.optimize.minimize_scalar (bounded Brent) on the same bracket
+    ref = optimize.minimize_scalar(f, bounds=(0.0, 1.0), method="bounded",
+                                   options={"xatol": 1e-10}).x
+    got = adaptive._parabolic_min(f, 0.0, 0.45, 1.0)
+    assert got == pytest.approx(ref, abs=1e-6)
+    if x_min is not None:
+        assert got == pytest.approx(x_min, abs=1e-6)
