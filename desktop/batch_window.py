@@ -2,21 +2,18 @@
 
 The method on screen (model, loss, scale, shape, held and start values) is applied to
 every curve of the chosen files and folders by :func:`fitcore.batch.fit_sources`, the
-engine of the ``ballast-fit`` command, in a background thread that hands the work to
-worker processes. Rows appear as curves finish; the table sorts by any column, failed
+engine of the ``ballast-fit`` command, as a "batch" job of the window's one job mechanism
+(:mod:`desktop.jobs`: a worker thread that hands the work to worker processes). Rows appear as curves finish; the table sorts by any column, failed
 rows are marked, and any row opens as a normal data set in the main window (with the
 batch's method), where its points can be looked at, excluded and refitted.
 """
 from __future__ import annotations
 
-import logging
 import math
 import os
-import threading
-import time
 from pathlib import Path
 
-from PySide6.QtCore import QAbstractTableModel, QModelIndex, QObject, QSortFilterProxyModel, Qt, Signal
+from PySide6.QtCore import QAbstractTableModel, QModelIndex, QSortFilterProxyModel, Qt
 from PySide6.QtGui import QBrush, QColor
 from PySide6.QtWidgets import (
     QAbstractItemView, QComboBox, QDialog, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QListWidget,
@@ -24,16 +21,14 @@ from PySide6.QtWidgets import (
 )
 
 import fitcore
-from fitcore.batch import (BatchError, BatchSpec, default_jobs, find_files, fit_sources, result_columns,
-                           row_cells, write_rows)
+from fitcore.batch import BatchSpec, default_jobs, find_files, result_columns, row_cells, write_rows
 from fitcore.losses import loss_title
 
 from . import dialogs
 from .document import Measurements
+from .jobs import Channel
 from .main_window import FILE_FILTER, model_title
 from .method_panel import sigma_fixes_scale
-
-log = logging.getLogger(__name__)
 
 NONE = "(none)"
 FAILED_BRUSH = QBrush(QColor(250, 215, 210))
@@ -121,50 +116,6 @@ class ResultsModel(QAbstractTableModel):
         return None
 
 
-class _Runner(QObject):
-    """Runs :func:`fitcore.batch.fit_sources` in a thread; rows come back by signal."""
-
-    rows = Signal(list)
-    done = Signal(str)  # "" when finished, else why the batch could not run
-
-    def __init__(self, paths, spec, jobs, parent=None):
-        super().__init__(parent)
-        self.paths, self.spec, self.jobs = list(paths), spec, jobs
-        self._stop = threading.Event()
-        self.thread = threading.Thread(target=self._run, name="ballast-batch", daemon=True)
-
-    def start(self):
-        self.thread.start()
-
-    def stop(self):
-        self._stop.set()
-
-    def _run(self):
-        buf, last = [], time.monotonic()
-        message = ""
-        try:
-            rows = fit_sources(self.paths, self.spec, jobs=self.jobs)
-            try:
-                for row in rows:
-                    buf.append(row)
-                    if time.monotonic() - last > 0.1:
-                        self.rows.emit(buf)
-                        buf, last = [], time.monotonic()
-                    if self._stop.is_set():
-                        message = "stopped"
-                        break
-            finally:
-                rows.close()  # a stop ends the worker processes too
-        except BatchError as exc:
-            message = str(exc)
-        except Exception as exc:  # shown in the window, the traceback logged: never lost in a thread
-            log.warning("the batch stopped with an internal error", exc_info=True)
-            message = f"unexpected {type(exc).__name__}: {exc}"
-        if buf:
-            self.rows.emit(buf)
-        self.done.emit(message)
-
-
 class BatchWindow(QDialog):
     """Fit many files with the method on screen; see the module text."""
 
@@ -173,7 +124,12 @@ class BatchWindow(QDialog):
         self.main = main_window
         self.setWindowTitle("Ballast - Fit many files")
         self.setWindowFlag(Qt.WindowMaximizeButtonHint, True)
-        self.runner: _Runner | None = None
+        # the window's one job mechanism (desktop.jobs): rows arrive through 'partial'
+        self.channel = Channel(self)
+        self.channel.partial.connect(self._add_rows)
+        self.channel.finished.connect(lambda _answer: self._finished(""))
+        self.channel.failed.connect(self._finished)
+        self.channel.cancelled.connect(lambda _partial: self._finished("stopped"))
         self.spec = None
         self.settings = None
 
@@ -368,7 +324,7 @@ class BatchWindow(QDialog):
 
     def run(self):
         """Fit every curve of the listed files with the method on screen."""
-        if self.runner is not None:
+        if self.running:
             return
         paths = [self.paths.item(i).text() for i in range(self.paths.count())]
         if not paths:
@@ -382,19 +338,17 @@ class BatchWindow(QDialog):
             return
         self.spec = spec
         self.model.reset(model.param_names)
-        self.runner = _Runner(paths, spec, self.jobs.value(), self)
-        self.runner.rows.connect(self._add_rows)
-        self.runner.done.connect(self._finished)
         self.run_button.setEnabled(False)
         self.stop_button.setEnabled(True)
         self.progress.setRange(0, 0)  # busy
         self.status.setText("Fitting...")
-        self.runner.start()
+        self.channel.submit("batch", {"paths": paths, "spec": spec, "jobs": self.jobs.value()})
 
     def stop(self):
-        if self.runner is not None:
-            self.runner.stop()
-            self.status.setText("Stopping after the curves in progress...")
+        """Stop the batch: the window is free at once; the curves in progress finish
+        in the background and are not added."""
+        if self.running:
+            self.channel.cancel()
 
     def _add_rows(self, rows):
         self.model.add_rows(rows)
@@ -402,9 +356,6 @@ class BatchWindow(QDialog):
         self.status.setText(f"Fitting... {dialogs.counted(n, 'curve')} done" + (f", {bad} failed" if bad else ""))
 
     def _finished(self, message: str):
-        runner, self.runner = self.runner, None
-        if runner is not None:
-            runner.thread.join(timeout=5)
         self.run_button.setEnabled(True)
         self.stop_button.setEnabled(False)
         self.progress.setRange(0, 1)
@@ -422,11 +373,11 @@ class BatchWindow(QDialog):
 
     @property
     def running(self) -> bool:
-        return self.runner is not None
+        return self.channel.running
 
     def closeEvent(self, ev):
-        if self.runner is not None:
-            self.runner.stop()
+        if self.running:
+            self.channel.cancel()
         super().closeEvent(ev)
 
     # ------------------------------------------------------------------ results

@@ -422,6 +422,37 @@ def _formula_run(p, progress, cancel):
     return validate_formula(p["text"], x_name=p.get("x_name", "x"))
 
 
+# -- fitting many files (File > Fit many files)
+BATCH_ROWS_EVERY_S = 0.1  # rows are handed to the window at most this often
+
+
+def _batch_run(p, progress, cancel):
+    """Every curve of ``p["paths"]`` by ``p["spec"]`` (fitcore.batch.fit_sources, with
+    its own pool of ``p["jobs"]`` processes). The rows go to the window as they come,
+    through ``progress(done, 0, rows)``; a cancel ends the pool after the curves in
+    progress. Returns ``{"n": rows made, "rows": rows not handed over}`` (all of them
+    when there is no progress callback)."""
+    # here: only the batch window runs it; fitcore.batch stays out of the window's start
+    from fitcore.batch import fit_sources
+
+    rows = fit_sources(p["paths"], p["spec"], jobs=p["jobs"])
+    kept, buf, n, last = [], [], 0, time.monotonic()
+    try:
+        for row in rows:
+            n += 1
+            (buf if progress is not None else kept).append(row)
+            if buf and time.monotonic() - last > BATCH_ROWS_EVERY_S:
+                progress(n, 0, buf)
+                buf, last = [], time.monotonic()
+            if cancel is not None and cancel():
+                break
+    finally:
+        rows.close()  # a cancel ends the worker processes too
+        if buf:
+            progress(n, 0, buf)
+    return {"n": n, "rows": kept}
+
+
 #: every kind of background job the window runs
 KINDS: dict[str, Kind] = {
     "fit": Kind(run=_fit_run, title="the fit", to_wire=_fit_wire, from_wire=_fit_unwire,
@@ -449,6 +480,7 @@ KINDS: dict[str, Kind] = {
                     to_wire=_plain, from_wire=_plain, time_limit=20.0),
     "formula": Kind(run=_formula_run, title="checking the formula", where=lambda p: "process",
                     to_wire=_plain, from_wire=_plain, time_limit=5.0),
+    "batch": Kind(run=_batch_run, title="fitting many files"),  # a thread: it has its own pool
 }
 
 

@@ -1,9 +1,6 @@
 """The window's one background-job mechanism: fits, analyses, file reading, formula checks.
 
-Everything slow that the window does off its GUI thread goes through here, with one
-exception: File > Fit many files streams its rows from fitcore.batch's own process
-pool through a thread of its own (``desktop.batch_window._Runner``); a job here answers
-once, and rows that arrive while the batch runs would need a partial-result signal::
+Everything slow that the window does off its GUI thread goes through here::
 
     channel = Channel(parent)                   # one line of work
     channel.finished.connect(show)              # (result)
@@ -12,8 +9,8 @@ once, and rows that arrive while the batch runs would need a partial-result sign
     job.cancel()                                # or channel.cancel()
 
 A **kind** names the work (a row of :data:`desktop.job_kinds.KINDS`: "fit", "compare",
-"diagnostics", "bootstrap", "model_check", "read", "paste", "session", "formula"); the
-payload is a dict of plain values. The kind decides **where** the job runs, hidden from the caller: in
+"diagnostics", "bootstrap", "model_check", "read", "paste", "session", "formula",
+"batch"); the payload is a dict of plain values. The kind decides **where** the job runs, hidden from the caller: in
 a worker thread (short fits, large analyses whose numpy calls leave the GIL free), or
 in a child process driven from that thread (many short fits, file reading and
 formula checks, which would otherwise hold the GIL away from the window, and which
@@ -24,7 +21,9 @@ A **channel** is newest-wins: submitting while a job runs cancels that job (its
 answer is dropped) and the new one runs next. Each job reports exactly one of
 ``finished(result)``, ``failed(message)`` or ``cancelled(partial)``, on the GUI
 thread, through its own signals and through the channel's. ``progress(done, total)``
-is throttled to one signal per ``progress_ms``. Cancel does not wait for the worker:
+is throttled to one signal per ``progress_ms``; a thread job that calls
+``progress(done, total, items)`` also hands ``items`` over at once, unthrottled and in
+order, through ``partial(items)`` (the batch window's rows, as they are fitted). Cancel does not wait for the worker:
 ``cancelled`` is emitted at once; a child process is ended within
 :data:`desktop.job_kinds.POLL_S`, a thread job at its next cancel check.
 """
@@ -47,6 +46,7 @@ __all__ = ["Cancelled", "Channel", "Job", "TimeLimit"]
 
 class _Bridge(QObject):
     progress = Signal(int, int, int)  # token, done, total
+    partial = Signal(int, object)  # token, items handed over while the job runs
     done = Signal(int, object, object, bool, float)  # token, result, error message, cancelled, seconds
 
 
@@ -89,7 +89,9 @@ class _Task(QRunnable):
         self._last = 0.0
         self.setAutoDelete(True)
 
-    def _progress(self, done, total=None):
+    def _progress(self, done, total=None, items=None):
+        if items is not None:  # never throttled: each batch of items is part of the answer
+            _emit(self.bridge.partial, self.args[0], items)
         now = time.perf_counter()
         last = total is not None and int(done) >= int(total)
         if last or (now - self._last) * 1000.0 >= self.progress_ms:
@@ -118,6 +120,7 @@ class Job(QObject):
     """
 
     progress = Signal(int, int)
+    partial = Signal(object)
     finished = Signal(object)
     failed = Signal(str)
     cancelled = Signal(object)
@@ -164,6 +167,8 @@ class Channel(QObject):
     -------
     progress(done, total)
         Throttled progress of the current job.
+    partial(items)
+        Items the current job handed over while it runs (in order, none dropped).
     finished(result)
         The current job returned (a result marked ``cancelled=True`` is reported
         through ``cancelled`` instead).
@@ -176,6 +181,7 @@ class Channel(QObject):
     """
 
     progress = Signal(int, int)
+    partial = Signal(object)
     finished = Signal(object)
     failed = Signal(str)
     cancelled = Signal(object)  # partial result or None
@@ -187,6 +193,7 @@ class Channel(QObject):
         self._pool.setMaxThreadCount(1)
         self._bridge = _Bridge()
         self._bridge.progress.connect(self._on_progress)
+        self._bridge.partial.connect(self._on_partial)
         self._bridge.done.connect(self._on_done)
         self._token = 0
         self.current: Job | None = None
@@ -253,6 +260,13 @@ class Channel(QObject):
         if job is not None and token == job.token:
             job.progress.emit(done, total)
             self.progress.emit(done, total)
+
+    @Slot(int, object)
+    def _on_partial(self, token, items):
+        job = self.current
+        if job is not None and token == job.token:
+            job.partial.emit(items)
+            self.partial.emit(items)
 
     @Slot(int, object, object, bool, float)
     def _on_done(self, token, res, msg, cancelled, seconds):

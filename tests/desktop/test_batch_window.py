@@ -73,21 +73,47 @@ def test_batch_window_table_sorts_marks_failures_and_opens_a_row(open_window, qt
     assert errors == []
 
 
-def test_unexpected_error_in_the_batch_thread_is_shown_and_logged(qtbot, monkeypatch, caplog):
-    # an engine bug in the batch thread: one line in the window, the traceback in the
-    # log (common practice: a broad except keeps the cause somewhere it can be read)
+def test_unexpected_error_in_the_batch_job_is_shown_and_logged(open_window, qtbot, plate, monkeypatch, errors,
+                                                                 caplog):
+    # an engine bug while the batch runs: one line in a message box, the traceback in
+    # the log (common practice: a broad except keeps the cause somewhere it can be read)
     import logging
 
-    from desktop import batch_window
+    import fitcore.batch
+    from desktop.document import Settings
 
     def boom(*_a, **_k):
         raise RuntimeError("disk on fire")
 
-    monkeypatch.setattr(batch_window, "fit_sources", boom)
-    runner = batch_window._Runner(["a.csv"], None, 1)
-    said = []
-    runner.done.connect(said.append)
-    with caplog.at_level(logging.WARNING, logger="desktop.batch_window"):
-        runner._run()
-    assert said == ["unexpected RuntimeError: disk on fire"]
+    monkeypatch.setattr(fitcore.batch, "fit_sources", boom)
+    win = open_window()
+    win.document.settings = Settings(model="line", loss="huber")
+    bw = win.fit_many_files()
+    bw.add_paths([str(plate)])
+    with caplog.at_level(logging.WARNING, logger="desktop.jobs"):
+        bw.run()
+        qtbot.waitUntil(lambda: not bw.running, timeout=60000)
+    assert errors and errors[-1][0] == "Cannot fit these files"
+    assert "RuntimeError: disk on fire" in errors[-1][1]
     assert any(r.exc_info and str(r.exc_info[1]) == "disk on fire" for r in caplog.records)
+
+
+def test_stop_answers_at_once_and_keeps_the_rows_fitted(open_window, qtbot, plate, errors):
+    # Stop goes through the window's one job mechanism: the batch window is idle at
+    # once, the rows already shown stay, and a new run starts cleanly
+    from desktop.document import Settings
+
+    win = open_window()
+    win.document.settings = Settings(model="line", loss="huber")
+    bw = win.fit_many_files()
+    bw.add_paths([str(plate)])
+    bw.group.setCurrentText("Well")
+    bw.jobs.setValue(1)
+    bw.run()
+    qtbot.waitUntil(lambda: len(bw.model.rows) >= 1 or not bw.running, timeout=60000)
+    bw.stop()
+    assert not bw.running and bw.run_button.isEnabled()
+    assert bw.status.text().startswith("Stopped") or len(bw.model.rows) == 5
+    bw.run()  # again, all of it
+    qtbot.waitUntil(lambda: not bw.running, timeout=60000)
+    assert len(bw.model.rows) == 5 and errors == []

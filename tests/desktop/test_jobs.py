@@ -106,3 +106,21 @@ def test_an_internal_error_in_the_child_reaches_the_parent_log_with_its_tracebac
         with pytest.raises(ValueError, match="^an internal error"):
             job_kinds.raise_child_error(answer)
     assert any("KeyError" in r.getMessage() for r in caplog.records)
+
+
+def test_a_job_can_hand_over_items_while_it_runs(channel, monkeypatch):
+    # partial results (the batch window's rows) arrive in order, none lost to the
+    # progress throttle, before the job's one answer (common practice for a job queue
+    # that streams)
+    def run(p, progress, cancel):
+        for i in range(p["n"]):
+            progress(i + 1, p["n"], [i])
+        return "all sent"
+
+    monkeypatch.setitem(job_kinds.KINDS, "stream", job_kinds.Kind(run=run, title="streaming"))
+    got, order = [], []
+    channel.partial.connect(lambda items: (got.extend(items), order.append("partial")))
+    channel.finished.connect(lambda r: order.append(r))
+    job = channel.submit("stream", {"n": 200})
+    assert job.wait() and job.state == "finished"
+    assert got == list(range(200)) and order[-1] == "all sent" and order.count("all sent") == 1
