@@ -3,9 +3,10 @@
 The method on screen (model, loss, scale, shape, held and start values) is applied to
 every curve of the chosen files and folders by :func:`fitcore.batch.fit_sources`, the
 engine of the ``ballast-fit`` command, as a "batch" job of the window's one job mechanism
-(:mod:`desktop.jobs`: a worker thread that hands the work to worker processes). Rows appear as curves finish; the table sorts by any column, failed
-rows are marked, and any row opens as a normal data set in the main window (with the
-batch's method), where its points can be looked at, excluded and refitted.
+(:mod:`desktop.jobs`: a worker thread that hands the work to worker processes). Rows
+appear as curves finish; the table sorts by any column, failed rows are marked, and any
+row opens as a normal data set in the main window (with the batch's method), where its
+points can be looked at, excluded and refitted.
 """
 from __future__ import annotations
 
