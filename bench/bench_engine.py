@@ -139,42 +139,52 @@ def robust_decay(n, repeat):
 
 
 LS_MEMORY_CODE = r"""
-import resource, sys, time, tracemalloc
+import os, resource, sys, time, tracemalloc
 import numpy as np
 import fitcore
 from fitcore.solvers import dispatch
-n = int(sys.argv[1])
-rng = np.random.default_rng(0)
-x = rng.uniform(0, 10, n)
-y = 1 + 2 * x + rng.normal(0, 1, n)
+data = np.load(sys.argv[1])  # (written by the parent: no temporaries of the data here)
+x, y = data[0], data[1]
+n = x.size
 fitcore.fit("line", x[:1000], y[:1000])  # imports and caches before the measurement
 if sys.argv[2] == "always":
     dispatch._needs_refinement = lambda prob: True
-rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+with open("/proc/self/statm") as f:
+    rss0 = int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")  # resident now
 tracemalloc.start()
 t = time.perf_counter()
 r = fitcore.fit("line", x, y)
 t = time.perf_counter() - t
 peak = tracemalloc.get_traced_memory()[1]
 tracemalloc.stop()
-rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-print(t, peak, (rss - rss0) * 1024, x.nbytes + y.nbytes, repr(r.values[1]))
+rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # the largest resident
+print(t, peak, rss - rss0, x.nbytes + y.nbytes, repr(float(r.values[1])))
 """
 
 
 def ls_line_memory(n):
     """Least-squares line at n points in fresh processes: time and peak memory (the
-    largest traced allocation, tracemalloc; and the growth of ru_maxrss, in bytes on
-    Linux) against the data's size (x and y), with the extended-precision refinement as
-    it now runs (only when the conditioning needs it: not for this line) and forced."""
+    largest traced allocation, tracemalloc; and the largest resident size less the
+    resident size just before the fit, in bytes on Linux) against the data's size (x
+    and y, loaded from a file so that no temporaries of making them count), with the
+    extended-precision refinement as it now runs (only when the conditioning needs it:
+    not for this line) and forced."""
+    import os
     import subprocess
+    import tempfile
 
+    rng = np.random.default_rng(0)
+    x = rng.uniform(0, 10, n)
+    y = 1 + 2 * x + rng.normal(0, 1, n)
     rows = {}
-    for mode in ("gated", "always"):
-        out = subprocess.run([sys.executable, "-c", LS_MEMORY_CODE, str(n), mode],
-                             capture_output=True, text=True, check=True).stdout.split()
-        t, peak, rss, data = float(out[0]), int(out[1]), int(out[2]), int(out[3])
-        rows[mode] = (t, peak, rss, data, out[4])
+    with tempfile.TemporaryDirectory() as tmp:
+        path = os.path.join(tmp, "line.npy")
+        np.save(path, np.vstack([x, y]))
+        for mode in ("gated", "always"):
+            out = subprocess.run([sys.executable, "-c", LS_MEMORY_CODE, path, mode],
+                                 capture_output=True, text=True, check=True).stdout.split()
+            t, peak, rss, data = float(out[0]), int(out[1]), int(out[2]), int(out[3])
+            rows[mode] = (t, peak, rss, data, out[4])
     print(f"least-squares line, n = {n:.0e} (fresh processes; data = x and y, "
           f"{rows['gated'][3] / 1e6:.0f} MB)")
     for mode, label in (("gated", "refinement when needed (now)"),

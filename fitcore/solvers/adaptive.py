@@ -115,7 +115,7 @@ def _best_log_c(r: np.ndarray, alpha: float, lo_c: float, hi_c: float, start: fl
 
 #: above this many residuals the shape is first located on a seeded subsample of
 #: ``_ML_SUB`` of them, then refined on all (a few profile evaluations, not ~20)
-_ML_LARGE = 100000
+_ML_LARGE = 40000
 _ML_SUB = 20000
 
 
