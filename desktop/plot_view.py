@@ -16,6 +16,7 @@ Interaction (the plot only *requests* changes; the document owns the state):
 from __future__ import annotations
 
 import logging
+import math
 from typing import Callable
 
 import numpy as np
@@ -652,6 +653,12 @@ class PlotView(pg.GraphicsLayoutWidget):
             if label.item.boundingRect().width() <= room or len(lines) >= len(entries):
                 break
             avail *= 0.8
+        # the title row as high as the key's lines (pyqtgraph's setTitle fixes it at 30 px:
+        # a key of three or more lines was cut at the top and ran into the points)
+        height = int(math.ceil(label.item.boundingRect().height())) + 2
+        if self.data_plot.layout.rowMinimumHeight(0) != height:
+            label.setMaximumHeight(height)
+            self.data_plot.layout.setRowFixedHeight(0, height)
 
     def resizeEvent(self, ev):
         # the key first: the layout's minimum width follows it, and the resize below
