@@ -93,7 +93,7 @@ def _row_hash(A: np.ndarray, b: np.ndarray) -> np.ndarray:
     return h
 
 
-def _lad_globbed(A, b, lo, hi):
+def _lad_globbed(A, b, lo, hi, guess=None):
     """Exact L1 fit of many points by Portnoy and Koenker's preprocessing (*Statistical
     Science* 12, 1997, section 4).
 
@@ -109,6 +109,10 @@ def _lad_globbed(A, b, lo, hi):
     checked on every point: where a merged point's residual has the wrong sign it goes
     back into the band and the LP is solved again (the band widened when many did), so
     the result is the exact L1 solution of all the points.
+
+    ``guess``: a solution known to lie close (a later step of sequential LP, which
+    moves the parameters by a fraction of their standard errors) takes the place of
+    the subsample's fit; the band and the check are the same.
     """
     n, k = A.shape
     key = _row_hash(A, b)
@@ -116,16 +120,18 @@ def _lad_globbed(A, b, lo, hi):
     def in_key_order(rows):
         return rows[np.argsort(key[rows], kind="stable")]
 
-    def full():  # the LP over all the points (in the order of their keys)
+    def full():  # the LP over all the points (in the order of their keys; the dual
+        # simplex, which ends on a vertex: HiGHS's automatic choice may stop 1e-11 short)
         rows = np.argsort(key, kind="stable")
-        return _lad_dual(A[rows], b[rows], lo, hi)
+        return _lad_dual(A[rows], b[rows], lo, hi, method="highs-ds")
 
     m = min(n, max(2000, int(_PK_SUB * (k * n) ** (2.0 / 3.0))))
     if m >= n:
         return full()
     pick = in_key_order(np.argpartition(key, m - 1)[:m])
     As = A[pick]
-    t = _lad_dual(As, b[pick], lo, hi, method=_PK_METHOD)
+    t = (_lad_dual(As, b[pick], lo, hi, method=_PK_METHOD) if guess is None
+         else np.clip(guess, lo, hi))
     R = np.linalg.qr(As, mode="r")
     if t is None or not (np.all(np.isfinite(R)) and np.min(np.abs(np.diag(R))) > 0):
         return full()
@@ -173,11 +179,13 @@ def _lad_globbed(A, b, lo, hi):
             keep |= wrong
             hi_set &= ~wrong
             low_set &= ~wrong
+        if guess is not None:
+            return _lad_globbed(A, b, lo, hi)  # the guess was not close: the subsample's fit
         z *= _PK_WIDEN
     return full()
 
 
-def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
+def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper, guess=None) -> np.ndarray:
     """Exact least-absolute-deviations fit ``min sum |b - A theta|`` by linear programming.
 
     An L1 minimiser need not be unique (a whole edge of the LP can be optimal); the rows
@@ -216,7 +224,12 @@ def _l1_linear(A: np.ndarray, b: np.ndarray, lower, upper) -> np.ndarray:
     with np.errstate(all="ignore"):
         lo = (lower - theta0) * dA / sb
         hi = (upper - theta0) * dA / sb
-    t = _lad_globbed(As, bs, lo, hi) if n > _L1_DIRECT_MAX else None
+    if guess is not None:  # (a solution near which the answer lies: see _lad_globbed)
+        with np.errstate(all="ignore"):
+            guess = (np.asarray(guess, dtype=float) - theta0) * dA / sb
+        if not np.all(np.isfinite(guess)):
+            guess = None
+    t = _lad_globbed(As, bs, lo, hi, guess) if n > _L1_DIRECT_MAX else None
     if t is None:
         t = _lad_dual(As, bs, lo, hi)
     if t is None:
@@ -248,7 +261,9 @@ def _l1_nonlinear(prob: _Problem, theta: np.ndarray, max_iter: int = 200) -> _In
         lo = np.maximum(-delta, prob.lower - theta)
         hi = np.minimum(delta, prob.upper - theta)
         try:
-            step = _l1_linear(J, r, lo, hi)
+            # (after the first step the next one is small: the large-n band path then
+            # centres its band on no step instead of fitting a subsample first)
+            step = _l1_linear(J, r, lo, hi, guess=np.zeros(theta.size) if it > 1 else None)
         except FitError as e:
             return _Inner(theta, r, obj, it, False, f"L1 step failed: {e}")
         if not np.all(np.isfinite(step)):

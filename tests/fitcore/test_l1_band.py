@@ -125,3 +125,19 @@ def test_band_l1_when_most_points_lie_exactly_on_the_line():
     _, fun = _full_dual_l1(A, b, -inf, inf)
     assert np.sum(np.abs(b - A @ theta)) == pytest.approx(fun, rel=1e-10)
     assert np.allclose(theta, [1.0, 2.0], rtol=1e-10)
+
+
+@pytest.mark.parametrize("how", ["near", "far"])
+def test_band_l1_from_a_guess_is_still_the_full_lp_optimum(how, lp_calls):
+    # sequential LP hands its later steps a guess (no step) instead of a subsample fit;
+    # a guess near the answer and one far from it (all zeros against an intercept of
+    # about 1 and a slope of 2) must both end at the exact optimum of all the points
+    A, b = _data("quadratic", seed=6)
+    inf = np.full(3, np.inf)
+    ref, fun = _full_dual_l1(A, b, -inf, inf)
+    guess = ref * (1 + 1e-4) if how == "near" else np.zeros(3)
+    theta = l1._l1_linear(A, b, -inf, inf, guess=guess)
+    assert np.sum(np.abs(b - A @ theta)) == pytest.approx(fun, rel=1e-10)
+    assert np.allclose(theta, ref, rtol=1e-8, atol=1e-10)
+    if how == "near":  # no subsample LP: the first LP solved is the band's
+        assert lp_calls[0][1] and len(lp_calls) == 1
