@@ -27,7 +27,7 @@ from PySide6.QtCore import Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QBrush, QColor, QFont
 from PySide6.QtWidgets import (
     QFrame, QGroupBox, QHBoxLayout, QHeaderView, QLabel, QMenu, QProgressBar, QPushButton,
-    QScrollArea, QSplitter, QTableWidget, QTableWidgetItem, QToolButton, QVBoxLayout, QWidget,
+    QScrollArea, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
 from fitcore.compare import DEFAULT_LOSSES, DIFFERENCE_FACTOR, DIFFERENCE_RULE
@@ -231,8 +231,9 @@ class CompareView(QWidget):
         # one row of controls (the losses in a drop-down menu): in a short tab the table
         # and the suggestion keep the height
         row = QHBoxLayout()
-        self.losses_button = QToolButton()
-        self.losses_button.setPopupMode(QToolButton.InstantPopup)
+        # a push button with a menu: its size counts the menu arrow (a tool button's
+        # instant popup drew the arrow over the last digit of 'Losses: 5 of 10')
+        self.losses_button = QPushButton()
         self.losses_button.setToolTip("The losses to fit side by side")
         menu = QMenu(self.losses_button)
         menu.setToolTipsVisible(True)

@@ -256,6 +256,12 @@ def test_comparison_opens_as_a_tab_and_keeps_the_plot(make_win, size):
     assert win.plot.ci.geometry().width() <= win.plot.viewport().width() + 1
     # the comparison table shows every loss's column
     assert columns_inside(win.compare_view.table) == []
+    # the losses button holds its text and its menu arrow ('Losses: 5 of 10' had the
+    # arrow drawn over its last digit)
+    btn = win.compare_view.losses_button
+    style = btn.style()
+    arrow = style.pixelMetric(style.PixelMetric.PM_MenuButtonIndicator, None, btn)
+    assert btn.width() >= btn.fontMetrics().horizontalAdvance(btn.text()) + arrow + 8, (btn.width(), btn.text())
     # and it can go into a window of its own, and back
     own = win.compare_pane.detach()
     assert own.isVisible() and win.lower_tabs.indexOf(win.compare_pane) < 0
