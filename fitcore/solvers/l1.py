@@ -370,20 +370,27 @@ def _lad_small(A: np.ndarray, b: np.ndarray) -> np.ndarray | None:
             return None
         r = b - As @ t
         r[basis[:j + 1]] = 0.0
-    nonbasic = np.ones(m, bool)
-    nonbasic[basis] = False
+    absb = np.abs(b)
+    slack = _LAD_CERT_TOL * float(w.sum())
     for _ in range(20 * (m + k)):
-        t = Minv @ b[basis]
+        # the fit through the basis points, with one step of iterative refinement (an
+        # explicit inverse alone loses cond(M) eps of the residuals, units where x is
+        # far from 0 against its spread)
+        bb = b[basis]
+        t = Minv @ bb
+        t += Minv @ (bb - M @ t)
         r = b - As @ t
         r[basis] = 0.0
-        size = np.abs(b) + absA @ np.abs(t)  # the rounding scale of each residual
-        if np.any(nonbasic & (np.abs(r) <= 1e-12 * size)):
+        # (a point on the fit other than the basis: within rounding of its residual)
+        zero = np.abs(r) <= 1e-12 * (absb + absA @ np.abs(t))
+        zero[basis] = False
+        if zero.any():
             return None  # degenerate vertex: the certificate below would not be exact
-        v = ((w * np.sign(r)) @ As) @ Minv
-        wb = w[basis]
-        excess = np.abs(v) - wb
-        j = int(np.argmax(excess))
-        if excess[j] <= _LAD_CERT_TOL * float(np.sum(w)):
+        v = (((w * np.sign(r)) @ As) @ Minv).tolist()
+        # the edge whose slope |v_j| - w_j is the most negative (the first of ties)
+        excess = [abs(vj) - w[i] for vj, i in zip(v, basis.tolist())]
+        j = max(range(k), key=excess.__getitem__)
+        if excess[j] <= slack:
             if np.abs(M).max() * np.abs(Minv).max() > 1e10:
                 return None  # the certificate itself is not reliable
             return t / dA
@@ -395,8 +402,6 @@ def _lad_small(A: np.ndarray, b: np.ndarray) -> np.ndarray | None:
         i = _weighted_median_row(r, ad, w)
         if i is None or i == basis[j]:
             return None  # no descent where the slope says there is one: rounding
-        nonbasic[basis[j]] = True
-        nonbasic[i] = False
         M[j] = As[i]
         basis[j] = i
         Minv = _inv_small(M)

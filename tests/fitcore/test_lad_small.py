@@ -82,6 +82,30 @@ def test_small_lad_reaches_the_linprog_optimum_on_a_battery():
     assert answered >= 0.9 * len(cases)
 
 
+@pytest.mark.parametrize("offset", [1e6, 1e8, 1.7e9])
+def test_small_lad_with_x_far_from_zero(offset):
+    # x far from 0 against its spread (timestamps): the basis matrices are badly
+    # conditioned and the intercept is large (an explicit inverse alone left the fit
+    # units off the basis points). Reference: scipy.optimize.linprog on the centred
+    # design [1, x - c] (the same column space, exactly: x - c is exact in floating
+    # point here), its objective evaluated like ours
+    rng = np.random.default_rng(1)
+    answered = 0
+    for _ in range(30):
+        n = int(rng.integers(4, 60))
+        x = offset + rng.uniform(0, 100, n)
+        y = 3.0 - x + rng.standard_t(2, n)
+        A = np.c_[np.ones(n), x]
+        t = _lad_small(A, y)
+        if t is None:
+            continue  # (too badly conditioned to certify: the caller solves the LP)
+        answered += 1
+        ref = _linprog_l1(np.c_[np.ones(n), x - offset], y)
+        rounding = 1e-14 * float(np.abs(y).sum() + (np.abs(A) @ np.abs(t)).sum())
+        assert _objective(A, y, t) <= ref * (1 + 1e-9) + rounding
+    assert answered >= 20
+
+
 def test_small_lad_on_n_equal_p_interpolates():
     # n = p: the L1 minimum is 0 (the fit through every point; scipy linprog agrees)
     x = np.array([0.0, 1.0, 3.0])
