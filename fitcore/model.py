@@ -72,6 +72,12 @@ class Model:
         and ``jac``. ``out``, when given, is ``(f, J)``: a float array of ``x``'s size
         and a column-major ``(n, n_params)`` one to write the results into (the solver
         reuses them across passes).
+    hess_w
+        Optional ``hess_w(x, p, w) -> (n_params, n_params)``: the weighted sum of the
+        model's second derivatives, ``sum_i w_i d^2 f(x_i, p) / dp dp^T``. Where given,
+        the robust solvers' Newton steps include this curvature term (without it they
+        are Gauss-Newton steps, which converge only linearly when the residuals
+        are not small).
     """
 
     name: str
@@ -88,6 +94,7 @@ class Model:
     units: Mapping[str, str] = field(default_factory=dict)
     derived: tuple[Derived, ...] = ()
     f_jac: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]] | None = None
+    hess_w: Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray] | None = None
 
     def __post_init__(self):
         names = tuple(self.param_names)

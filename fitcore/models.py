@@ -1018,6 +1018,30 @@ def _logistic4():
         J[:, 3] = de
         return f_out, J
 
+    def hess_w(x, p, w):
+        # sum_i w_i d2f_i/dp dp^T. With g = 1/(1 + e^z), z = hill ln(x/EC50),
+        # gg = g (1 - g), d = top - bottom: dg/dz = -gg, dgg/dz = -gg (1 - 2g),
+        # dz/dhill = ln(x/EC50), dz/dEC50 = -hill/EC50; the (bottom, top) block is 0
+        bottom, top, hill, ec50 = p
+        x = np.asarray(x, dtype=float).ravel()
+        z, lr = _logistic_z(x, hill, ec50)
+        g = special.expit(-z)
+        gg = g * special.expit(z)
+        d = top - bottom
+        with np.errstate(invalid="ignore"):
+            lr = np.where(gg == 0.0, 0.0, lr)  # (x = 0: gg = 0, lr = -inf)
+            wg = w * gg
+            a = wg * lr  # sum w gg ln(x/EC50)
+            c = wg * (1.0 - 2.0 * g)
+            s_bh, s_be = float(np.sum(a)), -float(np.sum(wg)) * hill / ec50
+            s_hh = d * float(np.sum(c * lr * lr))
+            s_he = d / ec50 * (float(np.sum(wg)) - hill * float(np.sum(c * lr)))
+            s_ee = d * hill / ec50 ** 2 * (hill * float(np.sum(c)) - float(np.sum(wg)))
+        return np.array([[0.0, 0.0, s_bh, s_be],
+                         [0.0, 0.0, -s_bh, -s_be],
+                         [s_bh, -s_bh, s_hh, s_he],
+                         [s_be, -s_be, s_he, s_ee]])
+
     def guess(x, y):
         x, y = _finite_pairs(x, y)
         b, t, h, e = _logistic_guess(x, y)
@@ -1032,7 +1056,7 @@ def _logistic4():
                 "height of the transition, top - bottom", "y"),
     )
     return Model(
-        "logistic4", names, f, jac, guess=guess, f_jac=f_jac,
+        "logistic4", names, f, jac, guess=guess, f_jac=f_jac, hess_w=hess_w,
         lower=(-np.inf, -np.inf, -np.inf, 0.0),
         formula="y = bottom + (top - bottom)/(1 + (x/EC50)**hill)",
         title="Four-parameter logistic (dose-response, x >= 0)",

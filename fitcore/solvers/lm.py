@@ -64,13 +64,18 @@ class _StepSolver:
 
     @classmethod
     def newton(cls, J: np.ndarray, psi: np.ndarray, dpsi: np.ndarray, s: float,
-               D: np.ndarray) -> "_StepSolver | None":
+               D: np.ndarray, H: np.ndarray | None = None) -> "_StepSolver | None":
         """The step of Newton's method on the robust objective (curvature ``psi'``
         instead of the reweighting's ``psi(u)/u``), in the same column scaling; None
         where ``J^T diag(psi') J`` is not safely positive definite (condition number
-        above 1e8 in the scaled variables: then the reweighted step decides)."""
+        above 1e8 in the scaled variables: then the reweighted step decides).
+        ``H``: the model's curvature term ``sum psi_i d^2 f_i`` where known; the
+        matrix is then the objective's full Hessian (times s^2), and must be positive
+        definite itself."""
         Js = J / D
         G = (Js * dpsi[:, None]).T @ Js
+        if H is not None:
+            G = G - s * (H / D) / D[:, None]
         try:
             ev = np.linalg.eigvalsh(G)
         except np.linalg.LinAlgError:
@@ -128,6 +133,7 @@ def _trsolve(R, b):
     return x if info == 0 else np.linalg.lstsq(R, b, rcond=None)[0]
 
 
+_CURVATURE = True  # Newton steps with the model's second derivatives where it has them
 _NEAR = 1e-6  # relative step below which the robust losses take Newton steps
 _SCALE_MEMORY = 0.25  # the column scaling's memory factor per iteration (squared norms)
 
@@ -178,6 +184,7 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     newton_ok = newton_steps and loss.name != "l2"
     near = near and newton_ok  # (a warm start: try Newton steps at once)
     shared = prob.model.f_jac is not None and not prob.model.is_linear
+    curvature = _CURVATURE and prob.model.hess_w is not None and not prob.model.is_linear
     for it in range(1, max_iter + 1):
         J = prob.jac(theta)
         if not np.all(np.isfinite(J)):
@@ -202,7 +209,8 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             # close to the minimum: Newton steps (the reweighted ones converge only
             # linearly, at a rate set by how far psi(u)/u is from psi'(u))
             psi, dpsi = loss.psi_dpsi(r / s)
-            step_solver = _StepSolver.newton(J, psi, dpsi, s, D)
+            H = prob.hess_w(theta, psi) if curvature else None
+            step_solver = _StepSolver.newton(J, psi, dpsi, s, D, H)
         newton = step_solver is not None
         if not newton:
             step_solver = _StepSolver(Jw, rw, D)

@@ -104,6 +104,11 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True,
     p.partition(h)
     upper = float(p[h])
     med = upper if n % 2 else 0.5 * (float(p[:h].max()) + upper)
+    if not math.isfinite(med):
+        # non-finite residuals (a step into a region where the model is not finite):
+        # no scale and no slope; the caller refuses the iterate (was an IndexError
+        # from the one-point slope below, out of fit())
+        return math.nan, np.full(J.shape[1], math.nan)
     if smooth:
         if step == 1:
             hm = h
@@ -138,6 +143,8 @@ def _mad_into(r: np.ndarray, work: _Scratch) -> float:
 
 
 _HESSIAN_ROWS_FROM = 200000  # from this many points the Newton matrix uses a subset
+_CURVATURE = True  # Newton proper where the model gives its second derivatives
+_PRODUCTS_FROM = 2000  # from this many points J^T D J goes by column products
 
 
 def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
@@ -146,10 +153,14 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
 
     Solves ``F(theta) = sum psi(r_i / s(theta)) J_i = 0`` where ``s(theta)`` is the
     normalised MAD of the residuals at theta, so every iterate carries its own exact
-    MAD scale. The Jacobian is the Gauss-Newton one, ``-(J^T D J + (J^T D u) g^T) / s``
+    MAD scale. The Jacobian is ``-(J^T D J + (J^T D u) g^T) / s + sum psi_i d^2f_i``
     with ``D = diag psi'(u)`` and ``g = ds/dtheta`` (smoothed while the steps are long,
-    see :func:`_mad_and_gradient`). Both equations are piecewise smooth, so from a
-    nearby start (a subsample's fit) the iteration settles in a few steps.
+    see :func:`_mad_and_gradient`); the last, curvature term once the steps are short
+    (below 1e-2 standard errors), where the model gives its second derivatives
+    (``Model.hess_w``) and below ``_HESSIAN_ROWS_FROM`` points; else the Gauss-Newton
+    matrix, which converges only linearly when the residuals are not small. Both
+    equations are piecewise smooth, so from a nearby start (a subsample's fit) the
+    iteration settles in a few steps.
 
     One pass over the data per iteration. When the Newton step from an iterate is
     below ``tol/10`` standard errors that iterate is returned as it is (its scale and
@@ -192,6 +203,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         m = max(10000, n // 20)
         rows = _sample_rows(n, m, 20190612)
         up = n / m
+    curvature = _CURVATURE and rows is None and prob.model.hess_w is not None
     for it in range(max_iter + 1):
         r = prob.resid(theta, with_jac=True, scratch=work)
         J = prob.jac(theta)
@@ -221,19 +233,33 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
         else:
             psi, dpsi = loss.psi_dpsi(u, out=pd_out)
             dpsi_here = dpsi
-            if Q is None or not constant_J:
-                if Q is None:
-                    Q = work.get("Q", (n, iu.size), "F")
-                for col, (i, j) in enumerate(zip(iu, ju)):
-                    np.multiply(J[:, i], J[:, j], out=Q[:, col])
-            G = np.empty((k, k))
-            G[iu, ju] = dpsi @ Q
-            G[ju, iu] = G[iu, ju]
+            if n < _PRODUCTS_FROM and not constant_J:
+                # few points: two products (the k(k+1)/2 column products below cost a
+                # call each, more than the arithmetic at this size)
+                G = (J * dpsi[:, None]).T @ J
+            else:
+                if Q is None or not constant_J:
+                    if Q is None:
+                        Q = work.get("Q", (n, iu.size), "F")
+                    for col, (i, j) in enumerate(zip(iu, ju)):
+                        np.multiply(J[:, i], J[:, j], out=Q[:, col])
+                G = np.empty((k, k))
+                G[iu, ju] = dpsi @ Q
+                G[ju, iu] = G[iu, ju]
             F = psi @ J
             if with_mad:
                 M = G + np.outer(np.multiply(dpsi, u, out=pd_out[2]) @ J, g)
             else:
                 M = G
+            if curvature and not smooth:
+                # the model's curvature term of the equations' Jacobian (Newton proper,
+                # not Gauss-Newton: quadratic, not linear, convergence near the root),
+                # once the steps are below 1e-2 standard errors: the path until then is
+                # the Gauss-Newton one, so the root it settles on is too (with several
+                # MAD roots nearby, a full Newton step from further off can pick another)
+                H = prob.hess_w(theta, psi)
+                if H is not None:
+                    M = M - s * H
         d = np.sqrt(np.abs(np.diag(M))) + 1e-300
         norm = float(np.linalg.norm(F / d))
         if not math.isfinite(norm) or norm > 4.0 * norm_prev:

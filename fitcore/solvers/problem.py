@@ -133,6 +133,20 @@ class _Problem:
             J = J[:, self.free]
         return J if self.unit else J / self.sig[:, None]
 
+    def hess_w(self, theta: np.ndarray, w: np.ndarray) -> np.ndarray | None:
+        """``sum_i w_i d^2(f_i/sigma_i)/dtheta dtheta^T`` over the free parameters, from
+        the model's ``hess_w``; None where the model has none (or it is not finite)."""
+        hw = self.model.hess_w
+        if hw is None or self.model.is_linear:
+            return None
+        if not self.unit:
+            w = w / self.sig
+        with np.errstate(all="ignore"):
+            H = np.asarray(hw(self.x, self.full(theta), w), dtype=float)
+        if not self.free.all():
+            H = H[np.ix_(self.free, self.free)]
+        return H if np.all(np.isfinite(H)) else None
+
     @property
     def lower(self):
         return np.asarray(self.model.lower, dtype=float)[self.free]
