@@ -456,10 +456,20 @@ def _running_median(v, width):
     # full windows inside, shrinking ones at the ends (nanmedian is slow on small rows)
     out = np.empty(v.size)
     out[h:v.size - h] = np.median(np.lib.stride_tricks.sliding_window_view(v, width), axis=1)
+    # the shrinking end windows (a few values each) by Python's sort: np.median's call
+    # costs more than the arithmetic here; the same middle value, or mean of the two
+    vals = v.tolist()
     for i in range(h):
-        out[i] = np.median(v[:i + h + 1])
-        out[v.size - 1 - i] = np.median(v[v.size - 1 - i - h:])
+        out[i] = _small_median(vals[:i + h + 1])
+        out[v.size - 1 - i] = _small_median(vals[v.size - 1 - i - h:])
     return out
+
+
+def _small_median(vals: list) -> float:
+    """Median of a short list of finite floats, as np.median gives it."""
+    vals = sorted(vals)
+    m = len(vals) // 2
+    return vals[m] if len(vals) % 2 else (vals[m - 1] + vals[m]) / 2.0
 
 
 def _geomgrid(lo, hi, num):
@@ -931,8 +941,9 @@ def _logistic_guess(x, y):
     """(bottom, top, hill, EC50): robust scan over hill and EC50, plateaus linear.
 
     Candidates: the logit-linearised start and a coarse grid (EC50 across the positive
-    x range, hill = +-0.5 ... +-4); the three best are refined twice on finer local
-    grids.
+    x range in steps of ~0.4 decades, hill = +-0.5 ... +-4); the three best are refined
+    once on finer local grids, and the best of those gives the start (its plateaus
+    are the scan's robust fit: the solver that follows refines all four parameters).
     The result is put in the convention top >= bottom (the curve is unchanged).
     """
     b0, t0, h0, e0 = _logistic_start(x, y)
@@ -941,39 +952,52 @@ def _logistic_guess(x, y):
         return b0, t0, h0, e0
     lo, hi = float(np.min(xp)), float(np.max(xp))
     noise = _noise_scale(x, y)
-    ecs = _geomgrid(lo / 2.0, hi * 2.0, 18).tolist()
+    ecs = _geomgrid(lo / 2.0, hi * 2.0, _GUESS_ECS).tolist()
     cands = [(h0, e0)] + [
         (s * h, e) for s in (1.0, -1.0) for h in (0.5, 1.0, 2.0, 4.0) for e in ecs
     ]
+
     def crits(pairs):
         # every candidate at once (one 5 Huber + 3 Tukey robust fit each)
-        return _criteria(_logistic_designs(x, pairs), y, noise, finite_only=True)[0]
+        return _criteria(_logistic_designs(x, pairs), y, noise, finite_only=True)
 
-    coarse = crits(cands)
+    coarse, coefs = crits(cands)
     order = sorted(range(len(cands)), key=lambda i: coarse[i])  # stable, as before
-    # refine the three best coarse candidates, each on its own local grids (the three
-    # scored in one batch per level; each keeps its own first better value)
-    state = [(cands[i][0], cands[i][1], coarse[i]) for i in order[:3]]
-    for hr, er in ((1.5, 1.6), (1.15, 1.15)):
+    # refine the three best coarse candidates, each on its own local grid (the three
+    # scored in one batch; each keeps its own first better value)
+    state = [(cands[i][0], cands[i][1], coarse[i], coefs[i]) for i in order[:3]]
+    step_e = (ecs[1] / ecs[0]) ** 0.5 if len(ecs) > 1 else 1.6
+    for hr, er in _GUESS_LEVELS(step_e):
         fh, fe = np.geomspace(1.0 / hr, hr, 5), np.geomspace(1.0 / er, er, 7)
-        grids = [[(h, e) for h in hc * fh for e in (ec * fe).tolist()] for hc, ec, _ in state]
-        v = crits([pair for grid in grids for pair in grid])
+        grids = [[(h, e) for h in hc * fh for e in (ec * fe).tolist()] for hc, ec, _, _ in state]
+        v, cs = crits([pair for grid in grids for pair in grid])
         for t, grid in enumerate(grids):
             vt = v[t * len(grid):(t + 1) * len(grid)]
-            j = _first_better(vt, state[t][2])
-            if j is not None:
-                state[t] = (grid[j][0], grid[j][1], vt[j])
-    best_crit, best = np.inf, (h0, e0)
-    for h1, e1, crit0 in state:
+            jt = _first_better(vt, state[t][2])
+            if jt is not None:
+                state[t] = (grid[jt][0], grid[jt][1], vt[jt], cs[t * len(grid) + jt])
+    best_crit, best = np.inf, None
+    for h1, e1, crit0, c1 in state:
         if crit0 < best_crit:
-            best_crit, best = crit0, (h1, e1)
-    h, e = best
-    z, _ = _logistic_z(x, h, e)
-    g = special.expit(-z)
-    (b_, t_), _ = _robust_lstsq(np.column_stack([1.0 - g, g]), y)
+            best_crit, best = crit0, (h1, e1, c1)
+    if best is None:
+        return b0, t0, h0, e0
+    h, e, (b_, t_) = best
+    if not _GUESS_SCAN_PLATEAUS:
+        z, _ = _logistic_z(x, h, e)
+        g = special.expit(-z)
+        (b_, t_), _ = _robust_lstsq(np.column_stack([1.0 - g, g]), y)
     if t_ < b_:  # same curve with the plateaus named the other way round
         b_, t_, h = t_, b_, -h
-    return b_, t_, h, e
+    return float(b_), float(t_), h, e
+
+
+_GUESS_ECS = 12
+_GUESS_SCAN_PLATEAUS = True
+
+
+def _GUESS_LEVELS(step_e):
+    return ((1.3, step_e),)
 
 
 def _logistic4():
