@@ -165,6 +165,17 @@ def _pole_in_range(prob: _Problem, theta: np.ndarray, n_grid: int = 2001) -> flo
     beyond the data (a pole between points), else None."""
     if prob.model.is_linear or prob.n < 2:
         return None
+    # (asked twice of the returned point: by the start strategy and by the result)
+    key = (np.asarray(theta, dtype=float).tobytes(), n_grid)
+    memo = getattr(prob, "_pole_memo", None)
+    if memo is not None and memo[0] == key:
+        return memo[1]
+    found = _pole_search(prob, theta, n_grid)
+    prob._pole_memo = (key, found)
+    return found
+
+
+def _pole_search(prob: _Problem, theta: np.ndarray, n_grid: int) -> float | None:
     x = prob.x
     lo, hi = float(np.min(x)), float(np.max(x))
     if not (hi > lo and math.isfinite(hi - lo)):
