@@ -358,17 +358,19 @@ def _criterion(r, s, cap=3.0):
     return v if np.isfinite(v) else np.inf
 
 
-def _criteria(stack, y, scale, finite_only: bool = False):
-    """:func:`_criterion` of the 5 Huber + 3 Tukey robust fit for every design matrix in
-    ``stack`` (G, n, k) at once. Returns ``(criteria (G,), coefficients (G, k))``;
-    ``finite_only`` gives inf to a matrix with a non-finite entry (without fitting it).
+def _criteria(stack, y, scale, finite_only: bool = False, steps: tuple[int, int] = (5, 3)):
+    """:func:`_criterion` of the 5 Huber + 3 Tukey robust fit (``steps``) for every
+    design matrix in ``stack`` (G, n, k) at once. Returns ``(criteria (G,), coefficients
+    (G, k))``; ``finite_only`` gives inf to a matrix with a non-finite entry (without
+    fitting it).
     """
     stack = np.asarray(stack, dtype=float)
     crit = np.full(stack.shape[0], np.inf)
     coefs = np.zeros((stack.shape[0], stack.shape[2]))
     ok = np.isfinite(stack).all(axis=(1, 2)) if finite_only else np.ones(stack.shape[0], bool)
     if ok.any():
-        c, res = _robust_lstsq_many(stack if ok.all() else stack[ok], y, n_huber=5, n_tukey=3)
+        c, res = _robust_lstsq_many(stack if ok.all() else stack[ok], y, n_huber=steps[0],
+                                    n_tukey=steps[1])
         with np.errstate(all="ignore"):
             v = np.sum(np.minimum((res / scale) ** 2, 9.0), axis=1)
         v[~np.isfinite(v)] = np.inf
@@ -958,8 +960,9 @@ def _logistic_guess(x, y):
     ]
 
     def crits(pairs):
-        # every candidate at once (one 5 Huber + 3 Tukey robust fit each)
-        return _criteria(_logistic_designs(x, pairs), y, noise, finite_only=True)
+        # every candidate at once (one 3 Huber + 2 Tukey robust fit each)
+        return _criteria(_logistic_designs(x, pairs), y, noise, finite_only=True,
+                         steps=_GUESS_STEPS)
 
     coarse, coefs = crits(cands)
     order = sorted(range(len(cands)), key=lambda i: coarse[i])  # stable, as before
@@ -993,6 +996,7 @@ def _logistic_guess(x, y):
 
 
 _GUESS_ECS = 12
+_GUESS_STEPS = (3, 2)
 _GUESS_SCAN_PLATEAUS = True
 
 
