@@ -46,7 +46,7 @@ from typing import Callable
 
 import numpy as np
 
-from .losses import DEFAULT_TUNING, get_loss
+from .losses import DEFAULT_TUNING, OWN_SCALE, get_loss
 from .refits import WarmRefit
 from .report_text import point_label
 from .result import FitResult
@@ -355,7 +355,7 @@ def point_diagnostics(res: FitResult, exact_limit: int = 500, *,
         inv_se = np.where((se > 0) & np.isfinite(se), 1.0 / se, np.nan)
     # the scale equation joins the Newton step where the fit estimated the scale by
     # Huber's proposal 2 (M-losses with scale "auto")
-    with_scale = (res.loss not in ("l2", "l1", "adaptive")
+    with_scale = (res.loss not in OWN_SCALE
                   and "proposal 2" in str(res.scale_method))
     delta, approx_name = _one_step(res, J, r, with_scale)
     infl_free = delta * inv_se[None, :]

