@@ -100,6 +100,23 @@ def test_box_without_the_reason_option_asks_nothing(make_win, monkeypatch):
     assert doc.excluded.sum() > 0 and not any(doc.reasons)
 
 
+def test_asking_for_a_reason_is_on_by_default_and_remembered(qtbot, tmp_path):
+    # issue 17 item 2: on for a new user, and the analyst's choice kept for the next window
+    from PySide6.QtCore import QSettings
+
+    from desktop.main_window import MainWindow
+
+    ini = str(tmp_path / "reasons.ini")
+    first = MainWindow(QSettings(ini, QSettings.IniFormat), recovery_dir=tmp_path / "rec")
+    qtbot.addWidget(first)
+    assert first.reason_action.isChecked() and first.ask_reasons
+    first.reason_action.setChecked(False)
+    first.save_state()
+    again = MainWindow(QSettings(ini, QSettings.IniFormat), recovery_dir=tmp_path / "rec")
+    qtbot.addWidget(again)
+    assert not again.reason_action.isChecked() and not again.ask_reasons
+
+
 # ------------------------------------------------------------------- 2./3. formula state
 def test_refused_formula_is_not_applied_and_says_which_model_is_shown(make_win):
     win = make_win()
