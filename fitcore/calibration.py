@@ -59,10 +59,13 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize, special
+from ._lazy import LazyModule
 
 from .numbers import format_interval, format_uncertainty, format_value
 from .weighting import reading_sigma as _rule_sigma
+
+optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
+special = LazyModule("scipy.special", globals())  # lazy: 0.3 s to import, needed once results are made
 
 __all__ = [
     "CalibrationError",
@@ -581,7 +584,7 @@ def detection_limits(result, level: float = 0.95, readings: int = 1, *,
         raise CalibrationError("the number of readings K must be a whole number") from None
     if K < 1:
         raise CalibrationError("the number of readings K must be at least 1")
-    t1 = float(special.stdtrit(result.dof, level))  # the t quantile (scipy.stats.t.ppf)
+    t1 = result.t_ppf(level)  # the one-sided t quantile (scipy.stats.t.ppf)
     rules = {"lod_ich": RULE_ICH_LOD, "loq_ich": RULE_ICH_LOQ,
              "critical_x": RULE_ISO_XC, "detection_x": RULE_ISO_XD}
     if _classical(result):

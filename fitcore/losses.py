@@ -40,7 +40,10 @@ from functools import lru_cache
 from typing import Callable
 
 import numpy as np
-from scipy import optimize
+from ._lazy import LazyModule
+
+optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
+
 
 def _as_array(u):
     return np.asarray(u, dtype=float)

@@ -42,10 +42,12 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-from scipy import special
+from ._lazy import LazyModule
 
 from .model import Derived, Model, linear_model
 from .scale import MAD_CONSTANT, huber_weights, mad_about_median, row_medians, tukey_weights
+
+special = LazyModule("scipy.special", globals())  # lazy: 0.3 s to import, needed once results are made
 
 __all__ = ["builtin_models", "get_model", "resolve_model", "model_info", "GAS_CONSTANT"]
 

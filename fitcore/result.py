@@ -5,10 +5,12 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import special
+from ._lazy import LazyModule
 
 from .losses import LOSSES
 from .model import Model
+
+special = LazyModule("scipy.special", globals())  # lazy: 0.3 s to import, needed once results are made
 
 
 class _PerPoint:
@@ -130,6 +132,10 @@ class FitResult:
     rss: float = float("nan")
     alpha_stderr: float | None = None
     info: dict[str, Any] = field(default_factory=dict)
+    #: Student t quantiles computed so far, by ``(dof, probability)`` (see :meth:`t_ppf`);
+    #: they travel with a result sent between processes, so the window showing a fit its
+    #: analysis process made needs no scipy.special for its intervals (issue 12)
+    t_quantiles: dict = field(default_factory=dict, repr=False, compare=False)
 
     # ------------------------------------------------------------------ access
     def __getitem__(self, name: str) -> float:
@@ -246,9 +252,18 @@ class FitResult:
         """Two-sided Student t quantile with ``dof`` degrees of freedom."""
         if self.dof <= 0:
             return float("nan")
-        # scipy.special.stdtrit is the quantile scipy.stats.t.ppf evaluates; importing
-        # it avoids loading all of scipy.stats (about a second) on the way to a fit
-        return float(special.stdtrit(self.dof, 0.5 + level / 2.0))
+        return self.t_ppf(0.5 + level / 2.0)
+
+    def t_ppf(self, p: float) -> float:
+        """The Student t quantile at probability ``p`` with ``dof`` degrees of freedom
+        (what ``scipy.stats.t.ppf(p, dof)`` gives), remembered in :attr:`t_quantiles`."""
+        key = (int(self.dof), float(p))
+        t = self.t_quantiles.get(key)
+        if t is None:
+            # scipy.special.stdtrit is the quantile scipy.stats.t.ppf evaluates; importing
+            # it avoids loading all of scipy.stats (about a second) on the way to a fit
+            t = self.t_quantiles[key] = float(special.stdtrit(self.dof, p))
+        return t
 
     def intervals(self, level: float = 0.95) -> np.ndarray:
         """Confidence intervals ``value -/+ t * stderr``; shape (k, 2)."""

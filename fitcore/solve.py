@@ -36,7 +36,7 @@ import math
 import warnings
 
 import numpy as np
-from scipy import optimize
+from ._lazy import LazyModule
 
 from .result import FitResult
 from .solvers.adaptive import _nll
@@ -54,6 +54,8 @@ from .solvers.large import _stage_sizes, _subproblem  # noqa: F401
 from .solvers.mscale import _mad_and_gradient, _m_estimate, _near_l1  # noqa: F401
 from .solvers.problem import (_POOL, _POOL_MAX_POINTS, _Problem,  # noqa: F401
                               _release_scratch, _scratch_for)
+
+optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
 
 __all__ = ["FitError", "alpha_profile", "fit"]
 

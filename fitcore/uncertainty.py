@@ -38,10 +38,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import optimize, special
+from ._lazy import LazyModule
 
 from .losses import Loss
 from .scale import psi_slope_at_normal, psi_variance_at_normal
+
+optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
+special = LazyModule("scipy.special", globals())  # lazy: 0.3 s to import, needed once results are made
 
 RECIPE_LS = "least squares: s^2 (J^T J)^-1, s^2 = RSS/(n - p)"
 RECIPE_LS_ABS = "least squares with absolute sigma: (J^T W J)^-1, W = 1/sigma^2"

@@ -5,13 +5,15 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import optimize
+from .._lazy import LazyModule
 
 from ..losses import barron_rho, get_loss
 from ..partition import log_partition
 from .lm import _irls_lm
 from .mscale import _robust_with_scale
 from .problem import _Problem, _sample_rows
+
+optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
 
 
 # --------------------------------------------------------------------------- adaptive

@@ -5,9 +5,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import linalg, optimize, sparse
+from .._lazy import LazyModule
 
 from .problem import FitError, _Inner, _inv_small, _Problem, _project, _start_residuals
+
+linalg = LazyModule("scipy.linalg", globals())  # lazy: 0.2 s to import, needed once a fit runs
+optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
+sparse = LazyModule("scipy.sparse", globals())  # lazy: 0.2 s to import, for the L1 fallback LP only
 
 
 # --------------------------------------------------------------------------- L1

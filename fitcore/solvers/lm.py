@@ -5,11 +5,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.linalg import lapack
+from .._lazy import LazyModule
 
 from ..losses import Loss
 from .verdict import COSINE_TOL, STEP_REL, _first_order, _step_small
 from .problem import FitError, _Inner, _objective, _Problem, _project, _start_residuals
+
+lapack = LazyModule("scipy.linalg.lapack", globals())  # lazy: 0.2 s to import, needed once a fit runs
 
 
 class _StepSolver:

@@ -93,3 +93,24 @@ def test_the_launcher_loads_neither_qt_nor_numpy_on_import():
     # Qt's own words): importing it must load neither
     loaded = _loaded_after_import("desktop.app", QT + ("numpy",))
     assert loaded == []
+
+
+def test_importing_fitcore_loads_no_scipy_until_a_fit_runs():
+    # scipy costs 0.3-1 s to import; the window shows a fit made in its analysis process
+    # without it (issue 12, window start), so no fitcore module may import it at module
+    # level (fitcore._lazy.LazyModule stands in until first use). A fit then loads it.
+    mods = [m for m in _fitcore_modules() if m != "fitcore.formula"]  # the formula parser loads sympy only
+    code = (
+        "import importlib, sys\n"
+        f"for m in {mods!r}: importlib.import_module(m)\n"
+        "before = [m for m in sys.modules if m.split('.')[0] == 'scipy']\n"
+        "import fitcore\n"
+        "res = fitcore.fit('line', [0.0, 1.0, 2.0, 3.0, 4.0], [0.1, 1.0, 2.1, 2.9, 4.2], loss='huber')\n"
+        "print(','.join(before)); print(type(sys.modules['fitcore.solvers.lm'].lapack).__name__)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         cwd=str(FITCORE.parent))
+    assert out.returncode == 0, out.stderr[-800:]
+    before, lapack_type = out.stdout.splitlines()
+    assert before == ""
+    assert lapack_type == "module"  # the stand-in replaced itself with the real module
