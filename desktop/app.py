@@ -179,7 +179,31 @@ def main(argv=None) -> int:
         return 0  # closed while its first file was read (Ctrl+C): the quit came before the loop
     if os.environ.get(EXIT_AFTER_FIRST_FIT):
         _exit_after_first_fit(app)
+    _import_fitting_later(app)
     return app.exec()  # safe: Qt event loop
+
+
+def _import_fitting_later(app) -> None:
+    """Once the event loop runs (the window painted with its first result), the scipy
+    modules a fit in this process needs are imported in a thread.
+
+    The first result of a file comes from the analysis process (``MainWindow.method_for``)
+    and the window shows it without scipy (issue 12); the first edit (a point excluded,
+    a loss chosen) fits here and would otherwise wait about half a second for them.
+    """
+    import threading
+
+    from PySide6.QtCore import QTimer
+
+    def load():
+        try:
+            import scipy.linalg  # lazy: after the first paint (see above)
+            import scipy.optimize  # lazy: after the first paint (see above)
+            import scipy.special  # noqa: F401 - lazy: after the first paint (see above)
+        except Exception:  # noqa: BLE001 - a fit imports them itself and reports what fails
+            pass
+
+    QTimer.singleShot(0, lambda: threading.Thread(target=load, name="ballast-imports", daemon=True).start())
 
 
 #: ``BALLAST_EXIT_AFTER_FIRST_FIT=1 ballast FILE``: when the first fit result is on

@@ -33,10 +33,11 @@ from fitcore.report import (
 from fitcore.report_text import HELD_NOTE
 
 from .document import Document
+from .job_kinds import WINDOW_LEVEL
 
 #: the one caution text (fitcore.report.CAUTION), re-exported for the window's widgets
 __all__ = ["CAUTION", "EstimatesView", "fmt_value", "estimates_plain_text"]
-LEVEL = 0.95
+LEVEL = WINDOW_LEVEL
 
 
 def fmt_value(value: float, u: float, *, held: bool = False, rich=False) -> str:

@@ -174,6 +174,12 @@ class FitRunner(QObject):
             self._restore_switch()
             self.busy_changed.emit(False)
 
+    def deliver(self, result, seconds: float) -> None:
+        """Show ``result``, a fit of the document's current inputs made elsewhere (the
+        trial fit of a file just opened, see ``MainWindow.method_for``), as if this runner
+        had fitted them in ``seconds``."""
+        self._deliver(result, None, self.document.generation, seconds)
+
     def _deliver(self, res, msg, generation, seconds):
         self.last_seconds = seconds
         self._last_end = time.perf_counter()

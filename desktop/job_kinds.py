@@ -69,6 +69,9 @@ CHILD_MAX_POINTS = 2000
 POLL_S = 0.02
 #: idle children kept warm for the next job
 MAX_IDLE = 2
+#: the confidence level of the window's intervals and band, and of its detection limits
+#: (desktop.estimates_view.LEVEL, desktop.unknowns_view.LEVEL, FitResult.band's default)
+WINDOW_LEVEL = 0.95
 
 
 class Cancelled(Exception):
@@ -133,6 +136,13 @@ def run_fit(request: dict):
     try:
         res = fitcore.fit(request["model"], request["x"], request["y"],
                           sigma=request["sigma"], excluded=request["excluded"], **kw)
+        # the t quantiles the window shows this result with (intervals and band; the
+        # unknowns' detection limits), here where scipy is loaded: they travel with the
+        # result (FitResult.t_quantiles), so the window's process shows a fit made in a
+        # child without importing scipy.special (issue 12)
+        if res.dof > 0:
+            res.t_quantile(WINDOW_LEVEL)
+            res.t_ppf(WINDOW_LEVEL)
         return res, None
     except ValueError as err:  # FitError and formula/model errors are ValueErrors
         return None, str(err)
@@ -660,8 +670,12 @@ def run_in_child(request: dict, progress=None, cancel=None, model=None, poll_s: 
 
 
 if __name__ == "__main__":
-    # the child reads files: pandas (0.4-0.7 s to import, loaded by fitcore.io only when
-    # a table is parsed) is loaded before the first request, while the child waits anyway
+    # the child reads files and fits: pandas (0.4-0.7 s to import, loaded by fitcore.io only
+    # when a table is parsed) and the scipy modules every fit uses (LAPACK, the t and normal
+    # quantiles; fitcore loads them on first use) are loaded before the first request,
+    # while the child waits anyway
     import pandas  # noqa: F401
+    import scipy.linalg  # lazy: see above
+    import scipy.special  # noqa: F401 - lazy: see above
 
     sys.exit(serve())

@@ -113,6 +113,7 @@ class MainWindow(QMainWindow):
         self.model_check.finished.connect(self._model_check_done)
         self._model_check_for = None  # (measurements, settings) the running check is about
         self._model_problem = ""  # why the method kept for new data does not fit them
+        self._trial_fit = None  # (measurements, settings, result, seconds): see method_for
         # the points table and the analyses (loss comparison, point diagnostics) share a
         # tab area under the plot and the estimates, as wide as both: at 1000 x 650 every
         # column of the points table fits, and opening an analysis never squeezes the plot
@@ -502,7 +503,19 @@ class MainWindow(QMainWindow):
         self.undo_stack.clear()  # a new data set starts a new history
         self.model_check.cancel()
         self._model_check_for = None
-        self.document.apply_measurements(m, settings=settings)
+        trial, self._trial_fit = self._trial_fit, None
+        if trial is not None and trial[0] is m and trial[1] is settings:
+            # the trial fit was the fit of exactly these inputs (same method, all points, none
+            # excluded): it is shown as the first result instead of fitting them again (the
+            # window's process then needs no scipy before its first result: issue 12)
+            self.runner.enabled = False
+            try:
+                self.document.apply_measurements(m, settings=settings)
+            finally:
+                self.runner.enabled = True
+            self.runner.deliver(trial[2], trial[3])
+        else:
+            self.document.apply_measurements(m, settings=settings)
         name = os.path.basename(m.source) if m.source != "clipboard" else "pasted table"
         self.setWindowTitle(f"Ballast - {name}")
         self.banner.clear()
@@ -593,6 +606,7 @@ class MainWindow(QMainWindow):
         doc = self.document
         current = doc.settings
         self._model_problem = ""
+        self._trial_fit = None
         if suggested is not None:
             first, what = suggested, "the suggested model"
             note = ""
@@ -637,6 +651,8 @@ class MainWindow(QMainWindow):
                             f"{model_title(first)} with {loss_phrase(first.loss)}, "
                             f"cannot fit these data ({problems[-1].rstrip('.')}). Choose another "
                             "method in Method.")
+                if isinstance(idx, slice):  # all points, none excluded: the data's first fit
+                    self._trial_fit = (m, s, res, job.seconds)
                 return s, note
             problems.append(msg)
         raise ValueError(f"{dialogs.counted(m.n, 'point')} that cannot be fitted, not even by a "

@@ -36,9 +36,8 @@ from PySide6.QtWidgets import (
 
 from fitcore.calibration import DetectionLimits, InversePrediction, flags, limits_lines, read_back, unknowns_text
 
-from .estimates_view import fmt_value, interval_text, unc_text
+from .estimates_view import LEVEL, fmt_value, interval_text, unc_text
 
-LEVEL = 0.95
 # models whose detection limits are shown before any unknown is pasted: the usual
 # calibration functions (common practice: ISO 8466-1/-2 straight and quadratic lines)
 CALIBRATION_MODELS = frozenset({"line", "line_origin", "poly2", "poly3"})
