@@ -193,6 +193,7 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float,
     return done(a_best)
 
 
+_ROUGH_BELOW = 200  # (points below which the pseudo-Huber start is a rough one)
 _LOCAL_STEP = 1e-4  # (the inward trial shape at a bound, local search)
 _LOCAL_BRACKET = 0.05  # (half-width of the local search's bracket around alpha)
 
@@ -297,8 +298,9 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
                   warm: tuple[float, float] | None = None):
     if warm is None:
         ref = get_loss("pseudo_huber")
+        # (a start: below 200 points a rough one, the alternation below refines it)
         inner, s, total = _robust_with_scale(prob, theta, ref, s0, linear=linear, auto=True,
-                                             max_iter=max_iter)
+                                             max_iter=max_iter, rough=prob.n < _ROUGH_BELOW)
         alpha, c = 1.0, s
     else:
         alpha, c = warm
