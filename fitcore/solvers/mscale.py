@@ -151,6 +151,7 @@ def _mad_into(r: np.ndarray, work: _Scratch) -> float:
 
 _HESSIAN_ROWS_FROM = 200000  # from this many points the Newton matrix uses a subset
 _CURVATURE = True  # Newton proper where the model gives its second derivatives
+_SKIP_TIGHT = True
 _PRODUCTS_FROM = 2000  # from this many points J^T D J goes by column products
 
 
@@ -446,6 +447,11 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
                 return exact
             total += got[2]
             inner, s, settled = got[0], got[1], True
+            if _SKIP_TIGHT and abs(g - s) <= 1e-14 * s:
+                # settled to rounding level (steps below 1e-12 standard errors, the
+                # scale its own residuals' MAD): the tight phase's solve would not move
+                # it; the verdict (first-order and step tests at this point) decides
+                return _judged(prob, inner, loss, s), s, total
     for _ in range(0 if settled else 60):
         g, exact = next_scale(inner, total)
         if exact is not None:
