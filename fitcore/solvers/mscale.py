@@ -468,6 +468,12 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
                 if got is not None and abs(got[1] - s) <= 1e-8 * s and _is_minimum(prob, got[0]):
                     total += got[2]
                     inner, s = got[0], got[1]
+                    g, exact = next_scale(inner, total)
+                    if exact is not None:
+                        return exact
+                    if _SKIP_TIGHT and abs(g - s) <= 1e-14 * s:
+                        # settled to rounding level: as for a monotone psi above
+                        return _judged(prob, inner, loss, s), s, total
             break
         if newton_tries and abs(g - s) <= 0.05 * s:
             # near the fixed point now (Newton failed from further away, e.g. when the
