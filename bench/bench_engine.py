@@ -139,7 +139,7 @@ def robust_decay(n, repeat):
 
 
 LS_MEMORY_CODE = r"""
-import os, resource, sys, time, tracemalloc
+import sys, time, tracemalloc
 import numpy as np
 import fitcore
 from fitcore.solvers import dispatch
@@ -149,15 +149,18 @@ n = x.size
 fitcore.fit("line", x[:1000], y[:1000])  # imports and caches before the measurement
 if sys.argv[2] == "always":
     dispatch._needs_refinement = lambda prob: True
-with open("/proc/self/statm") as f:
-    rss0 = int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")  # resident now
+def status(key):  # kB in /proc/self/status: this process image's own (ru_maxrss keeps
+    # the parent's high-water mark across fork and exec)
+    with open("/proc/self/status") as f:
+        return 1024 * int(next(ln for ln in f if ln.startswith(key)).split()[1])
+rss0 = status("VmRSS:")  # resident now
 tracemalloc.start()
 t = time.perf_counter()
 r = fitcore.fit("line", x, y)
 t = time.perf_counter() - t
 peak = tracemalloc.get_traced_memory()[1]
 tracemalloc.stop()
-rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # the largest resident
+rss = status("VmHWM:")  # the largest resident size
 print(t, peak, rss - rss0, x.nbytes + y.nbytes, repr(float(r.values[1])))
 """
 
