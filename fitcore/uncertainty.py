@@ -199,7 +199,15 @@ def l1_sparsity(r: np.ndarray, p: int) -> float:
     cnt = min(h + 1, nz)
     cnt = min(cnt, max(nz - 2, min(nz, 3)))
     rn = r[nz_mask]
-    near = np.argsort(np.abs(rn), kind="stable")[:cnt]
+    arn = np.abs(rn)
+    if cnt < arn.size:
+        # the cnt residuals nearest zero, ties at the cut by position (the set a stable
+        # sort of all of them would give; one partition, not a sort of n values)
+        kth = np.partition(arn, cnt - 1)[cnt - 1]
+        below = np.flatnonzero(arn < kth)
+        near = np.concatenate([below, np.flatnonzero(arn == kth)[: cnt - below.size]])
+    else:
+        near = np.arange(arn.size)
     v = np.sort(rn[near])
     t = np.arange(pz + 1, pz + cnt + 1, dtype=float) / nz
     return max(_lad_slope(t, v), 0.0)
