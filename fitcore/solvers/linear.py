@@ -46,9 +46,42 @@ def _mad_slope(r: np.ndarray, a: np.ndarray, order: np.ndarray, smooth: bool,
         w = int(math.ceil(n ** (2.0 / 3.0)))
         sel = (a >= a[order[h - w]]) & (a <= a[order[h + w]])
         return (-MAD_CONSTANT / np.count_nonzero(sel)) * ((np.sign(r) * sel) @ A)
-    vals = (a[order[h]],) if n % 2 else (a[order[h - 1]], a[order[h]])
-    idx = [int(np.argmax(a == v)) for v in vals]
-    return (-MAD_CONSTANT / len(idx)) * (np.sign(r[idx]) @ A[idx])
+    # the point(s) at the middle rank(s); where values tie, the first of them in point
+    # order: the stable argsort lists tied points in point order, so that is the one
+    # at the first rank holding the value
+    g = np.zeros(A.shape[1])
+    ranks = (h,) if n % 2 else (h - 1, h)
+    for p in ranks:
+        v = a[order[p]]
+        while p > 0 and a[order[p - 1]] == v:
+            p -= 1
+        i = order[p]
+        g += A[i] if r[i] > 0 else (-A[i] if r[i] < 0 else 0.0)
+    return (-MAD_CONSTANT / len(ranks)) * g
+
+
+def _cond1(Gs: np.ndarray, Gi: np.ndarray) -> float:
+    """The 1-norm condition number of ``Gs`` from it and its inverse."""
+    return float(np.abs(Gs).sum(axis=0).max() * np.abs(Gi).sum(axis=0).max())
+
+
+def _wls(Aw: np.ndarray, bw: np.ndarray) -> np.ndarray | None:
+    """Least-squares solution of ``Aw t = bw``: by the column-scaled normal equations
+    where their condition number is at most 1e8 (a small fit's loose solve needs no
+    more digits than that leaves), else by LAPACK's SVD solver; None if not finite."""
+    G = Aw.T @ Aw
+    dg = np.sqrt(G.diagonal())
+    if (dg > 0).all():
+        Gs = G / (dg[:, None] * dg)
+        Gi = _inv_small(Gs)
+        if Gi is not None and _cond1(Gs, Gi) <= 1e8:
+            t = (Gi @ ((bw @ Aw) / dg)) / dg
+            return t if np.isfinite(t).all() else None
+    try:
+        t = np.linalg.lstsq(Aw, bw, rcond=None)[0]
+    except np.linalg.LinAlgError:
+        return None
+    return t if np.isfinite(t).all() else None
 
 
 def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
@@ -94,11 +127,8 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
         Aw = A * sw[:, None]
         dmax = np.maximum(np.einsum("ij,ij->j", Aw, Aw), 0.25 * dmax)
         D = np.sqrt(np.where(dmax > 0, dmax, 1.0))
-        try:
-            new = np.linalg.lstsq(Aw, b * sw, rcond=None)[0]
-        except np.linalg.LinAlgError:
-            return None
-        if not np.isfinite(new).all():
+        new = _wls(Aw, b * sw)
+        if new is None:
             return None
         step, theta = new - theta, new
         r = b - A @ theta
@@ -111,7 +141,6 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
     smooth = n >= 20 and h - n_w >= 0 and h + n_w < n
     norm_prev = math.inf
     done = near = False
-    cond = math.inf
     passes = 0
     while True:
         passes += 1
@@ -146,7 +175,6 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
         Mi, Gi = _inv_small(M / dd), _inv_small(Gs)
         if Mi is None or Gi is None:
             return None  # fewer than k points inside the quadratic part, say
-        cond = float(np.abs(Gs).sum(axis=0).max() * np.abs(Gi).sum(axis=0).max())
         step = s * (Mi @ Fd) / d
         se = s * np.sqrt(np.abs(Gi.diagonal())) / d
         # the step in standard errors, s sqrt(diag G^-1), where it is not below 1e-14
@@ -170,7 +198,7 @@ def _linear_mad_small(prob: _Problem, theta0, loss: Loss, max_iter: int = 30):
     obj = obj if math.isfinite(obj) else math.inf
     stats = {"psi": psi, "dpsi": dpsi, "u": u, "s": s}
     inner = _Inner(theta, r, obj, passes, True, "converged", stats)
-    if cond > _VERDICT_COND:
+    if _cond1(Gs, Gi) > _VERDICT_COND:
         # badly conditioned (x far from 0 against its spread, say): the root is known
         # only to cond * eps, and the solver's verdict (first-order and step tests)
         # decides, as on the general route; below this a root the step test accepted
