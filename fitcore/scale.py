@@ -141,7 +141,11 @@ def proposal2_scale(r, loss: Loss, s0: float, n_free: int, *, tol: float = 1e-12
 
     Solves ``sum psi(r_i / s)^2 = (n - p) * beta`` by the fixed-point iteration
     ``s^2 <- s^2 * sum psi(r_i/s)^2 / ((n - p) beta)`` (Huber 1981, section 7.7),
-    which converges monotonically for monotone psi.
+    which converges monotonically for monotone psi, but only linearly (some 40 rounds
+    to 1e-12 on a 25-point 4PL): a secant step on ``g(s) - s`` through the last two
+    rounds is taken where it lies between half the smaller and twice the larger of
+    ``s`` and ``g(s)`` (a handful of rounds). It stops, as the plain iteration does,
+    where one round moves ``s`` by at most ``tol`` relative.
     """
     r = np.asarray(r, dtype=float)
     dof = r.size - n_free
@@ -149,6 +153,7 @@ def proposal2_scale(r, loss: Loss, s0: float, n_free: int, *, tol: float = 1e-12
         return float(s0)
     beta = psi_variance_at_normal(loss)
     s = float(s0)
+    prev = None  # (s, g(s)) of the previous round
     for _ in range(max_iter):
         q = float(np.sum(loss.psi(r / s) ** 2))
         if q <= 0:
@@ -157,5 +162,14 @@ def proposal2_scale(r, loss: Loss, s0: float, n_free: int, *, tol: float = 1e-12
         if abs(s_new - s) <= tol * s:
             s = s_new
             break
-        s = s_new
+        s_next = s_new
+        if prev is not None:
+            s1, g1 = prev
+            h0, h1 = s_new - s, g1 - s1
+            if h1 != h0 and s1 != s:
+                cand = s - h0 * (s - s1) / (h0 - h1)
+                if 0.5 * min(s, s_new) < cand < 2.0 * max(s, s_new):
+                    s_next = cand
+        prev = (s, s_new)
+        s = s_next
     return s
