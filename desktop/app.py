@@ -203,7 +203,14 @@ def _import_fitting_later(app) -> None:
         except Exception:  # noqa: BLE001 - a fit imports them itself and reports what fails
             pass
 
-    QTimer.singleShot(0, lambda: threading.Thread(target=load, name="ballast-imports", daemon=True).start())
+    # a moment after the loop starts: the window's first paint (and the bench hook's report,
+    # which runs at 0 ms) do not share the interpreter lock with the imports
+    QTimer.singleShot(WARM_UP_DELAY_MS,
+                      lambda: threading.Thread(target=load, name="ballast-imports", daemon=True).start())
+
+
+#: when the fitting modules start loading after the event loop starts (ms)
+WARM_UP_DELAY_MS = 300
 
 
 #: ``BALLAST_EXIT_AFTER_FIRST_FIT=1 ballast FILE``: when the first fit result is on
