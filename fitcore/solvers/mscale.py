@@ -32,7 +32,7 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     used with redescending losses, as statsmodels' RLM does).
 
     ``rough=True`` (a start for another loss, proposal 2 only): the alternation stops
-    once the scale moves by less than 1e-6, its solves to a step of 1e-6, and the final
+    once the scale moves by less than 1e-3, its solves to a step of 1e-4, and the final
     full-accuracy solve is left out (its answer would be refined anyway).
     """
     if auto and rule == "mad":
@@ -41,14 +41,14 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
     s = _safe_scale(s0, prob.resid(theta), prob)
     total = 0
     if auto:
-        loose = dict(xtol=1e-6 if rough else 1e-9, ftol=1e-12, polish_steps=False,
+        loose = dict(xtol=1e-4 if rough else 1e-9, ftol=1e-12, polish_steps=False,
                      check=False)
         inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
         total += inner.n_iter
         prev = None  # (s, g(s)) of the previous update, for the secant step
         for _ in range(100):
             g = _safe_scale(proposal2_scale(inner.r, loss, s, prob.k), inner.r, prob)
-            if abs(g - s) <= (1e-6 if rough else 1e-10) * s:
+            if abs(g - s) <= (1e-3 if rough else 1e-10) * s:
                 s = g
                 if rough:
                     return inner, s, total
