@@ -58,7 +58,7 @@ def _nll_slope(r2: np.ndarray, alpha: float, log_c: float) -> tuple[float, float
     with np.errstate(all="ignore"):
         z = r2 / c2
         if alpha == 2.0:
-            s1 = float(np.sum(z))
+            s1 = float(z.sum())
             return r2.size - s1, 2.0 * s1
         if alpha == 0.0:
             q = 1.0 + 0.5 * z
@@ -68,11 +68,11 @@ def _nll_slope(r2: np.ndarray, alpha: float, log_c: float) -> tuple[float, float
             q = 1.0 + z / b
             w = np.exp((0.5 * alpha - 1.0) * np.log1p(z / b))  # barron_weight
         zw = z * w
-        s1 = float(np.sum(zw))
+        s1 = float(zw.sum())
         # psi_B' = w (1 + z/b + (alpha - 2) z / b) / (1 + z/b) (barron_dpsi); only the
         # Newton step uses it, the root is set by the first derivative alone
         b = 2.0 if alpha == 0.0 else abs(alpha - 2.0)
-        s2 = float(np.sum(zw * (q + (alpha - 2.0) / b * z) / q))
+        s2 = float((zw * (q + (alpha - 2.0) / b * z) / q).sum())
         return r2.size - s1, s1 + s2
 
 
@@ -155,10 +155,11 @@ def _ml_shape_scale(r: np.ndarray, alpha: float, c: float, c_floor: float,
     hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
 
     last = [None]  # the previous trial shape's best log c: the next one's Newton start
+    r2 = r * r  # (once, not per trial shape)
 
     def best_c(a, start):
         # (the likelihood equation has one root: no other c to compare with)
-        lc = _best_log_c(r, a, lo_c, hi_c, start if last[0] is None else last[0])
+        lc = _best_log_c(r, a, lo_c, hi_c, start if last[0] is None else last[0], r2)
         last[0] = lc
         return lc, _nll(r, a, lc)
 
