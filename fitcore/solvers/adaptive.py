@@ -2,6 +2,7 @@
 alternated with the parameter step."""
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -9,9 +10,10 @@ from .._lazy import LazyModule
 
 from ..losses import barron_rho, get_loss
 from ..partition import log_partition
+from ..scale import mad
 from .lm import _irls_lm
 from .mscale import _robust_with_scale
-from .problem import _Problem, _sample_rows
+from .problem import _exact_floor, _Problem, _sample_rows
 
 optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
 
@@ -303,6 +305,14 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         inner, s, total = _robust_with_scale(prob, theta, ref, s0, linear=linear, auto=True,
                                              max_iter=max_iter, rough=prob.n < _ROUGH_BELOW)
         alpha, c = 1.0, s
+        if (inner.stats or {}).get("exact"):
+            # an exact majority: zero scatter says nothing about the shape, and the ML
+            # scale would run to zero; the fit through the majority is the answer
+            inner = dataclasses.replace(inner, message=inner.message + (
+                "; the adaptive loss's shape cannot be estimated from zero scatter: "
+                "alpha held at 1 (pseudo-Huber)"))
+            info = {"nll": math.nan, "c_floor": s, "scale_at_floor": True, "exact": True}
+            return inner, get_loss("general", tuning=1.0, alpha=1.0), s, 1.0, math.nan, total, info
     else:
         alpha, c = warm
         s, total = c, 0
@@ -341,4 +351,8 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
             alpha_se = 1.0 / math.sqrt(d2)
     info = {"nll": _nll(inner.r, alpha, math.log(c)), "c_floor": c_floor,
             "scale_at_floor": c <= c_floor * (1 + 1e-6)}
+    if info["scale_at_floor"] and mad(inner.r) <= _exact_floor(prob):
+        # the ML scale ran to its floor on an exact majority (a proposal-2 start can
+        # stay above it with many points off): no scatter to take uncertainties from
+        inner = dataclasses.replace(inner, stats=dict(inner.stats or {}, exact=True))
     return inner, loss, c, alpha, alpha_se, total, info

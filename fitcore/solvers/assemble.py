@@ -15,6 +15,7 @@ def _covariance(st: _Setup, out: _Outcome, theta, r):
     k, dof, s, loss = st.k, st.dof, out.s, st.loss
     inner = out.inner
     converged, message = inner.converged, inner.message
+    exact = bool((inner.stats or {}).get("exact"))
     cov_free = np.full((k, k), np.nan)
     recipe = ""
     try:
@@ -37,12 +38,18 @@ def _covariance(st: _Setup, out: _Outcome, theta, r):
     except unc.CovarianceUnavailable as e:  # the estimates stand, without uncertainties
         cov_free = np.full((k, k), np.nan)
         recipe = "not available"
-        message += f"; {e}, so the standard uncertainties are not available"
-    if (inner.stats or {}).get("exact"):
+        if not exact:  # (an exact majority is said below, in its own words)
+            message += f"; {e}, so the standard uncertainties are not available"
+    if exact and loss == "l1":
         cov_free = np.full((k, k), np.nan)
+        message += ("; more than half of the points lie exactly on the curve, so the "
+                    "scatter near the fit is zero and the L1 uncertainties cannot be "
+                    "estimated")
+    elif exact:
+        cov_free = np.full((k, k), np.nan)
+        hint = "give sigma" if loss == "adaptive" else "give sigma or a fixed scale"
         message += ("; the robust scale is zero, so the uncertainties cannot be estimated "
-                    "from the scatter (give sigma or a fixed scale); points off the curve "
-                    "get weight 0")
+                    f"from the scatter ({hint}); points off the curve get weight 0")
     if dof <= 0:
         message += "; no degrees of freedom left, so uncertainties cannot be estimated"
         cov_free = np.full((k, k), np.nan)

@@ -15,7 +15,7 @@ from .l1 import _l1_linear, _l1_nonlinear
 from .linear import _linear_mad_small
 from .lm import _irls_lm, _refine_linear_ls
 from .mscale import SCALE_METHOD, _m_estimate, _robust_with_scale, _newton_with_mad
-from .problem import _Inner, _safe_scale, _start_scale
+from .problem import _exact_floor, _Inner, _safe_scale, _start_scale
 from .setup import _Setup
 from .start import _improve
 from .verdict import _first_order
@@ -113,7 +113,18 @@ def _run_l1(st: _Setup) -> _Outcome:
         if pre.inner.converged:
             theta0 = pre.inner.theta
         inner = _l1_nonlinear(prob, theta0, max_iter=st.max_iter)
-    s = _safe_scale(mad(inner.r), inner.r, prob)
+    m = mad(inner.r)
+    floor = _exact_floor(prob)
+    on_curve = int(np.count_nonzero(np.abs(inner.r) <= floor))
+    # (every residual zero: exact data, whose estimates have zero spread, u = 0 as under
+    # least squares; the p points an L1 fit interpolates do not count as a majority)
+    if 0.5 * prob.n < on_curve < prob.n and on_curve > st.k:
+        # more than half of the points on the curve: the MAD is zero and says nothing
+        # about the scatter (its fallback, the residuals' SD, priced one point off an
+        # exact line at an uncertainty of 1.08); no uncertainties, as for the M-losses
+        inner = dataclasses.replace(inner, stats=dict(inner.stats or {}, exact=True))
+        m = floor
+    s = _safe_scale(m, inner.r, prob)
     return _Outcome(inner, s, "normalised MAD of the residuals (does not affect the L1 estimate)",
                     inner.n_iter, st.loss_obj)
 

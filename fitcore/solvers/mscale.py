@@ -46,8 +46,18 @@ def _robust_with_scale(prob: _Problem, theta, loss: Loss, s0: float, *, linear: 
         inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **loose)
         total += inner.n_iter
         prev = None  # (s, g(s)) of the previous update, for the secant step
+        floor = _exact_floor(prob)
         for _ in range(100):
             g = _safe_scale(proposal2_scale(inner.r, loss, s, prob.k), inner.r, prob)
+            if g <= floor:
+                # the scale collapses onto an exact majority (exact or synthetic data):
+                # solved at the floor scale, as the MAD rule does; else the residuals
+                # off that majority overflow the loss in scale units
+                got = _exact_fit(prob, inner.theta, loss, floor, linear=linear,
+                                 max_iter=max_iter, total=total)
+                if got is not None:
+                    return got
+                g = floor
             if abs(g - s) <= (1e-3 if rough else 1e-10) * s:
                 s = g
                 if rough:

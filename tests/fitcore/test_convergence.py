@@ -142,6 +142,44 @@ def test_all_zero_y_under_a_robust_loss_is_an_exact_fit(loss):
     assert np.all(np.isnan(res.stderr))
 
 
+@pytest.mark.parametrize("n_off", [1, 2, 3, 5])
+def test_adaptive_loss_on_an_exact_majority_is_an_exact_fit(n_off):
+    """An exact line with a few points moved (synthetic data; common practice: an exact
+    majority has zero robust scale). The adaptive loss's pseudo-Huber start used to let
+    its proposal-2 scale collapse to ~1e-167 with one point off, then refuse with an
+    overflow message asking for a fixed scale (which the adaptive loss refuses); with 5
+    off it reported uncertainties of 1e-13. Now it is the fit through the majority with
+    no uncertainties, as every other robust loss with the automatic scale."""
+    x = np.linspace(0.0, 10.0, 20)
+    y = 2.0 * x + 1.0
+    y[7:7 + n_off] += 5.0
+    res = fitcore.fit("line", x, y, loss="adaptive")
+    assert res.converged
+    np.testing.assert_allclose(res.values, [1.0, 2.0], rtol=1e-9)
+    assert np.all(np.isnan(res.stderr))
+    assert "robust scale is zero" in res.message
+    huber = fitcore.fit("line", x, y, loss="huber")
+    np.testing.assert_allclose(res.values, huber.values, rtol=1e-9)
+    assert "fixed scale" not in res.message  # the adaptive loss refuses one
+
+
+@pytest.mark.parametrize("n_off", [1, 3, 9])
+def test_l1_on_an_exact_majority_gives_no_uncertainties(n_off):
+    """Same data under L1: the MAD of the residuals is zero; its fallback (the residuals'
+    standard deviation) used to price one point off an exact line at u(intercept) = 1.08.
+    Common practice: the scatter of the majority is zero, and one point off says nothing
+    about it. (All points exact: u = 0, test_l1.py.)"""
+    x = np.linspace(0.0, 10.0, 20)
+    y = 2.0 * x + 1.0
+    y[5:5 + n_off] += 5.0
+    res = fitcore.fit("line", x, y, loss="l1")
+    assert res.converged
+    np.testing.assert_allclose(res.values, [1.0, 2.0], rtol=1e-9)
+    assert np.all(np.isnan(res.stderr))
+    assert "lie exactly on the curve" in res.message
+    assert res.scale < 1e-9
+
+
 @pytest.mark.parametrize("scale", [1e-170, 1e200])
 def test_fixed_scale_outside_double_range_is_refused(scale):
     with pytest.raises(fitcore.FitError, match="outside what double precision can square"):
