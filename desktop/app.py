@@ -16,6 +16,8 @@ from pathlib import Path
 from fitcore import __version__  # the package alone: no numpy (see one_blas_thread)
 from fitcore.threads import limit_process
 
+from . import qt_imports  # before PySide6 loads: remembers Python's __import__ before PySide6 loads
+
 log = logging.getLogger(__name__)
 
 # The shared libraries Qt's xcb platform plugin needs that a minimal Linux install
@@ -163,6 +165,7 @@ def main(argv=None) -> int:
 
     from PySide6.QtWidgets import QApplication
 
+    qt_imports.restore_python_import()  # before any thread imports: see qt_imports
     app = QApplication.instance() or QApplication(sys.argv[:1])
     app.setOrganizationName("Ballast")
     app.setApplicationName("Ballast")

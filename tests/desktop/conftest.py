@@ -9,6 +9,12 @@ import gc
 
 import pytest
 
+from desktop.qt_imports import restore_python_import
+
+# as the program does (desktop/app.py): Python's own __import__, not shiboken's hook, before
+# any window's thread imports (see desktop/qt_imports.py)
+restore_python_import()
+
 
 @pytest.fixture(autouse=True)
 def collect_windows_in_the_gui_thread():
