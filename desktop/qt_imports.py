@@ -9,10 +9,11 @@ split. The window imports on several threads at once (scipy after the first pain
 ``app._import_fitting_later``; sympy for formula models inside fits on the jobs' worker
 thread; fitcore's lazy modules wherever first used). The hook is not made for that: with
 four threads importing 80 fresh modules through it, it recorded 13 of them (all 20 when
-one thread imports), so it keeps process-wide state that the threads overwrite. The
-desktop tests segfaulted inside an import on a worker thread (sympy's
-``_compile_bytecode``) three times in about a dozen runs; not reproduced since, so the
-link is not proven, but the hook is the one piece of foreign code on every import path.
+one thread imports), so it keeps process-wide state that the threads overwrite.
+(The desktop tests' rare segfault during a sympy import on a worker thread was NOT this hook: its trace shows the
+GUI thread crashing while garbage-collecting left-over windows, and it happened as often
+with this module in place; tests/desktop/conftest.py's per-test gc.collect is that fix.
+This module is hardening: foreign, thread-unsafe code off every import path.)
 
 Ballast never uses ``from __feature__``: without the hook a module simply has no feature
 entry, which shiboken treats like its "ignore this module" (-1) or "no feature" (0).

@@ -1,7 +1,7 @@
 """desktop/qt_imports.py: Python's own ``__import__`` back after PySide6 loads.
 
-The crash it guards against (imports on worker threads through shiboken's import hook,
-seen as a rare segfault in a sympy import) is not deterministic. What this test checks
+Hardening, not a crash fix (the rare segfault of tests/desktop was a collection in the GUI
+thread, see desktop/qt_imports.py; the hook race is not deterministic). What this test checks
 every time, in a fresh interpreter (the hook is process-wide): after the call, four threads
 and the main thread import 200 fresh modules at once and the process exits cleanly with
 all of them loaded, without shiboken's per-import check (``inspect.getsource``, which the
