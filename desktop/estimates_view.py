@@ -68,7 +68,8 @@ def unit_of(expr: str, x_unit: str, y_unit: str) -> str:
 
 def summary_lines(res, y_unit: str = "") -> list[tuple[str, str]]:
     """(label, text) pairs describing how the fit was made (the loss by its title and
-    the scale with its unit, as the copied text states them)."""
+    the scale with its unit, as the copied text states them). The shape alpha has a
+    line only under the losses that have one (the general and the adaptive loss)."""
     def g(name, default=None):
         return getattr(res, name, default)
 
@@ -79,14 +80,14 @@ def summary_lines(res, y_unit: str = "") -> list[tuple[str, str]]:
         ("n excluded", str(g("n_excluded", ""))),
         ("n down-weighted (w < 0.5)", str(g("n_downweighted", ""))),
         ("scale", scale_text(res, y_unit)),
-        ("alpha", "-" if alpha is None else alpha_text(res)),
+        ("alpha", None if alpha is None else alpha_text(res)),  # only losses with a shape
         ("degrees of freedom", str(g("dof", ""))),
         ("converged", convergence_text(res)),
         ("covariance", str(g("covariance_recipe", ""))),
     ]
     if g("fixed"):
         lines.append(("held", HELD_NOTE.removeprefix("; ")))  # the report's words
-    return lines
+    return [(label, text) for label, text in lines if text is not None]
 
 
 def estimates_plain_text(res, x_unit: str = "", y_unit: str = "", reasons=None,
