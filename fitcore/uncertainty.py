@@ -61,7 +61,27 @@ class RankDeficient(Exception):
 
 
 class CovarianceUnavailable(Exception):
-    """The recipe could not be computed (the estimates stand; their uncertainties do not)."""
+    """The recipe could not be computed (the estimates stand; their uncertainties do not).
+
+    ``complete``: the text is a whole statement for the analyst (what happened, what is
+    still reported, what to do), not a reason to be completed by the caller.
+    """
+
+    def __init__(self, text: str, complete: bool = False):
+        super().__init__(text)
+        self.complete = complete
+
+
+#: what an L1 fit still reports, and what the analyst can do, when its sparsity is unknown
+_L1_NO_SPREAD_TAIL = ("The estimates are reported (a line or curve with the smallest sum of absolute "
+                      "deviations) without standard uncertainties. Look at the residuals: exclude the "
+                      "points that do not belong (with a reason), or fit with Huber or least squares, "
+                      "or use bootstrap intervals, for uncertainties.")
+
+
+def _l1_no_spread(what: str) -> CovarianceUnavailable:
+    return CovarianceUnavailable(f"L1 cannot estimate standard uncertainties here: {what}. "
+                                 + _L1_NO_SPREAD_TAIL, complete=True)
 
 
 def inv_jtj(J: np.ndarray, rcond: float | None = None) -> np.ndarray:
@@ -160,11 +180,13 @@ def _lad_slope(t: np.ndarray, v: np.ndarray) -> float:
     sv = float(np.max(np.abs(v - np.median(v)))) or 1.0
     st = float(np.max(np.abs(t))) or 1.0
     A = np.c_[np.ones_like(t), t / st]
+    # one solve, no retry with other HiGHS methods: highs-ds never returned on a
+    # degenerate window (the two-sizes case is caught before, in l1_sparsity)
     res = optimize.linprog(-v / sv, A_eq=A.T, b_eq=np.zeros(2), bounds=(-1, 1), method="highs")
     if res.status != 0 or res.eqlin is None:  # no other slope is put in its place
-        raise CovarianceUnavailable(
-            f"the L1 sparsity could not be estimated: the linear program for its slope "
-            f"failed (HiGHS status {res.status}: {str(res.message).rstrip('.')})")
+        raise _l1_no_spread(
+            "the spread of the residuals nearest zero (the L1 sparsity) could not be "
+            f"computed (its linear programme stopped with solver status {res.status})")
     return float(-res.eqlin.marginals[1] * sv / st)
 
 
@@ -179,8 +201,10 @@ def l1_sparsity(r: np.ndarray, p: int) -> float:
     the residuals nearest zero, not the order statistics at ``0.5 +- h``, keeps outliers
     out: at n <= 12 the Hall-Sheather window spans nearly the whole sample. The window
     is further capped to leave out the two residuals farthest from zero, so one or two
-    gross outliers can never enter it, even at n = 8. Raises CovarianceUnavailable when
-    the linear program for the slope fails.
+    gross outliers can never enter it, even at n = 8. Raises CovarianceUnavailable (a
+    whole statement for the analyst) when those residuals take only one or two values
+    (no spread near zero: e.g. half of the points on a line, half offset from it) or
+    when the linear program for the slope fails.
     """
     r = np.asarray(r, dtype=float)
     n = r.size
@@ -209,8 +233,27 @@ def l1_sparsity(r: np.ndarray, p: int) -> float:
     else:
         near = np.arange(arn.size)
     v = np.sort(rn[near])
+    sizes = _distinct(v)
+    if sizes.size <= 2:
+        # no spread near zero to measure: the slope of a step (or of a constant) is an
+        # artefact of the ranks (0, so u = 0, or a degenerate programme HiGHS gives up on)
+        size = _distinct(np.sort(np.abs(v)))
+        shown = " and ".join(f"{w:.6g}" for w in size)
+        raise _l1_no_spread(
+            f"the residuals nearest the fit are all of size{'s' if size.size > 1 else ''} {shown}, "
+            "as when half of the points lie on one line and half are offset from it, so their "
+            "spread near zero (the L1 sparsity) cannot be measured and other lines may fit "
+            "equally well")
     t = np.arange(pz + 1, pz + cnt + 1, dtype=float) / nz
     return max(_lad_slope(t, v), 0.0)
+
+
+def _distinct(v: np.ndarray) -> np.ndarray:
+    """The distinct values of sorted ``v``, values within rounding (1e-9 of the largest
+    magnitude) counted as one."""
+    tol = 1e-9 * float(np.max(np.abs(v)))
+    keep = np.r_[True, np.diff(v) > tol]
+    return v[keep]
 
 
 def cov_l1(J, r):

@@ -38,7 +38,9 @@ def _covariance(st: _Setup, out: _Outcome, theta, r):
     except unc.CovarianceUnavailable as e:  # the estimates stand, without uncertainties
         cov_free = np.full((k, k), np.nan)
         recipe = "not available"
-        if not exact:  # (an exact majority is said below, in its own words)
+        if not exact and getattr(e, "complete", False):  # a whole statement: what, what is left, what to do
+            message += f"; {e}"
+        elif not exact:  # (an exact majority is said below, in its own words)
             message += f"; {e}, so the standard uncertainties are not available"
     if exact and loss == "l1":
         cov_free = np.full((k, k), np.nan)
