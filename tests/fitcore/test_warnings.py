@@ -61,3 +61,36 @@ def test_a_parameter_on_its_bound_is_flagged():
     pinned[1] = 0.0 + 1e-300  # where the solver's projection leaves a time constant at 0
     bad = dataclasses.replace(res, values=pinned)
     assert any("tau ended on its lower bound" in w for w in bad.warnings)
+
+
+def _line_with_outliers(n, n_out, seed, low=20.0, high=20.0):
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0, 10, n)
+    y = 2 + 0.5 * x + rng.normal(0, 1, n)
+    bad = rng.choice(n, n_out, replace=False)
+    y[bad] += rng.uniform(low, high, n_out)
+    return x, y
+
+
+def test_adaptive_fit_of_a_few_outliers_is_not_called_a_minority():
+    # A clean line with two gross outliers is what the adaptive loss is for; its shape
+    # goes to alpha ~ 0, where points 1.4 c off already count less than half, so about
+    # half the points did (the warning fired in 23 of 30 such fits). The majority
+    # warning counts only points that also lie far off the curve.
+    for seed in range(10):
+        x, y = _line_with_outliers(25, 2, seed)
+        res = fitcore.fit("line", x, y, loss="adaptive")
+        assert res.converged
+        assert res.n_downweighted >= 2
+        assert not any("count less than half" in w for w in res.warnings), (seed, res.warnings)
+
+
+def test_adaptive_fit_of_a_heavily_contaminated_line_is_flagged():
+    # 14 of 40 points (35 %) spread 5 to 30 above the line: the robust fit's premise is
+    # doubtful, and the warning says so (counting the points far off the curve)
+    x, y = _line_with_outliers(40, 14, 7, 5.0, 30.0)
+    res = fitcore.fit("line", x, y, loss="adaptive")
+    (w,) = [w for w in res.warnings if "count less than half" in w]
+    assert "robust standard deviations" in w
+    m = int(w.split(" of ")[0])
+    assert 10 <= m <= 14  # the far points are the contaminated ones, not the clean majority
