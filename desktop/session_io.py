@@ -47,6 +47,7 @@ from fitcore.session import (
     clean_debris,
     clean_written_folders,
     file_sha256,
+    give_back_orphan,
     load_json_bounded,
     load_session,
     new_recovery_owner,
@@ -57,6 +58,7 @@ from fitcore.session import (
     save_session_text,
     session_to_json,
     set_aside_damaged,
+    take_orphan,
     window_recovery_path,
     write_recovery,
 )
@@ -268,7 +270,8 @@ class SessionManager(QObject):
         note_written_folders_in(self.recovery_dir / WRITTEN_FOLDERS_NAME)
         #: this window's own recovery file (with a lock naming this process); a window
         #: never deletes another running window's file
-        self.own_recovery = window_recovery_path(self.recovery_dir, new_recovery_owner())
+        self.owner = new_recovery_owner()
+        self.own_recovery = window_recovery_path(self.recovery_dir, self.owner)
         self._claimed = False
         #: after a restore: the path the crashed work was saved to, offered (not used) at
         #: the next save; a recovery file is not trusted to name where to write
@@ -534,7 +537,9 @@ class SessionManager(QObject):
         """Offer to restore work that crashed windows left behind; True if restored.
 
         Only orphaned recovery files are offered (their window no longer runs); the files
-        of running windows are never read, offered or deleted. Each orphan is offered in
+        of running windows are never read, offered or deleted. An orphan is taken
+        atomically before it is read (:func:`fitcore.session.take_orphan`), so two windows
+        starting at once never both offer it. Each orphan is offered in
         turn, newest first: Restore loads it into this window (it then lives on as this
         window's own recovery file), Discard deletes that one. An unreadable one is
         reported and set aside as ``<name>.damaged`` so it is not offered again.
@@ -543,7 +548,12 @@ class SessionManager(QObject):
         """
         clean_debris(self.recovery_dir)
         clean_written_folders(self.recovery_dir / WRITTEN_FOLDERS_NAME)
-        for orphan in orphaned_recovery(self.recovery_dir):
+        for found in orphaned_recovery(self.recovery_dir):
+            # taken atomically first: of two windows starting at once only one offers it,
+            # the other skips it silently
+            orphan = take_orphan(found, self.owner)
+            if orphan is None:
+                continue
             try:
                 session = load_session(orphan)
             except SessionError as err:
@@ -563,6 +573,7 @@ class SessionManager(QObject):
                 release_recovery(orphan)
                 continue
             if not self._show(session, "recovered work", read_view(orphan)):
+                give_back_orphan(orphan)  # kept: offered again at a later start
                 return False
             self.path = None  # the stored path is a suggestion: Save asks where to write
             self.suggested_path = session.saved_as or None

@@ -1111,6 +1111,48 @@ def orphaned_recovery(folder) -> list[Path]:
     return [p for p in find_recovery(folder) if not recovery_owner_alive(p)]
 
 
+def take_orphan(recovery_file, owner: str) -> Path | None:
+    """Claim the orphaned ``recovery_file`` for the window with owner tag ``owner``, so
+    that no other window offers it too; returns the file under its new name, or None
+    when it is not (or no longer) an orphan: another window took it first.
+
+    The claim is one atomic rename into a name of this window's
+    (``window-<owner>-taken-<random>``), whose lock naming this process is written
+    first: of two windows starting at the same instant, exactly one rename succeeds and
+    the other finds the file gone; the new name is never seen as an orphan while this
+    process runs (if it dies before dealing with the file, the file is an orphan again,
+    nothing is lost). The dead owner's lock is removed after the rename.
+    """
+    import secrets
+
+    src = Path(recovery_file)
+    if recovery_owner_alive(src):
+        return None
+    target = window_recovery_path(src.parent, f"{owner}-taken-{secrets.token_hex(4)}")
+    lock = claim_recovery(target)
+    try:
+        os.rename(src, target)  # atomic: one claimant wins, the others get FileNotFoundError
+    except OSError:
+        try:
+            lock.unlink()
+        except OSError:
+            pass
+        return None
+    try:
+        recovery_lock_path(src).unlink()
+    except OSError:
+        pass
+    return target
+
+
+def give_back_orphan(recovery_file) -> None:
+    """Drop this process's lock of a taken orphan (kept, offered again at a later start)."""
+    try:
+        recovery_lock_path(recovery_file).unlink()
+    except OSError:
+        pass
+
+
 def release_recovery(recovery_file) -> None:
     """Delete a recovery file and its lock (the owner's own, or an orphan dealt with)."""
     for p in (Path(recovery_file), recovery_lock_path(recovery_file)):

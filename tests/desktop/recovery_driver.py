@@ -5,7 +5,10 @@ then, every 120 ms, excludes or restores one of the first 8 points with a reason
 prints one JSON line per change: {"i": n, "t": time.time(), "state": [[index, reason], ...]}.
 It runs until killed. ``python recovery_driver.py probe RECOVERY_DIR DATA.csv 0`` starts
 like the program (offer_recovery; every offer is declined), prints {"offers": [...]},
-closes the window normally and exits. QT_QPA_PLATFORM=offscreen is set here.
+closes the window normally and exits. ``python recovery_driver.py race RECOVERY_DIR
+DATA.csv 0`` builds the window, prints {"ready": true}, then for each line "go" on stdin
+runs offer_recovery (each offer declined after 50 ms, a user reading it) and prints
+{"offers": n, "errors": [...]}; it ends at end of input. QT_QPA_PLATFORM=offscreen is set here.
 """
 from __future__ import annotations
 
@@ -32,6 +35,21 @@ def main() -> int:
     dialogs.error_box = lambda parent, title, text: print(json.dumps({"error": text}), flush=True)
     ini = Path(rec).parent / f"{mode}-{os.getpid()}.ini"
     win = MainWindow(QSettings(str(ini), QSettings.IniFormat), recovery_dir=rec)
+    if mode == "race":
+        errors = []
+        dialogs.error_box = lambda parent, title, text: errors.append(text)
+        offers = []
+        session_io.ask_restore = lambda parent, text: offers.append(text) or time.sleep(0.05) or False
+        print(json.dumps({"ready": True}), flush=True)
+        for line in sys.stdin:
+            if line.strip() != "go":
+                continue
+            offers.clear()
+            errors.clear()
+            win.sessions.offer_recovery()
+            print(json.dumps({"offers": len(offers), "errors": list(errors)}), flush=True)
+        win.close()
+        return 0
     if mode == "probe":
         offers = []
         session_io.ask_restore = lambda parent, text: offers.append(text) or False

@@ -153,3 +153,47 @@ def test_random_kill_during_steady_work(tmp_path, seed):
     finally:
         if w.proc.poll() is None:
             w.kill()
+
+
+def test_two_windows_starting_at_once_offer_an_orphan_once(tmp_path):
+    # two real windows run offer_recovery at the same instant, 20 times, on one orphan
+    # (a dead owner: its lock names this process with another start time); each offer is
+    # declined after 50 ms. Exactly one of them may offer it, the other skips it without a
+    # word, and nothing is left behind (the declined orphan deleted, no stray lock).
+    # Before: both listed it, both offered it (or the slower one reported it unreadable)
+    rec = tmp_path / "recovery"
+    rec.mkdir()
+    template = tmp_path / "crashed.ballast"
+    s = fs.Session(x=[1.0, 2.0, 3.0, 4.0, 5.0], y=[2.9, 5.1, 7.0, 9.2, 10.9],
+                   names={"x": "t", "y": "v", "sigma": ""}, method=fs.Method(model="line", loss="l2"))
+    s.exclude(2, "smudged cuvette", "2025-03-01T10:00:00+00:00")
+    fs.save_session(template, s)
+    env = dict(os.environ, QT_QPA_PLATFORM="offscreen", OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
+    procs = [subprocess.Popen([sys.executable, str(DRIVER), "race", str(rec), str(DATA), "0"],
+                              stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                              text=True, env=env) for _ in range(2)]
+    try:
+        for p in procs:
+            line = p.stdout.readline()
+            assert json.loads(line).get("ready"), line
+        for k in range(20):
+            orphan = fs.window_recovery_path(rec, f"{os.getpid()}-dead{k:04d}")
+            orphan.write_bytes(template.read_bytes())
+            fs.recovery_lock_path(orphan).write_text(json.dumps(
+                {"pid": os.getpid(), "start": "1", "host": fs._host()}))  # a reused pid: dead owner
+            assert fs.orphaned_recovery(rec) == [orphan]
+            for p in procs:
+                p.stdin.write("go\n")
+            for p in procs:
+                p.stdin.flush()
+            answers = [json.loads(p.stdout.readline()) for p in procs]
+            assert sorted(a["offers"] for a in answers) == [0, 1], (k, answers)
+            assert all(a["errors"] == [] for a in answers), (k, answers)
+            assert sorted(x.name for x in rec.iterdir() if not x.name.startswith("written")) == [], k
+    finally:
+        for p in procs:
+            p.stdin.close()
+            try:
+                p.wait(30)
+            except subprocess.TimeoutExpired:
+                p.kill()
