@@ -121,8 +121,9 @@ def bench_fit(repeat):
     for loss, goal in (("huber", 2), ("tukey", 3), ("adaptive", 5)):
         t = median_time(lambda loss=loss: fitcore.fit(model, x, y, loss=loss), repeat)
         line(f"Ballast 4PL {loss}", t, t_sp, goal, "scipy trf huber")
-    # the adaptive loss caches log Z(alpha) per exact alpha (a quadrature of some ms
-    # each); repeating one data set hits that cache every time, new data do not
+    # log Z(alpha) comes from a table for alpha in [0, 2 - 2**-30], else from a quadrature
+    # cached per exact alpha (~0.1-0.2 ms each); repeating one data set hits that cache
+    # every time, new data do not
     from fitcore.partition import _cached
 
     def adaptive_new_data():
