@@ -78,6 +78,10 @@ class Model:
         the robust solvers' Newton steps include this curvature term (without it they
         are Gauss-Newton steps, which converge only linearly when the residuals
         are not small).
+    guess_search
+        Optional ``guess_search(x, y) -> (k,)``: a slower, wider search for start
+        values, for a model whose ``guess`` is a quick one. A fit that started from
+        ``guess`` and fails the convergence verdict is tried again from here first.
     """
 
     name: str
@@ -95,6 +99,7 @@ class Model:
     derived: tuple[Derived, ...] = ()
     f_jac: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]] | None = None
     hess_w: Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray] | None = None
+    guess_search: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None
 
     def __post_init__(self):
         names = tuple(self.param_names)
@@ -125,19 +130,22 @@ class Model:
     def __call__(self, x, p) -> np.ndarray:
         return self.f(np.asarray(x, dtype=float), np.asarray(p, dtype=float))
 
-    def start_values(self, x: np.ndarray, y: np.ndarray, p0=None) -> np.ndarray:
+    def start_values(self, x: np.ndarray, y: np.ndarray, p0=None,
+                     search: bool = False) -> np.ndarray:
         """Start values: ``p0`` (dict by name or sequence) where given, else the guess.
 
-        A dict may give only some parameters; the rest come from the model's guess.
+        A dict may give only some parameters; the rest come from the model's guess
+        (``search=True``: from ``guess_search`` where the model has one).
         """
         k = self.n_params
         guess = None
+        guess_fn = self.guess_search if search and self.guess_search is not None else self.guess
 
         def _guess():
             nonlocal guess
             if guess is None:
-                if self.guess is not None:
-                    guess = np.asarray(self.guess(x, y), dtype=float)
+                if guess_fn is not None:
+                    guess = np.asarray(guess_fn(x, y), dtype=float)
                 elif self.is_linear:
                     guess = np.zeros(k)
                 else:

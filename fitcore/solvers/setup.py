@@ -5,6 +5,7 @@ from __future__ import annotations
 import difflib
 import math
 from dataclasses import dataclass, field
+from typing import Callable
 
 import numpy as np
 
@@ -37,6 +38,9 @@ class _Setup:
     sigma_kind: str
     max_iter: int
     info: dict = field(default_factory=dict)
+    # the free parameters' start from the model's wider search (Model.guess_search),
+    # computed on demand; None where the model has none or the analyst gave the start
+    search_start: Callable[[], np.ndarray] | None = None
 
     @property
     def n_all(self) -> int:
@@ -253,17 +257,34 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         if n_used > 2000 and (p0 is None or isinstance(p0, dict)):
             # start values need no more than a few thousand points (a seeded subsample)
             pick = np.sort(np.random.default_rng(7).choice(n_used, 300, replace=False))
-            start = mdl.start_values(xu[pick], yu[pick], p0)
-            start, like = _catalogue_start(mdl, xu[pick], yu[pick], p0, start)
+            xs, ys = xu[pick], yu[pick]
         else:
-            start = mdl.start_values(xu, yu, p0)
-            start, like = _catalogue_start(mdl, xu, yu, p0, start)
+            xs, ys = xu, yu
+        start = mdl.start_values(xs, ys, p0)
+        start, like = _catalogue_start(mdl, xs, ys, p0, start)
     except ValueError as e:
         raise FitError(str(e)) from e
     if not np.all(np.isfinite(start)):
         raise FitError("the start values are not all finite numbers")
     for name, v in fixed.items():
         start[mdl.param_names.index(name)] = float(v)
+    search_start = None
+    given = set(p0) if isinstance(p0, dict) else (set(mdl.param_names) if p0 is not None else set())
+    searcher = _catalogue_model(like).guess_search if like else mdl.guess_search
+    if searcher is not None and not given >= set(mdl.param_names):
+        def search_start():
+            """The start from the model's wider search (the catalogue model's, carried
+            over, for a recognised formula), with the held values; None if unusable."""
+            try:
+                with np.errstate(all="ignore"):
+                    t = mdl.start_values(xs, ys, p0, search=True)
+                    if like:
+                        t, _ = _catalogue_start(mdl, xs, ys, p0, t, search=True)
+            except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+                return None
+            for name, v in fixed.items():
+                t[mdl.param_names.index(name)] = float(v)
+            return t[free] if np.all(np.isfinite(t)) else None
     prob = _Problem(mdl, xu, yu, sig_u, free, start.copy(), unit=sig_all is None)
     absolute = sigma is not None and sigma_mode == "absolute"
 
@@ -298,14 +319,21 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
         sigma_kind="none" if sigma is None else sigma_mode, max_iter=max_iter,
         info={"n_missing": int(np.sum(~finite)), "scale_fixed": scale_given,
               **({"start_like": like} if like else {})},
+        search_start=search_start,
     )
 
 
-def _catalogue_start(mdl: Model, x, y, p0, start):
+def _catalogue_model(name: str) -> Model:
+    from ..models import get_model  # here: see _resolve
+
+    return get_model(name)
+
+
+def _catalogue_start(mdl: Model, x, y, p0, start, search: bool = False):
     """``(start, catalogue name)``: a formula that is a catalogue curve written another
-    way (:mod:`.recognise`) starts from that model's robust guess, carried over to the
-    formula's parameters, wherever the analyst gave no start value; else
-    ``(start, None)``."""
+    way (:mod:`.recognise`) starts from that model's robust guess (``search``: its
+    wider search), carried over to the formula's parameters, wherever the analyst gave
+    no start value; else ``(start, None)``."""
     names = mdl.param_names
     given = set(p0) if isinstance(p0, dict) else (set(names) if p0 is not None else set())
     if given >= set(names):
@@ -317,7 +345,7 @@ def _catalogue_start(mdl: Model, x, y, p0, start):
 
     try:
         with np.errstate(all="ignore"):
-            q = match.carry(get_model(match.name).start_values(x, y))
+            q = match.carry(get_model(match.name).start_values(x, y, search=search))
     except (ValueError, ArithmeticError, np.linalg.LinAlgError):
         return start, None
     if not np.all(np.isfinite(q)):

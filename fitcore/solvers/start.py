@@ -309,10 +309,16 @@ def _improve(st, run_once, first=None):
         if t_log is not None:
             attempt(t_log)
 
+    def search():
+        # a quick model guess that failed: the model's own wider search first
+        t_search = st.search_start() if st.search_start is not None else None
+        if t_search is not None and not np.array_equal(t_search, st.theta0):
+            attempt(t_search)
+
     # a blank start says nothing: search first; an analyst's start that failed is
     # kept closest by the same start in log coordinates, so that comes first
     if not _blank(st):
-        order = (log, grid)
+        order = (search, log, grid)
     else:
         order = (grid, log)
     for step in order:
