@@ -36,6 +36,7 @@ Nothing here imports Qt.
 """
 from __future__ import annotations
 
+import functools
 import math
 import re
 from dataclasses import dataclass
@@ -121,7 +122,7 @@ def _theil_sen(x, y, max_pairs=40000):
     if n == 0:
         return 0.0, 0.0
     if n * (n - 1) // 2 <= max_pairs:
-        i, j = np.triu_indices(n, k=1)
+        i, j = _pairs(n)
     else:
         rng = np.random.default_rng(12345)
         i = rng.integers(0, n, max_pairs)
@@ -137,6 +138,16 @@ def _theil_sen(x, y, max_pairs=40000):
     b = float(np.median(slopes))
     a = float(np.median(y - b * x))
     return a, b
+
+
+@functools.lru_cache(maxsize=16)
+def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """``np.triu_indices(n, k=1)``, kept per n (read-only; the call costs more than a
+    small Theil-Sen fit's arithmetic)."""
+    i, j = np.triu_indices(n, k=1)
+    i.flags.writeable = False
+    j.flags.writeable = False
+    return i, j
 
 
 def _products2(Zt, y):
@@ -860,6 +871,8 @@ def _log_ratio(x, ec50):
 def _logistic_z(x, hill, ec50):
     """z = hill * ln(x/EC50), with the x = 0 limit taken per sign of hill."""
     lr = _log_ratio(x, ec50)
+    if 1e-100 < abs(hill) < 1e100:  # (|lr| < 800: no overflow, no 0 * inf; the usual case)
+        return hill * lr, lr
     with np.errstate(all="ignore"):
         z = hill * lr
     if hill == 0:
@@ -879,7 +892,8 @@ def _logistic_start(x, y):
         v = _median_or(y)
         return v, v + 1.0, 1.0, math.sqrt(xlo * xhi)
     q = max(1, m // 5)
-    y_low, y_high = float(np.median(sy[:q])), float(np.median(sy[-q:]))
+    vals = sy.tolist()  # (short lists: Python's sort, the same medians as np.median)
+    y_low, y_high = _small_median(vals[:q]), _small_median(vals[-q:])
     y_min, y_max = float(np.min(sy)), float(np.max(sy))
     falling = y_low >= y_high
     top, bottom = (y_max, y_min)
@@ -1092,15 +1106,21 @@ def _logistic4():
         g = special.expit(-z)
         gg = g * special.expit(z)
         d = top - bottom
+        # the five sums by one row reduction (the same pairwise sums as np.sum of each
+        # row, so the same numbers; one call instead of six)
+        V = np.empty((5, x.size))
         with np.errstate(invalid="ignore"):
             lr = np.where(gg == 0.0, 0.0, lr)  # (x = 0: gg = 0, lr = -inf)
-            wg = w * gg
-            a = wg * lr  # sum w gg ln(x/EC50)
-            c = wg * (1.0 - 2.0 * g)
-            s_bh, s_be = float(np.sum(a)), -float(np.sum(wg)) * hill / ec50
-            s_hh = d * float(np.sum(c * lr * lr))
-            s_he = d / ec50 * (float(np.sum(wg)) - hill * float(np.sum(c * lr)))
-            s_ee = d * hill / ec50 ** 2 * (hill * float(np.sum(c)) - float(np.sum(wg)))
+            wg = np.multiply(w, gg, out=V[0])
+            np.multiply(wg, lr, out=V[1])  # w gg ln(x/EC50)
+            c = np.multiply(wg, 1.0 - 2.0 * g, out=V[2])
+            np.multiply(c, lr, out=V[3])
+            np.multiply(V[3], lr, out=V[4])
+            s_wg, s_a, s_c, s_cl, s_cll = V.sum(axis=1).tolist()
+        s_bh, s_be = s_a, -s_wg * hill / ec50
+        s_hh = d * s_cll
+        s_he = d / ec50 * (s_wg - hill * s_cl)
+        s_ee = d * hill / ec50 ** 2 * (hill * s_c - s_wg)
         return np.array([[0.0, 0.0, s_bh, s_be],
                          [0.0, 0.0, -s_bh, -s_be],
                          [s_bh, -s_bh, s_hh, s_he],

@@ -213,7 +213,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
     done = False
     smooth = True
     work = _scratch_for(n)  # reused by every pass (fresh large arrays cost page faults)
-    iu, ju = np.triu_indices(k)
+    iu = ju = None  # (upper-triangle indices, for the column products: made when needed)
     Q = None  # products J_i J_j (i <= j): J^T D J is then one matrix-vector product
     constant_J = prob.model.is_linear
     rows = None
@@ -258,6 +258,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
             else:
                 if Q is None or not constant_J:
                     if Q is None:
+                        iu, ju = np.triu_indices(k)
                         Q = work.get("Q", (n, iu.size), "F")
                     for col, (i, j) in enumerate(zip(iu, ju)):
                         np.multiply(J[:, i], J[:, j], out=Q[:, col])
