@@ -162,6 +162,7 @@ def _mad_into(r: np.ndarray, work: _Scratch) -> float:
 _HESSIAN_ROWS_FROM = 200000  # from this many points the Newton matrix uses a subset
 _CURVATURE = True  # Newton proper where the model gives its second derivatives
 _SKIP_TIGHT = True
+_NEWTON_FROM_START = True
 _PRODUCTS_FROM = 2000  # from this many points J^T D J goes by column products
 
 
@@ -405,7 +406,8 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
                      max_iter: int, quick: bool = False) -> tuple[_Inner, float, int]:
     floor = _exact_floor(prob)
     r0 = prob.resid(theta)
-    if mad(r0) <= floor:
+    m0 = mad(r0)
+    if m0 <= floor:
         got = _exact_fit(prob, theta, loss, floor, linear=linear, max_iter=max_iter, total=0)
         if got is not None:
             return got
@@ -419,8 +421,19 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
     # the start scale will move: below 200 points (no Newton step from this solve) the
     # first fit need not be exact either
     first = loose if prob.n >= 200 else dict(loose, xtol=1e-4 if loss.redescending else 1e-2)
-    inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **first)
-    total = inner.n_iter
+    early = None
+    if _NEWTON_FROM_START and prob.n < 200 and not loss.redescending:
+        # a monotone psi below 200 points: the joint Newton iteration below, tried
+        # straight from the start values (it settles in as many passes as from the
+        # first loose fit, which it then saves); where it does not settle, the first
+        # fit and the Newton iteration from there, as before
+        early = _newton_accepted(prob, theta, _safe_scale(m0, r0, prob), loss,
+                                 tol=1e-12, rel=1e-14)
+    if early is None:
+        inner = _irls_lm(prob, theta, loss, s, linear=linear, max_iter=max_iter, **first)
+        total = inner.n_iter
+    else:
+        inner, total = early[0], 0
     if prob.n >= 200:
         # from here Newton on the joint equations settles in a few steps; for a
         # redescending psi its root counts only where the curvature is positive
@@ -450,8 +463,9 @@ def _robust_with_mad(prob: _Problem, theta, loss: Loss, s0: float, *, linear: bo
         # redescending psi: at small n the MAD equations can have several roots a
         # few per cent apart, and Newton may settle on another one than the
         # alternation from the L1-type start, which is the rule.)
-        got = _newton_accepted(prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob),
-                               loss, tol=1e-12, rel=1e-14)
+        got = early if early is not None else _newton_accepted(
+            prob, inner.theta, _safe_scale(mad(inner.r), inner.r, prob), loss, tol=1e-12,
+            rel=1e-14)
         if got is not None:
             g, exact = next_scale(got[0], total)
             if exact is not None:
