@@ -57,3 +57,30 @@ def test_checked_search_finds_the_global_minimum(start):
     if start < 0.05:
         # the local search alone stays in the basin at 0 (the reason for the check)
         assert adaptive._ml_shape_scale(r, start, c, 1e-6 * c, local=True)[0] == 0.0
+
+
+# invented 12-point inhibition curves (doses 0.5 ... 50 in equal steps), a quarter or a
+# tenth of the points gross outliers: the ML shape goes to alpha = 0
+_X12 = np.linspace(0.5, 50.0, 12)
+_Y12 = {
+    "quarter": [143.979198, 67.515587, 77.446873, -14.698251, 41.765932, 19.140079,
+                20.063606, 20.375278, 18.545122, 18.008078, 17.957765, 18.760018],
+    "tenth": [1.588532, 46.96286, 63.738272, 72.312852, 78.495902, 77.323263,
+              77.705873, 107.462243, 79.358821, 79.967917, 82.706261, 81.258436],
+}
+
+
+@pytest.mark.parametrize("which", sorted(_Y12))
+def test_returned_scale_solves_the_likelihood_equation(which):
+    # first-order condition of Barron's NLL in log c at the returned point (check-values
+    # 1.4; stationarity: common practice): n - sum z w(z) = 0 with z = (r/c)^2. The
+    # alternation of (alpha, c) and the parameters converges linearly in c at a fixed
+    # shape; stopped on the NLL's change alone it left |g|/n ~ 1e-6 here
+    import fitcore
+
+    m = fitcore.get_model("logistic4")
+    res = fitcore.fit(m, _X12, np.asarray(_Y12[which]), loss="adaptive")
+    assert res.converged and res.alpha == 0.0
+    r = np.asarray(_Y12[which]) - m.f(_X12, np.asarray(res.values))
+    g = adaptive._nll_slope(r * r, 0.0, math.log(res.scale))[0]
+    assert abs(g) / r.size <= 1e-9
