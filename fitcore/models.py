@@ -470,7 +470,8 @@ def _running_median(v, width):
         return np.nanmedian(windows, axis=1)
     # full windows inside, shrinking ones at the ends (nanmedian is slow on small rows)
     out = np.empty(v.size)
-    out[h:v.size - h] = np.median(np.lib.stride_tricks.sliding_window_view(v, width), axis=1)
+    # (row_medians: np.median(..., axis=1)'s values without its dispatch)
+    out[h:v.size - h] = row_medians(np.lib.stride_tricks.sliding_window_view(v, width))
     # the shrinking end windows (a few values each) by Python's sort: np.median's call
     # costs more than the arithmetic here; the same middle value, or mean of the two
     vals = v.tolist()
