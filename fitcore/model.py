@@ -78,6 +78,12 @@ class Model:
         the robust solvers' Newton steps include this curvature term (without it they
         are Gauss-Newton steps, which converge only linearly when the residuals
         are not small).
+    monotone_in_x
+        True when, for any parameters at which ``f`` is finite at every data point, the
+        curve is continuous and monotone in x between the smallest and the largest of
+        them (the 4PL). The check for a pole or a non-finite value between the points
+        then needs only the points themselves (the curve lies between its values at
+        the two ends).
     guess_search
         Optional ``guess_search(x, y) -> (k,)``: a slower, wider search for start
         values, for a model whose ``guess`` is a quick one. A fit that started from
@@ -100,6 +106,7 @@ class Model:
     f_jac: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]] | None = None
     hess_w: Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray] | None = None
     guess_search: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None
+    monotone_in_x: bool = False
 
     def __post_init__(self):
         names = tuple(self.param_names)

@@ -1147,7 +1147,7 @@ def _logistic4():
     )
     return Model(
         "logistic4", names, f, jac, guess=guess, f_jac=f_jac, hess_w=hess_w,
-        guess_search=guess_search,
+        guess_search=guess_search, monotone_in_x=True,
         lower=(-np.inf, -np.inf, -np.inf, 0.0),
         formula="y = bottom + (top - bottom)/(1 + (x/EC50)**hill)",
         title="Four-parameter logistic (dose-response, x >= 0)",

@@ -149,11 +149,24 @@ class _Problem:
 
     @property
     def lower(self):
-        return np.asarray(self.model.lower, dtype=float)[self.free]
+        """The free parameters' lower bounds (made once; read-only)."""
+        b = self.__dict__.get("_lower")
+        if b is None:
+            b = self._lower = _frozen(np.asarray(self.model.lower, dtype=float)[self.free])
+        return b
 
     @property
     def upper(self):
-        return np.asarray(self.model.upper, dtype=float)[self.free]
+        """The free parameters' upper bounds (made once; read-only)."""
+        b = self.__dict__.get("_upper")
+        if b is None:
+            b = self._upper = _frozen(np.asarray(self.model.upper, dtype=float)[self.free])
+        return b
+
+
+def _frozen(a: np.ndarray) -> np.ndarray:
+    a.flags.writeable = False
+    return a
 
 
 @dataclass

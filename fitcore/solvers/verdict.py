@@ -149,6 +149,18 @@ def _insensitive(prob: _Problem, theta: np.ndarray, J: np.ndarray | None = None)
     judged (their size gives no scale)."""
     if prob.model.is_linear:
         return []
+    # (asked twice of the returned point, as the pole check below: memoised likewise)
+    key = np.asarray(theta, dtype=float).tobytes() if J is None else None
+    memo = getattr(prob, "_insensitive_memo", None)
+    if key is not None and memo is not None and memo[0] == key:
+        return list(memo[1])
+    found = _insensitive_columns(prob, theta, J)
+    if key is not None:
+        prob._insensitive_memo = (key, tuple(found))
+    return found
+
+
+def _insensitive_columns(prob: _Problem, theta: np.ndarray, J: np.ndarray | None) -> list[int]:
     if J is None:
         J = prob.jac(theta)
     with np.errstate(all="ignore"):
@@ -180,6 +192,17 @@ def _pole_search(prob: _Problem, theta: np.ndarray, n_grid: int) -> float | None
     lo, hi = float(np.min(x)), float(np.max(x))
     if not (hi > lo and math.isfinite(hi - lo)):
         return None
+    if prob.model.monotone_in_x and np.isfinite(prob.full(theta)).all():
+        # a curve monotone in x between the points lies between its values at the two
+        # ends, which are data points: finite and within the limit below wherever the
+        # values at the points are finite (else the grid search decides, as for any model)
+        try:
+            with np.errstate(all="ignore"):
+                fx = np.asarray(prob.model.f(x, prob.full(theta)), dtype=float)
+        except Exception:  # noqa: BLE001 - judged by the search below
+            fx = None
+        if fx is not None and fx.shape == x.shape and np.isfinite(fx).all():
+            return None
     grid = np.linspace(lo, hi, n_grid)
     try:
         with np.errstate(all="ignore"):

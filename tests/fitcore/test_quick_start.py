@@ -96,3 +96,31 @@ def test_logistic5_still_starts_from_the_scan():
     x, y = _curve(25, 3)
     m4, m5 = fitcore.get_model("logistic4"), fitcore.get_model("logistic5")
     np.testing.assert_array_equal(m5.guess(x, y), np.append(m4.guess_search(x, y), 1.0))
+
+
+def test_monotone_pole_check_agrees_with_the_grid_search():
+    # common practice (the verdict's own rule): for the 4PL, declared monotone in x, the
+    # pole check from the data points alone must give what the 2001-point grid search
+    # gives, on seeded parameters and doses (x = 0 included; x < 0 is not finite there)
+    from fitcore.solvers.problem import _Problem
+    from fitcore.solvers.verdict import _pole_search
+
+    m4 = fitcore.get_model("logistic4")
+    assert m4.monotone_in_x
+    plain = Model("logistic4_plain", m4.param_names, m4.f, m4.jac, lower=m4.lower)
+    rng = np.random.default_rng(12)
+    negative = 0
+    for t in range(300):
+        n = int(rng.integers(3, 40))
+        x = np.sort(rng.choice([0.0, 1.0], p=[0.2, 0.8]) * 10 ** rng.uniform(-3, 3, n))
+        if t % 10 == 0:
+            x = np.sort(rng.uniform(-5, 50, n))  # some negative doses: not finite there
+        p = np.array([rng.normal(0, 50), rng.normal(100, 50),
+                      rng.choice([-1, 1]) * 10 ** rng.uniform(-2, 2), 10 ** rng.uniform(-4, 4)])
+        y = m4.f(x, p)
+        one = np.broadcast_to(1.0, (n,))
+        fast = _pole_search(_Problem(m4, x, y, one, np.ones(4, bool), p, unit=True), p, 2001)
+        grid = _pole_search(_Problem(plain, x, y, one, np.ones(4, bool), p, unit=True), p, 2001)
+        assert fast == grid, (x, p)
+        negative += grid is not None
+    assert negative > 0  # (the grid search did find the non-finite stretch x < 0)
