@@ -198,13 +198,16 @@ def _import_fitting_later(app) -> None:
 
     from PySide6.QtCore import QTimer
 
+    from . import gui_gc
+
     def load():
-        try:
-            import scipy.linalg  # lazy: after the first paint (see above)
-            import scipy.optimize  # lazy: after the first paint (see above)
-            import scipy.special  # noqa: F401 - lazy: after the first paint (see above)
-        except Exception:  # noqa: BLE001 - a fit imports them itself and reports what fails
-            pass
+        with gui_gc.worker():  # the GUI thread's garbage collection waits for these imports
+            try:
+                import scipy.linalg  # lazy: after the first paint (see above)
+                import scipy.optimize  # lazy: after the first paint (see above)
+                import scipy.special  # noqa: F401 - lazy: after the first paint (see above)
+            except Exception:  # noqa: BLE001 - a fit imports them itself and reports what fails
+                pass
 
     # a moment after the loop starts: the window's first paint (and the bench hook's report,
     # which runs at 0 ms) do not share the interpreter lock with the imports

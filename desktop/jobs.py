@@ -36,7 +36,7 @@ from typing import Any
 
 from PySide6.QtCore import QCoreApplication, QDeadlineTimer, QObject, QRunnable, QThreadPool, Signal, Slot
 
-from . import job_kinds
+from . import gui_gc, job_kinds
 from .job_kinds import Cancelled, TimeLimit, internal_error
 
 log = logging.getLogger(__name__)
@@ -99,10 +99,11 @@ class _Task(QRunnable):
             _emit(self.bridge.progress, self.args[0], int(done), int(total if total is not None else 0))
 
     def run(self):
-        try:
-            out = _outcome(*self.args, self.stop, self._progress)
-        except BaseException as err:  # noqa: BLE001 - nothing may escape into Qt's thread pool: the job would never end
-            out = (self.args[0], None, internal_error(err), False, 0.0)
+        with gui_gc.worker():  # the GUI thread's garbage collection waits for this Python work
+            try:
+                out = _outcome(*self.args, self.stop, self._progress)
+            except BaseException as err:  # noqa: BLE001 - nothing may escape into Qt's thread pool: the job would never end
+                out = (self.args[0], None, internal_error(err), False, 0.0)
         _emit(self.bridge.done, *out)
 
 

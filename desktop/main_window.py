@@ -23,7 +23,7 @@ from fitcore.losses import loss_phrase
 from fitcore.report import loss_title, point_label
 from fitcore.model_choice import fit_problem
 
-from . import dialogs, pane_layout
+from . import dialogs, gui_gc, pane_layout
 from .banner import Banner
 from .commands import MaskCommand, SettingsCommand
 from .compare_view import CompareView
@@ -71,6 +71,7 @@ class MainWindow(QMainWindow):
 
     def __init__(self, qsettings: QSettings | None = None, parent=None, recovery_dir=None):
         super().__init__(parent)
+        gui_gc.install()  # cyclic garbage (closed windows' widgets) collected on this thread only
         self.setWindowTitle("Ballast")
         self.qsettings = qsettings if qsettings is not None else QSettings("Ballast", "Ballast")
         self.document = Document()

@@ -49,3 +49,20 @@ def work_strategies():
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     return module
+
+
+@pytest.fixture(autouse=True)
+def automatic_garbage_collection_outside_windows(request):
+    """A window (desktop.gui_gc) switches Python's automatic garbage collector off for the
+    process and collects from a GUI-thread timer; tests that run no event loop (the
+    library's, after window tests in the same run) get the automatic collector back."""
+    import sys
+
+    gui_gc = sys.modules.get("desktop.gui_gc")
+    try:
+        area = Path(str(request.node.fspath)).resolve().relative_to(ROOT / "tests").parts[0]
+    except (ValueError, IndexError):
+        area = ""
+    if gui_gc is not None and area != "desktop":
+        gui_gc.uninstall()
+    yield
