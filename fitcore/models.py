@@ -46,7 +46,8 @@ import numpy as np
 from ._lazy import LazyModule
 
 from .model import Derived, Model, linear_model
-from .scale import MAD_CONSTANT, huber_weights, mad_about_median, row_medians, tukey_weights
+from .scale import (MAD_CONSTANT, huber_weights, mad_about_median, median, row_medians,
+                    tukey_weights)
 
 special = LazyModule("scipy.special", globals())  # lazy: 0.3 s to import, needed once results are made
 
@@ -135,8 +136,10 @@ def _theil_sen(x, y, max_pairs=40000):
     slopes = slopes[np.isfinite(slopes)]
     if slopes.size == 0:
         return float(np.median(y)), 0.0
-    b = float(np.median(slopes))
-    a = float(np.median(y - b * x))
+    # (scale.median: np.median's value for finite data, without its dispatch)
+    b = median(slopes)
+    v = y - b * x
+    a = median(v) if np.isfinite(v).all() else float(np.median(v))
     return a, b
 
 
@@ -905,7 +908,7 @@ def _logistic_start(x, y):
     F = (y - bottom) / (top - bottom)
     sel = (x > 0) & (F > 0.05) & (F < 0.95)
     hill, ec50 = hill_sign, math.sqrt(xlo * xhi)
-    if np.count_nonzero(sel) >= 2 and np.unique(x[sel]).size >= 2:
+    if np.count_nonzero(sel) >= 2 and np.ptp(x[sel]) > 0:  # (two distinct x at least)
         lx = np.log(x[sel])
         t = np.log(1.0 / F[sel] - 1.0)
         a0, h = _theil_sen(lx, t)
