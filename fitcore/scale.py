@@ -35,13 +35,20 @@ def median(v, overwrite: bool = False) -> float:
 
     One selection (``partition`` at the upper middle) and, for even sizes, the
     maximum of the lower half: numpy's two-index partition is several times slower
-    on large arrays. ``overwrite=True`` lets the array be reordered in place.
+    on large arrays. ``overwrite=True`` lets the array be reordered in place. From
+    ``SELECT_FROM`` values the middle ones come from :func:`order_stats` (``v`` is
+    then left as it is).
     """
     v = np.asarray(v, dtype=float)
     n = v.size
     if n == 0:
         return float("nan")
     h = n // 2
+    if n >= SELECT_FROM:
+        got = order_stats(v, (h,) if n % 2 else (h - 1, h))
+        if n % 2:
+            return float(got[0])
+        return 0.5 * (float(got[0]) + float(got[1]))
     if overwrite:
         v.partition(h)
         p = v
@@ -51,6 +58,64 @@ def median(v, overwrite: bool = False) -> float:
     if n % 2:
         return upper
     return 0.5 * (float(p[:h].max()) + upper)
+
+
+#: from this many values :func:`median` selects by :func:`order_stats`
+SELECT_FROM = 2000
+_SAMPLE = 4096  # about this many values of a strided sample place the bracket
+
+
+def order_stats(v, ranks) -> np.ndarray:
+    """The values of the given ranks (0-based, ascending; NaN sorts last, as in
+    ``np.sort``) of a 1-d float array, exactly: ``np.partition(v, ranks)[ranks]``.
+    ``v`` is not modified.
+
+    On large arrays one selection over all values (~1.2 ms at 1e5 with numpy's
+    partition) is replaced by a bracket from a strided sample (Floyd and Rivest,
+    CACM 18, 1975): values of the sample's ranks a few binomial standard deviations
+    either side of the wanted ones bound the wanted order statistics; two comparisons
+    over all values check that (counts) and gather the few per cent in between, whose
+    selection gives the exact values. If the bracket misses (rare: a sample that does
+    not represent the array), the plain partition runs.
+    """
+    v = np.asarray(v, dtype=float)
+    ranks = [int(k) for k in ranks]
+    n = v.size
+    lo_k, hi_k = min(ranks), max(ranks)
+    step = n // _SAMPLE
+    if step >= 4:
+        sample = v[::step].copy()
+        m = sample.size
+        margin = 2.0 * math.sqrt(m)  # 4 binomial SDs of a rank in the sample (SD <= sqrt(m)/2)
+        i_lo = int(math.floor(lo_k * m / n - margin))
+        i_hi = int(math.ceil(hi_k * m / n + margin))
+        at = [i for i in (i_lo, i_hi) if 0 <= i < m]
+        if at:
+            sample.partition(_two_or_more(at, m))
+        lo = float(sample[i_lo]) if 0 <= i_lo < m else -math.inf
+        hi = float(sample[i_hi]) if 0 <= i_hi < m else math.inf
+        if not (math.isnan(lo) or math.isnan(hi)):
+            inside = v < lo
+            below = int(np.count_nonzero(inside))
+            np.logical_not(inside, out=inside)
+            inside &= v <= hi  # (NaN compares False: not inside, above, as it sorts last)
+            mid = np.compress(inside, v)
+            if below <= lo_k and below + mid.size > hi_k:
+                rel = [k - below for k in ranks]
+                mid.partition(_two_or_more(rel, mid.size))
+                return mid[rel]
+    p = np.partition(v, _two_or_more(ranks, n))
+    return p[ranks]
+
+
+def _two_or_more(ranks, n):
+    """``ranks`` with a neighbour added where there is one rank only: numpy (2.x, x86)
+    selects a single rank by another algorithm that is 5-10x slower on arrays of some
+    thousand values than its selection of several (same values either way)."""
+    if len(ranks) > 1 or n < 2:
+        return ranks
+    k = ranks[0]
+    return [k, k + 1] if k + 1 < n else [k - 1, k]
 
 
 def row_medians(v) -> np.ndarray:

@@ -12,7 +12,7 @@ import math
 import numpy as np
 
 from ..losses import Loss, get_loss
-from ..scale import MAD_CONSTANT, mad, median, proposal2_scale
+from ..scale import MAD_CONSTANT, SELECT_FROM, mad, median, order_stats, proposal2_scale
 from .l1 import _l1_linear_start
 from .lm import _irls_lm, _judged
 from .problem import (_exact_floor, _Inner, _Problem, _project, _safe_scale, _Scratch,
@@ -113,6 +113,8 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True,
         return np.empty(size) if work is None else work.get(name, (size,))
 
     a = np.abs(r, out=buf("mad_a", n))
+    if n >= SELECT_FROM:
+        return _mad_and_gradient_large(r, J, a, smooth, step, m, w, buf)
     if keep_order:
         p = buf("mad_p", n)
         p[...] = a
@@ -146,6 +148,31 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True,
         vals = [upper] if n % 2 else [float(p[:h].max()), upper]
         # the points that attain the middle values (a tie picks the first; the gradient
         # is then one of the equally valid one-sided ones)
+        idx = np.array([int(np.flatnonzero(a == v)[0]) for v in vals])
+    grad = -(np.sign(r[idx]) @ J[idx]) / idx.size
+    return MAD_CONSTANT * med, MAD_CONSTANT * grad
+
+
+def _mad_and_gradient_large(r, J, a, smooth, step, m, w, buf):
+    """:func:`_mad_and_gradient` from ``SELECT_FROM`` points: the same order
+    statistics (so the same numbers) by :func:`~fitcore.scale.order_stats`, which
+    leaves ``a = |r|`` in point order and costs a tenth of the partitions."""
+    n = r.size
+    h = n // 2
+    got = order_stats(a, (h,) if n % 2 else (h - 1, h))
+    upper = float(got[-1])
+    med = upper if n % 2 else 0.5 * (float(got[0]) + upper)
+    if not math.isfinite(med):
+        return math.nan, np.full(J.shape[1], math.nan)
+    if smooth:
+        if step == 1:
+            at, hm = a, h
+        else:
+            at, hm = np.abs(r[::step], out=buf("mad_at", m)), m // 2
+        lo, hi = order_stats(at, (hm - w, hm + w))
+        idx = np.flatnonzero((at >= lo) & (at <= hi)) * step
+    else:
+        vals = [upper] if n % 2 else [float(got[0]), upper]
         idx = np.array([int(np.flatnonzero(a == v)[0]) for v in vals])
     grad = -(np.sign(r[idx]) @ J[idx]) / idx.size
     return MAD_CONSTANT * med, MAD_CONSTANT * grad

@@ -96,3 +96,39 @@ def test_proposal2_scale_equals_statsmodels_huber_scale():
                                                       rel=1e-9)
     # no degrees of freedom or no start: the start is returned as it is
     assert scale.proposal2_scale(r[:1], h, 0.7, 1) == 0.7
+
+
+def _large_arrays():
+    rng = np.random.default_rng(21)
+    yield np.abs(rng.standard_t(3, size=100_000))            # MAD-like, heavy tails
+    yield rng.normal(size=100_001)                            # odd size
+    yield np.round(rng.normal(size=50_000), 1)                # many ties
+    yield np.sort(rng.normal(size=30_000))[::-1].copy()       # ordered
+    v = rng.normal(size=80_000)
+    v[rng.random(v.size) < 0.1] = np.nan                      # NaN sorts last
+    v[:7] = np.inf
+    v[7:14] = -np.inf
+    yield v
+    # period of the sample's stride: the strided sample sees one value only, its
+    # bracket misses, and the plain selection must answer
+    yield np.tile(np.arange(24.0), 4_167)  # (100 008 values: stride 24)
+    yield np.where(rng.random(40_000) < 0.7, 0.0, 1.0)       # two values
+    yield rng.normal(size=5_000)                              # below the bracket's size
+
+
+@pytest.mark.parametrize("k", range(8))
+def test_order_stats_equal_numpy_partition(k):
+    # numpy's partition (and sort) is the reference: the values of the wanted ranks,
+    # exactly, NaN last; the input is left as it was
+    v = list(_large_arrays())[k]
+    n = v.size
+    ref = np.sort(v)
+    before = v.copy()
+    for ranks in ([n // 2], [n // 2 - 1, n // 2], [0], [n - 1], [n // 3, n // 2 + 700],
+                  [n // 2 - n // 40, n // 2 + n // 40], [int(0.9 * n)]):
+        got = scale.order_stats(v, ranks)
+        np.testing.assert_array_equal(got, ref[ranks])
+    np.testing.assert_array_equal(v, before)
+    if not np.isnan(v).any():
+        assert scale.median(v) == np.median(v)
+        assert scale.median(v.copy(), overwrite=True) == np.median(v)
