@@ -410,15 +410,17 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
             prev = (l_in, h)
         else:
             prev = None
+        move = (math.inf if solved is None
+                else max(abs(a_new - solved[0]), abs(math.log(c) - solved[1])))
         alpha = a_new
         solved = (alpha, math.log(c))
         loss = get_loss("general", tuning=1.0, alpha=alpha)
-        # loose solves while (alpha, c) still move (the first, from the pseudo-Huber
-        # start to the first ML shape, to a step of 1e-4 only: ~15 -> ~6 passes); the
-        # solve after the loop is the full-accuracy one (polished) at the final shape
-        # and scale
+        # loose solves while (alpha, c) still move: to a step of 1/100 of their move
+        # (between 1e-9 and 1e-4; the first, from the pseudo-Huber start to the first
+        # ML shape, to 1e-4: ~15 -> ~6 passes); the solve after the loop is the
+        # full-accuracy one (polished) at the final shape and scale
         inner = _irls_lm(prob, inner.theta, loss, c, linear=linear, max_iter=max_iter,
-                         xtol=1e-4 if round_ == 0 else 1e-9, ftol=1e-12,
+                         xtol=min(1e-4, max(1e-9, 0.01 * move)), ftol=1e-12,
                          polish_steps=False, check=False,
                          near=nll_old < math.inf or warm is not None)
         total += inner.n_iter
