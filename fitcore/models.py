@@ -46,7 +46,7 @@ import numpy as np
 from ._lazy import LazyModule
 
 from .model import Derived, Model, linear_model
-from .scale import (MAD_CONSTANT, huber_weights, mad_about_median, median, row_medians,
+from .scale import (HUBER_K, MAD_CONSTANT, huber_weights, mad_about_median, median, row_medians,
                     tukey_weights)
 
 special = LazyModule("scipy.special", globals())  # lazy: 0.3 s to import, needed once results are made
@@ -198,10 +198,15 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     def wls(w):
         # small, column-scaled normal equations are ample for a start value; fall back
         # to an orthogonal solve when they are singular
-        if kk == 2:  # Cramer's rule, the same arithmetic as the stacked version
-            c, ok = _cramer2(products, w[None])
-            if ok[0]:
-                return c[0]
+        if kk == 2:
+            # Cramer's rule, the same arithmetic as the stacked version (_cramer2: the
+            # same sums, then the same IEEE operations on Python floats)
+            a, b, d, p, q = np.einsum("gjn,gn->jg", products, w[None]).ravel().tolist()
+            det = a * d - b * b
+            if det != 0.0:
+                c0, c1 = (d * p - b * q) / det, (a * q - b * p) / det
+                if math.isfinite(c0) and math.isfinite(c1) and abs(det) > 1e-10 * (a * d):
+                    return np.array([c0, c1])
             sw = np.sqrt(w)
             return np.linalg.lstsq(As * sw[:, None], y * sw, rcond=None)[0]
         Aw = As * w[:, None]
@@ -225,7 +230,7 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
                 break
             u = np.abs(r) / s
             if it < n_huber:
-                w = huber_weights(u)
+                w = np.minimum(HUBER_K / u, 1.0)  # (huber_weights, in this errstate)
             else:
                 w = tukey_weights(u)
             if np.count_nonzero(w) <= kk:
