@@ -107,8 +107,12 @@ def fit(model, x, y, loss: str = "l2", *, scale="auto", alpha=None, sigma=None,
     rule = None
     if weighting is not None:
         sigma, sigma_mode, rule = _weighting.prepare_for_fit(weighting, x, y, sigma, sigma_mode, excluded)
-    # small problems run with one BLAS thread (fitcore.threads; ~4 parameters assumed)
-    with small_problem(np.size(x) * 4):
+    # every fit runs with one BLAS thread (fitcore.threads): the engine's products are
+    # of tall matrices a few columns wide, bound by memory, not arithmetic; measured on
+    # 2 shared cores under load (issue 12), two threads took 2-6x the CPU time and
+    # 1.1-4x the wall time of one for robust decays at 1e5 and 1e6 points and for
+    # least-squares and Huber lines and cubics at 1e6
+    with small_problem():
         setup = _prepare(model, x, y, loss, scale=scale, alpha=alpha, sigma=sigma,
                          excluded=excluded, p0=p0, fixed=fixed, tuning=tuning,
                          sigma_mode=sigma_mode, max_iter=max_iter)

@@ -45,3 +45,32 @@ def test_concurrent_users_restore_once():
             t.join(5)
             assert set(_blas_threads()) == {1}
         assert max(_blas_threads()) == 2
+
+
+def test_a_large_fit_runs_with_one_thread():
+    """fit() of a problem above ``SMALL`` Jacobian entries also runs with one BLAS
+    thread (its products are of tall, narrow matrices; issue 12's measurements) and
+    restores the count after. (Common practice: the count read inside the model.)"""
+    import numpy as np
+
+    import fitcore
+    from fitcore.model import Model
+
+    if not threads._blas_libraries():
+        pytest.skip("threadpoolctl finds no BLAS library here")
+    seen = []
+
+    def f(x, p):
+        seen.append(max(_blas_threads()))
+        return p[0] + p[1] * x
+
+    def jac(x, p):
+        return np.column_stack([np.ones_like(x), x])
+
+    line = Model("traced_line", ("a", "b"), f, jac, guess=lambda x, y: np.array([0.0, 1.0]))
+    n = threads.SMALL  # x 2 parameters: above SMALL entries
+    x = np.linspace(0.0, 1.0, n)
+    with threadpool_limits(limits=2, user_api="blas"):
+        fitcore.fit(line, x, 1.0 + 2.0 * x, loss="huber")
+        assert max(_blas_threads()) == 2
+    assert seen and set(seen) == {1}
