@@ -391,6 +391,7 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
     nll_old = math.inf
     prof = None
     solved = None  # (alpha, log c) of the last solve
+    flat = False  # (the NLL changed by <= 1e-11 relative in the last round)
     prev = None  # (log c, g(log c) - log c) of the solve before it, at the same shape
     for round_ in range(60):
         a_new, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor,
@@ -403,6 +404,8 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
             # step on g(l) - l (extrapolating at most 20 moves ahead: bigger jumps of
             # the scale can take the parameters to another minimum)
             l_in, h = solved[1], math.log(c) - solved[1]
+            if flat and abs(h) <= 1e-9:
+                break  # (the stopping rule below, one solve earlier: the scale stays)
             if prev is not None and abs(h) < 0.05 and 0.0 < h / prev[1] < 0.95:
                 cand = l_in + h / (1.0 - h / prev[1])
                 if math.exp(cand) > c_floor:
@@ -427,8 +430,8 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
         nll = _nll(inner.r, alpha, math.log(c))
         # (at an unchanged shape also the scale's move: the NLL is flat to second
         # order around its minimum, so its change alone stopped with log c ~1e-6 off)
-        if (abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0)
-                and (prev is None or abs(prev[1]) <= 1e-9)):
+        flat = abs(nll_old - nll) <= 1e-11 * max(abs(nll), 1.0)
+        if flat and (prev is None or abs(prev[1]) <= 1e-9):
             break
         nll_old = nll
     alpha, c, nll, prof = _ml_shape_scale(inner.r, alpha, c, c_floor, near=True, checked=True)
