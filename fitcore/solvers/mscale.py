@@ -191,6 +191,7 @@ _CURVATURE = True  # Newton proper where the model gives its second derivatives
 _SKIP_TIGHT = True
 _NEWTON_FROM_START = True
 _PRODUCTS_FROM = 2000  # from this many points J^T D J goes by column products
+_OBJECTIVE_CHUNK = 8192  # the final objective over more points is summed in pieces
 
 
 def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int = 30,
@@ -232,7 +233,13 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
 
     def _converged(theta, r, s, u, psi, dpsi):
         with np.errstate(all="ignore"):
-            obj = loss.sum_rho(u, psi)
+            if n <= _OBJECTIVE_CHUNK:
+                obj = loss.sum_rho(u, psi)
+            else:
+                # in pieces: the temporaries of rho over all points would be fresh
+                # arrays as large as the data (page faults), pieces reuse small ones
+                c = _OBJECTIVE_CHUNK
+                obj = math.fsum(loss.sum_rho(u[i:i + c], psi[i:i + c]) for i in range(0, n, c))
         obj = obj if math.isfinite(obj) else math.inf
         stats = {"psi": psi, "dpsi": dpsi, "u": u, "s": s}  # (u = r / s)
         return _Inner(theta, r, obj, it, True, "converged", stats)

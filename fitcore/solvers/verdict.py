@@ -207,15 +207,23 @@ def _pole_search(prob: _Problem, theta: np.ndarray, n_grid: int) -> float | None
     try:
         with np.errstate(all="ignore"):
             f = np.asarray(prob.model.f(grid, prob.full(theta)), dtype=float)
-            fx = np.asarray(prob.model.f(x, prob.full(theta)), dtype=float)
+            # (the values at the points from the solver's last pass where it kept them:
+            # on large data a fresh evaluation and its arrays cost as much as the check)
+            fx = prob.kept_f(theta)
+            if fx is None:
+                fx = np.asarray(prob.model.f(x, prob.full(theta)), dtype=float)
     except Exception:  # noqa: BLE001 - a model that cannot take the grid is not judged
         return None
     if f.shape != grid.shape:
         return None
     ys = prob.y
-    span = float(np.max(ys) - np.min(ys)) if ys.size else 0.0
-    level = float(np.max(np.abs(ys))) + span
-    fx_level = float(np.max(np.abs(fx))) if np.all(np.isfinite(fx)) else math.inf
+    # (largest |value| as the larger of max and -min: no array of absolute values)
+    y_hi, y_lo = (float(np.max(ys)), float(np.min(ys))) if ys.size else (0.0, 0.0)
+    span = y_hi - y_lo
+    level = max(y_hi, -y_lo) + span
+    with np.errstate(invalid="ignore"):
+        f_hi, f_lo = (float(np.max(fx)), float(np.min(fx))) if fx.size else (0.0, 0.0)
+    fx_level = max(f_hi, -f_lo) if math.isfinite(f_hi) and math.isfinite(f_lo) else math.inf
     limit = 1e3 * max(level, fx_level, 1e-300)
     bad = ~np.isfinite(f) | (np.abs(f) > limit)
     if not np.any(bad):
