@@ -1063,6 +1063,9 @@ def _GUESS_LEVELS(step_e):
     return ((1.3, step_e),)
 
 
+_SHARE_MAX = 2000  # (the 4PL's f_jac keeps its intermediate arrays up to this size)
+
+
 def _logistic4():
     names = ("bottom", "top", "hill", "EC50")
 
@@ -1082,16 +1085,25 @@ def _logistic4():
             de = d * gg * hill / ec50
         return np.column_stack([1.0 - g, g, dh, de])
 
+    # ln(x/EC50), g and g (1 - g) of the last f_jac call on at most _SHARE_MAX points,
+    # for hess_w at the same x (the same array object, which the solvers never change)
+    # and parameters: they ask for both at one point in turn (a tuple, replaced whole:
+    # safe across threads)
+    shared = [None]
+
     def f_jac(x, p, out=None):
         # f and jac above with z and g computed once (the same arithmetic, the same
         # numbers); ``out`` = (f, J) to fill, J column-major (n, 4)
         bottom, top, hill, ec50 = p
+        x_in = x
         x = np.asarray(x, dtype=float).ravel()
         z, lr = _logistic_z(x, hill, ec50)
         g = special.expit(-z)
         d = top - bottom
         fx = bottom + d * g
         gg = g * special.expit(z)
+        if x.size <= _SHARE_MAX:
+            shared[0] = (x_in, (bottom, top, hill, ec50), lr, g, gg)
         with np.errstate(invalid="ignore"):
             dh = np.where(gg == 0.0, 0.0, -d * gg * lr)
             de = d * gg * hill / ec50
@@ -1110,14 +1122,18 @@ def _logistic4():
         # gg = g (1 - g), d = top - bottom: dg/dz = -gg, dgg/dz = -gg (1 - 2g),
         # dz/dhill = ln(x/EC50), dz/dEC50 = -hill/EC50; the (bottom, top) block is 0
         bottom, top, hill, ec50 = p
-        x = np.asarray(x, dtype=float).ravel()
-        z, lr = _logistic_z(x, hill, ec50)
-        g = special.expit(-z)
-        gg = g * special.expit(z)
+        kept = shared[0]
+        if kept is not None and kept[0] is x and kept[1] == (bottom, top, hill, ec50):
+            lr, g, gg = kept[2:]  # (f_jac's arrays at this point: the same numbers)
+        else:
+            x = np.asarray(x, dtype=float).ravel()
+            z, lr = _logistic_z(x, hill, ec50)
+            g = special.expit(-z)
+            gg = g * special.expit(z)
         d = top - bottom
         # the five sums by one row reduction (the same pairwise sums as np.sum of each
         # row, so the same numbers; one call instead of six)
-        V = np.empty((5, x.size))
+        V = np.empty((5, lr.size))
         with np.errstate(invalid="ignore"):
             lr = np.where(gg == 0.0, 0.0, lr)  # (x = 0: gg = 0, lr = -inf)
             wg = np.multiply(w, gg, out=V[0])
