@@ -41,6 +41,7 @@ import numpy as np
 from ._lazy import LazyModule
 
 from .losses import Loss
+from .solvers import small_la
 from .scale import psi_slope_at_normal, psi_variance_at_normal
 
 optimize = LazyModule("scipy.optimize", globals())  # lazy: 0.4 s to import, needed once a fit runs
@@ -54,6 +55,9 @@ RECIPE_M_ABS = ("model-based, absolute sigma: s^2 E[psi^2]/E[psi']^2 (J^T W J)^-
 RECIPE_SANDWICH = "sandwich: s^2 A^-1 B A^-1 n/(n - p), A = sum psi' J J^T, B = sum psi^2 J J^T"
 RECIPE_L1 = ("L1: tau^2 (J^T J)^-1, tau = 1/(2 f(0)); sparsity 1/f(0) from the nonzero "
              "residuals nearest 0 (Koenker's iid recipe, Hall-Sheather bandwidth)")
+
+
+_EPS = float(np.finfo(float).eps)
 
 
 class RankDeficient(Exception):
@@ -106,15 +110,18 @@ def inv_jtj(J: np.ndarray, rcond: float | None = None) -> np.ndarray:
             return np.linalg.inv(G) / np.outer(d, d)
     # column scaling makes the rank decision independent of parameter units
     d = np.sqrt(np.einsum("ij,ij->j", J, J))
-    if np.any(d == 0) or not np.all(np.isfinite(d)):
+    if not (d.all() and np.isfinite(d).all()):  # (a zero or non-finite column)
         raise RankDeficient("a parameter has no effect on the model at the solution")
     Js = J / d
-    U, sv, Vt = np.linalg.svd(Js, full_matrices=False)
-    tol = (rcond if rcond is not None else max(n, p) * np.finfo(float).eps) * sv[0]
+    # (numpy.linalg.svd's own LAPACK call without its wrapper's overhead: the same numbers)
+    U, sv, Vt = small_la.svd_thin(Js)
+    if not np.isfinite(sv).all():
+        raise np.linalg.LinAlgError("SVD did not converge")  # (as numpy.linalg.svd raises)
+    tol = (rcond if rcond is not None else max(n, p) * _EPS) * float(sv[0])
     if sv[-1] <= tol:
         raise RankDeficient("the parameters are not all identifiable (rank-deficient Jacobian)")
     V = Vt.T / sv
-    return (V @ V.T) / np.outer(d, d)
+    return (V @ V.T) / (d[:, None] * d)  # (np.outer(d, d))
 
 
 def cov_least_squares(J, r, dof: int, absolute: bool = False, inv_jtj=None):
@@ -145,7 +152,8 @@ def cov_m_estimate(J, u, s: float, loss: Loss, dof: int, recipe: str = "auto", *
         psi = loss.psi(u)
     if dpsi is None:
         dpsi = loss.dpsi(u)
-    m = float(np.mean(dpsi))
+    dpsi = np.asarray(dpsi, dtype=float)
+    m = float(dpsi.sum()) / n  # (np.mean: the same sum and division)
     sig2_psi = s * s * float(psi @ psi) / dof if dof > 0 else float("nan")
     if recipe in ("auto", "H1") and m > 0.05:
         var_dpsi = max(float(dpsi @ dpsi) / n - m * m, 0.0)

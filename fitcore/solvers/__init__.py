@@ -13,5 +13,7 @@ Modules, in the order a fit passes through them:
   the scale tied to the MAD, exact fits;
 * :mod:`.adaptive` - the adaptive loss (maximum-likelihood shape and scale);
 * :mod:`.large` - subsamples and the staged warm start for large data;
-* :mod:`.assemble` - covariance and the per-point values of the ``FitResult``.
+* :mod:`.assemble` - covariance and the per-point values of the ``FitResult``;
+* :mod:`.small_la` - numpy.linalg's solve, inverse, QR and SVD for the k x k work of
+  small fits, without the wrappers' overhead (the same numbers).
 """

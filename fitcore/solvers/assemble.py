@@ -105,11 +105,15 @@ def _assemble(st: _Setup, out: _Outcome) -> FitResult:
     theta, r = inner.theta, inner.r
     p_full = prob.full(theta)
     cov_free, recipe, converged, message = _covariance(st, out, theta, r)
-    cov = np.zeros((mdl.n_params, mdl.n_params))
-    idx = np.flatnonzero(free)
-    cov[np.ix_(idx, idx)] = cov_free
-    stderr = np.sqrt(np.maximum(np.diag(cov), 0.0))
-    stderr[np.isnan(np.diag(cov))] = np.nan
+    if cov_free.shape[0] == mdl.n_params:  # every parameter free: the matrix as it is
+        cov = np.array(cov_free, dtype=float)
+    else:
+        cov = np.zeros((mdl.n_params, mdl.n_params))
+        idx = np.flatnonzero(free)
+        cov[np.ix_(idx, idx)] = cov_free
+    var = cov.diagonal()
+    stderr = np.sqrt(np.maximum(var, 0.0))
+    stderr[np.isnan(var)] = np.nan
 
     # per point
     x, y, sig_all, all_used, linear = st.x, st.y, st.sig_all, st.all_used, st.linear

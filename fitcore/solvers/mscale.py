@@ -15,6 +15,7 @@ from ..losses import Loss, get_loss
 from ..scale import MAD_CONSTANT, SELECT_FROM, mad, median, order_stats, proposal2_scale
 from .l1 import _l1_linear_start
 from .lm import _irls_lm, _judged
+from . import small_la
 from .problem import (_exact_floor, _Inner, _Problem, _project, _safe_scale, _Scratch,
                       _sample_rows, _scratch_for, _start_scale)
 
@@ -304,7 +305,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
                 G[ju, iu] = G[iu, ju]
             F = psi @ J
             if with_mad:
-                M = G + np.outer(np.multiply(dpsi, u, out=pd_out[2]) @ J, g)
+                M = G + (np.multiply(dpsi, u, out=pd_out[2]) @ J)[:, None] * g  # (np.outer)
             else:
                 M = G
             if curvature and not smooth:
@@ -316,32 +317,33 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
                 H = prob.hess_w(theta, psi)
                 if H is not None:
                     M = M - s * H
-        d = np.sqrt(np.abs(np.diag(M))) + 1e-300
+        d = np.sqrt(np.abs(M.diagonal())) + 1e-300
         Fd = F / d
-        norm = float(np.linalg.norm(Fd))
+        norm = math.sqrt(float(Fd @ Fd))  # (np.linalg.norm of a vector: the same number)
         if not math.isfinite(norm) or norm > 4.0 * norm_prev:
             return None
         norm_prev = norm
-        try:
-            step = s * np.linalg.solve(M / d / d[:, None], Fd) / d
-        except np.linalg.LinAlgError:
-            return None
-        if not np.all(np.isfinite(step)):
+        # (small_la: numpy.linalg's own LAPACK calls without its wrappers; NaN where
+        # singular, which numpy.linalg raises for)
+        step = s * small_la.solve(M / d / d[:, None], Fd) / d
+        if not np.isfinite(step).all():
             return None
         new_theta = _project(theta + step, lower, upper)
         step = new_theta - theta
         # step size in units of each parameter's standard error, s sqrt(diag G^-1)
         # (G = J^T D J; correlated parameters have far larger errors than 1/sqrt(G_jj))
-        try:
-            se = s * np.sqrt(np.abs(np.diag(np.linalg.inv(G / d / d[:, None])))) / d
-        except np.linalg.LinAlgError:
-            se = s / d
-        a_step = np.abs(step)
-        in_se = np.divide(a_step, se, out=np.full(k, np.inf), where=se > 0)
-        rel = a_step <= rel_tol * np.abs(theta)
+        Gi = small_la.inv(G / d / d[:, None])
+        se = s * np.sqrt(np.abs(Gi.diagonal())) / d if np.isfinite(Gi).all() else s / d
         # the largest step in standard errors among the parameters not already within
-        # ``rel`` of their value (each test below: all(rel | in_se <= limit))
-        worst = float(np.max(np.where(rel, 0.0, in_se)))
+        # ``rel`` of their value (each test below: all(rel | in_se <= limit)); on the
+        # k floats (a handful of numpy calls on k-vectors cost more)
+        worst = 0.0
+        for a_j, se_j, t_j in zip(np.abs(step).tolist(), se.tolist(), theta.tolist()):
+            if a_j <= rel_tol * abs(t_j):
+                continue
+            v = a_j / se_j if se_j > 0 else math.inf
+            if v > worst:
+                worst = v
         if worst <= 0.1 * tol:
             # the step to the root is negligible (1e-5 standard errors by default): this
             # iterate is the solution, with its scale and psi exactly its own, and no

@@ -33,6 +33,7 @@ import math
 import numpy as np
 
 from ..losses import Loss
+from . import small_la
 from .problem import _Problem
 
 COSINE_TOL = 1e-8
@@ -52,27 +53,68 @@ def _first_order(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | 
         J = prob.jac(theta)
     with np.errstate(all="ignore"):
         psi = r if loss is None else loss.psi(r / s)
-        if not (np.all(np.isfinite(J)) and np.all(np.isfinite(psi))):
+        if not (np.isfinite(J).all() and np.isfinite(psi).all()):
             return False, math.inf, 0
-        norm_psi = float(np.linalg.norm(psi))
+        norm_psi = math.sqrt(float(psi @ psi))  # (np.linalg.norm: the same number)
         if norm_psi == 0.0:
             return True, 0.0, 0
         g = psi @ J
         cols = np.sqrt(np.einsum("ij,ij->j", J, J))
-        cos = np.where(cols > 0, np.abs(g) / (cols * norm_psi), 0.0)
-    lower, upper = prob.lower, prob.upper
-    span = 1e-10 * np.maximum(np.abs(theta), 1e-300)
-    at_upper = np.isfinite(upper) & (theta >= upper - span) & (g > 0)
-    at_lower = np.isfinite(lower) & (theta <= lower + span) & (g < 0)
-    cos = np.where(at_upper | at_lower, 0.0, cos)
+    # per parameter on the k floats (numpy calls on k-vectors cost more): the cosine,
+    # 0 for a zero column and for a parameter at a bound that the gradient pushes
+    # outward; the first largest (a NaN counts as largest, as np.argmax has it)
+    j, worst = 0, -math.inf
+    for i, (g_i, c_i, t_i, lo_i, up_i) in enumerate(zip(
+            g.tolist(), cols.tolist(), theta.tolist(), prob.lower.tolist(),
+            prob.upper.tolist())):
+        if c_i > 0:
+            den = c_i * norm_psi  # (0 only by underflow: then inf, or NaN for 0/0)
+            cos = abs(g_i) / den if den > 0 else (math.inf if g_i != 0 else math.nan)
+        else:
+            cos = 0.0
+        span = 1e-10 * max(abs(t_i), 1e-300)
+        if ((g_i > 0 and math.isfinite(up_i) and t_i >= up_i - span)
+                or (g_i < 0 and math.isfinite(lo_i) and t_i <= lo_i + span)):
+            cos = 0.0
+        if cos != cos:
+            j, worst = i, cos
+            break
+        if cos > worst:
+            j, worst = i, cos
     # rounding of the residuals themselves (eps |y| per point) bounds how small the
     # cosine can get; near an exact fit that bound is far above COSINE_TOL
-    y_norm = float(np.linalg.norm(prob.y if prob.unit else prob.y / prob.sig))
-    slope = 1.0 if loss is None else max(float(np.max(np.abs(loss.dpsi(np.zeros(1))))), 1.0)
-    rounding = 1e3 * np.finfo(float).eps * slope * y_norm / (s * norm_psi)
-    j = int(np.argmax(cos))
-    worst = float(cos[j])
+    slope = 1.0 if loss is None else _slope_at_zero(loss)
+    rounding = 1e3 * _EPS * slope * _y_norm(prob) / (s * norm_psi)
     return bool(worst <= COSINE_TOL + rounding), worst, j
+
+
+_EPS = float(np.finfo(float).eps)
+
+
+def _y_norm(prob: _Problem) -> float:
+    """``||y||`` whitened (made once per problem)."""
+    v = prob.__dict__.get("_verdict_y_norm")
+    if v is None:
+        v = prob._verdict_y_norm = float(np.linalg.norm(prob.y if prob.unit else prob.y / prob.sig))
+    return v
+
+
+_SLOPES: dict = {}
+
+
+def _slope_at_zero(loss: Loss) -> float:
+    """``max(|psi'(0)|, 1)`` (kept per loss)."""
+    try:
+        return _SLOPES[loss]
+    except (KeyError, TypeError):
+        pass
+    v = max(float(np.max(np.abs(loss.dpsi(np.zeros(1))))), 1.0)
+    try:
+        if len(_SLOPES) < 64:
+            _SLOPES[loss] = v
+    except TypeError:  # (an unhashable loss: computed each time)
+        pass
+    return v
 
 
 _GRAM_MIN_ROWS = 4000
@@ -115,31 +157,45 @@ def _step_small(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | N
             w = np.maximum(np.maximum(loss.weight(u), loss.dpsi(u)), 0.0)
             g = s * (loss.psi(u) @ J)
             Jw = J * np.sqrt(w)[:, None]
-        if not (np.all(np.isfinite(Jw)) and np.all(np.isfinite(g))):
+        if not (np.isfinite(Jw).all() and np.isfinite(g).all()):
             return True, 0.0, 0
         d = np.sqrt(np.einsum("ij,ij->j", Jw, Jw))
         d = np.where(d > 0, d, 1.0)
         R = _gram_r(Jw, d) if Jw.shape[0] >= _GRAM_MIN_ROWS else None
         if R is None:
-            R = np.linalg.qr(Jw / d, mode="r")
-        diag = np.abs(np.diag(R))
+            R = small_la.qr_r(Jw / d)
+        diag = np.abs(R.diagonal())
         if diag.size == 0 or diag.min() <= 1e-14 * diag.max():
             return True, 0.0, 0
-        Rinv = np.linalg.solve(R, np.eye(R.shape[0]))
+        # (R is regular here: its inverse as numpy.linalg.solve(R, I) gives it, without
+        # the wrapper's overhead; small_la)
+        Rinv = small_la.inv(R)
         delta = (Rinv @ (Rinv.T @ (g / d))) / d
         sd = np.sqrt(np.einsum("ij,ij->i", Rinv, Rinv)) / d  # sqrt(C_jj)
-        cand = np.clip(theta + delta, prob.lower, prob.upper)
-        delta = cand - theta
-        y_norm = float(np.linalg.norm(prob.y if prob.unit else prob.y / prob.sig))
-        allowed = STEP_REL * np.abs(theta) + 1e3 * np.finfo(float).eps * y_norm * sd
-        rel = np.abs(delta) / np.maximum(np.abs(theta), 1e-300)
-        bad = np.abs(delta) > allowed
-    if not np.all(np.isfinite(delta)):
-        return True, 0.0, 0
-    if not np.any(bad):
-        return True, float(np.max(np.where(np.isfinite(rel), rel, 0.0), initial=0.0)), 0
-    j = int(np.argmax(np.where(bad, np.abs(delta) / np.maximum(allowed, 1e-300), -1.0)))
-    return False, float(rel[j]), j
+    # per parameter on the k floats (numpy calls on k-vectors cost more than this):
+    # the step as far as the bounds let it go, what rounding allows, and the test
+    tol_sd = 1e3 * _EPS * _y_norm(prob)
+    rows = []
+    for t, dl, lo, up, sd_j in zip(theta.tolist(), delta.tolist(), prob.lower.tolist(),
+                                   prob.upper.tolist(), sd.tolist()):
+        dl = min(max(t + dl, lo), up) - t  # (np.clip; NaN stays NaN)
+        if not math.isfinite(dl):
+            return True, 0.0, 0
+        a = abs(dl)
+        rows.append((a, STEP_REL * abs(t) + tol_sd * sd_j, a / max(abs(t), 1e-300)))
+    # the first parameter with the largest step against what it is allowed (np.argmax)
+    j, worst = -1, -math.inf
+    for i, (a, allowed, _) in enumerate(rows):
+        if a > allowed:
+            v = a / max(allowed, 1e-300)
+            if v != v:
+                j = i
+                break
+            if v > worst:
+                j, worst = i, v
+    if j < 0:
+        return True, max((rel for _, _, rel in rows if math.isfinite(rel)), default=0.0), 0
+    return False, rows[j][2], j
 
 
 def _insensitive(prob: _Problem, theta: np.ndarray, J: np.ndarray | None = None) -> list[int]:
