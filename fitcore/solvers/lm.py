@@ -9,9 +9,20 @@ from .._lazy import LazyModule
 
 from ..losses import Loss
 from .verdict import COSINE_TOL, STEP_REL, _first_order, _step_small
-from .problem import FitError, _Inner, _objective, _Problem, _project, _start_residuals
+from .problem import (FitError, _all_finite, _Inner, _objective_u, _Problem, _project,
+                      _start_residuals)
 
 lapack = LazyModule("scipy.linalg.lapack", globals())  # lazy: 0.2 s to import, needed once a fit runs
+
+# numpy's own kernels behind np.einsum (without ``optimize``), np.linalg.eigvalsh and
+# np.linalg.solve: the same arithmetic without the Python wrappers, which at a few
+# parameters cost more than the work (callers keep the wrappers' error rules, see
+# _eigvalsh and _solve)
+try:
+    from numpy._core.multiarray import c_einsum as _einsum
+except ImportError:  # (numpy < 2)
+    _einsum = np.einsum
+_umath_linalg = getattr(np.linalg, "_umath_linalg", None)
 
 
 class _StepSolver:
@@ -42,24 +53,23 @@ class _StepSolver:
                 self.g = (Jw.T @ rw) / D
         self.direct = False
         if not self.fast:
-            Js = Jw / D
-            n, k = Js.shape
+            n, k = Jw.shape
             if n > k:
                 # one Householder QR of [J | r] (LAPACK directly: numpy's wrappers cost
                 # more than the arithmetic at this size): R, and Q^T r in its last column
                 A = np.empty((n, k + 1), order="F")
-                A[:, :k] = Js
+                np.divide(Jw, D, out=A[:, :k])
                 A[:, k] = rw
                 qr, _, info = _geqrf(A)
-                R = np.triu(qr[:k, :k])
-                d = np.abs(np.diag(R))
+                R = _triu(qr[:k, :k])
                 # triangular solves where R is safely regular (cond(R) <= 1e12 by
                 # LAPACK's estimate: the same solution as the SVD solve below to
                 # rounding); else the SVD solve, which truncates a rank deficiency
-                self.direct = info == 0 and d.min() > 0 and _trcond(R) >= 1e-12
+                self.direct = (info == 0 and all(abs(v) > 0 for v in R.diagonal().tolist())
+                               and _trcond(R) >= 1e-12)
                 self.R, self.qtr = R, qr[:k, k].copy()
             else:
-                Q, R = np.linalg.qr(Js, mode="reduced")
+                Q, R = np.linalg.qr(Jw / D, mode="reduced")
                 self.R, self.qtr = R, Q.T @ rw
             self.G = self.R.T @ self.R
             self.g = self.R.T @ self.qtr
@@ -78,11 +88,8 @@ class _StepSolver:
         G = (Js * dpsi[:, None]).T @ Js
         if H is not None:
             G = G - s * (H / D) / D[:, None]
-        try:
-            ev = np.linalg.eigvalsh(G)
-        except np.linalg.LinAlgError:
-            return None
-        if not (ev[0] > 0 and ev[-1] <= cls.FAST_MAX_COND * ev[0]):
+        ev = _eigvalsh(G)
+        if ev is None or not (ev[0] > 0 and ev[-1] <= cls.FAST_MAX_COND * ev[0]):
             return None
         self = cls.__new__(cls)
         self.D, self.fast, self.G = D, True, G
@@ -92,16 +99,17 @@ class _StepSolver:
     def solve(self, lam: float) -> np.ndarray:
         k = self.D.size
         if self.fast:
-            z = np.linalg.solve(self.G + lam * np.eye(k), self.g)
+            z = _solve(self.G + lam * _eye(k), self.g)
         elif self.direct:
             if lam > 0:
                 # min ||[R; sqrt(lam) I] z - [Q^T r; 0]|| by a QR of the stacked system
                 A = np.zeros((2 * k, k + 1), order="F")
                 A[:k, :k] = self.R
                 A[:k, k] = self.qtr
-                A[k:, :k] = math.sqrt(lam) * np.eye(k)
+                A[_stacked_diagonal(k)] = math.sqrt(lam)  # (the rest of A[k:] stays 0)
                 qr, _, _ = _geqrf(A)
-                z = _trsolve(np.triu(qr[:k, :k]), qr[:k, k])
+                # (the triangular solve reads only the upper triangle of qr)
+                z = _trsolve(qr[:k, :k], qr[:k, k])
             else:
                 z = _trsolve(self.R, self.qtr)
         elif lam > 0:
@@ -130,9 +138,91 @@ def _trcond(R) -> float:
 
 
 def _trsolve(R, b):
-    """``R^-1 b`` for upper triangular R."""
+    """``R^-1 b`` for upper triangular R (LAPACK reads only the upper triangle; the
+    fallback for an exactly singular R takes it alone too)."""
     x, info = lapack.dtrtrs(R, b)
-    return x if info == 0 else np.linalg.lstsq(R, b, rcond=None)[0]
+    return x if info == 0 else np.linalg.lstsq(np.triu(R), b, rcond=None)[0]
+
+
+# small constant arrays, made once per size (read-only): at a few parameters, making
+# them costs more than the arithmetic they serve
+_CONST: dict = {}
+
+
+def _lower_mask(k: int) -> np.ndarray:
+    m = _CONST.get(("tril", k))
+    if m is None:
+        m = _CONST["tril", k] = np.tri(k, k, -1, dtype=bool)
+        m.flags.writeable = False
+    return m
+
+
+_ZERO = np.zeros(1)
+_ZERO.flags.writeable = False
+
+
+def _triu(M: np.ndarray) -> np.ndarray:
+    """``np.triu(M)`` of a square matrix (the same call, with its mask kept)."""
+    return np.where(_lower_mask(M.shape[0]), _ZERO, M)
+
+
+def _eye(k: int) -> np.ndarray:
+    e = _CONST.get(("eye", k))
+    if e is None:
+        e = _CONST["eye", k] = np.eye(k)
+        e.flags.writeable = False
+    return e
+
+
+def _stacked_diagonal(k: int):
+    """Index of the diagonal of the lower k x k block of a (2k, .) matrix."""
+    d = _CONST.get(("diag", k))
+    if d is None:
+        d = _CONST["diag", k] = (np.arange(k, 2 * k), np.arange(k))
+    return d
+
+
+def _eigvalsh(G: np.ndarray) -> np.ndarray | None:
+    """``np.linalg.eigvalsh(G)`` of a float matrix; None where it raises LinAlgError
+    (no convergence). Call with floating-point errors ignored."""
+    if _umath_linalg is None or G.dtype != np.float64 or G.ndim != 2:
+        try:
+            return np.linalg.eigvalsh(G)
+        except np.linalg.LinAlgError:
+            return None
+    ev = _umath_linalg.eigvalsh_lo(G, signature="d->d")
+    # (numpy's wrapper turns the kernel's NaN on no convergence into LinAlgError)
+    return ev if math.isfinite(ev.sum()) else _eigvalsh_checked(G)
+
+
+def _eigvalsh_checked(G):
+    try:
+        return np.linalg.eigvalsh(G)
+    except np.linalg.LinAlgError:
+        return None
+
+
+def _solve(A: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``np.linalg.solve(A, b)`` for a float matrix and vector. Call with
+    floating-point errors ignored."""
+    if _umath_linalg is None or A.dtype != np.float64 or b.dtype != np.float64:
+        return np.linalg.solve(A, b)
+    z = _umath_linalg.solve1(A, b, signature="dd->d")
+    # (a singular A: the kernel's NaN, which numpy's wrapper raises as LinAlgError)
+    return z if math.isfinite(z.sum()) else np.linalg.solve(A, b)
+
+
+def _column_scale(d2: list, dmax: list):
+    """``dmax = np.maximum(d2, dmax * _SCALE_MEMORY)`` and the column scaling
+    ``D = np.sqrt(np.where(dmax > 0, dmax, 1.0))``, on Python floats (the same
+    numbers, NaN where either is NaN as np.maximum has it): ``(dmax list, D array)``."""
+    dmax = [a if (a != a or a >= b) else b for a, b in zip(d2, [m * _SCALE_MEMORY for m in dmax])]
+    return dmax, np.array([math.sqrt(v) if v > 0 else 1.0 for v in dmax])
+
+
+def _norm(v: np.ndarray) -> float:
+    """``np.linalg.norm`` of a float vector (its own arithmetic: sqrt of v.dot(v))."""
+    return math.sqrt(v.dot(v))
 
 
 _CURVATURE = True  # Newton steps with the model's second derivatives where it has them
@@ -159,23 +249,40 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     """
     lower, upper = prob.lower, prob.upper
     theta = _project(np.asarray(theta, dtype=float).copy(), lower, upper)
-    r = _start_residuals(prob, theta)
-    phi = _objective(loss, r, s)
+    # one errstate block for the whole loop (one per evaluation cost more than the
+    # arithmetic of a small problem's pass); the loop calls the quiet forms
+    with np.errstate(all="ignore"):
+        r = _start_residuals(prob, theta, quiet=True)
+        inner = _lm_loop(prob, theta, r, loss, s, linear, max_iter, xtol, ftol,
+                         polish_steps, newton_steps, near)
+    return _judged(prob, inner, loss, s) if check else inner
+
+
+def _lm_loop(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss, s: float,
+             linear: bool, max_iter: int, xtol: float, ftol: float, polish_steps: bool,
+             newton_steps: bool, near: bool) -> _Inner:
+    """The iterations of :func:`_irls_lm`, with numpy's floating-point errors ignored
+    by the caller. (Python floats and lists stand in for numpy calls on the
+    k-vectors where they give the same numbers: at 25 points a numpy call costs more
+    than its arithmetic.)"""
+    lower, upper = prob.lower, prob.upper
+    lo_l, up_l = lower.tolist(), upper.tolist()
+    phi, u = _objective_u(loss, r, s)
     if not math.isfinite(phi):
-        with np.errstate(all="ignore"):
-            umax = float(np.max(np.abs(r / s)))
+        umax = float(np.max(np.abs(r / s)))
         raise FitError(
             f"the loss ({loss.describe()}) is not finite at the start values: it overflows for "
             f"residuals of {umax:.3g} scale units; give a larger fixed scale, or choose a "
             f"loss that grows more slowly (alpha <= 2)"
         )
+    robust = loss.name != "l2"
     # reweighted steps of a linear model go undamped while they descend (they do for
     # every loss whose weight psi(u)/u does not grow with |u|); after an uphill one the
     # damped rule takes over, as for a nonlinear model
     undamped = linear
     lam = 0.0 if linear else None
     nu = 2.0
-    dmax = np.zeros(theta.size)
+    dmax = [0.0] * theta.size
     message = "converged"
     converged = False
     polish = 0
@@ -183,35 +290,38 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
     it = 0
     # Newton steps near the minimum for the robust losses (least squares: the
     # reweighted step is already Newton's)
-    newton_ok = newton_steps and loss.name != "l2"
+    newton_ok = newton_steps and robust
     near = near and newton_ok  # (a warm start: try Newton steps at once)
     shared = prob.model.f_jac is not None and not prob.model.is_linear
     curvature = _CURVATURE and prob.model.hess_w is not None and not prob.model.is_linear
     for it in range(1, max_iter + 1):
         J = prob.jac(theta)
-        if not np.all(np.isfinite(J)):
-            return _Inner(theta, r, phi, it, False,
-                          "the model's derivatives are not finite at the current parameters")
-        if loss.name == "l2":  # unit weights: no weighted copies of J and r
+        if not robust:  # unit weights: no weighted copies of J and r
             Jw, rw = J, r
         else:
-            w = loss.weight(r / s)
+            if u is None:
+                u = r / s
+            w = loss.weight(u)
             sw = np.sqrt(np.maximum(w, 0.0))
             Jw = J * sw[:, None]
             rw = r * sw
-        d2 = np.einsum("ij,ij->j", Jw, Jw)
+        d2 = _einsum("ij,ij->j", Jw, Jw).tolist()
+        # (a finite sum of squares needs a finite J: J itself is tested only where
+        # the sum is not finite)
+        if not math.isfinite(sum(d2)) and not np.isfinite(J).all():
+            return _Inner(theta, r, phi, it, False,
+                          "the model's derivatives are not finite at the current parameters")
         # column scaling from the current column norms, with a memory that fades by
         # half per iteration (a plain running maximum goes stale once a column shrinks
         # by orders of magnitude, as in MGH10's valley; the current norms alone let a
         # shrinking column's parameter run away in one step, as in MGH17)
-        dmax = np.maximum(d2, dmax * _SCALE_MEMORY)
-        D = np.sqrt(np.where(dmax > 0, dmax, 1.0))
+        dmax, D = _column_scale(d2, dmax)
         step_solver = None
         if near:
             # close to the minimum: Newton steps (the reweighted ones converge only
             # linearly, at a rate set by how far psi(u)/u is from psi'(u))
-            psi, dpsi = loss.psi_dpsi(r / s)
-            H = prob.hess_w(theta, psi) if curvature else None
+            psi, dpsi = loss.psi_dpsi(u)
+            H = prob.hess_w_quiet(theta, psi) if curvature else None
             step_solver = _StepSolver.newton(J, psi, dpsi, s, D, H)
         newton = step_solver is not None
         if not newton:
@@ -222,12 +332,18 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
         for _ in range(80):
             use_lam = 0.0 if (polish or undamped or newton) else lam
             step = step_solver.solve(use_lam)
-            cand = _project(theta + step, lower, upper)
+            cand = theta + step
+            # (_project's own test, on Python floats: strictly inside every bound)
+            if not all(a < v < b for v, a, b in zip(cand.tolist(), lo_l, up_l)):
+                cand = _project(cand, lower, upper)
             step = cand - theta
             # (with the Jacobian in the same pass where the model shares the work: kept
             # for the next iteration, which starts from this candidate once accepted)
-            r_new = prob.resid(cand, with_jac=shared)
-            phi_new = _objective(loss, r_new, s) if np.all(np.isfinite(r_new)) else math.inf
+            r_new = prob.resid_quiet(cand, with_jac=shared)
+            if _all_finite(r_new):
+                phi_new, u_new = _objective_u(loss, r_new, s)
+            else:
+                phi_new, u_new = math.inf, None
             pred = step_solver.predicted_decrease(step) / (s * s)
             gain = (phi - phi_new) / pred if pred > 0 else (1.0 if phi_new <= phi else -1.0)
             # while polishing, the objective is flat to rounding along ill-conditioned
@@ -267,11 +383,12 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
                     message = "converged (no further decrease possible in double precision)"
                 break
             continue
-        scaled = np.linalg.norm(D * step)
-        small_step = scaled <= xtol * (np.linalg.norm(D * cand) + xtol)
+        scaled = _norm(D * step)
+        ncand = _norm(D * cand)
+        small_step = scaled <= xtol * (ncand + xtol)
         small_gain = (phi - phi_new) <= ftol * max(phi, 1e-300)
-        theta, r, phi = cand, r_new, phi_new
-        if newton_ok and not near and scaled <= _NEAR * (np.linalg.norm(D * cand) + _NEAR):
+        theta, r, phi, u = cand, r_new, phi_new, u_new
+        if newton_ok and not near and scaled <= _NEAR * (ncand + _NEAR):
             near = True
         if phi == 0.0:
             converged = True
@@ -281,19 +398,18 @@ def _irls_lm(prob: _Problem, theta: np.ndarray, loss: Loss, s: float, *,
             polish += 1
             stalled = polish > 4 and scaled >= 0.9 * last_scaled
             last_scaled = scaled
-            if scaled <= 1e-15 * (np.linalg.norm(D * cand) + 1e-15) or polish > 40 or stalled:
+            if scaled <= 1e-15 * (ncand + 1e-15) or polish > 40 or stalled:
                 converged = True
                 break
             continue
-        if small_step or (small_gain and scaled <= 1e-11 * (np.linalg.norm(D * cand) + 1e-11)):
+        if small_step or (small_gain and scaled <= 1e-11 * (ncand + 1e-11)):
             if linear or not polish_steps:
                 converged = True
                 break
             polish = 1  # a few undamped steps to reach full accuracy
     else:
         message = f"did not converge in {max_iter} iterations"
-    inner = _Inner(theta, r, phi, it, converged, message)
-    return _judged(prob, inner, loss, s) if check else inner
+    return _Inner(theta, r, phi, it, converged, message)
 
 
 def _judged(prob: _Problem, inner: _Inner, loss: Loss, s: float) -> _Inner:

@@ -45,7 +45,17 @@ class _Problem:
     def k(self) -> int:
         return int(self.free.sum())
 
+    @property
+    def all_free(self) -> bool:
+        """Every parameter is free (made once)."""
+        a = self.__dict__.get("_all_free")
+        if a is None:
+            a = self._all_free = bool(self.free.all())
+        return a
+
     def full(self, theta: np.ndarray) -> np.ndarray:
+        if self.all_free:  # (the same numbers as the masked copy below, one call)
+            return np.array(theta, dtype=self.p_fixed.dtype)
         p = self.p_fixed.copy()
         p[self.free] = theta
         return p
@@ -56,29 +66,38 @@ class _Problem:
         same call where the model can share the work (kept for the next ``jac``).
         ``scratch``: work arrays to write the residuals (and f, J) into; the result is
         then overwritten by the next call with the same scratch."""
+        if self.model.is_linear:
+            return self.resid_quiet(theta, with_jac, scratch)
+        with np.errstate(all="ignore"):
+            return self.resid_quiet(theta, with_jac, scratch)
+
+    def resid_quiet(self, theta: np.ndarray, with_jac: bool = False,
+                    scratch: "_Scratch | None" = None) -> np.ndarray:
+        """:meth:`resid` for a caller that has numpy's floating-point errors ignored
+        already (an errstate block costs microseconds, a small model's pass not
+        many more)."""
         self.n_eval += 1
         if self.model.is_linear:
             A = self.jac(theta)
             out = None if scratch is None else scratch.get("r", (self.n,))
             out = np.matmul(A, theta, out=out)
             return np.subtract(self.rhs(), out, out=out)  # one fresh array, not two
-        with np.errstate(all="ignore"):
-            if with_jac and self.model.f_jac is not None:
-                p = self.full(theta)
-                bufs = None if scratch is None else (
-                    scratch.get("f", (self.n,)), scratch.get("J", (self.n, p.size), "F"))
-                f, J = self.model.f_jac(self.x, p, out=bufs)
-                key = np.asarray(theta, dtype=float).tobytes()
-                held = None if scratch is None else (scratch, scratch.stamp("J"))
-                self._jac_at = (key, J, held)
-                if scratch is not None:
-                    self._f_at = (key, f, scratch, scratch.stamp("f"))
-            else:
-                f = self.model.f(self.x, self.full(theta))
-            f = np.asarray(f, dtype=float)
-            out = None if scratch is None else scratch.get("r", (self.n,))
-            r = np.subtract(self.y, f, out=out)
-            return r if self.unit else np.divide(r, self.sig, out=r)
+        if with_jac and self.model.f_jac is not None:
+            p = self.full(theta)
+            bufs = None if scratch is None else (
+                scratch.get("f", (self.n,)), scratch.get("J", (self.n, p.size), "F"))
+            f, J = self.model.f_jac(self.x, p, out=bufs)
+            key = np.asarray(theta, dtype=float).tobytes()
+            held = None if scratch is None else (scratch, scratch.stamp("J"))
+            self._jac_at = (key, J, held)
+            if scratch is not None:
+                self._f_at = (key, f, scratch, scratch.stamp("f"))
+        else:
+            f = self.model.f(self.x, self.full(theta))
+        f = np.asarray(f, dtype=float)
+        out = None if scratch is None else scratch.get("r", (self.n,))
+        r = np.subtract(self.y, f, out=out)
+        return r if self.unit else np.divide(r, self.sig, out=r)
 
     def release(self) -> None:
         """Drop the cached design matrix (a linear model's; as large as the data at two
@@ -129,23 +148,27 @@ class _Problem:
             with np.errstate(all="ignore"):
                 J = np.asarray(self.model.jac(self.x, self.full(theta)), dtype=float)
         J = J.reshape(self.n, -1)
-        if not self.free.all():
+        if not self.all_free:
             J = J[:, self.free]
         return J if self.unit else J / self.sig[:, None]
 
     def hess_w(self, theta: np.ndarray, w: np.ndarray) -> np.ndarray | None:
         """``sum_i w_i d^2(f_i/sigma_i)/dtheta dtheta^T`` over the free parameters, from
         the model's ``hess_w``; None where the model has none (or it is not finite)."""
+        with np.errstate(all="ignore"):
+            return self.hess_w_quiet(theta, w)
+
+    def hess_w_quiet(self, theta: np.ndarray, w: np.ndarray) -> np.ndarray | None:
+        """:meth:`hess_w` for a caller that has floating-point errors ignored."""
         hw = self.model.hess_w
         if hw is None or self.model.is_linear:
             return None
         if not self.unit:
             w = w / self.sig
-        with np.errstate(all="ignore"):
-            H = np.asarray(hw(self.x, self.full(theta), w), dtype=float)
-        if not self.free.all():
+        H = np.asarray(hw(self.x, self.full(theta), w), dtype=float)
+        if not self.all_free:
             H = H[np.ix_(self.free, self.free)]
-        return H if np.all(np.isfinite(H)) else None
+        return H if _all_finite(H) else None
 
     @property
     def lower(self):
@@ -244,11 +267,30 @@ def _release_scratch() -> None:
 
 def _objective(loss: Loss, r: np.ndarray, s: float) -> float:
     with np.errstate(all="ignore"):
-        if loss.name == "l2" and r.size >= 4000:  # (no temporaries as large as r)
-            v = 0.5 * float(r @ r) / (s * s)
-            return v if math.isfinite(v) else math.inf
-        v = float(np.sum(loss.rho(r / s)))
-    return v if math.isfinite(v) else math.inf
+        return _objective_u(loss, r, s)[0]
+
+
+def _objective_u(loss: Loss, r: np.ndarray, s: float):
+    """``(objective, r / s)`` for a caller that has numpy's floating-point errors
+    ignored already; ``r / s`` is None where it was not formed."""
+    if loss.name == "l2" and r.size >= 4000:  # (no temporaries as large as r)
+        v = 0.5 * float(r @ r) / (s * s)
+        return (v if math.isfinite(v) else math.inf), None
+    u = r / s
+    rho = loss.rho(u)
+    # (np.sum's reduction without its wrappers)
+    v = float(_add_reduce(rho, None) if type(rho) is np.ndarray else np.sum(rho))
+    return (v if math.isfinite(v) else math.inf), u
+
+
+_add_reduce = np.add.reduce
+
+
+def _all_finite(a: np.ndarray) -> bool:
+    """``np.all(np.isfinite(a))`` of a float array: a finite sum has only finite terms,
+    so the elementwise test runs only where the sum is not finite (a non-finite value,
+    or an overflow). Call with floating-point errors ignored."""
+    return math.isfinite(_add_reduce(a, None)) or bool(np.isfinite(a).all())
 
 
 def _project(theta, lower, upper):
@@ -265,10 +307,16 @@ def _project(theta, lower, upper):
     return t
 
 
-def _start_residuals(prob: _Problem, theta: np.ndarray) -> np.ndarray:
+def _start_residuals(prob: _Problem, theta: np.ndarray, quiet: bool = False) -> np.ndarray:
     """The residuals at the start values; a FitError in plain words where the model
-    cannot be evaluated there."""
-    r = prob.resid(theta)
+    cannot be evaluated there. (``quiet``: the caller has floating-point errors
+    ignored.)"""
+    if quiet:
+        r = prob.resid_quiet(theta)
+        if _all_finite(r):
+            return r
+    else:
+        r = prob.resid(theta)
     if not np.all(np.isfinite(r)):
         badmask = ~np.isfinite(r)
         bad = int(np.sum(badmask))
