@@ -1107,10 +1107,11 @@ def _logistic4():
         with np.errstate(invalid="ignore"):
             dh = np.where(gg == 0.0, 0.0, -d * gg * lr)
             de = d * gg * hill / ec50
-        if out is None:
-            return fx, np.column_stack([1.0 - g, g, dh, de])
-        f_out, J = out
-        f_out[...] = fx
+        if out is None:  # (column_stack's C-ordered array, without its wrappers)
+            f_out, J = fx, np.empty((fx.size, 4))
+        else:
+            f_out, J = out
+            f_out[...] = fx
         J[:, 0] = 1.0 - g
         J[:, 1] = g
         J[:, 2] = dh

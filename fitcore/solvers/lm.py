@@ -38,6 +38,7 @@ class _StepSolver:
 
     FAST_MIN_ROWS = 4000
     FAST_MAX_COND = 1e8
+    __slots__ = ("D", "fast", "direct", "G", "g", "R", "qtr")
 
     def __init__(self, Jw: np.ndarray, rw: np.ndarray, D: np.ndarray):
         self.D = D
@@ -119,10 +120,11 @@ class _StepSolver:
             z = np.linalg.lstsq(self.R, self.qtr, rcond=None)[0]
         return z / self.D
 
-    def predicted_decrease(self, step: np.ndarray) -> float:
-        """Decrease of 1/2 ||sqrt(w)(r - J step)||^2 predicted for ``step``."""
+    def predicted_decrease(self, step: np.ndarray) -> tuple[float, np.ndarray]:
+        """Decrease of 1/2 ||sqrt(w)(r - J step)||^2 predicted for ``step``, and the
+        scaled step ``D step`` it was computed from."""
         z = step * self.D
-        return float(z @ self.g - 0.5 * z @ self.G @ z)
+        return float(z @ self.g - 0.5 * z @ self.G @ z), z
 
 
 def _geqrf(A):
@@ -344,7 +346,8 @@ def _lm_loop(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss, s: fl
                 phi_new, u_new = _objective_u(loss, r_new, s)
             else:
                 phi_new, u_new = math.inf, None
-            pred = step_solver.predicted_decrease(step) / (s * s)
+            pred, zstep = step_solver.predicted_decrease(step)
+            pred /= s * s
             gain = (phi - phi_new) / pred if pred > 0 else (1.0 if phi_new <= phi else -1.0)
             # while polishing, the objective is flat to rounding along ill-conditioned
             # directions: accept a Gauss-Newton step that does not raise it beyond that
@@ -383,7 +386,7 @@ def _lm_loop(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss, s: fl
                     message = "converged (no further decrease possible in double precision)"
                 break
             continue
-        scaled = _norm(D * step)
+        scaled = _norm(zstep)  # (||D step||: step * D is D * step)
         ncand = _norm(D * cand)
         small_step = scaled <= xtol * (ncand + xtol)
         small_gain = (phi - phi_new) <= ftol * max(phi, 1e-300)
