@@ -106,6 +106,40 @@ def _scalar(alpha: float) -> float:
     return _cached(alpha)
 
 
+def _derivative_coefs(c) -> tuple:
+    """Chebyshev coefficients of the derivative (in t) of the series ``c``."""
+    n = len(c) - 1
+    d = [0.0] * (n + 2)
+    for k in range(n, 0, -1):
+        d[k - 1] = d[k + 1] + 2.0 * k * c[k]
+    d[0] *= 0.5
+    return tuple(d[:max(n, 1)])
+
+
+_DCOEFS = None  # (made on first use)
+
+
+def log_partition_slope(alpha: float) -> float:
+    """d log Z / d alpha for alpha in [0, 2 - 2**-30]: the derivative of the table's
+    Chebyshev piece (within ~1e-10 of a 30-digit quadrature's central difference at
+    alpha 1e-6 ... 1.9, 2e-9 at 1.99, 2e-7 at 1.999, where the slope grows like
+    -log(2 - alpha)/4); NaN elsewhere."""
+    global _DCOEFS
+    if not 0.0 <= alpha <= _HI:
+        return math.nan
+    if _DCOEFS is None:
+        _DCOEFS = [_derivative_coefs(c) for c in _COEFS]
+    i = min(bisect_right(_EDGES, alpha), len(_COEFS)) - 1
+    a, b = _EDGES[i], _EDGES[i + 1]
+    t = (2.0 * alpha - a - b) / (b - a)
+    c = _DCOEFS[i]
+    t2 = 2.0 * t
+    b1 = b2 = 0.0
+    for k in range(len(c) - 1, 0, -1):
+        b1, b2 = c[k] + t2 * b1 - b2, b1
+    return (c[0] + t * b1 - b2) * 2.0 / (b - a)
+
+
 def log_partition(alpha):
     """log Z(alpha) of the general loss's density (scalar or array, alpha >= 0).
 
