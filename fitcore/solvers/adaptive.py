@@ -125,17 +125,22 @@ _GRID = np.linspace(0.0, 2.0, 11)[1:-1]
 
 
 def _profile_grid(r2: np.ndarray, alphas: np.ndarray, lo_c: float, hi_c: float,
-                  start: float) -> np.ndarray:
+                  start, with_lc: bool = False):
     """The profile NLL (minimised over ``log c`` in ``[lo_c, hi_c]``) at many shapes
     ``0 < alpha < 2`` at once: :func:`_best_log_c`'s bracketed Newton iteration on every
     row of an (alphas x residuals) array, to 1e-10 in ``log c`` (the NLL to ~1e-20). For a check of a local
-    search (where another shape may be better), not for the answer itself."""
+    search (where another shape may be better), not for the answer itself.
+    ``start``: one log c for all shapes, or one per shape; ``with_lc``: also the
+    best log c per shape."""
     a = alphas[:, None]
     b = 2.0 - a
     n = r2.size
     lo = np.full(alphas.size, lo_c)
     hi = np.full(alphas.size, hi_c)
-    lc = np.full(alphas.size, start if lo_c < start < hi_c else 0.5 * (lo_c + hi_c))
+    if np.ndim(start):
+        lc = np.where((lo_c < start) & (start < hi_c), start, 0.5 * (lo_c + hi_c))
+    else:
+        lc = np.full(alphas.size, start if lo_c < start < hi_c else 0.5 * (lo_c + hi_c))
     with np.errstate(all="ignore"):
         for _ in range(100):
             z = r2 / np.exp(2.0 * lc)[:, None]
@@ -159,7 +164,8 @@ def _profile_grid(r2: np.ndarray, alphas: np.ndarray, lo_c: float, hi_c: float,
         rho = (b / a) * np.expm1(0.5 * a * np.log1p(z / b))
         lz = np.array([log_partition(float(v)) for v in alphas])
         v = rho.sum(axis=1) + n * lc + n * lz
-    return np.where(np.isfinite(v), v, np.inf)
+    v = np.where(np.isfinite(v), v, np.inf)
+    return (v, lc) if with_lc else v
 
 
 #: above this many residuals the shape is first located on a seeded subsample of
@@ -707,7 +713,7 @@ def _fit_adaptive_joint(prob: _Problem, start: _Inner, s: float, *, linear: bool
     with two clusters of residuals: the iteration again from the better shape)."""
     theta, r = start.theta, start.r
     c_floor = max(1e-6 * s, 1e-300)
-    alpha, c = _grid_start(r, s, c_floor)
+    alpha, c, rows = _grid_start(r, s, c_floor)
     if alpha > _JOINT_ALPHA_MAX:
         return None
     inner = _irls_lm(prob, theta, get_loss("general", tuning=1.0, alpha=alpha), c,
@@ -726,10 +732,10 @@ def _fit_adaptive_joint(prob: _Problem, start: _Inner, s: float, *, linear: bool
             break
         best = got
         # another basin of the profile over alpha (two clusters of residuals)?
-        chk = _grid_start(r, c, c_floor, F)
+        chk = _grid_start(r, c, c_floor, F, rows)
         if chk is None:
             break
-        alpha, c = chk
+        alpha, c, rows = chk
         if alpha > _JOINT_ALPHA_MAX:
             return None
     theta, r, c, alpha, F, _ = best
@@ -757,20 +763,25 @@ def _fit_adaptive_joint(prob: _Problem, start: _Inner, s: float, *, linear: bool
     return [inner, loss, c, alpha, alpha_se, total, info]
 
 
-def _grid_start(r: np.ndarray, c: float, c_floor: float, than: float | None = None):
+def _grid_start(r: np.ndarray, c: float, c_floor: float, than: float | None = None,
+                rows=None):
     """The best (alpha, c) of the profile NLL on the shapes 0, 0.2, ..., 1.8, 2 for
-    fixed residuals; with ``than``: only where it is below that NLL (else None)."""
+    fixed residuals, and the grid's best log c per interior shape (the next call's
+    starts: ``rows``); with ``than``: only where it is below that NLL (else None)."""
     lo_c = math.log(c_floor)
     hi_c = math.log(max(10.0 * float(np.max(np.abs(r))), 10.0 * c, c_floor * 10.0))
     r2 = r * r
     start = math.log(max(c, c_floor))
-    vals = _profile_grid(r2, _GRID, lo_c, hi_c, start)
-    cands = [(float(v), float(a)) for v, a in zip(vals, _GRID)]
-    for a in (0.0, 2.0):
-        lc = _best_log_c(r, a, lo_c, hi_c, start, r2)
-        cands.append((_nll(r, a, lc), a))
-    v, a = min(cands)
+    vals, lcs = _profile_grid(r2, _GRID, lo_c, hi_c, start if rows is None else rows,
+                              with_lc=True)
+    cands = [(float(v), float(a), float(lc)) for v, a, lc in zip(vals, _GRID, lcs)]
+    lc = _best_log_c(r, 0.0, lo_c, hi_c, start, r2)
+    cands.append((_nll(r, 0.0, lc), 0.0, lc))
+    # (at alpha = 2 the likelihood equation has the closed form c^2 = mean r^2)
+    m2 = float(np.mean(r2))
+    lc = min(max(0.5 * math.log(m2), lo_c), hi_c) if m2 > 0.0 else lo_c
+    cands.append((_nll(r, 2.0, lc), 2.0, lc))
+    v, a, lc = min(cands)
     if than is not None and not v < than - 1e-9 * max(abs(than), 1.0):
         return None
-    lc = _best_log_c(r, a, lo_c, hi_c, start, r2)
-    return a, math.exp(lc)
+    return a, math.exp(lc), lcs
