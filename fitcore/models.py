@@ -172,6 +172,16 @@ def _cramer2(products, w):
     return c, np.isfinite(c).all(axis=1) & (np.abs(det) > 1e-10 * (a * d))
 
 
+def _max_abs(vals: list) -> float:
+    """``np.max(np.abs(vals))`` of a short non-empty list of floats (NaN if any is)."""
+    top = 0.0
+    for v in vals:
+        if v != v:
+            return math.nan
+        top = max(top, abs(v))
+    return top
+
+
 def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     """Outlier-resistant linear least squares for a small design matrix.
 
@@ -224,9 +234,10 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
     with np.errstate(all="ignore"):
         c = wls(np.ones(n))
         r = y - As @ c
+        c_list = c.tolist()
         for it in range(n_huber + n_tukey):
             s = mad_about_median(r)
-            if not (s > 0 and np.isfinite(s)):
+            if not (s > 0 and math.isfinite(s)):
                 break
             u = np.abs(r) / s
             if it < n_huber:
@@ -236,10 +247,14 @@ def _robust_lstsq(A, y, n_huber=12, n_tukey=6):
             if np.count_nonzero(w) <= kk:
                 break
             c_new = wls(w)
-            if not np.all(np.isfinite(c_new)):
+            # (the tests on the kk floats: all finite; the largest change against
+            # 1e-10 (1 + the largest |coefficient|), as np.max would take them)
+            new_list = c_new.tolist()
+            if not all(map(math.isfinite, new_list)):
                 break
-            step = np.max(np.abs(c_new - c)) <= 1e-10 * (1.0 + np.max(np.abs(c)))
-            c = c_new
+            step = (_max_abs([a - b for a, b in zip(new_list, c_list)])
+                    <= 1e-10 * (1.0 + _max_abs(c_list)))
+            c, c_list = c_new, new_list
             r = y - As @ c
             if step and it >= n_huber:
                 break
@@ -893,8 +908,8 @@ def _logistic_start(x, y):
     """Start values (bottom, top, hill, EC50) for the 4PL, sign of hill by trend."""
     xp = x[x > 0]
     big, small, span = _positive_scale(x)
-    xlo = float(np.min(xp)) if xp.size else small
-    xhi = float(np.max(xp)) if xp.size else big
+    xlo = float(xp.min()) if xp.size else small
+    xhi = float(xp.max()) if xp.size else big
     ux, sy = _smoothed(x, y)
     m = ux.size
     if m < 2:
@@ -903,7 +918,7 @@ def _logistic_start(x, y):
     q = max(1, m // 5)
     vals = sy.tolist()  # (short lists: Python's sort, the same medians as np.median)
     y_low, y_high = _small_median(vals[:q]), _small_median(vals[-q:])
-    y_min, y_max = float(np.min(sy)), float(np.max(sy))
+    y_min, y_max = float(sy.min()), float(sy.max())
     falling = y_low >= y_high
     top, bottom = (y_max, y_min)
     hill_sign = 1.0 if falling else -1.0
@@ -913,13 +928,15 @@ def _logistic_start(x, y):
     F = (y - bottom) / (top - bottom)
     sel = (x > 0) & (F > 0.05) & (F < 0.95)
     hill, ec50 = hill_sign, math.sqrt(xlo * xhi)
-    if np.count_nonzero(sel) >= 2 and np.ptp(x[sel]) > 0:  # (two distinct x at least)
-        lx = np.log(x[sel])
+    xsel = x[sel]
+    if xsel.size >= 2 and xsel.max() > xsel.min():  # (two distinct x at least)
+        lx = np.log(xsel)
         t = np.log(1.0 / F[sel] - 1.0)
         a0, h = _theil_sen(lx, t)
-        if np.isfinite(h) and h * hill_sign > 0:
+        if math.isfinite(h) and h * hill_sign > 0:
             hill = h
-            ec50 = math.exp(float(np.clip(-a0 / h, math.log(xlo) - 3, math.log(xhi) + 3)))
+            # (np.clip of one value; NaN stays NaN)
+            ec50 = math.exp(min(max(-a0 / h, math.log(xlo) - 3), math.log(xhi) + 3))
     if not (hill * hill_sign > 0):
         hill = hill_sign
     # midpoint crossing of the smoothed curve as a cross-check for EC50
@@ -1094,28 +1111,31 @@ def _logistic4():
     def f_jac(x, p, out=None):
         # f and jac above with z and g computed once (the same arithmetic, the same
         # numbers); ``out`` = (f, J) to fill, J column-major (n, 4)
-        bottom, top, hill, ec50 = p
+        # (Python floats: the same IEEE arithmetic as numpy's scalars, cheaper)
+        bottom, top, hill, ec50 = np.asarray(p, dtype=float).tolist()
         x_in = x
         x = np.asarray(x, dtype=float).ravel()
         z, lr = _logistic_z(x, hill, ec50)
         g = special.expit(-z)
         d = top - bottom
-        fx = bottom + d * g
         gg = g * special.expit(z)
         if x.size <= _SHARE_MAX:
             shared[0] = (x_in, (bottom, top, hill, ec50), lr, g, gg)
-        with np.errstate(invalid="ignore"):
-            dh = np.where(gg == 0.0, 0.0, -d * gg * lr)
-            de = d * gg * hill / ec50
-        if out is None:  # (column_stack's C-ordered array, without its wrappers)
-            f_out, J = fx, np.empty((fx.size, 4))
+        if out is None:
+            f_out, J = np.empty(x.size), np.empty((x.size, 4))  # (as column_stack made it)
         else:
             f_out, J = out
-            f_out[...] = fx
-        J[:, 0] = 1.0 - g
+        # each value written where it goes (the same operations as bottom + d g,
+        # 1 - g, where(gg == 0, 0, -d gg ln(x/EC50)) and d gg hill / EC50)
+        np.add(np.multiply(g, d, out=f_out), bottom, out=f_out)
+        np.subtract(1.0, g, out=J[:, 0])
         J[:, 1] = g
-        J[:, 2] = dh
-        J[:, 3] = de
+        with np.errstate(invalid="ignore"):
+            dh = np.multiply(np.multiply(gg, -d, out=J[:, 2]), lr, out=J[:, 2])
+            if not gg.all():  # (x = 0 or a saturated curve: gg = 0, ln -inf)
+                dh[gg == 0.0] = 0.0
+            np.divide(np.multiply(np.multiply(gg, d, out=J[:, 3]), hill, out=J[:, 3]), ec50,
+                      out=J[:, 3])
         return f_out, J
 
     def hess_w(x, p, w):

@@ -424,14 +424,19 @@ def _judged(prob: _Problem, inner: _Inner, loss: Loss, s: float) -> _Inner:
     if not (inner.converged and inner.objective > 0.0):
         return inner
     psi_loss = None if loss.name == "l2" else loss
-    ok, cos, j = _first_order(prob, theta, r, psi_loss, s)
+    # (u = r/s, psi and psi' at this point where the solver kept them: the Newton
+    # iteration's last pass, at this scale and these residuals)
+    st = inner.stats
+    kept = (st if st and st.get("s") == s and st.get("r") is r and "dpsi" in st
+            and psi_loss is not None else None)
+    ok, cos, j = _first_order(prob, theta, r, psi_loss, s, kept=kept)
     if not ok:
         name = np.asarray(prob.model.param_names)[prob.free][j]
         message = (f"stopped at a point that is not a minimum (first-order test: the "
                    f"gradient along {name} has cosine {cos:.1e} with the residuals, "
                    f"above {COSINE_TOL:g}); try other start values")
     else:
-        ok, rel, j = _step_small(prob, theta, r, psi_loss, s)
+        ok, rel, j = _step_small(prob, theta, r, psi_loss, s, kept=kept)
         if ok:
             return inner
         name = np.asarray(prob.model.param_names)[prob.free][j]

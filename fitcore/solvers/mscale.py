@@ -116,6 +116,8 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True,
     a = np.abs(r, out=buf("mad_a", n))
     if n >= SELECT_FROM:
         return _mad_and_gradient_large(r, J, a, smooth, step, m, w, buf)
+    if n <= _MAD_SORT_MAX:
+        return _mad_and_gradient_small(r, J, a, smooth, h, w)
     if keep_order:
         p = buf("mad_p", n)
         p[...] = a
@@ -150,6 +152,29 @@ def _mad_and_gradient(r: np.ndarray, J: np.ndarray, smooth: bool = True,
         # the points that attain the middle values (a tie picks the first; the gradient
         # is then one of the equally valid one-sided ones)
         idx = np.array([int(np.flatnonzero(a == v)[0]) for v in vals])
+    grad = -(np.sign(r[idx]) @ J[idx]) / idx.size
+    return MAD_CONSTANT * med, MAD_CONSTANT * grad
+
+
+_MAD_SORT_MAX = 200  # up to this many points one sort gives the order statistics
+
+
+def _mad_and_gradient_small(r, J, a, smooth, h, w):
+    """:func:`_mad_and_gradient` for few points: the same order statistics (so the same
+    numbers) from one sort of ``a = |r|`` instead of three partitions of a copy."""
+    n = r.size
+    srt = np.sort(a)
+    upper = float(srt[h])
+    med = upper if n % 2 else 0.5 * (float(srt[h - 1]) + upper)
+    if not math.isfinite(med):
+        return math.nan, np.full(J.shape[1], math.nan)
+    if smooth:
+        # the points whose |r| lies within w ranks of the median (ranks h - w, h + w)
+        lo, hi = srt[h - w], srt[h + w]
+        idx = np.flatnonzero((a >= lo) & (a <= hi))
+    else:
+        vals = [upper] if n % 2 else [float(srt[h - 1]), upper]
+        idx = np.array([int((a == v).argmax()) for v in vals])  # (the first that attains it)
     grad = -(np.sign(r[idx]) @ J[idx]) / idx.size
     return MAD_CONSTANT * med, MAD_CONSTANT * grad
 
@@ -242,7 +267,7 @@ def _newton_with_mad(prob: _Problem, theta, s: float, loss: Loss, max_iter: int 
                 c = _OBJECTIVE_CHUNK
                 obj = math.fsum(loss.sum_rho(u[i:i + c], psi[i:i + c]) for i in range(0, n, c))
         obj = obj if math.isfinite(obj) else math.inf
-        stats = {"psi": psi, "dpsi": dpsi, "u": u, "s": s}  # (u = r / s)
+        stats = {"psi": psi, "dpsi": dpsi, "u": u, "s": s, "r": r}  # (u = r / s)
         return _Inner(theta, r, obj, it, True, "converged", stats)
 
     norm_prev = math.inf

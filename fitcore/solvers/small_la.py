@@ -11,8 +11,11 @@ float64 arrays of the right shape: there are no checks.
 
 Where the factorisation fails (a singular matrix) numpy.linalg raises ``LinAlgError``;
 these return arrays of NaN instead (what the ufunc itself gives), for the caller's
-finiteness test. Where the private module is missing (another numpy), they fall back
-to the public functions with the same contract.
+finiteness test, and numpy's invalid-value flag is raised (a RuntimeWarning unless
+the caller's ``errstate`` or warning filter ignores it: the solvers run under
+``fit``'s filter; an ``errstate`` per call would cost as much as the call). Where the
+private module is missing (another numpy), they fall back to the public functions
+with the same contract.
 """
 from __future__ import annotations
 
@@ -34,8 +37,7 @@ def solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
             return np.linalg.solve(a, b)
         except np.linalg.LinAlgError:
             return np.full(b.shape, np.nan)
-    with np.errstate(all="ignore"):
-        return _solve1(a, b, signature="dd->d")
+    return _solve1(a, b, signature="dd->d")
 
 
 def inv(a: np.ndarray) -> np.ndarray:
@@ -45,8 +47,7 @@ def inv(a: np.ndarray) -> np.ndarray:
             return np.linalg.inv(a)
         except np.linalg.LinAlgError:
             return np.full(a.shape, np.nan)
-    with np.errstate(all="ignore"):
-        return _inv(a, signature="d->d")
+    return _inv(a, signature="d->d")
 
 
 def svd_thin(a: np.ndarray):
@@ -59,8 +60,7 @@ def svd_thin(a: np.ndarray):
             m, n = a.shape
             k = min(m, n)
             return np.full((m, k), np.nan), np.full(k, np.nan), np.full((k, n), np.nan)
-    with np.errstate(all="ignore"):
-        return _svd_s(a, signature="d->ddd")
+    return _svd_s(a, signature="d->ddd")
 
 
 def qr_r(a: np.ndarray) -> np.ndarray:
@@ -69,6 +69,5 @@ def qr_r(a: np.ndarray) -> np.ndarray:
     if _ufuncs is None:  # pragma: no cover
         return np.linalg.qr(a, mode="r")
     a = np.array(a, dtype=float)  # (the factorisation overwrites its input)
-    with np.errstate(all="ignore"):
-        _qr_r_raw(a, signature="d->d")
+    _qr_r_raw(a, signature="d->d")
     return np.triu(a[:min(a.shape), :])

@@ -45,14 +45,16 @@ INSENSITIVE = 1e-10
 
 
 def _first_order(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | None,
-                 s: float, J: np.ndarray | None = None) -> tuple[bool, float, int]:
+                 s: float, J: np.ndarray | None = None,
+                 kept: dict | None = None) -> tuple[bool, float, int]:
     """``(passes, largest cosine, index of that parameter)`` at ``theta``.
 
-    ``loss=None`` is least squares (psi = r)."""
+    ``loss=None`` is least squares (psi = r). ``kept``: a solver's ``psi(r/s)`` at this
+    point (key "psi"), to use instead of computing it again."""
     if J is None:
         J = prob.jac(theta)
     with np.errstate(all="ignore"):
-        psi = r if loss is None else loss.psi(r / s)
+        psi = r if loss is None else kept["psi"] if kept else loss.psi(r / s)
         if not (np.isfinite(J).all() and np.isfinite(psi).all()):
             return False, math.inf, 0
         norm_psi = math.sqrt(float(psi @ psi))  # (np.linalg.norm: the same number)
@@ -135,7 +137,8 @@ def _gram_r(Jw: np.ndarray, d: np.ndarray) -> np.ndarray | None:
 
 
 def _step_small(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | None,
-                s: float, J: np.ndarray | None = None) -> tuple[bool, float, int]:
+                s: float, J: np.ndarray | None = None,
+                kept: dict | None = None) -> tuple[bool, float, int]:
     """``(passes, largest relative step, index of that parameter)`` at ``theta``.
 
     The step is the reweighted Gauss-Newton step ``delta = (J^T W J)^-1 J^T psi s`` with
@@ -145,7 +148,9 @@ def _step_small(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | N
     STEP_REL |theta_j| + 1e3 eps ||y|| sqrt(C_jj)`` with ``C = (J^T W J)^-1``: the second
     term is the step that rounding of the data alone can cause (exact fits, parameters
     at 0). A step that a bound stops is not counted; a singular ``J^T W J`` is not
-    judged here (:func:`_insensitive` names a parameter that no longer acts)."""
+    judged here (:func:`_insensitive` names a parameter that no longer acts).
+    ``kept``: a solver's ``u = r/s``, ``psi(u)`` and ``psi'(u)`` at this point (keys
+    "u", "psi", "dpsi"), to use instead of computing them again."""
     if J is None:
         J = prob.jac(theta)
     with np.errstate(all="ignore"):
@@ -153,9 +158,13 @@ def _step_small(prob: _Problem, theta: np.ndarray, r: np.ndarray, loss: Loss | N
             Jw, g = J, r @ J  # (W = I: no weighted copy of J)
         else:  # where psi' exceeds psi(u)/u (the general loss beyond alpha = 2) it is the
             # curvature, and the reweighted step would overstate the distance to the minimum
-            u = r / s
-            w = np.maximum(np.maximum(loss.weight(u), loss.dpsi(u)), 0.0)
-            g = s * (loss.psi(u) @ J)
+            if kept:
+                u, psi, dpsi = kept["u"], kept["psi"], kept["dpsi"]
+            else:
+                u = r / s
+                psi, dpsi = loss.psi(u), loss.dpsi(u)
+            w = np.maximum(np.maximum(loss.weight(u), dpsi), 0.0)
+            g = s * (psi @ J)
             Jw = J * np.sqrt(w)[:, None]
         if not (np.isfinite(Jw).all() and np.isfinite(g).all()):
             return True, 0.0, 0
@@ -221,9 +230,8 @@ def _insensitive_columns(prob: _Problem, theta: np.ndarray, J: np.ndarray | None
         J = prob.jac(theta)
     with np.errstate(all="ignore"):
         cols = np.sqrt(np.einsum("ij,ij->j", J, J))
-        y_norm = float(np.linalg.norm(prob.y if prob.unit else prob.y / prob.sig))
         effect = cols * np.abs(theta)
-    ref = INSENSITIVE * max(y_norm, 1e-300)
+    ref = INSENSITIVE * max(_y_norm(prob), 1e-300)
     return [j for j in range(theta.size) if theta[j] != 0 and np.isfinite(effect[j])
             and effect[j] < ref]
 
@@ -252,11 +260,14 @@ def _pole_search(prob: _Problem, theta: np.ndarray, n_grid: int) -> float | None
         # a curve monotone in x between the points lies between its values at the two
         # ends, which are data points: finite and within the limit below wherever the
         # values at the points are finite (else the grid search decides, as for any model)
-        try:
-            with np.errstate(all="ignore"):
-                fx = np.asarray(prob.model.f(x, prob.full(theta)), dtype=float)
-        except Exception:  # noqa: BLE001 - judged by the search below
-            fx = None
+        # (the values at the points from the solver's last pass where it kept them)
+        fx = prob.kept_f(theta)
+        if fx is None:
+            try:
+                with np.errstate(all="ignore"):
+                    fx = np.asarray(prob.model.f(x, prob.full(theta)), dtype=float)
+            except Exception:  # noqa: BLE001 - judged by the search below
+                fx = None
         if fx is not None and fx.shape == x.shape and np.isfinite(fx).all():
             return None
     grid = np.linspace(lo, hi, n_grid)
