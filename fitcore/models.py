@@ -1156,7 +1156,8 @@ def _logistic4():
         # row, so the same numbers; one call instead of six)
         V = np.empty((5, lr.size))
         with np.errstate(invalid="ignore"):
-            lr = np.where(gg == 0.0, 0.0, lr)  # (x = 0: gg = 0, lr = -inf)
+            if not gg.all():  # (x = 0: gg = 0, lr = -inf; NaN counts as nonzero, as before)
+                lr = np.where(gg == 0.0, 0.0, lr)
             wg = np.multiply(w, gg, out=V[0])
             np.multiply(wg, lr, out=V[1])  # w gg ln(x/EC50)
             c = np.multiply(wg, 1.0 - 2.0 * g, out=V[2])

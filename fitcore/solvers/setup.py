@@ -250,7 +250,13 @@ def _prepare(model, x, y, loss, *, scale, alpha, sigma, excluded, p0, fixed, tun
     all_used = n_used == n_all
     xu, yu = (x, y) if all_used else (x[used], y[used])
     if sig_all is None:
-        sig_u = np.broadcast_to(1.0, (n_used,))  # read-only; never divided by (unit)
+        # read-only; never divided by (unit). (A view of one value from 2000 points;
+        # below, a small array costs less to make than broadcast_to's view.)
+        if n_used > 2000:
+            sig_u = np.broadcast_to(1.0, (n_used,))
+        else:
+            sig_u = np.ones(n_used)
+            sig_u.flags.writeable = False
     else:
         sig_u = sig_all if all_used else sig_all[used]
     try:
