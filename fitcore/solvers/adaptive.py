@@ -387,9 +387,11 @@ def _fit_adaptive(prob: _Problem, theta, s0: float, *, linear: bool, max_iter: i
                 "alpha held at 1 (pseudo-Huber)"))
             info = {"nll": math.nan, "c_floor": s, "scale_at_floor": True, "exact": True}
             return inner, get_loss("general", tuning=1.0, alpha=1.0), s, 1.0, math.nan, total, info
-        if prob.n <= _ML_LARGE:
+        if 3 * prob.k <= prob.n <= _ML_LARGE:
             # (up to _ML_LARGE points: the joint Newton iteration; the alternation below
-            # where it declines)
+            # where it declines. Not below three points per parameter: there the scale
+            # can collapse onto a fit through k of them, a far lower NLL that the
+            # alternation found and the joint iteration missed in one 8-point 4PL of 224)
             got = _fit_adaptive_joint(prob, inner, s, linear=linear, max_iter=max_iter)
             if got is not None:
                 got[5] += total
